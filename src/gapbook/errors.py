@@ -1,0 +1,29 @@
+"""Errors a user can cause, kept apart from analysis failures.
+
+The CLI turns :class:`InputError` into exit code 2 with its one-line message and
+:class:`AnalysisError` into exit code 1; any other exception is a bug in gapbook.
+"""
+from __future__ import annotations
+
+import difflib
+from typing import Iterable
+
+
+class InputError(Exception):
+    """Bad params, data or paths: the message names the file, key, column or row and what to do."""
+
+
+class AnalysisError(Exception):
+    """The analysis could not be carried out on valid input (e.g. a model did not converge)."""
+
+
+def nearest(word: str, choices: Iterable[str]) -> str | None:
+    """The valid word closest to ``word``, or None when nothing is close."""
+    found = difflib.get_close_matches(str(word), [str(c) for c in choices], n=1, cutoff=0.6)
+    return found[0] if found else None
+
+
+def did_you_mean(word: str, choices: Iterable[str]) -> str:
+    """A ``; did you mean 'x'?`` suffix for an error message, or an empty string."""
+    best = nearest(word, choices)
+    return f"; did you mean '{best}'?" if best else ""

@@ -1,0 +1,296 @@
+"""The params schema: the single source of truth for keys, defaults and error messages.
+
+A study is described by one YAML file. :func:`load_params` reads it safely, validates
+every key against the models below and returns a frozen :class:`Params` whose paths are
+resolved against the file's folder. Notebooks receive ``Params.to_dict()`` from the
+runner and rebuild it with :meth:`Params.from_dict`; they never read YAML themselves.
+
+Unknown keys and bad values raise :class:`~gapbook.errors.InputError` with a one-line
+message that names the file and key and suggests the nearest valid word.
+"""
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Any, Dict, List, Literal, Optional, Tuple, Union
+
+import yaml
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
+
+from .errors import InputError, did_you_mean
+
+VariableType = Literal["continuous", "binary", "nominal", "ordinal", "count"]
+VARIABLE_TYPES: Tuple[str, ...] = ("continuous", "binary", "nominal", "ordinal", "count")
+FAMILIES: Tuple[str, ...] = ("gaussian", "binomial", "poisson")
+DATA_FORMATS: Tuple[str, ...] = ("auto", "csv", "tsv", "xlsx", "parquet")
+IMPUTATION_METHODS: Tuple[str, ...] = ("pmm", "normal", "logistic", "multinomial", "ordinal", "passive")
+STAGES: Tuple[str, ...] = ("audit", "mechanism", "cases", "indicator", "impute", "sensitivity", "simulate", "report")
+
+Marker = Union[str, int, float]
+
+
+class _Section(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+class StudySection(_Section):
+    name: str = "Unnamed study"
+
+
+class DataSection(_Section):
+    path: str
+    id: Optional[str] = None
+    format: Literal["auto", "csv", "tsv", "xlsx", "parquet"] = "auto"
+    sheet: Optional[Union[str, int]] = None
+    encoding: str = "utf-8"
+
+
+class VariableSpec(_Section):
+    type: Optional[VariableType] = None
+    label: Optional[str] = None
+    levels: Optional[List[Union[str, int, float]]] = None
+    range: Optional[Tuple[Optional[float], Optional[float]]] = None
+    out_of_range: Optional[Literal["flag", "missing"]] = None
+    applies_if: Optional[str] = None
+
+    @model_validator(mode="after")
+    def _range_ordered(self) -> "VariableSpec":
+        if self.range is not None:
+            lo, hi = self.range
+            if lo is not None and hi is not None and lo > hi:
+                raise ValueError(f"range [{lo}, {hi}] has its lower bound above its upper bound")
+        return self
+
+
+class ColumnMissing(_Section):
+    markers: List[Marker] = Field(default_factory=list)
+    reasons: Dict[Marker, str] = Field(default_factory=dict)
+
+
+class MissingSection(_Section):
+    markers: List[Marker] = Field(default_factory=lambda: ["", "NA", "N/A", "NaN", "null", "."])
+    reasons: Dict[Marker, str] = Field(default_factory=dict)
+    columns: Dict[str, ColumnMissing] = Field(default_factory=dict)
+    out_of_range: Literal["flag", "missing"] = "flag"
+    robust_z: float = Field(5.0, gt=0)
+
+
+class AuditSection(_Section):
+    threshold: float = Field(0.20, ge=0, le=1)
+    by: List[str] = Field(default_factory=list)
+    top_patterns: int = Field(15, ge=1)
+
+    @field_validator("by", mode="before")
+    @classmethod
+    def _one_or_many(cls, value: Any) -> Any:
+        return [value] if isinstance(value, str) else value
+
+
+class MechanismSection(_Section):
+    variables: Optional[List[str]] = None
+    alpha: float = Field(0.05, gt=0, lt=1)
+    min_missing: int = Field(10, ge=1)
+    em_tolerance: float = Field(1e-8, gt=0)
+    em_max_iterations: int = Field(1000, ge=1)
+
+
+class AnalysisSection(_Section):
+    formula: Optional[str] = None
+    family: Literal["gaussian", "binomial", "poisson"] = "gaussian"
+    exposure: Optional[str] = None
+    offset: Optional[str] = None
+    robust: bool = False
+    alpha: float = Field(0.05, gt=0, lt=1)
+
+
+class ImputationSection(_Section):
+    m: int = Field(20, ge=1)
+    iterations: int = Field(10, ge=1)
+    seed: int = Field(20261202, ge=0)
+    donors: int = Field(5, ge=1)
+    n_jobs: int = Field(1, ge=1)
+    methods: Dict[str, Literal["pmm", "normal", "logistic", "multinomial", "ordinal", "passive"]] = Field(
+        default_factory=dict
+    )
+    passive: Dict[str, str] = Field(default_factory=dict)
+    predictors: Dict[str, List[str]] = Field(default_factory=dict)
+    exclude_predictors: Dict[str, List[str]] = Field(default_factory=dict)
+    auxiliary: List[str] = Field(default_factory=list)
+
+
+class DeltaGrid(_Section):
+    values: Optional[List[float]] = None
+    by: Optional[str] = None
+    groups: Dict[str, List[float]] = Field(default_factory=dict)
+
+
+class SensitivitySection(_Section):
+    variable: Optional[str] = None
+    delta: Dict[str, Union[List[float], DeltaGrid]] = Field(default_factory=dict)
+    m: Optional[int] = Field(None, ge=1)
+
+
+class SimulationSection(_Section):
+    replicates: int = Field(200, ge=2)
+    seed: int = Field(20261203, ge=0)
+    n_jobs: int = Field(2, ge=1)
+    m: int = Field(5, ge=1)
+    mar_on: List[str] = Field(default_factory=list)
+
+
+class ReportSection(_Section):
+    title: Optional[str] = None
+    min_cell: int = Field(5, ge=0)
+    suppress_small: bool = False
+    group: Optional[str] = None
+
+
+SECTIONS: Tuple[str, ...] = (
+    "study", "data", "variables", "missing", "audit", "mechanism", "analysis",
+    "imputation", "sensitivity", "simulation", "report",
+)
+
+
+class Params(_Section):
+    """Resolved, validated study params. ``source`` is the params file (None when built in code)."""
+
+    study: StudySection = Field(default_factory=StudySection)
+    data: DataSection
+    variables: Dict[str, VariableSpec] = Field(default_factory=dict)
+    missing: MissingSection = Field(default_factory=MissingSection)
+    audit: AuditSection = Field(default_factory=AuditSection)
+    mechanism: MechanismSection = Field(default_factory=MechanismSection)
+    analysis: AnalysisSection = Field(default_factory=AnalysisSection)
+    imputation: ImputationSection = Field(default_factory=ImputationSection)
+    sensitivity: SensitivitySection = Field(default_factory=SensitivitySection)
+    simulation: SimulationSection = Field(default_factory=SimulationSection)
+    report: ReportSection = Field(default_factory=ReportSection)
+    source: Optional[str] = None
+
+    @property
+    def data_path(self) -> Path:
+        """The data file, resolved against the params file's folder."""
+        path = Path(self.data.path).expanduser()
+        if not path.is_absolute() and self.source:
+            path = Path(self.source).parent / path
+        return path.resolve()
+
+    @property
+    def label(self) -> str:
+        return self.source or "params"
+
+    def to_dict(self) -> Dict[str, Any]:
+        """Plain JSON/YAML-ready dict with the data path made absolute (what notebooks receive)."""
+        out = self.model_dump(mode="json")
+        out["data"]["path"] = str(self.data_path)
+        return out
+
+    def to_yaml(self) -> str:
+        body = self.to_dict()
+        body.pop("source", None)
+        return yaml.safe_dump(body, sort_keys=False, allow_unicode=True)
+
+    @classmethod
+    def from_dict(cls, raw: Dict[str, Any], source: Optional[str] = None) -> "Params":
+        """Validate a params mapping; errors name ``source`` (the file) and the key."""
+        label = source or raw.get("source") or "params"
+        if not isinstance(raw, dict):
+            raise InputError(f"{label}: the params file must be a mapping of sections ({', '.join(SECTIONS)})")
+        body = dict(raw)
+        if source is not None:
+            body["source"] = str(source)
+        try:
+            return cls.model_validate(body)
+        except ValidationError as exc:
+            raise InputError(_explain(exc, label)) from None
+
+
+def load_params(path: Union[str, Path]) -> Params:
+    """Read and validate a params YAML file (safe loading only)."""
+    path = Path(path)
+    if not path.is_file():
+        raise InputError(f"{path}: params file not found; give the path to a YAML file (see 'gapbook new DIR')")
+    try:
+        raw = yaml.safe_load(path.read_text(encoding="utf-8"))
+    except yaml.YAMLError as exc:
+        mark = getattr(exc, "problem_mark", None)
+        where = f" at line {mark.line + 1}" if mark is not None else ""
+        raise InputError(f"{path}: not valid YAML{where}; check indentation and quoting") from None
+    except UnicodeDecodeError:
+        raise InputError(f"{path}: not a UTF-8 text file; save the params file as UTF-8") from None
+    if raw is None:
+        raise InputError(f"{path}: the params file is empty; it needs at least a 'data' section with 'path'")
+    return Params.from_dict(raw, source=str(path.resolve()))
+
+
+# ---------------------------------------------------------------------------
+# error messages
+
+def _inner_model(annotation: Any) -> Any:
+    """Unwrap Optional/Dict/List annotations to the nested model, if any."""
+    args = getattr(annotation, "__args__", None)
+    if isinstance(annotation, type) and issubclass(annotation, BaseModel):
+        return annotation
+    if args:
+        for arg in reversed(args):
+            inner = _inner_model(arg)
+            if inner is not None:
+                return _DictOf(inner) if getattr(annotation, "__origin__", None) is dict else inner
+    return None
+
+
+class _DictOf:
+    def __init__(self, model: type):
+        self.model = model
+
+
+def _dotted(loc: Tuple[Any, ...]) -> str:
+    parts = [str(p) for p in loc if not str(p).startswith(("function-", "union", "tagged"))]
+    return ".".join(parts) if parts else "(top level)"
+
+
+def _parent_fields(loc: Tuple[Any, ...]) -> List[str]:
+    model: Any = Params
+    for part in loc:
+        if isinstance(model, _DictOf):
+            model = model.model
+            continue
+        if not (isinstance(model, type) and issubclass(model, BaseModel)):
+            return []
+        field = model.model_fields.get(str(part))
+        if field is None:
+            return []
+        model = _inner_model(field.annotation)
+    if isinstance(model, _DictOf):
+        return []
+    if isinstance(model, type) and issubclass(model, BaseModel):
+        return [k for k in model.model_fields if k != "source"]
+    return []
+
+
+def _explain(exc: ValidationError, label: str) -> str:
+    """One line for the first validation error, naming file and key, with a suggestion."""
+    error = exc.errors()[0]
+    loc = tuple(p for p in error["loc"] if not str(p).startswith(("function-", "tagged-union")))
+    # Union members add their class name to the location; drop those.
+    loc = tuple(p for p in loc if not (isinstance(p, str) and p[:1].isupper() and p.endswith(("Grid", "Spec"))))
+    loc = tuple(p for p in loc if p not in ("list[float]", "str", "int", "float", "list[union[str,int,float]]"))
+    kind = error["type"]
+    key = _dotted(loc)
+    if kind == "extra_forbidden":
+        word = str(loc[-1])
+        valid = _parent_fields(loc[:-1])
+        where = _dotted(loc[:-1])
+        return (f"{label}: unknown key '{word}' in {where}{did_you_mean(word, valid)}"
+                + (f" (valid keys: {', '.join(valid)})" if valid else ""))
+    if kind == "literal_error":
+        given = error.get("input")
+        expected = error.get("ctx", {}).get("expected", "")
+        choices = [c.strip().strip("'") for c in expected.replace(" or ", ",").split(",") if c.strip()]
+        return (f"{label}: {key}: '{given}' is not one of {', '.join(choices)}"
+                f"{did_you_mean(str(given), choices)}")
+    if kind == "missing":
+        return f"{label}: {key} is required; add it to the params file"
+    message = error.get("msg", "invalid value").replace("Value error, ", "")
+    given = error.get("input")
+    shown = "" if isinstance(given, (dict, list)) else f" (got {given!r})"
+    return f"{label}: {key}: {message}{shown}"
