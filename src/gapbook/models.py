@@ -1,0 +1,194 @@
+"""The study's analysis model, fitted one way for every strategy.
+
+Complete cases, the missing category and each imputed dataset all go through
+:func:`fit_model`, so their terms, standard errors and intervals are computed alike and
+their rows in ``estimates.csv`` line up. The term names are the ones statsmodels gives
+for the params formula, so our tables join with a plain statsmodels fit.
+"""
+from __future__ import annotations
+
+import re
+import warnings
+from dataclasses import dataclass
+from typing import Any, List, Optional, Sequence, Tuple
+
+import numpy as np
+import pandas as pd
+import statsmodels.api as sm
+import statsmodels.formula.api as smf
+from scipy import stats
+
+from .errors import AnalysisError, InputError, did_you_mean
+
+FAMILIES = ("gaussian", "binomial", "poisson")
+RATIO_NAMES = {"binomial": "odds_ratio", "poisson": "rate_ratio"}
+
+
+@dataclass(frozen=True)
+class ModelFit:
+    """Coefficients, covariance and inference of one fitted analysis model.
+
+    ``df_resid`` is the residual degrees of freedom used for t-based inference (OLS), or
+    None when inference is by the normal distribution (GLMs).
+    """
+
+    formula: str
+    family: str
+    terms: Tuple[str, ...]
+    params: np.ndarray
+    cov: np.ndarray
+    df_resid: Optional[float]
+    nobs: int
+    robust: bool
+    alpha: float = 0.05
+
+    @property
+    def std_errors(self) -> np.ndarray:
+        return np.sqrt(np.diag(self.cov))
+
+    def table(self, strategy: str) -> pd.DataFrame:
+        """Rows for ``estimates.csv``: one per term, with CI at level 1 - alpha and p-value."""
+        se = self.std_errors
+        with np.errstate(divide="ignore", invalid="ignore"):
+            z = self.params / se
+        if self.df_resid is None:
+            crit = stats.norm.ppf(1 - self.alpha / 2)
+            p = 2 * stats.norm.sf(np.abs(z))
+        else:
+            crit = stats.t.ppf(1 - self.alpha / 2, self.df_resid)
+            p = 2 * stats.t.sf(np.abs(z), self.df_resid)
+        frame = pd.DataFrame({
+            "strategy": strategy, "term": list(self.terms), "estimate": self.params, "std_error": se,
+            "ci_lower": self.params - crit * se, "ci_upper": self.params + crit * se, "p_value": p,
+            "n_used": self.nobs,
+        })
+        return add_ratio_columns(frame, self.family)
+
+
+def add_ratio_columns(frame: pd.DataFrame, family: str) -> pd.DataFrame:
+    """For log-link models, the estimate and CI on the ratio scale (odds or rate ratio)."""
+    name = RATIO_NAMES.get(family)
+    if name is None:
+        return frame
+    return frame.assign(**{name: np.exp(frame["estimate"]), f"{name}_ci_lower": np.exp(frame["ci_lower"]),
+                           f"{name}_ci_upper": np.exp(frame["ci_upper"])})
+
+
+def formula_columns(formula: str, columns: Sequence[str]) -> List[str]:
+    """The data columns a formula uses, in the order they first appear (outcome first)."""
+    found: List[Tuple[int, str]] = []
+    for column in columns:
+        quoted = re.search(r"Q\(\s*['\"]" + re.escape(column) + r"['\"]\s*\)", formula)
+        plain = re.search(rf"(?<![\w.'\"]){re.escape(column)}(?![\w'\"])", formula)
+        hits = [m.start() for m in (quoted, plain) if m is not None]
+        if hits:
+            found.append((min(hits), column))
+    return [c for _, c in sorted(found)]
+
+
+def check_formula(formula: str, columns: Sequence[str], where: str = "analysis.formula") -> Tuple[str, List[str]]:
+    """The outcome and the right-hand-side columns; exits 2 when a name is not a column."""
+    if "~" not in formula:
+        raise InputError(f"{where}: '{formula}' has no '~'; write it as 'outcome ~ exposure + covariates'")
+    lhs, rhs = formula.split("~", 1)
+    outcome = lhs.strip()
+    outcome_col = re.fullmatch(r"Q\(\s*['\"](.+)['\"]\s*\)", outcome)
+    outcome = outcome_col.group(1) if outcome_col else outcome
+    if outcome not in columns:
+        raise InputError(f"{where}: outcome '{outcome}' is not a column of the data{did_you_mean(outcome, columns)}")
+    used = formula_columns(rhs, columns)
+    names = re.findall(r"Q\(\s*['\"]([^'\"]+)['\"]\s*\)|([A-Za-z_][\w.]*)", rhs)
+    known_functions = {"C", "Q", "I", "np", "log", "exp", "sqrt", "center", "standardize", "scale", "bs", "cr",
+                       "poly", "Treatment", "Sum", "Diff", "Poly", "Helmert", "levels", "reference", "contr",
+                       "treatment", "Intercept", "T", "lower", "upper"}
+    for quoted, bare in names:
+        name = quoted or bare
+        if not name or name in columns or name in known_functions or name.split(".")[0] in {"np", "contr"}:
+            continue
+        if re.fullmatch(r"\d+(\.\d+)?", name):
+            continue
+        raise InputError(f"{where}: '{name}' is not a column of the data{did_you_mean(name, columns)}")
+    return outcome, used
+
+
+def _outcome_as_number(data: pd.DataFrame, outcome: str, family: str) -> pd.DataFrame:
+    """A binary text outcome becomes 0/1 with the second declared level as the event."""
+    column = data[outcome]
+    if family == "binomial" and not pd.api.types.is_numeric_dtype(column):
+        levels = list(column.cat.categories) if isinstance(column.dtype, pd.CategoricalDtype) \
+            else sorted(column.dropna().unique())
+        if len(levels) != 2:
+            raise InputError(f"analysis.formula: the binomial outcome '{outcome}' has {len(levels)} levels; "
+                             "it needs exactly two")
+        data = data.copy()
+        data[outcome] = column.map({levels[0]: 0.0, levels[1]: 1.0}).astype(float)
+    return data
+
+
+def fit_model(data: pd.DataFrame, formula: str, family: str = "gaussian", robust: bool = False,
+              offset: Optional[str] = None, alpha: float = 0.05) -> ModelFit:
+    """Fit the analysis model to the rows where every model variable is present.
+
+    Parameters
+    ----------
+    data : the analysis frame (NaN where missing).
+    formula : statsmodels formula, e.g. ``"y ~ arm + C(clinic) + Q('dose.mg')"``.
+    family : gaussian (OLS), binomial (logistic) or poisson (log-linear).
+    robust : sandwich (heteroskedasticity-consistent, HC1) standard errors.
+    offset : column whose log is the offset of a poisson model (person-time), or None.
+
+    References
+    ----------
+    White H (1980). A heteroskedasticity-consistent covariance matrix estimator and a
+    direct test for heteroskedasticity. Econometrica 48:817-838.
+    """
+    if family not in FAMILIES:
+        raise InputError(f"analysis.family: '{family}' is not one of {', '.join(FAMILIES)}"
+                         f"{did_you_mean(family, FAMILIES)}")
+    outcome, _ = check_formula(formula, list(data.columns))
+    if data[outcome].notna().sum() == 0:
+        raise InputError(f"analysis.formula: the outcome '{outcome}' has no observed values")
+    data = _outcome_as_number(data, outcome, family)
+    cov_type = "HC1" if robust else "nonrobust"
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            if family == "gaussian":
+                result = smf.ols(formula, data=data).fit(cov_type=cov_type)
+                df_resid: Optional[float] = float(result.df_resid)
+            else:
+                fam = sm.families.Binomial() if family == "binomial" else sm.families.Poisson()
+                kwargs: dict[str, Any] = {}
+                if offset is not None:
+                    if offset not in data.columns:
+                        raise InputError(f"analysis.offset: '{offset}' is not a column{did_you_mean(offset, data.columns)}")
+                    kwargs["offset"] = np.log(data[offset])
+                    kwargs["missing"] = "drop"
+                result = smf.glm(formula, data=data, family=fam, **kwargs).fit(cov_type=cov_type)
+                df_resid = None
+    except InputError:
+        raise
+    except Exception as exc:
+        message = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+        if int(data.dropna(subset=[outcome]).shape[0]) == 0 or "zero-size" in message or "0 rows" in message:
+            raise InputError(f"analysis.formula: no row has every variable of '{formula}' observed") from None
+        raise AnalysisError(f"the model '{formula}' could not be fitted: {message}") from None
+    if int(result.nobs) == 0:
+        raise InputError(f"analysis.formula: no row has every variable of '{formula}' observed")
+    return ModelFit(formula=formula, family=family, terms=tuple(result.params.index), params=result.params.to_numpy(),
+                    cov=np.asarray(result.cov_params()), df_resid=df_resid, nobs=int(result.nobs), robust=robust,
+                    alpha=alpha)
+
+
+def exposure_terms(terms: Sequence[str], exposure: Optional[str]) -> List[str]:
+    """The model terms that belong to the exposure (a variable name or an exact term name)."""
+    if exposure is None:
+        return [t for t in terms if t != "Intercept"][:1]
+    if exposure in terms:
+        return [exposure]
+    pattern = re.compile(rf"(^|\(|['\"]){re.escape(exposure)}(['\"]|\)|\[|$)")
+    matched = [t for t in terms if pattern.search(t)]
+    if not matched:
+        raise InputError(f"analysis.exposure: '{exposure}' matches no term of the model "
+                         f"({', '.join(terms)}){did_you_mean(exposure, terms)}")
+    return matched

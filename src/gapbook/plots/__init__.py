@@ -1,0 +1,25 @@
+"""Figures, one module per stage; every function takes a stage's result object, never a path.
+
+Shared look: a muted palette of our own and matplotlib's Agg backend, so figures render
+the same on a machine without a screen.
+"""
+from __future__ import annotations
+
+import matplotlib
+
+matplotlib.use("Agg")
+
+import matplotlib.pyplot as plt  # noqa: E402
+
+# Our palette: observed values, missing values, emphasis, reference lines.
+OBSERVED = "#4C6A92"
+MISSING = "#D9822B"
+EMPHASIS = "#8E3B46"
+NEUTRAL = "#9AA5B1"
+REFERENCE = "#2F3E46"
+
+
+def new_figure(width: float = 7.0, height: float = 4.0):
+    """A figure and axes with gapbook's settings."""
+    figure, axes = plt.subplots(figsize=(width, height), layout="constrained")
+    return figure, axes
