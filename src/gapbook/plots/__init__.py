@@ -1,13 +1,17 @@
 """Figures, one module per stage; every function takes a stage's result object, never a path.
 
-Shared look: a muted palette of our own and matplotlib's Agg backend, so figures render
-the same on a machine without a screen.
+Shared look: a muted palette of our own. Outside a Jupyter kernel the Agg backend is
+chosen, so figures render the same on a machine without a screen; inside one the
+kernel's inline backend is left alone so figures show in the executed notebook.
 """
 from __future__ import annotations
 
+import sys
+
 import matplotlib
 
-matplotlib.use("Agg")
+if "ipykernel" not in sys.modules:
+    matplotlib.use("Agg")
 
 import matplotlib.pyplot as plt  # noqa: E402
 
