@@ -97,7 +97,8 @@ def check_formula(formula: str, columns: Sequence[str], where: str = "analysis.f
     if outcome not in columns:
         raise InputError(f"{where}: outcome '{outcome}' is not a column of the data{did_you_mean(outcome, columns)}")
     used = formula_columns(rhs, columns)
-    names = re.findall(r"Q\(\s*['\"]([^'\"]+)['\"]\s*\)|([A-Za-z_][\w.]*)", rhs)
+    # Quoted text outside Q() (e.g. a reference level in Treatment('C2')) is a value, not a column.
+    names = re.findall(r"Q\(\s*['\"]([^'\"]+)['\"]\s*\)|'[^']*'|\"[^\"]*\"|([A-Za-z_][\w.]*)", rhs)
     known_functions = {"C", "Q", "I", "np", "log", "exp", "sqrt", "center", "standardize", "scale", "bs", "cr",
                        "poly", "Treatment", "Sum", "Diff", "Poly", "Helmert", "levels", "reference", "contr",
                        "treatment", "Intercept", "T", "lower", "upper"}
@@ -192,3 +193,43 @@ def exposure_terms(terms: Sequence[str], exposure: Optional[str]) -> List[str]:
         raise InputError(f"analysis.exposure: '{exposure}' matches no term of the model "
                          f"({', '.join(terms)}){did_you_mean(exposure, terms)}")
     return matched
+
+
+@dataclass(frozen=True)
+class AnalysisModel:
+    """The params' analysis model as plain options: what every strategy fits."""
+
+    formula: str
+    family: str = "gaussian"
+    exposure: Optional[str] = None
+    robust: bool = False
+    offset: Optional[str] = None
+    alpha: float = 0.05
+
+    def fit(self, data: pd.DataFrame, formula: Optional[str] = None) -> ModelFit:
+        """``fit_model`` with these options (``formula`` overrides the model's, e.g. with indicators added)."""
+        return fit_model(data, formula or self.formula, self.family, self.robust, self.offset, self.alpha)
+
+    def variables(self, columns: Sequence[str]) -> Tuple[str, List[str]]:
+        """The outcome and the other model columns (formula order, then the offset); exits 2 on unknown names."""
+        if self.family not in FAMILIES:
+            raise InputError(f"analysis.family: '{self.family}' is not one of {', '.join(FAMILIES)}"
+                             f"{did_you_mean(self.family, FAMILIES)}")
+        outcome, used = check_formula(self.formula, list(columns))
+        used = [c for c in used if c != outcome]
+        if self.offset is not None:
+            if self.offset not in columns:
+                raise InputError(f"analysis.offset: '{self.offset}' is not a column{did_you_mean(self.offset, columns)}")
+            if self.offset not in used:
+                used.append(self.offset)
+        return outcome, used
+
+
+def analysis_model(params: Any) -> AnalysisModel:
+    """The ``analysis`` section of validated params as an :class:`AnalysisModel`; exits 2 without a formula."""
+    section = params.analysis
+    if not section.formula:
+        raise InputError(f"{params.label}: analysis.formula is required for this stage; "
+                         "write it as 'outcome ~ exposure + covariates'")
+    return AnalysisModel(formula=section.formula, family=section.family, exposure=section.exposure,
+                         robust=section.robust, offset=section.offset, alpha=section.alpha)
