@@ -1,0 +1,670 @@
+"""The summary page of a record: participant flow, missing data per variable, a reporting
+checklist and drafted methods and results paragraphs filled with this run's numbers.
+
+Every function reads tables that earlier stages wrote (passed in as DataFrames, None when
+that stage did not run) plus the study after intake, and returns frozen results. Nothing
+here fits a model: the numbers in the text are the numbers in the tables, so the page and
+the record cannot disagree.
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from typing import Dict, List, Mapping, Optional, Sequence, Tuple
+
+import numpy as np
+import pandas as pd
+
+from .errors import InputError, did_you_mean
+from .intake import Study
+from .models import check_formula
+from .params import Params
+
+CAUTIONS: Tuple[str, ...] = (
+    "Missing at random cannot be verified from the observed data: every imputation-based result rests on an "
+    "assumption about the values nobody saw, which is why the delta-adjusted analyses are shown beside it.",
+    "These results support, and do not replace, a pre-specified statistical analysis plan and the judgement of a "
+    "qualified statistician.",
+    "Follow the reporting guideline your journal asks for (e.g. CONSORT for trials, STROBE for observational "
+    "studies) and local data-protection rules before sharing any table from this record.",
+)
+
+STRATEGY_LABELS = {
+    "complete_case": "complete cases",
+    "missing_category": "missing-category (indicator) analysis",
+    "multiple_imputation": "multiple imputation",
+}
+
+# Count columns of the record's tables that small-count suppression masks, by table.
+COUNT_TABLES: Dict[str, Tuple[str, ...]] = {
+    "audit_variables": ("n", "n_missing"),
+    "audit_patterns": ("n_rows",),
+    "audit_by_group": ("n", "n_missing"),
+    "flow_complete_case": ("n", "n_rows", "n_complete", "n_excluded"),
+    "participant_flow": (),
+    "descriptives": ("n", "n_missing", "count"),
+}
+
+
+# ---------------------------------------------------------------------------
+# small-count suppression
+
+@dataclass(frozen=True)
+class SuppressedTable:
+    """A count table with small counts masked, and how many cells were masked."""
+
+    table: pd.DataFrame
+    n_masked: int
+    columns: Tuple[str, ...]
+
+
+def suppress_small_counts(frame: pd.DataFrame, min_cell: int, columns: Optional[Sequence[str]] = None,
+                          linked: Optional[Mapping[str, str]] = None) -> SuppressedTable:
+    """Mask counts from 1 to ``min_cell - 1`` (zero is kept: it discloses nobody).
+
+    Parameters
+    ----------
+    frame : a table of counts.
+    min_cell : the smallest count that may be shown (``report.min_cell``).
+    columns : the count columns; by default every column named ``n``, ``n_*`` or ``*_n`` plus
+        integer-valued numeric columns that are not flags.
+    linked : {count column: derived column} — the derived cell (e.g. a percentage) is masked
+        wherever its count is, since it would give the count away.
+
+    Returns
+    -------
+    SuppressedTable whose masked cells read ``"<min_cell"`` (the column becomes text).
+
+    References
+    ----------
+    Common practice in statistical disclosure control (threshold rules); no single source.
+    """
+    columns = tuple(columns) if columns is not None else count_columns(frame)
+    linked = dict(linked or {})
+    table = frame.copy()
+    shown = f"<{min_cell}"
+    masked_total = 0
+    if min_cell <= 1:
+        return SuppressedTable(table, 0, columns)
+    for column in columns:
+        if column not in table.columns:
+            continue
+        values = pd.to_numeric(table[column], errors="coerce")
+        small = (values >= 1) & (values < min_cell)
+        if not small.any():
+            continue
+        masked_total += int(small.sum())
+        table[column] = table[column].astype(object).where(~small, shown)
+        derived = linked.get(column)
+        if derived is not None and derived in table.columns:
+            table[derived] = table[derived].astype(object).where(~small, "suppressed")
+    return SuppressedTable(table, masked_total, columns)
+
+
+def count_columns(frame: pd.DataFrame) -> Tuple[str, ...]:
+    """Columns that hold counts: named n / n_* / *_n, or whole non-negative numbers that are not 0/1 flags."""
+    found: List[str] = []
+    for column in frame.columns:
+        name = str(column)
+        if name == "n" or name.startswith("n_") or name.endswith("_n"):
+            found.append(name)
+            continue
+        values = frame[column]
+        if not pd.api.types.is_numeric_dtype(values) or pd.api.types.is_bool_dtype(values):
+            continue
+        observed = values.dropna().to_numpy(dtype=float)
+        if len(observed) == 0 or np.any(observed < 0) or np.any(np.mod(observed, 1) != 0):
+            continue
+        if set(np.unique(observed)) <= {0.0, 1.0}:
+            continue  # a 0/1 pattern or flag column, not a count
+        if name.startswith(("pct", "p_", "df")) or name in ("statistic", "df", "m", "iterations"):
+            continue
+        found.append(name)
+    return tuple(found)
+
+
+def suppress_record_tables(tables: Mapping[str, Optional[pd.DataFrame]], min_cell: int) -> Dict[str, SuppressedTable]:
+    """Small-count suppression for every count table of the record that is present.
+
+    ``audit_variables`` also masks its reason-count columns and the ``pct_missing`` of a
+    masked ``n_missing``.
+    """
+    out: Dict[str, SuppressedTable] = {}
+    for name, frame in tables.items():
+        if frame is None:
+            continue
+        if name == "audit_variables":
+            known = ("variable", "type", "n", "n_missing", "pct_missing", "over_threshold")
+            reason_columns = [c for c in frame.columns if c not in known and pd.api.types.is_numeric_dtype(frame[c])]
+            out[name] = suppress_small_counts(frame, min_cell, ["n", "n_missing", *reason_columns],
+                                              linked={"n_missing": "pct_missing"})
+        elif name == "audit_patterns":
+            out[name] = suppress_small_counts(frame, min_cell, ["n_rows"], linked={"n_rows": "pct_rows"})
+        else:
+            out[name] = suppress_small_counts(frame, min_cell)
+    return out
+
+
+# ---------------------------------------------------------------------------
+# participant flow
+
+@dataclass(frozen=True)
+class ParticipantFlow:
+    """Rows at each step from the file to each analysis, overall and by group.
+
+    ``table`` has columns step, description, all, and one column per group level.
+    """
+
+    table: pd.DataFrame
+    group: Optional[str]
+    n_rows: int
+    n_complete: int
+
+
+def flow_group(params: Params, study: Study) -> Optional[str]:
+    """The grouping column of the flow: ``report.group``, else a categorical exposure, else none."""
+    group = params.report.group
+    if group is not None:
+        if group not in study.data.columns:
+            raise InputError(f"report.group: '{group}' is not a column of the data"
+                             f"{did_you_mean(group, study.data.columns)}")
+        return group
+    exposure = params.analysis.exposure
+    if exposure in study.data.columns and study.variables[exposure].is_categorical:
+        return exposure
+    return None
+
+
+def participant_flow(study: Study, formula: str, group: Optional[str] = None,
+                     estimates: Optional[pd.DataFrame] = None) -> ParticipantFlow:
+    """Count participants from the file to each analysis (CONSORT-style flow), by group when given.
+
+    Parameters
+    ----------
+    study : the study after intake.
+    formula : the analysis formula (its variables define "complete data for the model").
+    group : a column to split the counts by (e.g. the trial arm), or None.
+    estimates : ``estimates.csv``; its ``n_used`` per strategy gives the analysed counts.
+        A strategy's counts by group are shown when the rows it used can be identified
+        (complete rows, rows with the outcome observed, or all rows) by matching its total.
+
+    Returns
+    -------
+    ParticipantFlow.
+
+    References
+    ----------
+    Schulz KF, Altman DG, Moher D (2010). CONSORT 2010 statement. BMJ 340:c332 (participant flow).
+    """
+    data = study.data
+    outcome, used = check_formula(formula, list(data.columns))
+    model_columns = [outcome] + [c for c in used if c != outcome]
+    missing = study.missing
+    observed_outcome = ~missing[outcome].to_numpy()
+    complete = ~missing[model_columns].any(axis=1).to_numpy()
+    everyone = np.ones(len(data), dtype=bool)
+    levels: List[str] = []
+    if group is not None:
+        if group not in data.columns:
+            raise InputError(f"report.group: '{group}' is not a column of the data{did_you_mean(group, data.columns)}")
+        group_values = data[group].astype(object).where(data[group].notna(), "(missing)").astype(str)
+        levels = list(pd.unique(group_values))
+        if isinstance(data[group].dtype, pd.CategoricalDtype):
+            ordered = [str(c) for c in data[group].cat.categories]
+            levels = [c for c in ordered if c in levels] + [c for c in levels if c not in ordered]
+    else:
+        group_values = pd.Series(["all"] * len(data))
+
+    def counts(mask: np.ndarray) -> Dict[str, float]:
+        row = {"all": float(mask.sum())}
+        for level in levels:
+            row[level] = float((mask & (group_values == level).to_numpy()).sum())
+        return row
+
+    rows = [
+        {"step": "in_file", "description": "rows in the data file", **counts(everyone)},
+        {"step": "outcome_observed", "description": f"outcome ({outcome}) observed", **counts(observed_outcome)},
+    ]
+    reasons = study.reasons[outcome]
+    for reason in [r for r in reasons.cat.categories if (reasons == r).any()]:
+        rows.append({"step": f"outcome_missing: {reason}", "description": f"outcome missing: {reason}",
+                     **counts((reasons == reason).fillna(False).to_numpy(dtype=bool))})
+    rows.append({"step": "complete_for_model", "description": "every model variable observed", **counts(complete)})
+    if estimates is not None and "n_used" in estimates.columns:
+        candidates = [complete, observed_outcome, everyone]
+        for strategy, part in estimates.groupby("strategy", sort=False):
+            total = part["n_used"].dropna()
+            if total.empty:
+                continue
+            n_used = float(total.iloc[0])
+            row = {"step": f"analysed: {strategy}",
+                   "description": f"analysed under {STRATEGY_LABELS.get(strategy, strategy)}", "all": n_used}
+            match = next((mask for mask in candidates if float(mask.sum()) == n_used), None)
+            for level in levels:
+                row[level] = counts(match)[level] if match is not None else float("nan")
+            rows.append(row)
+    table = pd.DataFrame(rows, columns=["step", "description", "all", *levels])
+    return ParticipantFlow(table=table, group=group, n_rows=int(everyone.sum()), n_complete=int(complete.sum()))
+
+
+# ---------------------------------------------------------------------------
+# missing data per variable
+
+@dataclass(frozen=True)
+class MissingSummary:
+    """Missing values per variable with the reasons, and the variables above the audit threshold."""
+
+    table: pd.DataFrame
+    threshold: float
+    over_threshold: Tuple[str, ...]
+
+
+def missing_summary(study: Study, threshold: float, audit_variables: Optional[pd.DataFrame] = None) -> MissingSummary:
+    """Per variable: n, n_missing, pct_missing, over_threshold and the reasons in words.
+
+    Parameters
+    ----------
+    study : the study after intake (gives the reasons when the audit table lacks them).
+    threshold : the audit threshold fraction (``audit.threshold``).
+    audit_variables : ``audit_variables.csv`` when the audit stage ran; its counts are used
+        as they are so the summary and the audit table agree.
+
+    Returns
+    -------
+    MissingSummary with columns variable, n, n_missing, pct_missing, over_threshold, reasons.
+
+    References
+    ----------
+    von Elm E et al. (2007). STROBE statement. Lancet 370:1453-1457 (item on missing data per variable).
+    """
+    missing = study.missing
+    rows = []
+    for variable in study.data.columns:
+        reasons = study.reasons[variable]
+        counts = reasons[missing[variable].to_numpy()].value_counts()
+        counts = counts[counts > 0]
+        words = "; ".join(f"{reason} {int(n)}" for reason, n in counts.items())
+        n_missing = int(missing[variable].sum())
+        n = int(len(study.data) - study.not_applicable[variable].sum())
+        rows.append({"variable": variable, "n": n, "n_missing": n_missing,
+                     "pct_missing": 100.0 * n_missing / n if n else float("nan"),
+                     "over_threshold": bool(n and n_missing / n > threshold), "reasons": words})
+    table = pd.DataFrame(rows)
+    if audit_variables is not None and {"variable", "n_missing"} <= set(audit_variables.columns):
+        audit = audit_variables.set_index("variable")
+        for column in ("n", "n_missing", "pct_missing", "over_threshold"):
+            if column in audit.columns:
+                mapped = table["variable"].map(audit[column])
+                table[column] = mapped.where(mapped.notna(), table[column])
+    flagged = tuple(table.loc[table["over_threshold"].astype(bool), "variable"])
+    return MissingSummary(table=table, threshold=threshold, over_threshold=flagged)
+
+
+# ---------------------------------------------------------------------------
+# the reporting checklist
+
+@dataclass(frozen=True)
+class ChecklistItem:
+    item: str
+    guideline: str
+    answered_in: str
+    value: str
+
+
+@dataclass(frozen=True)
+class Checklist:
+    """What the reporting guidelines ask about missing data, where the record answers it, and the answer."""
+
+    table: pd.DataFrame
+
+    @property
+    def items(self) -> Tuple[str, ...]:
+        return tuple(self.table["item"])
+
+
+def _fmt(value: object, digits: int = 2) -> str:
+    """A number as text: whole numbers plainly, others to ``digits`` decimals; 'n/a' when missing."""
+    try:
+        number = float(value)  # type: ignore[arg-type]
+    except (TypeError, ValueError):
+        return str(value)
+    if not math.isfinite(number):
+        return "n/a"
+    if number == int(number) and abs(number) >= 1:
+        return f"{int(number):,}"
+    return f"{number:.{digits}f}"
+
+
+def _fmt_p(p: object) -> str:
+    try:
+        value = float(p)  # type: ignore[arg-type]
+    except (TypeError, ValueError):
+        return "n/a"
+    if not math.isfinite(value):
+        return "n/a"
+    return "< 0.001" if value < 0.001 else f"{value:.3f}"
+
+
+def exposure_rows(estimates: Optional[pd.DataFrame], terms: Sequence[str]) -> pd.DataFrame:
+    """The rows of ``estimates.csv`` for the exposure terms (empty when none)."""
+    if estimates is None or estimates.empty:
+        return pd.DataFrame(columns=["strategy", "term", "estimate", "ci_lower", "ci_upper", "p_value", "n_used"])
+    return estimates[estimates["term"].isin(list(terms))].reset_index(drop=True)
+
+
+def effect_phrase(row: Mapping[str, object], alpha: float) -> str:
+    """'-0.40 (95% CI -0.49 to -0.31; p < 0.001)' for one estimates row."""
+    level = int(round(100 * (1 - alpha)))
+    return (f"{_fmt(row['estimate'])} ({level}% CI {_fmt(row['ci_lower'])} to {_fmt(row['ci_upper'])}; "
+            f"p {'' if _fmt_p(row['p_value']).startswith('<') else '= '}{_fmt_p(row['p_value'])})")
+
+
+def build_checklist(params: Params, flow: ParticipantFlow, missing: MissingSummary,
+                    tables: Mapping[str, Optional[pd.DataFrame]], terms: Sequence[str]) -> Checklist:
+    """The missing-data reporting checklist with where each item is answered and its value.
+
+    Parameters
+    ----------
+    params : the study params.
+    flow, missing : from :func:`participant_flow` and :func:`missing_summary`.
+    tables : the record's tables by name (None for a stage that did not run).
+    terms : the exposure's model terms.
+
+    Returns
+    -------
+    Checklist with columns item, guideline, answered_in, value.
+
+    References
+    ----------
+    von Elm E et al. (2007). The STROBE statement. Lancet 370:1453-1457 (items 12c, 13, 14b).
+    Schulz KF, Altman DG, Moher D (2010). CONSORT 2010 statement. BMJ 340:c332 (items 13a, 13b, 16).
+    Sterne JAC et al. (2009). Multiple imputation for missing data in epidemiological and clinical
+    research: potential and pitfalls. BMJ 338:b2393 (box on reporting multiple imputation).
+    Item numbers recalled from memory; check them against the current guideline text.
+    """
+    items: List[ChecklistItem] = []
+    outcome = check_formula(params.analysis.formula, list(flow_columns(missing)))[0] \
+        if params.analysis.formula else None
+    n_rows = flow.n_rows
+    estimates = tables.get("estimates")
+    exposure = exposure_rows(estimates, terms)
+
+    # Participant flow (CONSORT 13a/16; STROBE 13a)
+    flow_all = flow.table.set_index("step")["all"]
+    analysed = "; ".join(f"{row['step'].split(': ', 1)[1]} {_fmt(row['all'])}"
+                         for _, row in flow.table.iterrows() if str(row["step"]).startswith("analysed: "))
+    items.append(ChecklistItem(
+        "participants at each step and analysed under each strategy", "CONSORT 13a, 16; STROBE 13a",
+        "tables/participant_flow.csv",
+        f"in file {_fmt(n_rows)}; complete for the model {_fmt(flow.n_complete)}"
+        + (f"; analysed: {analysed}" if analysed else "; no analysis stage has run")))
+    # Losses with reasons (CONSORT 13b; STROBE 13b)
+    if outcome is not None:
+        losses = [f"{step.split(': ', 1)[1]} {_fmt(n)}" for step, n in flow_all.items()
+                  if str(step).startswith("outcome_missing: ")]
+        by_group = ""
+        if flow.group is not None:
+            levels = [c for c in flow.table.columns if c not in ("step", "description", "all")]
+            observed = flow.table.set_index("step").loc["outcome_observed"]
+            total = flow.table.set_index("step").loc["in_file"]
+            by_group = " (outcome missing by " + flow.group + ": " + ", ".join(
+                f"{level} {_fmt(total[level] - observed[level])}" for level in levels) + ")"
+        items.append(ChecklistItem(
+            "losses of the outcome with reasons, by group", "CONSORT 13b; STROBE 13b",
+            "tables/participant_flow.csv",
+            f"{outcome} missing {_fmt(n_rows - flow_all['outcome_observed'])}: "
+            + ("; ".join(losses) if losses else "none") + by_group))
+    # Missing data per variable (STROBE 14b; Sterne et al. 2009)
+    with_missing = missing.table[missing.table["n_missing"].astype(float) > 0]
+    items.append(ChecklistItem(
+        "number missing for each variable", "STROBE 14b; Sterne et al. 2009",
+        "tables/audit_variables.csv" if tables.get("audit_variables") is not None else "summary table (this page)",
+        "; ".join(f"{r.variable} {_fmt(r.n_missing)} ({_fmt(r.pct_missing, 1)}%)" for r in with_missing.itertuples())
+        or "no missing values"))
+    items.append(ChecklistItem(
+        "reasons for missing values", "Sterne et al. 2009; CONSORT 13b",
+        "summary table (this page), reasons column",
+        "; ".join(f"{r.variable}: {r.reasons}" for r in with_missing.itertuples() if r.reasons) or "none recorded"))
+    items.append(ChecklistItem(
+        f"variables above the audit threshold ({_fmt(100 * missing.threshold, 0)}% missing)",
+        "common practice, no source", "tables/audit_variables.csv, over_threshold",
+        ", ".join(missing.over_threshold) or "none"))
+    # Patterns and the mechanism (Sterne et al. 2009: differences between complete and incomplete)
+    patterns = tables.get("audit_patterns")
+    items.append(ChecklistItem(
+        "missingness patterns", "Sterne et al. 2009", "tables/audit_patterns.csv",
+        f"{len(patterns)} patterns listed" if patterns is not None else "audit stage not run"))
+    mcar = tables.get("mcar_test")
+    if mcar is not None and len(mcar):
+        first = mcar.iloc[0]
+        mcar_value = (f"Little's test chi-square {_fmt(first['statistic'])}, df {_fmt(first['df'])}, "
+                      f"p {_fmt_p(first['p_value'])}")
+    else:
+        mcar_value = "mechanism stage not run"
+    items.append(ChecklistItem(
+        "comparison of participants with and without missing data; test of MCAR", "Sterne et al. 2009",
+        "tables/mcar_test.csv, tables/mechanism_groups.csv, tables/mechanism_models.csv", mcar_value))
+    # Methods for handling missing data (STROBE 12c; Sterne et al. 2009)
+    strategies = sorted(set(exposure["strategy"])) if len(exposure) else []
+    items.append(ChecklistItem(
+        "how missing data were addressed", "STROBE 12c",
+        "tables/estimates.csv, strategy column",
+        ", ".join(STRATEGY_LABELS.get(s, s) for s in strategies) or "no analysis stage has run"))
+    imputation = tables.get("imputation_summary")
+    mi = exposure[exposure["strategy"] == "multiple_imputation"]
+    items.append(ChecklistItem(
+        "imputation model: variables, methods, number of imputations and iterations", "Sterne et al. 2009",
+        "tables/imputation_summary.csv; params.yaml (imputation)",
+        (f"m = {params.imputation.m}, iterations = {params.imputation.iterations}, seed = {params.imputation.seed}; "
+         + imputation_methods_phrase(imputation)) if len(mi) or imputation is not None else "imputation stage not run"))
+    items.append(ChecklistItem(
+        "assumption about the missingness (missing at random) and its plausibility", "Sterne et al. 2009",
+        "this page, cautions; the mechanism stage", "missing at random assumed for imputation; not verifiable "
+        "from the data"))
+    items.append(ChecklistItem(
+        "results of complete-case and imputed analyses side by side", "Sterne et al. 2009",
+        "tables/estimates.csv; tables/strategy_comparison.csv",
+        "; ".join(f"{STRATEGY_LABELS.get(r['strategy'], r['strategy'])} {effect_phrase(r, params.analysis.alpha)}"
+                  for _, r in exposure.iterrows()) or "no analysis stage has run"))
+    sensitivity = tables.get("tipping_point")
+    items.append(ChecklistItem(
+        "sensitivity analysis for data missing not at random", "Sterne et al. 2009; Carpenter & Kenward 2013",
+        "tables/sensitivity_delta.csv, tables/tipping_point.csv",
+        tipping_phrase(sensitivity) if sensitivity is not None else "sensitivity stage not run"))
+    performance = tables.get("simulation_performance")
+    items.append(ChecklistItem(
+        "behaviour of each strategy in simulated studies like this one", "Morris et al. 2019 (not a reporting item)",
+        "tables/simulation_performance.csv",
+        simulation_phrase(performance) if performance is not None else "simulation stage not run"))
+    table = pd.DataFrame([item.__dict__ for item in items], columns=["item", "guideline", "answered_in", "value"])
+    return Checklist(table=table)
+
+
+def flow_columns(missing: MissingSummary) -> List[str]:
+    return list(missing.table["variable"])
+
+
+def imputation_methods_phrase(imputation: Optional[pd.DataFrame]) -> str:
+    """'bmi passive, hba1c_12m pmm, ...' from ``imputation_summary.csv`` when it names variables and methods."""
+    if imputation is None or not {"variable", "method"} <= set(imputation.columns):
+        return "methods per variable: see the imputation stage"
+    rows = imputation.dropna(subset=["method"])
+    return "methods: " + ", ".join(f"{r.variable} {r.method}" for r in rows.itertuples())
+
+
+def tipping_phrase(tipping: pd.DataFrame) -> str:
+    """The tipping-point sentences from ``tipping_point.csv`` (its ``statement`` column when present)."""
+    if tipping.empty:
+        return "no tipping point computed"
+    if "statement" in tipping.columns:
+        return " ".join(str(s) for s in tipping["statement"].dropna())
+    return "; ".join(f"{r.variable} {getattr(r, 'group', 'all')}: {_fmt(r.tipping_delta)}" for r in tipping.itertuples())
+
+
+def simulation_phrase(performance: pd.DataFrame) -> str:
+    """'MAR: complete case bias 0.01, coverage 94%; ...' from ``simulation_performance.csv``."""
+    if performance.empty:
+        return "no simulation results"
+    parts = []
+    for row in performance.itertuples():
+        parts.append(f"{row.mechanism} {row.strategy}: bias {_fmt(row.bias, 3)}, "
+                     f"coverage {_fmt(100 * row.coverage, 1)}%")
+    return "; ".join(parts) + f" ({int(performance['n_rep'].max())} replicates)"
+
+
+# ---------------------------------------------------------------------------
+# drafted paragraphs
+
+def draft_methods(params: Params, flow: ParticipantFlow, missing: MissingSummary,
+                  tables: Mapping[str, Optional[pd.DataFrame]]) -> str:
+    """A methods paragraph on the handling of missing data, filled with this run's choices."""
+    estimates = tables.get("estimates")
+    strategies = [] if estimates is None else list(dict.fromkeys(estimates["strategy"]))
+    reasons = sorted({part.rsplit(" ", 1)[0] for text in missing.table["reasons"] if text
+                      for part in text.split("; ")})
+    sentences = [
+        f"Missing values were recorded with their reasons ({', '.join(reasons) or 'none recorded'}) rather than "
+        "as a single missing code, and the amount and pattern of missing data were described per variable.",
+    ]
+    if tables.get("mcar_test") is not None:
+        sentences.append("Whether the data were missing completely at random was assessed with Little's test "
+                         "(Little 1988), and participants with and without missing values were compared.")
+    formula = params.analysis.formula
+    sentences.append(f"The analysis model was `{formula}` ({params.analysis.family} family"
+                     + (", robust standard errors" if params.analysis.robust else "") + ").")
+    if "multiple_imputation" in strategies:
+        imp = params.imputation
+        aux = f" and the auxiliary variables {', '.join(imp.auxiliary)}" if imp.auxiliary else ""
+        passive = (f"; {', '.join(imp.passive)} {'was' if len(imp.passive) == 1 else 'were'} derived passively from "
+                   "the imputed components" if imp.passive else "")
+        sentences.append(
+            f"The primary analysis used multiple imputation by fully conditional specification with m = {imp.m} "
+            f"imputed datasets and {imp.iterations} iterations (seed {imp.seed}); the imputation model included "
+            f"the outcome, the exposure and every covariate of the analysis model{aux}{passive}. "
+            f"{imputation_methods_phrase(tables.get('imputation_summary')).capitalize()}. Estimates were "
+            "combined with Rubin's rules (Rubin 1987) with small-sample degrees of freedom (Barnard & Rubin 1999).")
+    others = [STRATEGY_LABELS[s] for s in ("complete_case", "missing_category") if s in strategies]
+    if others:
+        sentences.append(f"For comparison the model was also fitted by {' and '.join(others)}.")
+    sensitivity = tables.get("sensitivity_delta")
+    if sensitivity is not None and len(sensitivity):
+        deltas = sorted(sensitivity["delta"].unique())
+        variables = ", ".join(dict.fromkeys(sensitivity["variable"]))
+        sentences.append(
+            f"Sensitivity to data missing not at random was explored by delta adjustment (Carpenter & Kenward "
+            f"2013): the imputed values of {variables} were shifted by delta from {_fmt(deltas[0])} to "
+            f"{_fmt(deltas[-1])} after each imputation step and the results re-pooled, and the tipping point at "
+            "which the conclusion changes was searched for.")
+    performance = tables.get("simulation_performance")
+    if performance is not None and len(performance):
+        sentences.append(
+            f"The bias, empirical and model standard errors and coverage of each strategy were estimated in "
+            f"{int(performance['n_rep'].max())} simulated studies of the same size under completely-at-random, "
+            "at-random and not-at-random missingness, with Monte Carlo standard errors (Morris, White & Crowther "
+            "2019).")
+    return " ".join(sentences)
+
+
+def draft_results(params: Params, flow: ParticipantFlow, missing: MissingSummary,
+                  tables: Mapping[str, Optional[pd.DataFrame]], terms: Sequence[str]) -> str:
+    """A results paragraph on missing data and the exposure effect, with this run's numbers."""
+    alpha = params.analysis.alpha
+    sentences = [f"Of {_fmt(flow.n_rows)} participants, {_fmt(flow.n_complete)} "
+                 f"({_fmt(100 * flow.n_complete / flow.n_rows, 1)}%) had every variable of the analysis model "
+                 "observed."]
+    with_missing = missing.table[missing.table["n_missing"].astype(float) > 0].sort_values(
+        "n_missing", ascending=False, key=lambda s: s.astype(float))
+    if len(with_missing):
+        sentences.append("Values were missing for " + "; ".join(
+            f"{r.variable} {_fmt(r.n_missing)} ({_fmt(r.pct_missing, 1)}%)" for r in with_missing.itertuples()) + ".")
+    sentences.append(f"{'No variable' if not missing.over_threshold else ', '.join(missing.over_threshold)} "
+                     f"{'was' if len(missing.over_threshold) <= 1 else 'were'} missing for more than "
+                     f"{_fmt(100 * missing.threshold, 0)}% of participants.")
+    mcar = tables.get("mcar_test")
+    if mcar is not None and len(mcar):
+        row = mcar.iloc[0]
+        sentences.append(f"Little's test gave chi-square {_fmt(row['statistic'])} on {_fmt(row['df'])} degrees of "
+                         f"freedom (p {_fmt_p(row['p_value'])}); a small p-value is evidence against missing "
+                         "completely at random, a large one is not evidence for it.")
+    exposure = exposure_rows(tables.get("estimates"), terms)
+    if len(exposure):
+        parts = [f"{STRATEGY_LABELS.get(r['strategy'], r['strategy'])} {effect_phrase(r, alpha)}"
+                 for _, r in exposure.iterrows()]
+        sentences.append(f"The estimated effect ({', '.join(terms)}) was " + "; ".join(parts) + ".")
+    else:
+        sentences.append("No analysis stage has written estimates yet.")
+    tipping = tables.get("tipping_point")
+    if tipping is not None and len(tipping):
+        sentences.append(tipping_phrase(tipping))
+    return " ".join(sentences)
+
+
+# ---------------------------------------------------------------------------
+# the whole summary
+
+@dataclass(frozen=True)
+class ReportSummary:
+    """Everything on the summary page."""
+
+    flow: ParticipantFlow
+    missing: MissingSummary
+    checklist: Checklist
+    methods_text: str
+    results_text: str
+    cautions: Tuple[str, ...]
+    not_run: Tuple[str, ...]
+
+    def markdown(self, title: str) -> str:
+        """The drafted text as markdown (what ``report_text.md`` holds)."""
+        lines = [f"# {title}", "", "## Methods (draft, edit before use)", "", self.methods_text, "",
+                 "## Results (draft, edit before use)", "", self.results_text, "", "## Reporting checklist", ""]
+        for row in self.checklist.table.itertuples():
+            lines.append(f"- **{row.item}** ({row.guideline}); {row.answered_in}: {row.value}")
+        lines += ["", "## Cautions", ""] + [f"- {c}" for c in self.cautions]
+        if self.not_run:
+            lines += ["", "Stages whose tables were not found in this record: " + ", ".join(self.not_run) + "."]
+        return "\n".join(lines) + "\n"
+
+
+REPORT_TABLES: Tuple[str, ...] = (
+    "audit_variables", "audit_patterns", "audit_summary", "audit_by_group", "mcar_test", "mechanism_groups",
+    "mechanism_models", "flow_complete_case", "descriptives", "estimates", "strategy_comparison",
+    "imputation_summary", "sensitivity_delta", "tipping_point", "simulation_performance",
+)
+STAGE_OF_TABLE = {"audit_variables": "audit", "mcar_test": "mechanism", "estimates": "cases/indicator/impute",
+                  "imputation_summary": "impute", "tipping_point": "sensitivity",
+                  "simulation_performance": "simulate"}
+
+
+def summarise(params: Params, study: Study, tables: Mapping[str, Optional[pd.DataFrame]],
+              terms: Optional[Sequence[str]] = None) -> ReportSummary:
+    """Build the summary page from the study and the record's tables.
+
+    Parameters
+    ----------
+    params : the study params (formula, threshold, group, imputation settings).
+    study : the study after intake.
+    tables : the record's tables by name, None for a stage that did not run.
+    terms : the exposure's model terms; by default taken from ``estimates.csv`` with
+        :func:`gapbook.models.exposure_terms`.
+
+    Returns
+    -------
+    ReportSummary.
+    """
+    if not params.analysis.formula:
+        raise InputError("analysis.formula: the summary needs the analysis formula; add it to the params file")
+    estimates = tables.get("estimates")
+    if terms is None:
+        from .models import exposure_terms
+        terms = exposure_terms(list(dict.fromkeys(estimates["term"])), params.analysis.exposure) \
+            if estimates is not None and len(estimates) else []
+    group = flow_group(params, study)
+    flow = participant_flow(study, params.analysis.formula, group, estimates)
+    missing = missing_summary(study, params.audit.threshold, tables.get("audit_variables"))
+    checklist = build_checklist(params, flow, missing, tables, terms)
+    not_run = tuple(dict.fromkeys(stage for name, stage in STAGE_OF_TABLE.items() if tables.get(name) is None))
+    return ReportSummary(flow=flow, missing=missing, checklist=checklist,
+                         methods_text=draft_methods(params, flow, missing, tables),
+                         results_text=draft_results(params, flow, missing, tables, terms),
+                         cautions=CAUTIONS, not_run=not_run)
