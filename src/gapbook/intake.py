@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import hashlib
 import math
+import re
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Dict, List, Mapping, Optional, Sequence, Tuple
@@ -136,7 +137,8 @@ def read_raw(path: Path, fmt: str = "auto", sheet: Any = None, encoding: str = "
             raw = pd.read_csv(path, sep="," if fmt == "csv" else "\t", dtype=str, keep_default_na=False,
                               na_filter=False, encoding=encoding, skipinitialspace=False)
         elif fmt == "xlsx":
-            raw = pd.read_excel(path, sheet_name=0 if sheet is None else sheet, dtype=object, engine="openpyxl")
+            raw = pd.read_excel(path, sheet_name=0 if sheet is None else sheet, dtype=object, engine="openpyxl",
+                                keep_default_na=False, na_filter=False)
         else:
             raw = pd.read_parquet(path)
     except InputError:
@@ -356,7 +358,7 @@ def _normalise_column(raw: pd.Series, column: str, spec: VariableSpec, markers: 
                          f"'{uniques[bad]}' at {_rows_note(rows, ids)}; declare it as a missing marker "
                          f"(missing.markers or missing.columns.{column}.markers) or correct the data")
 
-    reason_codes = np.where(codes < 0, -2, codes)
+    reason_codes = np.where(codes < 0, len(uniques), codes)  # the extra last entry stands for NA cells
     reason_labels = sorted({r for r in unique_reason if r is not None} | ({na_reason} if (codes < 0).any() else set()))
     label_index = {r: k for k, r in enumerate(reason_labels)}
     lookup = np.array([-1 if r is None else label_index[r] for r in unique_reason] + [label_index.get(na_reason, -1)],
@@ -467,7 +469,6 @@ def _condition_inputs_observed(data: pd.DataFrame, expression: str) -> np.ndarra
 
 
 def _mentions(expression: str, column: str) -> bool:
-    import re
     return re.search(rf"(?<![\w.]){re.escape(column)}(?![\w])", expression) is not None
 
 

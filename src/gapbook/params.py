@@ -166,6 +166,14 @@ class Params(_Section):
     report: ReportSection = Field(default_factory=ReportSection)
     source: Optional[str] = None
 
+    @model_validator(mode="before")
+    @classmethod
+    def _empty_sections(cls, raw: Any) -> Any:
+        # A section whose keys are all commented out reads as None: treat it as absent.
+        if isinstance(raw, dict):
+            return {k: v for k, v in raw.items() if not (v is None and k in SECTIONS)}
+        return raw
+
     @property
     def data_path(self) -> Path:
         """The data file, resolved against the params file's folder."""
@@ -269,7 +277,10 @@ def _parent_fields(loc: Tuple[Any, ...]) -> List[str]:
 
 def _explain(exc: ValidationError, label: str) -> str:
     """One line for the first validation error, naming file and key, with a suggestion."""
-    error = exc.errors()[0]
+    # Several errors (or one per member of a Union) may be reported; name the most telling:
+    # an unknown key before a missing one, and the deepest location first.
+    priority = {"extra_forbidden": 0, "literal_error": 1}
+    error = min(exc.errors(), key=lambda e: (priority.get(e["type"], 2), -len(e["loc"])))
     loc = tuple(p for p in error["loc"] if not str(p).startswith(("function-", "tagged-union")))
     # Union members add their class name to the location; drop those.
     loc = tuple(p for p in loc if not (isinstance(p, str) and p[:1].isupper() and p.endswith(("Grid", "Spec"))))

@@ -1,0 +1,176 @@
+"""Intake: markers become missing values with their reasons; nothing is silently coerced.
+
+Expected counts in the small frames below are hand-counted from the frames as written.
+"""
+from __future__ import annotations
+
+import hashlib
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy import stats
+
+from gapbook.errors import InputError
+from gapbook.intake import BLANK, IMPLAUSIBLE, NOT_APPLICABLE, load_study, read_raw
+from gapbook.params import Params
+
+
+def make_params(path, **sections):
+    body = {"data": {"path": str(path), "id": "pid"}}
+    body.update(sections)
+    return Params.from_dict(body)
+
+
+RAW = pd.DataFrame({
+    "pid": ["a1", "a2", "a3", "a4", "a5", "a6", "a7", "a8"],
+    "age": ["34", "", "NA", " na ", "?", "-9", "-9.0", "61"],
+    "smoker": ["yes", "no", "Unknown", "UNKNOWN ", "yes", "prefer not to say", "no", "yes"],
+    "treated": ["yes", "no", "no", "yes", "", "yes", "no", "yes"],
+    "dose": ["10", "", "", "-7", "", "15", "3", "12"],
+    "weight": ["70", "720", "65", "80", "7.2", "66", "71", "68"],
+})
+
+
+@pytest.fixture
+def csv_file(tmp_path):
+    path = tmp_path / "study.csv"
+    RAW.to_csv(path, index=False)
+    return path
+
+
+def study_of(path, **extra):
+    params = make_params(
+        path,
+        variables={"age": {"type": "continuous"}, "smoker": {"type": "binary", "levels": ["no", "yes"]},
+                   "treated": {"type": "binary", "levels": ["no", "yes"]},
+                   "dose": {"type": "continuous", "applies_if": "treated == 'yes'"},
+                   "weight": {"type": "continuous", "range": [30, 250]}},
+        missing={"markers": ["", "NA", "?", "unknown"], "reasons": {-9: "lost to follow-up", -7: "declined"},
+                 "columns": {"smoker": {"reasons": {"prefer not to say": "declined"}}}},
+        **extra,
+    )
+    return load_study(params)
+
+
+def test_every_marker_kind_keeps_its_reason(csv_file):
+    study = study_of(csv_file)
+    age = study.reasons["age"].astype(object).where(study.reasons["age"].notna(), None).tolist()
+    # hand count: blank, "NA", " na " (case/space-insensitive), "?", -9 and -9.0 (numeric code)
+    assert age == [None, BLANK, "marker NA", "marker NA", "marker ?", "lost to follow-up", "lost to follow-up", None]
+    assert study.data["age"].tolist()[0] == 34.0 and np.isnan(study.data["age"].iloc[1])
+    smoker = study.reasons["smoker"]
+    assert smoker.value_counts().to_dict() == {"marker unknown": 2, "declined": 1}
+    assert list(study.data["smoker"].cat.categories) == ["no", "yes"]
+
+
+def test_not_applicable_is_kept_apart_from_missing(csv_file):
+    study = study_of(csv_file)
+    reasons = study.reasons["dose"].astype(object).tolist()
+    # treated == no in rows 2, 3, 7 -> not applicable; row 5 treated blank -> applicability unknown, stays blank;
+    # row 4 dose -7 -> declined.  (Row 7 had a dose of 3 while untreated: it does not apply.)
+    assert reasons[1] == NOT_APPLICABLE and reasons[2] == NOT_APPLICABLE and reasons[6] == NOT_APPLICABLE
+    assert reasons[4] == BLANK and reasons[3] == "declined"
+    assert study.missing["dose"].sum() == 2
+    assert study.not_applicable["dose"].sum() == 3
+    assert not (study.missing & study.not_applicable).to_numpy().any()
+
+
+def test_range_flags_or_sets_missing(csv_file):
+    flagged = study_of(csv_file)
+    assert flagged.range_issues["id"].tolist() == ["a2", "a5"]
+    assert flagged.range_issues["value"].tolist() == [720.0, 7.2]
+    assert flagged.data["weight"].notna().all()
+    params_missing = {"out_of_range": "missing"}
+    study = load_study(make_params(csv_file, variables={"weight": {"type": "continuous", "range": [30, 250],
+                                                                    **params_missing}}))
+    assert study.reasons["weight"].astype(object).tolist()[1] == IMPLAUSIBLE
+    assert study.data["weight"].isna().sum() == 2
+
+
+def test_robust_screen_matches_scipy_mad(tmp_path):
+    rng = np.random.default_rng(4)
+    values = np.append(rng.normal(50, 5, 200).round(2), [120.0])
+    path = tmp_path / "x.csv"
+    pd.DataFrame({"pid": np.arange(201), "x": values}).to_csv(path, index=False)
+    study = load_study(make_params(path, missing={"robust_z": 4}))
+    # reference: scipy.stats.median_abs_deviation with the normal scale (1.4826)
+    scale = stats.median_abs_deviation(values, scale="normal")
+    expected = np.flatnonzero(np.abs(values - np.median(values)) / scale > 4)
+    assert study.extreme_values["id"].tolist() == [str(i) for i in expected]
+    assert 200 in expected
+
+
+def test_formats_read_alike(tmp_path, csv_file):
+    tsv, xlsx, parquet = tmp_path / "s.tsv", tmp_path / "s.xlsx", tmp_path / "s.parquet"
+    RAW.to_csv(tsv, sep="\t", index=False)
+    RAW.to_excel(xlsx, index=False)
+    RAW.to_parquet(parquet, index=False)
+    reference = study_of(csv_file)
+    for path in (tsv, xlsx, parquet):
+        other = study_of(path)
+        pd.testing.assert_frame_equal(other.data, reference.data)
+        pd.testing.assert_frame_equal(other.reasons.astype(object), reference.reasons.astype(object))
+
+
+def test_typed_excel_cells_and_empty_cells(tmp_path):
+    path = tmp_path / "typed.xlsx"
+    pd.DataFrame({"pid": [1, 2, 3], "x": [1.5, None, -9], "g": ["a", None, "b"]}).to_excel(path, index=False)
+    study = load_study(make_params(path, missing={"reasons": {-9: "lost"}}))
+    assert study.reasons["x"].astype(object).tolist()[1:] == [BLANK, "lost"]
+    assert study.reasons["g"].astype(object).tolist()[1] == BLANK
+
+
+def test_types_inferred_and_reported(tmp_path):
+    path = tmp_path / "t.csv"
+    pd.DataFrame({"pid": range(6), "flag": [0, 1, 1, 0, 1, 0], "visits": [0, 2, 5, 1, 3, 2],
+                  "score": [1.5, 2.25, 3.0, 10.0, 44.5, 3.0], "site": ["a", "b", "c", "a", "b", "c"]}).to_csv(path, index=False)
+    study = load_study(make_params(path))
+    assert study.types == {"flag": "binary", "visits": "count", "score": "continuous", "site": "nominal"}
+    assert len(study.notes) == 4 and all("inferred" in n for n in study.notes)
+
+
+@pytest.mark.parametrize("column,content,needle", [
+    ("age", ["34", "thirty"], "column 'age' is declared continuous but holds the text 'thirty' at data rows 2"),
+    ("smoker", ["yes", "maybe"], "holds 'maybe'"),
+])
+def test_unexpected_text_is_an_input_error(tmp_path, column, content, needle):
+    path = tmp_path / "bad.csv"
+    pd.DataFrame({"pid": ["p1", "p2"], column: content}).to_csv(path, index=False)
+    variables = {"age": {"type": "continuous"}, "smoker": {"type": "binary", "levels": ["no", "yes"]}}
+    before = hashlib.sha256(path.read_bytes()).hexdigest()
+    with pytest.raises(InputError, match=needle):
+        load_study(make_params(path, variables={column: variables[column]}))
+    assert hashlib.sha256(path.read_bytes()).hexdigest() == before  # input files are read-only to us
+
+
+def test_duplicate_ids_empty_file_and_unknown_columns(tmp_path):
+    dup = tmp_path / "dup.csv"
+    pd.DataFrame({"pid": ["a", "b", "a"], "x": [1, 2, 3]}).to_csv(dup, index=False)
+    with pytest.raises(InputError, match=r"duplicate id 'a' in column 'pid' \(data rows 1, 3\)"):
+        load_study(make_params(dup))
+    empty = tmp_path / "empty.csv"
+    empty.write_text("")
+    with pytest.raises(InputError, match="empty"):
+        load_study(make_params(empty))
+    header_only = tmp_path / "header.csv"
+    header_only.write_text("pid,x\n")
+    with pytest.raises(InputError, match="no data rows"):
+        load_study(make_params(header_only))
+    fine = tmp_path / "fine.csv"
+    pd.DataFrame({"pid": ["a", "b"], "x": [1, 2]}).to_csv(fine, index=False)
+    with pytest.raises(InputError, match="variables.xx is not a column .*did you mean 'x'"):
+        load_study(make_params(fine, variables={"xx": {"type": "count"}}))
+    with pytest.raises(InputError, match="not found"):
+        load_study(make_params(tmp_path / "nowhere.csv"))
+
+
+def test_bad_applies_if_names_the_key(csv_file):
+    with pytest.raises(InputError, match=r"variables\.dose\.applies_if"):
+        load_study(make_params(csv_file, variables={"dose": {"type": "continuous", "applies_if": "treatd == 'yes'"}}))
+
+
+def test_read_raw_keeps_cells_as_written(csv_file):
+    raw = read_raw(csv_file)
+    assert raw["age"].tolist()[3] == " na "
+    assert raw["age"].tolist()[6] == "-9.0"
