@@ -1,0 +1,475 @@
+"""Complete cases, available cases, and the comparison of strategies side by side.
+
+The complete-case analysis fits the study's model to the rows where every model
+variable is present; a flow table says where the other rows went. The available-case
+summaries describe every variable from every value it has, beside the same summaries in
+the complete-case subset, so a reader sees what the restriction changes. The baseline
+table compares complete with incomplete rows on the fully observed variables.
+
+Complete-case regression is unbiased when missingness does not depend on the outcome
+given the model's covariates, even when it is not completely at random; it is biased
+when it depends on the outcome (Little 1992; White & Carlin 2010). Which of these holds
+cannot be verified from the data.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Dict, List, Mapping, Optional, Sequence, Tuple, Union
+
+import numpy as np
+import pandas as pd
+
+from .errors import InputError
+from .models import RATIO_NAMES, AnalysisModel, ModelFit, add_ratio_columns, exposure_terms, formula_columns
+
+CATEGORICAL_TYPES = ("binary", "nominal", "ordinal")
+STRATEGY_LABELS = {
+    "complete_case": "Complete cases",
+    "missing_category": "Missing category / indicator",
+    "multiple_imputation": "Multiple imputation",
+}
+FLOW_COLUMNS = ("step", "variable", "role", "n_excluded", "n_not_applicable", "n_lacking", "reasons", "n_remaining")
+
+
+# ---------------------------------------------------------------------------
+# the flow of rows into the complete-case analysis
+
+@dataclass(frozen=True)
+class CompleteCaseFlow:
+    """Where the rows of the file went on the way to the complete-case analysis.
+
+    ``table`` has one row for the file, one per model variable (outcome first, then the
+    formula's order, then the offset) and one for the rows used. ``n_excluded`` counts a
+    row once, under the first model variable it lacks; ``n_lacking`` counts every row that
+    lacks the variable, whatever else it lacks; ``n_not_applicable`` is the part of
+    ``n_excluded`` that is "not applicable" rather than missing; ``reasons`` breaks
+    ``n_lacking`` down by missing reason. ``complete`` marks the rows used.
+    """
+
+    table: pd.DataFrame
+    n_rows: int
+    n_used: int
+    complete: pd.Series
+    outcome: str
+    covariates: Tuple[str, ...]
+
+
+def _roles(outcome: str, covariates: Sequence[str], model: AnalysisModel, columns: Sequence[str]) -> Dict[str, str]:
+    exposure = exposure_column(model, columns)
+    roles = {outcome: "outcome"}
+    for name in covariates:
+        roles[name] = "offset" if name == model.offset else ("exposure" if name == exposure else "covariate")
+    return roles
+
+
+def exposure_column(model: AnalysisModel, columns: Sequence[str]) -> Optional[str]:
+    """The data column behind the exposure (a column name or a term such as ``arm[T.sms]``)."""
+    _, covariates = model.variables(columns)
+    if model.exposure is None:
+        return covariates[0] if covariates else None
+    found = formula_columns(model.exposure, covariates)
+    return found[0] if found else None
+
+
+def _reason_text(reasons: Optional[pd.Series], lacking: np.ndarray) -> str:
+    """'lost to follow-up 138; marker NA 15' for the rows that lack a variable (largest first)."""
+    if not lacking.any():
+        return ""
+    if reasons is None:
+        return f"missing {int(lacking.sum())}"
+    labels = reasons[lacking].astype(object).fillna("missing")
+    counts = labels.value_counts(sort=False)
+    ordered = sorted(counts.items(), key=lambda kv: (-kv[1], str(kv[0])))
+    return "; ".join(f"{label} {count}" for label, count in ordered)
+
+
+def complete_case_flow(data: pd.DataFrame, model: AnalysisModel, reasons: Optional[pd.DataFrame] = None,
+                       not_applicable: Optional[pd.DataFrame] = None) -> CompleteCaseFlow:
+    """Count the rows excluded by each model variable and the rows left for the complete-case fit.
+
+    Parameters
+    ----------
+    data : the analysis frame, NaN where a value is missing or not applicable.
+    model : the analysis model (formula, family, exposure, offset).
+    reasons : optional frame of missing-reason labels (``study.reasons``) to break counts down.
+    not_applicable : optional boolean frame (``study.not_applicable``): such cells are not
+        missing, but a model variable that does not apply still excludes the row.
+
+    Returns
+    -------
+    CompleteCaseFlow.
+    """
+    outcome, covariates = model.variables(list(data.columns))
+    order = [outcome] + [c for c in covariates if c != outcome]
+    roles = _roles(outcome, covariates, model, list(data.columns))
+    n = len(data)
+    lacking_so_far = np.zeros(n, dtype=bool)
+    rows: List[Dict[str, object]] = [{"step": "rows in the file", "variable": "", "role": "", "n_remaining": n}]
+    for name in order:
+        lacking = data[name].isna().to_numpy()
+        first = lacking & ~lacking_so_far
+        na = (not_applicable[name].to_numpy(dtype=bool) if not_applicable is not None and name in not_applicable
+              else np.zeros(n, dtype=bool))
+        lacking_so_far |= lacking
+        column_reasons = reasons[name] if reasons is not None and name in reasons else None
+        rows.append({"step": "excluded", "variable": name, "role": roles.get(name, "covariate"),
+                     "n_excluded": int(first.sum()), "n_not_applicable": int((first & na).sum()),
+                     "n_lacking": int(lacking.sum()), "reasons": _reason_text(column_reasons, lacking),
+                     "n_remaining": int(n - lacking_so_far.sum())})
+    n_used = int(n - lacking_so_far.sum())
+    rows.append({"step": "rows used", "variable": "", "role": "", "n_remaining": n_used})
+    table = pd.DataFrame(rows, columns=list(FLOW_COLUMNS))
+    for column in ("n_excluded", "n_not_applicable", "n_lacking", "n_remaining"):
+        table[column] = table[column].astype("Int64")
+    table["reasons"] = table["reasons"].fillna("")
+    complete = pd.Series(~lacking_so_far, index=data.index, name="complete")
+    return CompleteCaseFlow(table=table, n_rows=n, n_used=n_used, complete=complete, outcome=outcome,
+                            covariates=tuple(covariates))
+
+
+# ---------------------------------------------------------------------------
+# the complete-case fit
+
+@dataclass(frozen=True)
+class CompleteCaseResult:
+    """The model fitted to the complete cases: flow, fit, ``estimates.csv`` rows and the exposure terms."""
+
+    flow: CompleteCaseFlow
+    fit: ModelFit
+    estimates: pd.DataFrame
+    exposure_terms: Tuple[str, ...]
+
+    @property
+    def exposure_estimates(self) -> pd.DataFrame:
+        return self.estimates[self.estimates["term"].isin(self.exposure_terms)].reset_index(drop=True)
+
+
+def check_model_data(data: pd.DataFrame, model: AnalysisModel) -> Tuple[str, List[str]]:
+    """The outcome and covariates after checking that the outcome has observed values (exit 2 otherwise)."""
+    outcome, covariates = model.variables(list(data.columns))
+    if data[outcome].notna().sum() == 0:
+        raise InputError(f"analysis.formula: the outcome '{outcome}' has no observed values; "
+                         "check the outcome column and its missing markers")
+    return outcome, covariates
+
+
+def complete_case_analysis(data: pd.DataFrame, model: AnalysisModel, reasons: Optional[pd.DataFrame] = None,
+                           not_applicable: Optional[pd.DataFrame] = None) -> CompleteCaseResult:
+    """Fit the analysis model to the rows with every model variable present.
+
+    Parameters
+    ----------
+    data, reasons, not_applicable : as for :func:`complete_case_flow`.
+    model : the analysis model.
+
+    Returns
+    -------
+    CompleteCaseResult with rows for ``estimates.csv`` (strategy ``complete_case``).
+
+    References
+    ----------
+    Little RJA (1992). Regression with missing X's: a review. JASA 87:1227-1237.
+    White IR, Carlin JB (2010). Bias and efficiency of multiple imputation compared with
+    complete-case analysis for missing covariate values. Stat Med 29:2920-2931.
+    """
+    check_model_data(data, model)
+    flow = complete_case_flow(data, model, reasons, not_applicable)
+    if flow.n_used == 0:
+        lacking = flow.table[flow.table["step"] == "excluded"].sort_values("n_lacking", ascending=False)
+        worst = lacking.iloc[0]
+        raise InputError(f"analysis.formula: no row has every model variable observed ('{worst['variable']}' is "
+                         f"missing in {int(worst['n_lacking'])} of {flow.n_rows} rows); drop a variable from the "
+                         "formula or use another strategy")
+    fit = model.fit(data.loc[flow.complete.to_numpy()])
+    terms = tuple(exposure_terms(fit.terms, model.exposure))
+    return CompleteCaseResult(flow=flow, fit=fit, estimates=fit.table("complete_case"), exposure_terms=terms)
+
+
+# ---------------------------------------------------------------------------
+# available cases: every value of every variable
+
+def is_categorical(column: pd.Series, declared: Optional[str] = None) -> bool:
+    """Whether a column is summarised by counts (declared binary/nominal/ordinal, or text)."""
+    if declared is not None:
+        return declared in CATEGORICAL_TYPES
+    return isinstance(column.dtype, pd.CategoricalDtype) or not pd.api.types.is_numeric_dtype(column)
+
+
+def _levels(column: pd.Series) -> List[object]:
+    if isinstance(column.dtype, pd.CategoricalDtype):
+        return list(column.cat.categories)
+    return sorted(column.dropna().unique())
+
+
+def _numeric_summary(values: pd.Series) -> Dict[str, float]:
+    values = values.dropna().astype(float)
+    if values.empty:
+        return {k: np.nan for k in ("mean", "sd", "median", "lower_quartile", "upper_quartile")}
+    return {"mean": values.mean(), "sd": values.std(ddof=1), "median": values.median(),
+            "lower_quartile": values.quantile(0.25), "upper_quartile": values.quantile(0.75)}
+
+
+def _category_summary(values: pd.Series, levels: Sequence[object]) -> Dict[str, float]:
+    observed = values.dropna()
+    total = len(observed)
+    counts = observed.astype(object).value_counts()
+    out: Dict[str, float] = {}
+    for level in levels:
+        out[f"count: {level}"] = float(counts.get(level, 0))
+    for level in levels:
+        out[f"proportion: {level}"] = counts.get(level, 0) / total if total else np.nan
+    return out
+
+
+def descriptive_table(data: pd.DataFrame, complete: pd.Series, types: Optional[Mapping[str, str]] = None,
+                      variables: Optional[Sequence[str]] = None) -> pd.DataFrame:
+    """Summaries of each variable from every available value, beside the same in the complete cases.
+
+    Continuous and count variables: mean, SD (n - 1), median and quartiles (linear
+    interpolation, pandas' default). Categories: counts and proportions of the observed values.
+
+    Parameters
+    ----------
+    data : the analysis frame.
+    complete : boolean Series marking the complete-case rows.
+    types : optional {column: type} (``study.types``); undeclared columns go by dtype.
+    variables : the columns to describe (default: all).
+
+    Returns
+    -------
+    DataFrame with columns variable, statistic, available_case, n_available, complete_case, n_complete.
+    """
+    types = types or {}
+    mask = complete.to_numpy(dtype=bool)
+    rows: List[Dict[str, object]] = []
+    for name in variables or list(data.columns):
+        column = data[name]
+        subset = column[mask]
+        if is_categorical(column, types.get(name)):
+            levels = _levels(column)
+            available, in_complete = _category_summary(column, levels), _category_summary(subset, levels)
+        else:
+            available, in_complete = _numeric_summary(column), _numeric_summary(subset)
+        n_available, n_complete = int(column.notna().sum()), int(subset.notna().sum())
+        for statistic, value in available.items():
+            rows.append({"variable": name, "statistic": statistic, "available_case": value,
+                         "n_available": n_available, "complete_case": in_complete[statistic],
+                         "n_complete": n_complete})
+    return pd.DataFrame(rows, columns=["variable", "statistic", "available_case", "n_available", "complete_case",
+                                       "n_complete"])
+
+
+def numeric_variables(data: pd.DataFrame, types: Optional[Mapping[str, str]] = None) -> List[str]:
+    """Columns that carry numbers a correlation can use (continuous, count, and 0/1 numbers)."""
+    types = types or {}
+    return [c for c in data.columns if pd.api.types.is_numeric_dtype(data[c])
+            and not isinstance(data[c].dtype, pd.CategoricalDtype)
+            and types.get(c, "continuous") in ("continuous", "count", "binary")]
+
+
+def pairwise_correlations(data: pd.DataFrame, complete: Optional[pd.Series] = None,
+                          variables: Optional[Sequence[str]] = None) -> pd.DataFrame:
+    """Pearson correlations from every pair of values observed together, with each pair's n.
+
+    Each correlation uses its own rows, so the matrix need not be positive semi-definite
+    and its entries describe different subsets; the complete-case column shows one subset.
+
+    Returns
+    -------
+    DataFrame: variable_1, variable_2, correlation, n_pairwise, and when ``complete`` is
+    given correlation_complete_case, n_complete.
+    """
+    names = list(variables) if variables is not None else list(data.columns)
+    values = data[names].astype(float)
+    present = values.notna().to_numpy()
+    mask = None if complete is None else complete.to_numpy(dtype=bool)
+    rows: List[Dict[str, object]] = []
+    for i, first in enumerate(names):
+        for second in names[i + 1:]:
+            both = present[:, i] & present[:, names.index(second)]
+            row: Dict[str, object] = {"variable_1": first, "variable_2": second,
+                                      "correlation": _pearson(values[first].to_numpy()[both],
+                                                              values[second].to_numpy()[both]),
+                                      "n_pairwise": int(both.sum())}
+            if mask is not None:
+                used = both & mask
+                row["correlation_complete_case"] = _pearson(values[first].to_numpy()[used],
+                                                            values[second].to_numpy()[used])
+                row["n_complete"] = int(used.sum())
+            rows.append(row)
+    columns = ["variable_1", "variable_2", "correlation", "n_pairwise"]
+    if mask is not None:
+        columns += ["correlation_complete_case", "n_complete"]
+    return pd.DataFrame(rows, columns=columns)
+
+
+def _pearson(x: np.ndarray, y: np.ndarray) -> float:
+    if len(x) < 2:
+        return float("nan")
+    dx, dy = x - x.mean(), y - y.mean()
+    denominator = np.sqrt((dx * dx).sum() * (dy * dy).sum())
+    return float((dx * dy).sum() / denominator) if denominator > 0 else float("nan")
+
+
+@dataclass(frozen=True)
+class AvailableCaseSummary:
+    """Descriptives and pairwise correlations from every available value, beside the complete cases."""
+
+    descriptives: pd.DataFrame
+    correlations: pd.DataFrame
+    n_rows: int
+    n_complete: int
+
+
+def available_case_summary(data: pd.DataFrame, complete: pd.Series,
+                           types: Optional[Mapping[str, str]] = None) -> AvailableCaseSummary:
+    """Every variable summarised from all its values and from the complete cases (see :func:`descriptive_table`)."""
+    return AvailableCaseSummary(descriptives=descriptive_table(data, complete, types),
+                                correlations=pairwise_correlations(data, complete, numeric_variables(data, types)),
+                                n_rows=len(data), n_complete=int(complete.sum()))
+
+
+# ---------------------------------------------------------------------------
+# complete against incomplete rows
+
+@dataclass(frozen=True)
+class CompletenessBaseline:
+    """Fully observed variables compared between complete and incomplete rows.
+
+    ``table``: variable, level, statistic (mean or proportion), complete, complete_sd,
+    incomplete, incomplete_sd, smd (complete minus incomplete), n_complete, n_incomplete.
+    """
+
+    table: pd.DataFrame
+    n_complete: int
+    n_incomplete: int
+    variables: Tuple[str, ...]
+
+    @property
+    def largest_smd(self) -> float:
+        smd = self.table["smd"].abs()
+        return float(smd.max()) if smd.notna().any() else float("nan")
+
+
+def standardised_difference(mean_a: float, sd_a: float, mean_b: float, sd_b: float) -> float:
+    """(mean_a - mean_b) / sqrt((sd_a^2 + sd_b^2) / 2); for a proportion p the SD is sqrt(p(1 - p)).
+
+    References
+    ----------
+    Austin PC (2009). Balance diagnostics for comparing the distribution of baseline
+    covariates between treatment groups in propensity-score matched samples. Stat Med 28:3083-3107.
+    """
+    pooled = np.sqrt((sd_a ** 2 + sd_b ** 2) / 2)
+    return float((mean_a - mean_b) / pooled) if pooled > 0 else float("nan")
+
+
+def completeness_baseline(data: pd.DataFrame, complete: pd.Series, types: Optional[Mapping[str, str]] = None,
+                          variables: Optional[Sequence[str]] = None) -> CompletenessBaseline:
+    """Compare complete with incomplete rows on the fully observed variables, by standardised differences.
+
+    Parameters
+    ----------
+    data : the analysis frame.
+    complete : boolean Series marking the complete-case rows.
+    types : optional {column: type}.
+    variables : columns to compare (default: every column with no missing or not-applicable cell).
+
+    Returns
+    -------
+    CompletenessBaseline. Large differences show that the complete cases are a selected
+    subset; small ones do not show that missingness is ignorable (MAR cannot be verified
+    from the data).
+
+    References
+    ----------
+    Austin PC (2009). Stat Med 28:3083-3107 (standardised differences for means and proportions).
+    """
+    types = types or {}
+    mask = complete.to_numpy(dtype=bool)
+    chosen = list(variables) if variables is not None else [c for c in data.columns if data[c].notna().all()]
+    rows: List[Dict[str, object]] = []
+    for name in chosen:
+        column = data[name]
+        a, b = column[mask], column[~mask]
+        if is_categorical(column, types.get(name)):
+            for level in _levels(column):
+                hit_a = (a.dropna().astype(object) == level)
+                hit_b = (b.dropna().astype(object) == level)
+                pa = float(hit_a.mean()) if len(hit_a) else np.nan
+                pb = float(hit_b.mean()) if len(hit_b) else np.nan
+                sa, sb = np.sqrt(pa * (1 - pa)), np.sqrt(pb * (1 - pb))
+                rows.append({"variable": name, "level": str(level), "statistic": "proportion", "complete": pa,
+                             "complete_sd": sa, "incomplete": pb, "incomplete_sd": sb,
+                             "smd": standardised_difference(pa, sa, pb, sb),
+                             "n_complete": int(len(hit_a)), "n_incomplete": int(len(hit_b))})
+        else:
+            xa, xb = a.dropna().astype(float), b.dropna().astype(float)
+            ma, mb = (xa.mean() if len(xa) else np.nan), (xb.mean() if len(xb) else np.nan)
+            sa = xa.std(ddof=1) if len(xa) > 1 else np.nan
+            sb = xb.std(ddof=1) if len(xb) > 1 else np.nan
+            rows.append({"variable": name, "level": "", "statistic": "mean", "complete": ma, "complete_sd": sa,
+                         "incomplete": mb, "incomplete_sd": sb, "smd": standardised_difference(ma, sa, mb, sb),
+                         "n_complete": int(len(xa)), "n_incomplete": int(len(xb))})
+    table = pd.DataFrame(rows, columns=["variable", "level", "statistic", "complete", "complete_sd", "incomplete",
+                                        "incomplete_sd", "smd", "n_complete", "n_incomplete"])
+    return CompletenessBaseline(table=table, n_complete=int(mask.sum()), n_incomplete=int((~mask).sum()),
+                                variables=tuple(chosen))
+
+
+# ---------------------------------------------------------------------------
+# every strategy side by side
+
+@dataclass(frozen=True)
+class StrategyComparison:
+    """The exposure's estimate under every strategy in ``estimates.csv``.
+
+    ``table``: strategy, label, term, estimate, std_error, ci_lower, ci_upper, the ratio
+    columns (odds_ratio... / rate_ratio...) for binomial and poisson models, n_used, and
+    se_relative_to_complete_case (the precision each strategy gains or loses).
+    """
+
+    table: pd.DataFrame
+    family: str
+    terms: Tuple[str, ...]
+    ratio_name: Optional[str]
+    alpha: float = 0.05
+
+
+def compare_strategies(estimates: pd.DataFrame, exposure: Union[str, Sequence[str], None], family: str,
+                       alpha: float = 0.05) -> StrategyComparison:
+    """Gather the exposure term(s) of every strategy, on the ratio scale too for binomial and poisson models.
+
+    Parameters
+    ----------
+    estimates : the ``estimates.csv`` table (strategy, term, estimate, std_error, ci_lower, ci_upper, n_used).
+    exposure : the exposure term names, or the params' exposure (a variable or a term name).
+    family : gaussian, binomial or poisson.
+    alpha : the level of the intervals in ``estimates`` (for the plot's axis label only).
+
+    Returns
+    -------
+    StrategyComparison.
+    """
+    if estimates is None or len(estimates) == 0:
+        raise InputError("estimates.csv: no estimates yet; run the cases, indicator or impute stage first")
+    all_terms = list(dict.fromkeys(estimates["term"]))
+    if exposure is None or isinstance(exposure, str):
+        terms = exposure_terms(all_terms, exposure)
+    else:
+        terms = [t for t in exposure if t in all_terms]
+        if not terms:
+            raise InputError(f"analysis.exposure: none of {', '.join(exposure)} is a term in estimates.csv")
+    chosen = estimates[estimates["term"].isin(terms)].copy()
+    chosen["_term_order"] = chosen["term"].map({t: i for i, t in enumerate(terms)})
+    strategies = list(dict.fromkeys(estimates["strategy"]))
+    chosen["_strategy_order"] = chosen["strategy"].map({s: i for i, s in enumerate(strategies)})
+    chosen = chosen.sort_values(["_term_order", "_strategy_order"], kind="stable")
+    table = chosen[["strategy", "term", "estimate", "std_error", "ci_lower", "ci_upper", "n_used"]].copy()
+    table.insert(1, "label", table["strategy"].map(lambda s: STRATEGY_LABELS.get(s, s.replace("_", " "))))
+    table = add_ratio_columns(table, family)
+    reference = table[table["strategy"] == "complete_case"].set_index("term")["std_error"]
+    table["se_relative_to_complete_case"] = table["std_error"] / table["term"].map(reference)
+    ordered = [c for c in table.columns if c != "n_used"] + ["n_used"]
+    table = table[ordered].reset_index(drop=True)
+    return StrategyComparison(table=table, family=family, terms=tuple(terms), ratio_name=RATIO_NAMES.get(family),
+                              alpha=alpha)
