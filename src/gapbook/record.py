@@ -93,6 +93,7 @@ class RecordFolder:
                 if target.exists():
                     raise FileExistsError(target)
                 os.rename(self.temp, target)
+                _open_permissions(target)
                 return target
             except (FileExistsError, OSError):
                 if not target.exists():
@@ -102,6 +103,13 @@ class RecordFolder:
 
     def discard(self) -> None:
         shutil.rmtree(self.temp, ignore_errors=True)
+
+
+def _open_permissions(folder: Path) -> None:
+    """mkdtemp makes the folder private; give the finished record the user's usual permissions."""
+    mask = os.umask(0)
+    os.umask(mask)
+    os.chmod(folder, 0o777 & ~mask)
 
 
 def record_name(study_name: str, when: datetime) -> str:

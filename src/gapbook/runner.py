@@ -84,7 +84,8 @@ def ensure_kernel() -> str:
     root = Path(tempfile.gettempdir()) / f"gapbook-kernels-{os.getuid() if hasattr(os, 'getuid') else 'user'}"
     spec_dir = root / "kernels" / KERNEL_NAME
     spec_dir.mkdir(parents=True, exist_ok=True)
-    spec = {"argv": [sys.executable, "-m", "ipykernel_launcher", "-f", "{connection_file}"],
+    spec = {"argv": [sys.executable, "-m", "ipykernel_launcher", "-f", "{connection_file}",
+                     "--IPKernelApp.log_level=ERROR"],
             "display_name": "Python (gapbook)", "language": "python",
             "env": {"PYTHONHASHSEED": "0", "MPLBACKEND": "module://matplotlib_inline.backend_inline"}}
     path = spec_dir / "kernel.json"
@@ -114,7 +115,7 @@ def execute_stage(stage: str, params: Params, folder: Path, kernel: str) -> Stag
     start = time.perf_counter()
     try:
         pm.execute_notebook(str(source), str(target), parameters={"params": params.to_dict(), "out_dir": str(folder)},
-                            kernel_name=kernel, cwd=str(folder), progress_bar=False, log_output=False,
+                            kernel_name=kernel, language="python", cwd=str(folder), progress_bar=False, log_output=False,
                             report_mode=False)
     except PapermillExecutionError as exc:
         message = str(exc.evalue).strip().splitlines()[0] if exc.evalue else exc.ename
