@@ -1,0 +1,669 @@
+"""The audit stage: how much is missing, why, in which patterns, and together with what.
+
+The audit describes what is missing; it does not say why values went missing (whether
+missingness depends on observed or unobserved values is the mechanism stage's question,
+and missing-at-random can never be verified from the data alone).
+
+Conventions used in every table:
+- A cell is *missing* when it has a missing reason other than ``"not applicable"``.
+  Cells outside a variable's ``applies_if`` condition are *not applicable*: they are not
+  missing, they are not a reason column, and they are left out of that variable's ``n``.
+- For a variable, ``n`` = rows to which the variable applies (rows minus not-applicable
+  cells) and ``pct_missing`` = ``n_missing / n * 100``; ``over_threshold`` is
+  ``n_missing / n > threshold``.
+- For patterns, co-missingness and per-participant counts, a not-applicable cell counts
+  as observed (the row has nothing missing there).
+
+Speed: each row's missingness is packed into integer codes (one bit per variable, the
+first variable in the highest bit, so that sorting the codes sorts the patterns), the
+distinct codes are counted with ``numpy.unique``, and reasons are counted on the
+categorical codes with ``numpy.bincount``; nothing loops over rows in Python.
+"""
+from __future__ import annotations
+
+import re
+from dataclasses import dataclass
+from typing import Dict, List, Mapping, Optional, Sequence, Tuple
+
+import numpy as np
+import pandas as pd
+
+from .errors import InputError, did_you_mean
+from .intake import NOT_APPLICABLE, Study, infer_type
+
+DEFAULT_THRESHOLD = 0.20  # common practice, no source
+UNSPECIFIED = "unspecified"  # reason given to NaN cells of a plain frame that carries no reasons
+GROUP_MISSING = "(missing)"
+GROUP_NOT_APPLICABLE = "(not applicable)"
+MAX_GROUP_LEVELS = 50  # beyond this a by-group table is unreadable; group on a categorical variable
+VARIABLE_COLUMNS = ("variable", "type", "n", "n_missing", "pct_missing", "over_threshold", "n_not_applicable")
+PATTERN_COLUMNS = ("n_rows", "pct_rows", "n_missing_variables")
+BY_GROUP_COLUMNS = ("group_variable", "group", "variable", "n", "n_missing", "pct_missing")
+COMISSING_COLUMNS = ("variable_a", "variable_b", "correlation", "n_both_missing")
+_CHUNK_ROWS = 131072
+
+
+@dataclass(frozen=True)
+class MissingCells:
+    """The missingness of a table as arrays: what the audit computes from.
+
+    ``codes[j]`` are the reason codes of variable j (-1 = observed) into ``categories[j]``;
+    ``missing_columns[j]`` and ``not_applicable_columns[j]`` are its boolean indicators, and
+    ``missing`` is the rows x variables matrix of the same (C order, for packing rows).
+    """
+
+    names: Tuple[str, ...]
+    missing: np.ndarray
+    missing_columns: Tuple[np.ndarray, ...]
+    not_applicable_columns: Tuple[np.ndarray, ...]
+    codes: Tuple[np.ndarray, ...]
+    categories: Tuple[Tuple[str, ...], ...]
+
+    @property
+    def n_rows(self) -> int:
+        return int(self.missing.shape[0])
+
+
+@dataclass(frozen=True)
+class PatternCounts:
+    """Distinct missingness patterns: ``missing_bits[k, j]`` is 1 when pattern k lacks variable j."""
+
+    missing_bits: np.ndarray
+    n_rows: np.ndarray
+
+
+@dataclass(frozen=True)
+class AuditResult:
+    """Everything the audit found; each table is written as ``audit_<field>.csv`` by the notebook.
+
+    Fields
+    ------
+    variables : per variable counts (see module docstring for n and pct_missing).
+    participants : distribution of the number of variables a row is missing.
+    patterns : one row per missingness pattern, most common first (1 = observed).
+    comissingness : correlations of missingness indicators, long form.
+    comissingness_matrix : the same as a square matrix (incomplete variables only).
+    by_group : missingness per level of each grouping variable.
+    summary : one-row overview (rows, complete rows, patterns, monotone, threshold, ...).
+    reasons : each missing reason, its column in ``variables`` and how many cells carry it.
+    range_issues, extremes, types : the intake's review lists and variable types.
+    missing_per_row : number of missing variables per row (kept in memory, never written).
+    monotone : whether the patterns are monotone (a dropout design), 1 = yes, 0 = no.
+    dropout_order : variables from least to most missing (the order used for monotonicity).
+    """
+
+    variables: pd.DataFrame
+    participants: pd.DataFrame
+    patterns: pd.DataFrame
+    comissingness: pd.DataFrame
+    comissingness_matrix: pd.DataFrame
+    by_group: pd.DataFrame
+    summary: pd.DataFrame
+    reasons: pd.DataFrame
+    range_issues: pd.DataFrame
+    extremes: pd.DataFrame
+    types: pd.DataFrame
+    missing_per_row: np.ndarray
+    n_rows: int
+    n_variables: int
+    n_complete_rows: int
+    n_patterns: int
+    monotone: int
+    pct_rows_in_dropout_order: float
+    dropout_order: Tuple[str, ...]
+    threshold: float
+    top_patterns: int
+    by: Tuple[str, ...]
+
+    def tables(self) -> Dict[str, pd.DataFrame]:
+        """The tables to write, keyed by file name without ``.csv``."""
+        return {
+            "audit_variables": self.variables, "audit_participants": self.participants,
+            "audit_patterns": self.patterns, "audit_summary": self.summary,
+            "audit_comissingness": self.comissingness, "audit_by_group": self.by_group,
+            "audit_reasons": self.reasons, "audit_range": self.range_issues,
+            "audit_extremes": self.extremes, "audit_types": self.types,
+        }
+
+
+# ---------------------------------------------------------------------------
+# from reasons to arrays
+
+def missing_cells(reasons: pd.DataFrame) -> MissingCells:
+    """Missing and not-applicable indicators and reason codes from a frame of reasons.
+
+    Parameters
+    ----------
+    reasons : one column per variable; NaN where observed, otherwise the reason label
+        (``"not applicable"`` for cells a variable does not apply to). Categorical
+        columns are used as they are; other columns are made categorical.
+
+    Returns
+    -------
+    MissingCells
+    """
+    n = len(reasons)
+    missing: List[np.ndarray] = []
+    not_applicable: List[np.ndarray] = []
+    codes_out: List[np.ndarray] = []
+    categories_out: List[Tuple[str, ...]] = []
+    for name in reasons.columns:
+        column = reasons[name]
+        cat = column.array if isinstance(column.dtype, pd.CategoricalDtype) else pd.Categorical(column)
+        codes = np.asarray(cat.codes)
+        categories = tuple(str(c) for c in cat.categories)
+        observed = codes < 0
+        if NOT_APPLICABLE in categories:
+            is_na = codes == categories.index(NOT_APPLICABLE)
+            not_applicable.append(is_na)
+            missing.append(~observed & ~is_na)
+        else:
+            not_applicable.append(np.zeros(n, dtype=bool))
+            missing.append(~observed)
+        codes_out.append(codes)
+        categories_out.append(categories)
+    matrix = np.column_stack(missing) if missing else np.zeros((n, 0), dtype=bool)
+    return MissingCells(tuple(str(c) for c in reasons.columns), matrix, tuple(missing), tuple(not_applicable),
+                        tuple(codes_out), tuple(categories_out))
+
+
+def reasons_from_values(data: pd.DataFrame, label: str = UNSPECIFIED) -> pd.DataFrame:
+    """A reasons frame for a plain DataFrame that records none: ``label`` wherever a value is NaN.
+
+    Parameters
+    ----------
+    data : the values; NaN/None/NA are taken as missing.
+    label : the reason given to every missing cell.
+
+    Returns
+    -------
+    DataFrame of Categorical columns, NaN where observed.
+    """
+    out = {}
+    for name in data.columns:
+        codes = np.where(data[name].isna().to_numpy(), 0, -1)
+        out[name] = pd.Categorical.from_codes(codes, categories=[label])
+    return pd.DataFrame(out, index=data.index)
+
+
+def reason_slug(label: str) -> str:
+    """The column-name form of a reason: lower case, every non-alphanumeric character as '_'."""
+    return re.sub(r"[^a-z0-9]", "_", str(label).lower())
+
+
+# ---------------------------------------------------------------------------
+# per variable
+
+def variable_table(cells: MissingCells, types: Mapping[str, str], threshold: float) -> Tuple[pd.DataFrame, pd.DataFrame]:
+    """Per-variable counts of missing values by reason, with not-applicable cells kept apart.
+
+    Parameters
+    ----------
+    cells : from :func:`missing_cells`.
+    types : variable name -> type (continuous, binary, nominal, ordinal, count).
+    threshold : missing fraction above which ``over_threshold`` is True.
+
+    Returns
+    -------
+    (variables, reasons): the ``audit_variables`` table and the reason -> column table.
+    """
+    n_rows = cells.n_rows
+    per_variable: List[Dict[str, int]] = []
+    totals: Dict[str, int] = {}
+    for codes, categories in zip(cells.codes, cells.categories):
+        counts = np.bincount(codes.astype(np.intp) + 1, minlength=len(categories) + 1)[1:]
+        by_reason = {label: int(c) for label, c in zip(categories, counts)}
+        per_variable.append(by_reason)
+        for label, c in by_reason.items():
+            if label != NOT_APPLICABLE and c > 0:
+                totals[label] = totals.get(label, 0) + c
+    # Most common reason first; ties by label so the column order never depends on input order.
+    labels = sorted(totals, key=lambda r: (-totals[r], r))
+    columns = _unique_slugs(labels)
+
+    rows = []
+    for name, by_reason in zip(cells.names, per_variable):
+        n_na = by_reason.get(NOT_APPLICABLE, 0)
+        n_missing = sum(c for label, c in by_reason.items() if label != NOT_APPLICABLE)
+        n = n_rows - n_na
+        fraction = n_missing / n if n else float("nan")
+        row = {"variable": name, "type": types.get(name, ""), "n": n, "n_missing": n_missing,
+               "pct_missing": fraction * 100, "over_threshold": bool(n and fraction > threshold),
+               "n_not_applicable": n_na}
+        row.update({column: by_reason.get(label, 0) for label, column in zip(labels, columns)})
+        rows.append(row)
+    variables = pd.DataFrame(rows, columns=list(VARIABLE_COLUMNS) + columns)
+    variables["over_threshold"] = variables["over_threshold"].astype(bool)
+    reasons = pd.DataFrame({
+        "reason": labels, "column": columns, "n_cells": [totals[r] for r in labels],
+        "n_variables": [sum(1 for b in per_variable if b.get(r, 0) > 0) for r in labels],
+    }, columns=["reason", "column", "n_cells", "n_variables"])
+    return variables, reasons
+
+
+def _unique_slugs(labels: Sequence[str]) -> List[str]:
+    out: List[str] = []
+    for label in labels:
+        base = "reason_" + reason_slug(label)
+        column, k = base, 2
+        while column in out:  # two labels with the same slug (e.g. "marker ?" and "marker !")
+            column, k = f"{base}_{k}", k + 1
+        out.append(column)
+    return out
+
+
+# ---------------------------------------------------------------------------
+# per participant
+
+def participant_table(missing_per_row: np.ndarray) -> pd.DataFrame:
+    """Distribution of how many variables each row is missing (no ids, no rows).
+
+    Parameters
+    ----------
+    missing_per_row : number of missing variables in each row.
+
+    Returns
+    -------
+    DataFrame: n_missing_variables (0 to the largest seen), n_rows, pct_rows.
+    """
+    counts = np.bincount(missing_per_row.astype(np.int64), minlength=1)
+    total = int(counts.sum())
+    return pd.DataFrame({
+        "n_missing_variables": np.arange(len(counts), dtype=np.int64),
+        "n_rows": counts.astype(np.int64),
+        "pct_rows": counts / total * 100 if total else np.full(len(counts), np.nan),
+    })
+
+
+# ---------------------------------------------------------------------------
+# patterns
+
+def count_patterns(missing: np.ndarray) -> PatternCounts:
+    """The distinct rows of a boolean missingness matrix and how many rows have each.
+
+    Each row is packed into bits (first variable = most significant bit) and the codes
+    are counted with ``numpy.unique``, so patterns come out in lexicographic order of
+    their missing bits (observed before missing, left to right).
+
+    Parameters
+    ----------
+    missing : n x p boolean array (True = missing).
+
+    Returns
+    -------
+    PatternCounts
+    """
+    n, p = missing.shape
+    if p == 0 or n == 0:
+        return PatternCounts(np.zeros((1 if n else 0, p), dtype=np.uint8), np.array([n] if n else [], dtype=np.int64))
+    packed = np.packbits(np.ascontiguousarray(missing), axis=1, bitorder="big")
+    width = -(-packed.shape[1] // 8) * 8
+    if width != packed.shape[1]:
+        packed = np.concatenate([packed, np.zeros((n, width - packed.shape[1]), dtype=np.uint8)], axis=1)
+    words = np.ascontiguousarray(packed).view(">u8").astype(np.uint64)  # big-endian read: integer order = bit order
+    if words.shape[1] == 1:
+        unique, counts = np.unique(words[:, 0], return_counts=True)
+        unique = unique[:, None]
+    else:
+        unique, counts = np.unique(words, axis=0, return_counts=True)
+    bits = np.unpackbits(unique.astype(">u8").view(np.uint8).reshape(len(unique), -1), axis=1, bitorder="big")[:, :p]
+    return PatternCounts(bits, counts.astype(np.int64))
+
+
+def pattern_table(patterns: PatternCounts, names: Sequence[str]) -> pd.DataFrame:
+    """One row per pattern: n_rows, pct_rows, n_missing_variables, then 0/1 per variable (1 = observed).
+
+    Sorted by n_rows descending, then fewer missing variables first, then the pattern read
+    left to right with observed before missing, so the order is fully determined.
+
+    Parameters
+    ----------
+    patterns : from :func:`count_patterns` (already in pattern order).
+    names : the variable names, in column order.
+
+    Returns
+    -------
+    DataFrame
+    """
+    bits, counts = patterns.missing_bits, patterns.n_rows
+    n_missing = bits.sum(axis=1, dtype=np.int64)
+    order = np.lexsort((np.arange(len(counts)), n_missing, -counts))
+    total = int(counts.sum())
+    observed = (1 - bits[order]).astype(np.int8)
+    head = pd.DataFrame({"n_rows": counts[order], "pct_rows": counts[order] / total * 100 if total else np.nan,
+                         "n_missing_variables": n_missing[order]})
+    body = pd.DataFrame(observed, columns=list(names))
+    return pd.concat([head, body], axis=1)
+
+
+def dropout_order(missing_counts: Sequence[int], names: Sequence[str]) -> Tuple[str, ...]:
+    """Variables from least to most missing (ties kept in column order)."""
+    order = np.argsort(np.asarray(missing_counts), kind="stable")
+    return tuple(names[i] for i in order)
+
+
+def is_monotone(missing_bits: np.ndarray) -> bool:
+    """Whether a set of missingness patterns is monotone.
+
+    Monotone (a dropout design): the variables can be ordered so that once a variable is
+    missing every later one is missing too. That holds exactly when the patterns' sets of
+    missing variables are nested (each contains the smaller ones), which is checked on
+    the patterns sorted by their number of missing variables.
+
+    Parameters
+    ----------
+    missing_bits : patterns x variables, 1 = missing.
+
+    Returns
+    -------
+    bool
+
+    References
+    ----------
+    Little RJA, Rubin DB (2019). Statistical Analysis with Missing Data, 3rd ed. Wiley,
+    section 1.3 (monotone missingness patterns).
+    """
+    if len(missing_bits) < 2:
+        return True
+    if len(missing_bits) > missing_bits.shape[1] + 1:
+        return False  # a nested chain of subsets of p variables has at most p + 1 members
+    bits = missing_bits.astype(bool)
+    order = np.argsort(bits.sum(axis=1), kind="stable")
+    smaller, larger = bits[order[:-1]], bits[order[1:]]
+    return not bool(np.any(smaller & ~larger))
+
+
+def rows_in_dropout_order(patterns: PatternCounts, order_index: Sequence[int]) -> float:
+    """Percent of rows whose missing variables are the last ones of the dropout order."""
+    total = int(patterns.n_rows.sum())
+    if total == 0:
+        return float("nan")
+    bits = patterns.missing_bits[:, list(order_index)].astype(np.int8)
+    fits = np.all(np.diff(bits, axis=1) >= 0, axis=1) if bits.shape[1] > 1 else np.ones(len(bits), dtype=bool)
+    return float(patterns.n_rows[fits].sum() / total * 100)
+
+
+# ---------------------------------------------------------------------------
+# co-missingness
+
+def comissingness(patterns: PatternCounts, names: Sequence[str]) -> Tuple[pd.DataFrame, pd.DataFrame]:
+    """Pearson correlations of missingness indicators among incomplete variables.
+
+    Computed from the pattern counts: with a and b the numbers of rows missing each
+    variable, ab the number missing both and n rows, r = (n ab - a b) /
+    sqrt(a (n - a) b (n - b)) (the phi coefficient). A variable missing in every row has
+    no variance; its correlations are NaN. Not-applicable cells count as observed.
+
+    Parameters
+    ----------
+    patterns : from :func:`count_patterns`.
+    names : variable names in column order.
+
+    Returns
+    -------
+    (long, matrix): long form (variable_a, variable_b, correlation, n_both_missing) for
+    each pair once, and the square correlation matrix.
+
+    References
+    ----------
+    Yule GU (1912). On the methods of measuring association between two attributes.
+    J R Stat Soc 75:579-652 (the phi coefficient).
+    """
+    counts = patterns.n_rows.astype(np.float64)
+    n = float(counts.sum())
+    missing_per_variable = patterns.missing_bits.T.astype(np.float64) @ counts if len(counts) else np.zeros(len(names))
+    incomplete = [j for j in range(len(names)) if missing_per_variable[j] > 0]
+    labels = [names[j] for j in incomplete]
+    both = np.zeros((len(incomplete), len(incomplete)))
+    # Chunks keep the float copy of the pattern bits small when nearly every row is its own pattern.
+    for start in range(0, len(counts), _CHUNK_ROWS):
+        block = patterns.missing_bits[start:start + _CHUNK_ROWS][:, incomplete].astype(np.float64)
+        both += block.T @ (block * counts[start:start + _CHUNK_ROWS, None])
+    both = np.rint(both)
+    single = np.diag(both).copy()
+    with np.errstate(divide="ignore", invalid="ignore"):
+        spread = np.sqrt(single * (n - single))
+        correlation = (n * both - np.outer(single, single)) / np.outer(spread, spread)
+    correlation[~np.isfinite(correlation)] = np.nan
+    matrix = pd.DataFrame(correlation, index=labels, columns=labels)
+    upper_a, upper_b = np.triu_indices(len(labels), k=1)
+    long = pd.DataFrame({
+        "variable_a": [labels[i] for i in upper_a], "variable_b": [labels[i] for i in upper_b],
+        "correlation": correlation[upper_a, upper_b], "n_both_missing": both[upper_a, upper_b].astype(np.int64),
+    }, columns=list(COMISSING_COLUMNS))
+    return long, matrix
+
+
+# ---------------------------------------------------------------------------
+# by group
+
+def group_codes(values: pd.Series, missing: np.ndarray, not_applicable: np.ndarray,
+                name: str) -> Tuple[np.ndarray, List[str]]:
+    """Integer group codes and labels for a grouping variable; missing rows form "(missing)".
+
+    Parameters
+    ----------
+    values : the grouping variable's values.
+    missing, not_applicable : its boolean indicators.
+    name : its name (for the error message).
+
+    Returns
+    -------
+    (codes, labels): codes index into labels.
+    """
+    usable = ~(missing | not_applicable) & values.notna().to_numpy()
+    codes = np.full(len(values), -1, dtype=np.int64)
+    if isinstance(values.dtype, pd.CategoricalDtype):
+        raw_codes = np.asarray(values.array.codes).astype(np.int64)
+        present = np.unique(raw_codes[usable])  # declared levels in their order, empty ones left out
+        levels = [str(values.cat.categories[k]) for k in present]
+        remap = np.full(len(values.cat.categories), -1, dtype=np.int64)
+        remap[present] = np.arange(len(present))
+        codes[usable] = remap[raw_codes[usable]]
+    else:
+        uniques, inverse = np.unique(values.to_numpy()[usable], return_inverse=True)
+        levels = [_level_label(u) for u in uniques]
+        codes[usable] = inverse
+    if len(levels) > MAX_GROUP_LEVELS:
+        raise InputError(f"audit.by: '{name}' has {len(levels)} distinct values (more than {MAX_GROUP_LEVELS}); "
+                         "group by a categorical variable such as arm or clinic")
+    labels = list(levels)
+    outside = (codes < 0) & not_applicable
+    if outside.any():
+        codes[outside] = len(labels)
+        labels.append(GROUP_NOT_APPLICABLE)
+    unknown = codes < 0
+    if unknown.any():
+        codes[unknown] = len(labels)
+        labels.append(GROUP_MISSING)
+    return codes, labels
+
+
+def _level_label(value) -> str:
+    if isinstance(value, (float, np.floating)) and float(value).is_integer():
+        return f"{float(value):g}"
+    return str(value)
+
+
+def missing_by_group(cells: MissingCells, group: str, codes: np.ndarray, labels: Sequence[str]) -> pd.DataFrame:
+    """Per level of one grouping variable and per other variable: n, n_missing, pct_missing.
+
+    Parameters
+    ----------
+    cells : from :func:`missing_cells`.
+    group : the grouping variable's name (left out of its own rows).
+    codes, labels : from :func:`group_codes`.
+
+    Returns
+    -------
+    DataFrame with columns group_variable, group, variable, n, n_missing, pct_missing.
+    """
+    k = len(labels)
+    size = np.bincount(codes, minlength=k)
+    frames = []
+    for j, name in enumerate(cells.names):
+        if name == group:
+            continue
+        # One pass per variable: each row lands in cell (group, state) with state 0 observed,
+        # 1 missing, 2 not applicable.
+        state = cells.missing_columns[j].view(np.int8) + 2 * cells.not_applicable_columns[j].view(np.int8)
+        by_state = np.bincount(codes * 3 + state, minlength=3 * k).reshape(k, 3)
+        n_missing = by_state[:, 1]
+        n = size - by_state[:, 2]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            pct = np.where(n > 0, n_missing / np.maximum(n, 1) * 100, np.nan)
+        frames.append(pd.DataFrame({"group_variable": group, "group": list(labels), "variable": name,
+                                    "n": n.astype(np.int64), "n_missing": n_missing.astype(np.int64),
+                                    "pct_missing": pct}))
+    if not frames:
+        return pd.DataFrame(columns=list(BY_GROUP_COLUMNS))
+    table = pd.concat(frames, ignore_index=True)
+    # Group-major order: every variable for the first level, then the next level.
+    order = np.lexsort((np.repeat(np.arange(len(frames)), k), np.tile(np.arange(k), len(frames))))
+    return table.iloc[order].reset_index(drop=True)[list(BY_GROUP_COLUMNS)]
+
+
+# ---------------------------------------------------------------------------
+# the whole audit
+
+def audit_frame(data: pd.DataFrame, reasons: Optional[pd.DataFrame] = None,
+                types: Optional[Mapping[str, str]] = None, threshold: float = DEFAULT_THRESHOLD,
+                by: Sequence[str] = (), top_patterns: int = 15) -> AuditResult:
+    """Audit the missingness of a plain DataFrame (values, optionally with a frame of reasons).
+
+    Parameters
+    ----------
+    data : one column per variable; NaN where missing or not applicable.
+    reasons : same shape; NaN where observed, otherwise the reason label
+        (``"not applicable"`` is not missing). None: every NaN gets the reason
+        ``"unspecified"``.
+    types : variable -> type; None infers them from the values (common practice, no source).
+    threshold : a variable is flagged when its missing fraction exceeds this
+        (0.20 is common practice, no source).
+    by : grouping variables for the by-group table.
+    top_patterns : how many of the most common patterns the figures show.
+
+    Returns
+    -------
+    AuditResult (range_issues, extremes and types are empty/inferred for a plain frame).
+    """
+    _check_options(threshold, top_patterns)
+    if reasons is None:
+        reasons = reasons_from_values(data)
+    if list(reasons.columns) != list(data.columns) or len(reasons) != len(data):
+        raise InputError("reasons: must have the same columns and rows as the data")
+    if types is None:
+        types = {name: infer_type(data[name])[0] for name in data.columns}
+    by = tuple(_as_list(by))
+    for name in by:
+        if name not in data.columns:
+            raise InputError(f"audit.by: '{name}' is not a variable of the study{did_you_mean(name, data.columns)}; "
+                             "list grouping variables by their column names")
+    types_table = pd.DataFrame({"variable": list(data.columns), "type": [types.get(c, "") for c in data.columns]})
+    return _audit(data, reasons, dict(types), float(threshold), by, int(top_patterns),
+                  _empty_review(["variable", "id", "value", "rule", "action"]),
+                  _empty_review(["variable", "id", "value", "median", "robust_z"]), types_table)
+
+
+def audit_study(study: Study, threshold: float = DEFAULT_THRESHOLD, by: Sequence[str] = (),
+                top_patterns: int = 15) -> AuditResult:
+    """Audit a study after intake: missing counts by reason, patterns, co-missingness, groups.
+
+    Parameters
+    ----------
+    study : from :func:`gapbook.intake.load_study`.
+    threshold : missing fraction above which a variable is flagged (params ``audit.threshold``;
+        0.20 is common practice, no source).
+    by : grouping variables (params ``audit.by``), e.g. arm, clinic.
+    top_patterns : how many of the most common patterns the figures show (``audit.top_patterns``).
+
+    Returns
+    -------
+    AuditResult, including the intake's range issues, extreme values and variable types.
+
+    References
+    ----------
+    Little RJA, Rubin DB (2019). Statistical Analysis with Missing Data, 3rd ed. Wiley
+    (missingness patterns, monotone patterns).
+    """
+    _check_options(threshold, top_patterns)
+    by = tuple(_as_list(by))
+    for name in by:
+        if name not in study.data.columns:
+            raise InputError(f"audit.by: '{name}' is not a variable of the study"
+                             f"{did_you_mean(name, study.data.columns)}; list grouping variables by their column names")
+    return _audit(study.data, study.reasons, study.types, float(threshold), by, int(top_patterns),
+                  study.range_issues.reset_index(drop=True), study.extreme_values.reset_index(drop=True),
+                  study.variables_table())
+
+
+def _audit(data: pd.DataFrame, reasons: pd.DataFrame, types: Mapping[str, str], threshold: float,
+           by: Tuple[str, ...], top_patterns: int, range_issues: pd.DataFrame, extremes: pd.DataFrame,
+           types_table: pd.DataFrame) -> AuditResult:
+    cells = missing_cells(reasons)
+    names = cells.names
+    variables, reason_table = variable_table(cells, types, threshold)
+    missing_per_row = cells.missing.sum(axis=1, dtype=np.int64)
+    participants = participant_table(missing_per_row)
+    patterns = count_patterns(cells.missing)
+    pattern_frame = pattern_table(patterns, names)
+    missing_counts = variables["n_missing"].to_numpy()
+    order = dropout_order(missing_counts, names)
+    order_index = [names.index(v) for v in order]
+    monotone = int(is_monotone(patterns.missing_bits))
+    in_order = rows_in_dropout_order(patterns, order_index)
+    comissing_long, comissing_matrix = comissingness(patterns, names)
+
+    group_tables = []
+    for group in by:
+        j = names.index(group)
+        codes, labels = group_codes(data[group], cells.missing_columns[j], cells.not_applicable_columns[j], group)
+        group_tables.append(missing_by_group(cells, group, codes, labels))
+    by_group = (pd.concat(group_tables, ignore_index=True) if group_tables
+                else pd.DataFrame(columns=list(BY_GROUP_COLUMNS)))
+
+    n_rows, n_vars = cells.n_rows, len(names)
+    complete = int((missing_per_row == 0).sum())
+    applicable_cells = int(variables["n"].sum())
+    missing_cells_total = int(variables["n_missing"].sum())
+    summary = pd.DataFrame([{
+        "rows": n_rows, "variables": n_vars, "complete_rows": complete,
+        "pct_complete_rows": complete / n_rows * 100 if n_rows else float("nan"),
+        "incomplete_variables": int((missing_counts > 0).sum()),
+        "over_threshold_variables": int(variables["over_threshold"].sum()),
+        "n_patterns": int(len(patterns.n_rows)), "monotone": monotone,
+        "pct_rows_in_dropout_order": in_order, "threshold": threshold,
+        "missing_cells": missing_cells_total, "applicable_cells": applicable_cells,
+        "pct_missing_cells": missing_cells_total / applicable_cells * 100 if applicable_cells else float("nan"),
+        "not_applicable_cells": int(variables["n_not_applicable"].sum()),
+    }])
+    return AuditResult(
+        variables=variables, participants=participants, patterns=pattern_frame, comissingness=comissing_long,
+        comissingness_matrix=comissing_matrix, by_group=by_group, summary=summary, reasons=reason_table,
+        range_issues=range_issues, extremes=extremes, types=types_table, missing_per_row=missing_per_row,
+        n_rows=n_rows, n_variables=n_vars, n_complete_rows=complete, n_patterns=int(len(patterns.n_rows)),
+        monotone=monotone, pct_rows_in_dropout_order=in_order, dropout_order=order, threshold=threshold,
+        top_patterns=top_patterns, by=by,
+    )
+
+
+def _check_options(threshold: float, top_patterns: int) -> None:
+    try:
+        value = float(threshold)
+    except (TypeError, ValueError):
+        raise InputError(f"audit.threshold: '{threshold}' is not a number; give a fraction from 0 to 1, "
+                         "e.g. 0.20") from None
+    if not 0 <= value <= 1:
+        raise InputError(f"audit.threshold: {threshold} is outside 0 to 1; give a fraction, e.g. 0.20 for 20 %")
+    if isinstance(top_patterns, bool) or not isinstance(top_patterns, (int, np.integer)) or top_patterns < 1:
+        raise InputError(f"audit.top_patterns: '{top_patterns}' must be a whole number of at least 1, e.g. 15")
+
+
+def _as_list(by) -> List[str]:
+    if by is None:
+        return []
+    return [by] if isinstance(by, str) else list(by)
+
+
+def _empty_review(columns: Sequence[str]) -> pd.DataFrame:
+    return pd.DataFrame(columns=list(columns))
