@@ -1,0 +1,29 @@
+"""Stage notebooks are committed thin: no outputs, one cell tagged parameters with demo defaults."""
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import pytest
+
+from gapbook.runner import STAGES
+
+NOTEBOOKS = Path(__file__).resolve().parents[1] / "notebooks"
+
+
+@pytest.mark.parametrize("path", sorted(NOTEBOOKS.glob("*.ipynb")), ids=lambda p: p.name)
+def test_notebook_is_thin_and_parameterised(path):
+    notebook = json.loads(path.read_text())
+    code = [c for c in notebook["cells"] if c["cell_type"] == "code"]
+    assert all(not c.get("outputs") and c.get("execution_count") is None for c in code), "committed with outputs"
+    tagged = [c for c in code if "parameters" in c.get("metadata", {}).get("tags", [])]
+    assert len(tagged) == 1
+    source = "".join(tagged[0]["source"])
+    assert "params = None" in source and "out_dir" in source
+    assert "open_stage(params, out_dir)" in "".join("".join(c["source"]) for c in code)
+
+
+def test_every_notebook_is_a_registered_stage():
+    assert sorted(p.name for p in NOTEBOOKS.glob("*.ipynb")) == sorted(
+        f for f in STAGES.values() if (NOTEBOOKS / f).is_file())
+    assert (NOTEBOOKS / STAGES["audit"]).is_file()
