@@ -11,12 +11,12 @@ from __future__ import annotations
 from dataclasses import dataclass
 from functools import cached_property
 from pathlib import Path
-from typing import Any, Dict, Optional, Sequence
+from typing import Any, Dict, Optional, Union
 
 import pandas as pd
 
 from .intake import Study, load_study
-from .params import Params
+from .params import Params, load_params
 
 CSV_FLOAT_FORMAT = "%.10g"
 STRATEGY_ORDER = ("complete_case", "missing_category", "multiple_imputation")
@@ -86,11 +86,17 @@ def merge_estimates(existing: Optional[pd.DataFrame], rows: pd.DataFrame, path: 
     return table
 
 
-def open_stage(params: Optional[Dict[str, Any]] = None, out_dir: str = ".") -> StageContext:
-    """The context for a stage notebook; ``params=None`` runs on the demo study."""
+def open_stage(params: Union[None, str, Path, Dict[str, Any]] = None, out_dir: str = ".") -> StageContext:
+    """The context for a stage notebook.
+
+    ``params`` is the resolved dict the runner injects, a path to a params YAML file (handy
+    when a notebook is opened by hand for a one-off question), or None for the demo study.
+    """
     if params is None:
         from .demo import demo_params
         resolved = demo_params()
+    elif isinstance(params, (str, Path)):
+        resolved = load_params(params)
     else:
         resolved = Params.from_dict(params, source=params.get("source"))
     out = Path(out_dir)
