@@ -153,6 +153,17 @@ def check_model_data(data: pd.DataFrame, model: AnalysisModel) -> Tuple[str, Lis
     return outcome, covariates
 
 
+def require_rows(flow: CompleteCaseFlow) -> None:
+    """Exit 2, naming the variable lacking most often, when no row is left to fit the model to."""
+    if flow.n_used > 0:
+        return
+    lacking = flow.table[flow.table["step"] == "excluded"].sort_values("n_lacking", ascending=False, kind="stable")
+    worst = lacking.iloc[0]
+    raise InputError(f"analysis.formula: no row has every model variable observed ('{worst['variable']}' is "
+                     f"missing in {int(worst['n_lacking'])} of {flow.n_rows} rows); drop a variable from the "
+                     "formula or use another strategy")
+
+
 def complete_case_analysis(data: pd.DataFrame, model: AnalysisModel, reasons: Optional[pd.DataFrame] = None,
                            not_applicable: Optional[pd.DataFrame] = None) -> CompleteCaseResult:
     """Fit the analysis model to the rows with every model variable present.
@@ -174,12 +185,7 @@ def complete_case_analysis(data: pd.DataFrame, model: AnalysisModel, reasons: Op
     """
     check_model_data(data, model)
     flow = complete_case_flow(data, model, reasons, not_applicable)
-    if flow.n_used == 0:
-        lacking = flow.table[flow.table["step"] == "excluded"].sort_values("n_lacking", ascending=False)
-        worst = lacking.iloc[0]
-        raise InputError(f"analysis.formula: no row has every model variable observed ('{worst['variable']}' is "
-                         f"missing in {int(worst['n_lacking'])} of {flow.n_rows} rows); drop a variable from the "
-                         "formula or use another strategy")
+    require_rows(flow)
     fit = model.fit(data.loc[flow.complete.to_numpy()])
     terms = tuple(exposure_terms(fit.terms, model.exposure))
     return CompleteCaseResult(flow=flow, fit=fit, estimates=fit.table("complete_case"), exposure_terms=terms)
