@@ -180,8 +180,7 @@ def comissingness_matrix(result, annotate_up_to: int = 15):
     values[np.triu_indices(k)] = np.nan  # each pair once; the diagonal is 1 by definition
     # Lower triangle without the diagonal: rows from the second variable, columns up to the last but one.
     values = values[1:, :-1]
-    colours = LinearSegmentedColormap.from_list("comissing", [OBSERVED, "#F4F4F4", MISSING])
-    colours.set_bad("white")
+    colours = LinearSegmentedColormap.from_list("comissing", [OBSERVED, "#F4F4F4", MISSING]).with_extremes(bad="white")
     image = axes.imshow(np.ma.masked_invalid(values), cmap=colours, vmin=-1, vmax=1, interpolation="nearest")
     axes.set_xticks(range(k - 1))
     axes.set_xticklabels(matrix.columns[:-1], rotation=60, ha="right", fontsize=8)

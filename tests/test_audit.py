@@ -1,0 +1,354 @@
+"""Tests of the audit stage (gapbook.audit) and its figures.
+
+Sources of the expected values are named beside each check: hand counts on small frames
+built here, the palmerpenguins dataset (PyPI package palmerpenguins), numpy and pandas
+as reference implementations, and the definition of a monotone pattern (Little & Rubin
+2019, Statistical Analysis with Missing Data, 3rd ed., section 1.3).
+"""
+from __future__ import annotations
+
+import itertools
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from gapbook.audit import (AuditResult, audit_frame, audit_study, count_patterns, is_monotone, reason_slug,
+                           rows_in_dropout_order)
+from gapbook.errors import InputError
+from gapbook.intake import load_study
+from gapbook.params import Params
+from gapbook.stage import write_csv
+
+LEADING = ["variable", "type", "n", "n_missing", "pct_missing", "over_threshold", "n_not_applicable"]
+
+
+def _hand_params():
+    return Params.from_dict({
+        "data": {"path": "hand.csv", "id": "pid"},
+        "variables": {
+            "g": {"type": "nominal"}, "a": {"type": "continuous"}, "b": {"type": "binary"},
+            "c": {"type": "continuous"}, "d": {"type": "continuous", "applies_if": "a < 100"},
+        },
+        "missing": {"markers": [""], "reasons": {-9: "lost to follow-up", -7: "declined"}},
+    })
+
+
+def _hand_raw(extra_rows=()):
+    """A dropout design of six rows; d does not apply to P5 (a >= 100), so its blank there is not missing."""
+    rows = [
+        ("P1", "x", "10", "1", "5", "2"),
+        ("P2", "x", "20", "0", "6", ""),        # d blank
+        ("P3", "y", "30", "1", "-9", "-9"),     # c, d lost to follow-up
+        ("P4", "y", "40", "-7", "-9", "-9"),    # b declined; c, d lost to follow-up
+        ("P5", "x", "150", "0", "7", ""),       # d not applicable
+        ("P6", "y", "60", "1", "", ""),         # c, d blank
+    ] + list(extra_rows)
+    return pd.DataFrame(rows, columns=["pid", "g", "a", "b", "c", "d"])
+
+
+@pytest.fixture(scope="module")
+def hand():
+    return audit_study(load_study(_hand_params(), raw=_hand_raw()), threshold=0.20, by=["g"])
+
+
+@pytest.fixture(scope="module")
+def demo_study():
+    from gapbook.demo import demo_params
+    return load_study(demo_params())
+
+
+@pytest.fixture(scope="module")
+def demo_audit(demo_study):
+    return audit_study(demo_study, threshold=0.20, by=["arm", "clinic"], top_patterns=15)
+
+
+# ---------------------------------------------------------------------------
+# hand counts (expected values counted by hand from the six rows above)
+
+def test_variable_counts_and_reasons_by_hand(hand):
+    table = hand.variables.set_index("variable")
+    assert list(hand.variables.columns[:7]) == LEADING
+    # Hand-counted: 4 lost to follow-up, 3 blank, 1 declined -> most common reason first.
+    assert list(hand.variables.columns[7:]) == ["reason_lost_to_follow_up", "reason_blank", "reason_declined"]
+    assert table.loc["b", ["n", "n_missing", "reason_declined"]].tolist() == [6, 1, 1]
+    assert table.loc["c", ["n", "n_missing", "reason_lost_to_follow_up", "reason_blank"]].tolist() == [6, 3, 2, 1]
+    # d: P5 is not applicable -> n = 5, not missing, and not a reason column (hand count).
+    assert table.loc["d", ["n", "n_missing", "n_not_applicable", "reason_lost_to_follow_up", "reason_blank"]
+                     ].tolist() == [5, 4, 1, 2, 2]
+    assert table.loc["d", "pct_missing"] == pytest.approx(80.0)       # 4 / 5 * 100
+    assert table.loc["c", "pct_missing"] == pytest.approx(50.0)       # 3 / 6 * 100
+    assert table.loc["b", "pct_missing"] == pytest.approx(100 / 6)    # 1 / 6 * 100
+    # threshold 0.20 (common practice, no source): 1/6 is under, 3/6 and 4/5 are over.
+    assert table["over_threshold"].tolist() == [False, False, False, True, True]
+    assert table.loc["a", "n_missing"] == 0 and table.loc["g", "n_missing"] == 0
+    assert "reason_not_applicable" not in hand.variables.columns
+    assert hand.variables["over_threshold"].dtype == bool
+
+
+def test_participants_and_patterns_by_hand(hand):
+    # Hand count of missing variables per row: P1 0, P2 1, P3 2, P4 3, P5 0 (n/a is not missing), P6 2.
+    assert hand.participants["n_missing_variables"].tolist() == [0, 1, 2, 3]
+    assert hand.participants["n_rows"].tolist() == [2, 1, 2, 1]
+    assert hand.participants["pct_rows"].tolist() == pytest.approx([200 / 6, 100 / 6, 200 / 6, 100 / 6])
+    assert list(hand.participants.columns) == ["n_missing_variables", "n_rows", "pct_rows"]
+    # Hand-listed patterns (1 = observed; P5's not-applicable d counts as observed), most common first,
+    # ties broken by fewer missing variables.
+    expected = pd.DataFrame(
+        [[2, 0, 1, 1, 1, 1, 1], [2, 2, 1, 1, 1, 0, 0], [1, 1, 1, 1, 1, 1, 0], [1, 3, 1, 1, 0, 0, 0]],
+        columns=["n_rows", "n_missing_variables", "g", "a", "b", "c", "d"])
+    got = hand.patterns.drop(columns="pct_rows")
+    assert list(hand.patterns.columns[:3]) == ["n_rows", "pct_rows", "n_missing_variables"]
+    assert got.astype(int).values.tolist() == expected[got.columns].values.tolist()
+    assert hand.n_patterns == 4 and hand.n_complete_rows == 2
+    summary = hand.summary.iloc[0]
+    assert (summary["rows"], summary["complete_rows"], summary["incomplete_variables"]) == (6, 2, 3)
+
+
+def test_monotone_detection_by_hand():
+    # The six-row frame is a dropout design (d, then c, then b): monotone by construction.
+    dropout = audit_study(load_study(_hand_params(), raw=_hand_raw()))
+    assert dropout.monotone == 1
+    assert dropout.pct_rows_in_dropout_order == pytest.approx(100.0)
+    assert dropout.dropout_order[-3:] == ("b", "c", "d")
+    # Adding a row that lacks only b (while others lack only d) breaks every ordering: not monotone.
+    broken = audit_study(load_study(_hand_params(), raw=_hand_raw([("P7", "x", "70", "", "8", "9")])))
+    assert broken.monotone == 0
+    assert broken.summary.loc[0, "monotone"] == 0
+    # Hand count: 6 of 7 rows keep the order a, g, b, c, d -> only P7 breaks it.
+    assert broken.pct_rows_in_dropout_order == pytest.approx(600 / 7)
+
+
+def _monotone_by_definition(bits: np.ndarray) -> bool:
+    """Definition (Little & Rubin 2019, 1.3): some ordering makes every row's gaps a tail of it."""
+    p = bits.shape[1]
+    for order in itertools.permutations(range(p)):
+        ordered = bits[:, list(order)].astype(np.int8)   # signed: np.diff of unsigned bits would wrap
+        if np.all(np.diff(ordered, axis=1) >= 0):
+            return True
+    return False
+
+
+def test_monotone_matches_definition_on_random_patterns():
+    # Brute force over all 24 orderings of 4 variables, on seeded random pattern sets.
+    rng = np.random.default_rng(11)
+    seen = set()
+    for _ in range(300):
+        n_patterns = rng.integers(1, 5)
+        if rng.random() < 0.5:   # half of the draws are nested chains (dropout), half arbitrary
+            order = rng.permutation(4)
+            tails = rng.choice(5, size=n_patterns)
+            rows = np.zeros((n_patterns, 4), dtype=np.uint8)
+            for r, t in enumerate(tails):
+                rows[r, order[4 - t:]] = 1
+        else:
+            rows = (rng.random((n_patterns, 4)) < 0.4).astype(np.uint8)
+        patterns = count_patterns(rows.astype(bool))
+        expected = _monotone_by_definition(patterns.missing_bits)
+        assert is_monotone(patterns.missing_bits) == expected
+        seen.add(expected)
+    assert seen == {True, False}
+
+
+def test_comissingness_against_numpy_corrcoef(hand, demo_study, demo_audit):
+    for result, missing in ((hand, None), (demo_audit, demo_study.missing)):
+        matrix = result.comissingness_matrix
+        if missing is None:
+            missing = pd.DataFrame({"b": [0, 0, 0, 1, 0, 0], "c": [0, 0, 1, 1, 0, 1], "d": [0, 1, 1, 1, 0, 1]})
+        indicators = missing[list(matrix.columns)].to_numpy(dtype=float)
+        # Reference: numpy.corrcoef of the 0/1 indicator columns.
+        assert np.allclose(matrix.to_numpy(), np.corrcoef(indicators, rowvar=False), atol=1e-12)
+        long = result.comissingness.set_index(["variable_a", "variable_b"])
+        for (a, b), row in long.iterrows():
+            i, j = list(matrix.columns).index(a), list(matrix.columns).index(b)
+            assert row["correlation"] == pytest.approx(np.corrcoef(indicators[:, i], indicators[:, j])[0, 1])
+            assert row["n_both_missing"] == int((indicators[:, i] * indicators[:, j]).sum())
+        k = len(matrix)
+        assert len(long) == k * (k - 1) // 2
+    assert list(hand.comissingness_matrix.columns) == ["b", "c", "d"]  # only incomplete variables
+
+
+def test_by_group_by_hand_and_against_pandas(hand, demo_study, demo_audit):
+    table = hand.by_group.set_index(["group", "variable"])
+    # Hand counts: group x = P1, P2, P5; group y = P3, P4, P6.
+    assert table.loc[("x", "d"), ["n", "n_missing"]].tolist() == [2, 1]
+    assert table.loc[("y", "c"), ["n", "n_missing"]].tolist() == [3, 3]
+    assert table.loc[("y", "b"), ["n", "n_missing"]].tolist() == [3, 1]
+    assert "g" not in set(hand.by_group["variable"])
+    assert list(hand.by_group.columns) == ["group_variable", "group", "variable", "n", "n_missing", "pct_missing"]
+    # Reference: pandas groupby of the missing / applicable indicator frames.
+    for group in ("arm", "clinic"):
+        key = demo_study.data[group]
+        n_missing = demo_study.missing.groupby(key, observed=True).sum()
+        n = (~demo_study.not_applicable).groupby(key, observed=True).sum()
+        ours = demo_audit.by_group[demo_audit.by_group["group_variable"] == group]
+        for _, row in ours.iterrows():
+            assert row["n_missing"] == n_missing.loc[row["group"], row["variable"]]
+            assert row["n"] == n.loc[row["group"], row["variable"]]
+            assert row["pct_missing"] == pytest.approx(row["n_missing"] / row["n"] * 100)
+        assert len(ours) == key.nunique() * (demo_study.data.shape[1] - 1)
+
+
+def test_rows_missing_the_group_form_their_own_group():
+    raw = _hand_raw()
+    raw.loc[5, "g"] = ""   # P6's group is blank
+    result = audit_study(load_study(_hand_params(), raw=raw), by="g")
+    table = result.by_group.set_index(["group", "variable"])
+    assert list(result.by_group["group"].unique()) == ["x", "y", "(missing)"]
+    # Hand count: the (missing) group is P6 alone, which lacks c and d.
+    assert table.loc[("(missing)", "c"), ["n", "n_missing"]].tolist() == [1, 1]
+    assert table.loc[("y", "c"), ["n", "n_missing"]].tolist() == [2, 2]
+
+
+# ---------------------------------------------------------------------------
+# palmerpenguins (PyPI package palmerpenguins; its documentation gives 344 rows, 11 missing
+# sex and 2 rows missing every body measurement)
+
+MEASUREMENTS = ["bill_length_mm", "bill_depth_mm", "flipper_length_mm", "body_mass_g"]
+
+
+@pytest.fixture(scope="module")
+def penguins():
+    from palmerpenguins import load_penguins
+    return load_penguins()
+
+
+def test_penguins_audit(penguins):
+    study = load_study(Params.from_dict({"data": {"path": "penguins.csv"},
+                                         "variables": {"year": {"type": "count"}}}), raw=penguins)
+    result = audit_study(study)
+    table = result.variables.set_index("variable")
+    assert result.n_rows == 344
+    assert table["n"].eq(344).all()
+    assert table.loc["sex", "n_missing"] == 11
+    assert table.loc["sex", "reason_blank"] == 11
+    assert table.loc[MEASUREMENTS, "n_missing"].tolist() == [2, 2, 2, 2]
+    assert table.loc[["species", "island", "year"], "n_missing"].tolist() == [0, 0, 0]
+    assert table.loc["sex", "pct_missing"] == pytest.approx(11 / 344 * 100)
+    # Patterns: 2 rows lack every measurement.
+    patterns = result.patterns
+    no_measurements = patterns[(patterns[MEASUREMENTS] == 0).all(axis=1)]
+    assert no_measurements["n_rows"].sum() == 2
+    # Reference: pandas groupby on the isna() frame of the raw data gives the same patterns and counts.
+    reference = penguins.isna().value_counts().rename("n_rows").reset_index()
+    reference[penguins.columns] = (~reference[penguins.columns]).astype(int)
+    merged = patterns.merge(reference, on=list(penguins.columns), suffixes=("", "_pandas"))
+    assert len(merged) == len(reference) == result.n_patterns
+    assert (merged["n_rows"] == merged["n_rows_pandas"]).all()
+    assert patterns["n_rows"].is_monotonic_decreasing
+    assert patterns["pct_rows"].sum() == pytest.approx(100.0)
+
+
+def test_plain_frame_audit_matches_isna(penguins):
+    # audit_frame on a plain DataFrame: every NaN is missing with reason "unspecified".
+    result = audit_frame(penguins, by=["species"])
+    table = result.variables.set_index("variable")
+    assert (table["n_missing"] == penguins.isna().sum()).all()           # reference: pandas isna().sum()
+    assert (table["reason_unspecified"] == penguins.isna().sum()).all()
+    reference = penguins.isna().groupby(penguins["species"]).sum()       # reference: pandas groupby
+    for _, row in result.by_group.iterrows():
+        assert row["n_missing"] == reference.loc[row["group"], row["variable"]]
+
+
+# ---------------------------------------------------------------------------
+# the demo study
+
+def test_demo_reason_counts_equal_study_reasons(demo_study, demo_audit):
+    table = demo_audit.variables.set_index("variable")
+    mapping = dict(zip(demo_audit.reasons["reason"], demo_audit.reasons["column"]))
+    for name in demo_study.reasons.columns:
+        counts = demo_study.reasons[name].value_counts()   # reference: pandas value_counts on the reasons frame
+        for reason, count in counts.items():
+            if reason == "not applicable":
+                assert table.loc[name, "n_not_applicable"] == count
+            elif count:
+                assert table.loc[name, mapping[reason]] == count
+        assert table.loc[name, "n_missing"] == demo_study.missing[name].sum()
+    reason_columns = list(demo_audit.reasons["column"])
+    assert (table[reason_columns].sum(axis=1) == table["n_missing"]).all()
+    # Reasons the demo's params and data produce (see gapbook.demo): each appears as a column.
+    for column in ("reason_lost_to_follow_up", "reason_declined", "reason_not_measured", "reason_blank",
+                   "reason_marker_na", "reason_implausible"):
+        assert column in demo_audit.variables.columns
+    assert table.loc["insulin_dose", "n"] == demo_study.data["on_insulin"].eq("yes").sum()
+    assert len(demo_audit.range_issues) == len(demo_study.range_issues)
+    assert list(demo_audit.types.columns) == ["variable", "type", "source", "levels", "why"]
+
+
+def test_audit_is_deterministic(demo_study, demo_audit, tmp_path):
+    again = audit_study(demo_study, threshold=0.20, by=["arm", "clinic"], top_patterns=15)
+    for name, frame in demo_audit.tables().items():
+        pd.testing.assert_frame_equal(frame, again.tables()[name])
+        first, second = tmp_path / f"{name}_1.csv", tmp_path / f"{name}_2.csv"
+        write_csv(frame, first)
+        write_csv(again.tables()[name], second)
+        assert first.read_bytes() == second.read_bytes()
+
+
+def test_no_ids_in_participant_and_pattern_tables(demo_study, demo_audit):
+    ids = set(demo_study.ids.astype(str))
+    for frame in (demo_audit.participants, demo_audit.patterns, demo_audit.summary, demo_audit.variables):
+        assert not ids & set(frame.astype(str).to_numpy().ravel())
+    assert len(demo_audit.patterns) < demo_audit.n_rows
+
+
+# ---------------------------------------------------------------------------
+# pieces and errors
+
+def test_reason_slug():
+    # The slug rule of the audit_variables contract: lower case, non-alphanumerics as '_'.
+    assert reason_slug("lost to follow-up") == "lost_to_follow_up"
+    assert reason_slug("marker NA") == "marker_na"
+    assert reason_slug("implausible") == "implausible"
+
+
+def test_slug_collisions_get_distinct_columns():
+    data = pd.DataFrame({"x": [1.0, np.nan, np.nan]})
+    reasons = pd.DataFrame({"x": pd.Categorical([np.nan, "marker ?", "marker !"])})
+    result = audit_frame(data, reasons)
+    assert list(result.reasons["column"]) == ["reason_marker__", "reason_marker___2"]
+    assert result.variables.loc[0, ["reason_marker__", "reason_marker___2"]].tolist() == [1, 1]
+
+
+def test_many_variables_use_several_code_words():
+    # More than 64 variables: patterns span two 64-bit words; compare with pandas value_counts.
+    rng = np.random.default_rng(5)
+    missing = rng.random((400, 70)) < 0.02
+    patterns = count_patterns(missing)
+    reference = pd.DataFrame(missing).value_counts()
+    assert len(patterns.n_rows) == len(reference)
+    assert sorted(patterns.n_rows.tolist()) == sorted(reference.tolist())
+    assert patterns.n_rows.sum() == 400
+
+
+def test_user_errors_name_the_key(demo_study):
+    with pytest.raises(InputError, match=r"audit\.by: 'armm'.*did you mean 'arm'"):
+        audit_study(demo_study, by=["armm"])
+    with pytest.raises(InputError, match=r"audit\.threshold"):
+        audit_study(demo_study, threshold=1.5)
+    with pytest.raises(InputError, match=r"audit\.top_patterns"):
+        audit_study(demo_study, top_patterns=0)
+    with pytest.raises(InputError, match=r"audit\.by: 'age' has .* distinct values"):
+        audit_study(demo_study, by=["age"])
+
+
+def test_figures_draw_from_the_result(demo_audit, hand):
+    import matplotlib.pyplot as plt
+    from gapbook.plots import audit as plots
+    for result in (demo_audit, hand):
+        assert isinstance(result, AuditResult)
+        for draw in (plots.missingness_map, plots.missing_share, plots.comissingness_matrix, plots.common_patterns):
+            figure = draw(result)
+            assert figure.axes and figure.axes[0].get_title()
+            plt.close(figure)
+
+
+def test_map_slices_preserve_missing_counts(demo_audit):
+    # The sliced map must keep every missing cell: shares x slice height sum to the variable's count.
+    from gapbook.plots.audit import _slice_shares, _sorted_patterns
+    order, bits, counts = _sorted_patterns(demo_audit)
+    shares = _slice_shares(bits.astype(float), counts, 100)
+    recovered = shares.sum(axis=0) * counts.sum() / 100
+    expected = demo_audit.variables.set_index("variable").loc[order, "n_missing"].to_numpy()
+    assert np.allclose(recovered, expected)
+    assert rows_in_dropout_order(count_patterns(np.zeros((3, 2), dtype=bool)), [0, 1]) == 100.0
