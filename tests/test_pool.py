@@ -1,0 +1,175 @@
+"""Rubin's rules, Barnard-Rubin degrees of freedom and the D1 Wald test, checked against the
+published formulas and against statsmodels' own combining of the same per-imputation fits."""
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+import statsmodels.api as sm
+import statsmodels.formula.api as smf
+from palmerpenguins import load_penguins
+from scipy import stats
+from statsmodels.imputation.mice import MICE
+
+from gapbook.errors import AnalysisError, InputError
+from gapbook.models import fit_model
+from gapbook.pool import barnard_rubin_df, pool_fits, rubin_pool, wald_d1
+
+# A small fixed set of m = 4 estimates of 2 parameters and their squared standard errors.
+ESTIMATES = np.array([[1.00, -0.20], [1.30, -0.10], [0.90, -0.25], [1.10, -0.05]])
+VARIANCES = np.array([[0.040, 0.010], [0.050, 0.012], [0.045, 0.011], [0.042, 0.009]])
+
+
+def test_rubin_rules_by_hand():
+    pooled = rubin_pool(ESTIMATES, VARIANCES)
+    m = 4
+    for j in range(2):
+        q = ESTIMATES[:, j]
+        u = VARIANCES[:, j]
+        qbar = sum(q) / m                                          # Rubin (1987) eq. 3.1.2
+        ubar = sum(u) / m                                          # eq. 3.1.3
+        b = sum((qi - qbar) ** 2 for qi in q) / (m - 1)            # eq. 3.1.4
+        t = ubar + (1 + 1 / m) * b                                 # eq. 3.1.5
+        r = (1 + 1 / m) * b / ubar                                 # relative increase in variance, eq. 3.1.7
+        nu = (m - 1) * (1 + 1 / r) ** 2                            # eq. 3.1.6
+        fmi = (r + 2 / (nu + 3)) / (r + 1)                         # Rubin (1987) eq. 3.1.10
+        assert pooled.estimate[j] == pytest.approx(qbar, rel=1e-12)
+        assert pooled.within[j] == pytest.approx(ubar, rel=1e-12)
+        assert pooled.between[j] == pytest.approx(b, rel=1e-12)
+        assert pooled.total[j] == pytest.approx(t, rel=1e-12)
+        assert pooled.riv[j] == pytest.approx(r, rel=1e-12)
+        assert pooled.df[j] == pytest.approx(nu, rel=1e-12)       # no complete-data df: large-sample value
+        assert pooled.fmi[j] == pytest.approx(fmi, rel=1e-12)
+    # worked numbers for parameter 1, computed by hand: qbar = 1.075, B = 0.0291667, W = 0.04425
+    assert pooled.estimate[0] == pytest.approx(1.075)
+    assert pooled.between[0] == pytest.approx(0.0875 / 3)
+    assert pooled.total[0] == pytest.approx(0.04425 + 1.25 * 0.0875 / 3)
+
+
+def test_barnard_rubin_df_published_formula():
+    # Barnard & Rubin (1999) Biometrika 86:948, eqs. 2-3: nu_obs = (nu_com + 1)/(nu_com + 3) nu_com (1 - gamma),
+    # 1/nu_BR = 1/nu_m + 1/nu_obs, gamma = (1 + 1/m) B / T, nu_m = (m - 1) / gamma^2.
+    m, b, w, nu_com = 5, 0.02, 0.05, 30.0
+    t = w + (1 + 1 / m) * b
+    gamma = (1 + 1 / m) * b / t
+    nu_m = (m - 1) / gamma ** 2
+    nu_obs = (nu_com + 1) / (nu_com + 3) * nu_com * (1 - gamma)
+    expected = 1 / (1 / nu_m + 1 / nu_obs)
+    got = barnard_rubin_df(m, np.array([b]), np.array([t]), nu_com)[0]
+    assert got == pytest.approx(expected, rel=1e-12)
+    # worked numbers: gamma = 0.024 / 0.074, nu_m = 38.03, nu_obs = 19.04, nu_BR = 12.69 (by hand)
+    assert gamma == pytest.approx(0.324324, rel=1e-5)
+    assert got == pytest.approx(12.69, abs=0.01)
+    # properties stated in the paper: nu_BR never exceeds nu_com, and tends to Rubin's nu_m as nu_com grows
+    assert got < nu_com
+    assert barnard_rubin_df(m, np.array([b]), np.array([t]), 1e9)[0] == pytest.approx(nu_m, rel=1e-6)
+
+
+def test_t_intervals_use_barnard_rubin_df():
+    fits = _penguin_fits(m=5)
+    pooled = pool_fits(fits)
+    table = pooled.table.set_index("term")
+    df = pooled.pooled.df
+    se = np.sqrt(pooled.pooled.total)
+    crit = stats.t.ppf(0.975, df)   # scipy reference quantiles
+    assert np.allclose(table["ci_upper"] - table["estimate"], crit * se, rtol=1e-10)
+    assert np.allclose(table["p_value"], 2 * stats.t.sf(np.abs(pooled.estimate / se), df), rtol=1e-10)
+    assert np.all(df < fits[0].df_resid)
+
+
+def _penguin_fits(m: int, family: str = "gaussian"):
+    """m fits of one model to the penguins with sex filled by a seeded coin (a stand-in imputation)."""
+    data = load_penguins().dropna(subset=["body_mass_g", "flipper_length_mm"]).reset_index(drop=True)
+    rng = np.random.default_rng(11)
+    fits = []
+    for _ in range(m):
+        frame = data.copy()
+        missing = frame["sex"].isna()
+        frame.loc[missing, "sex"] = rng.choice(["female", "male"], size=int(missing.sum()))
+        frame["heavy"] = (frame["body_mass_g"] > 4200).astype(float)
+        formula = ("body_mass_g ~ flipper_length_mm + sex + species" if family == "gaussian"
+                   else "heavy ~ flipper_length_mm + sex")
+        fits.append(fit_model(frame, formula, family))
+    return fits
+
+
+def test_pooling_equals_statsmodels_combine():
+    # statsmodels.imputation.mice.MICE.combine pools a list of fitted results with Rubin's rules
+    data = load_penguins().dropna(subset=["body_mass_g", "flipper_length_mm"]).reset_index(drop=True)
+    rng = np.random.default_rng(5)
+    ours, theirs = [], []
+    for _ in range(6):
+        frame = data.copy()
+        missing = frame["sex"].isna()
+        frame.loc[missing, "sex"] = rng.choice(["female", "male"], size=int(missing.sum()))
+        formula = "body_mass_g ~ flipper_length_mm + sex"
+        ours.append(fit_model(frame, formula))
+        theirs.append(smf.ols(formula, frame).fit())
+    combiner = MICE.__new__(MICE)
+    combiner.results_list = theirs
+    combiner.exog_names, combiner.endog_names, combiner.model_class = list(theirs[0].params.index), "y", sm.OLS
+    reference = MICE.combine(combiner)
+    pooled = pool_fits(ours)
+    assert np.allclose(pooled.estimate, reference.params, rtol=1e-10)
+    assert np.allclose(pooled.pooled.total, np.diag(reference.cov_params()), rtol=1e-10)
+    # statsmodels' 'fraction of missing information' is (1 + 1/m) B / T, our lambda
+    assert np.allclose(pooled.pooled.lambda_, reference.frac_miss_info, rtol=1e-10)
+
+
+def test_odds_ratios_pooled_on_log_scale():
+    fits = _penguin_fits(m=5, family="binomial")
+    pooled = pool_fits(fits)
+    table = pooled.table
+    log_mean = np.mean([f.params for f in fits], axis=0)
+    assert np.allclose(table["estimate"], log_mean)
+    assert np.allclose(table["odds_ratio"], np.exp(log_mean))      # exp of the pooled log odds ratio
+    assert not np.allclose(table["odds_ratio"], np.mean([np.exp(f.params) for f in fits], axis=0), rtol=1e-6)
+    assert np.allclose(table["odds_ratio_ci_lower"], np.exp(table["ci_lower"]))
+    # GLMs have no complete-data df: Rubin's large-sample df apply
+    assert np.all(np.isfinite(table["df"])) and set(table.columns) >= {"df", "fmi", "riv", "n_used"}
+
+
+def test_d1_reduces_to_squared_t_for_one_parameter():
+    # Li, Raghunathan & Rubin (1991) JASA 86:1065: with k = 1, D1 = qbar^2 / T, the square of Rubin's t
+    cov = VARIANCES[:, :, None] * np.eye(2)[None]
+    test = wald_d1(ESTIMATES, cov, [0])
+    pooled = rubin_pool(ESTIMATES, VARIANCES)
+    assert test.statistic == pytest.approx(pooled.estimate[0] ** 2 / pooled.total[0], rel=1e-12)
+
+
+def test_d1_by_hand_two_parameters():
+    rng = np.random.default_rng(3)
+    m, k = 6, 2
+    estimates = np.array([0.5, -0.3]) + rng.normal(0, 0.05, size=(m, k))
+    base = np.array([[0.010, 0.002], [0.002, 0.008]])
+    covariances = np.stack([base * (1 + 0.1 * i) for i in range(m)])
+    test = wald_d1(estimates, covariances, [0, 1])
+    # Li, Raghunathan & Rubin (1991), eqs. 1.11-1.13 written out
+    qbar = estimates.mean(0)
+    ubar = covariances.mean(0)
+    b = sum(np.outer(e - qbar, e - qbar) for e in estimates) / (m - 1)
+    r1 = (1 + 1 / m) * np.trace(b @ np.linalg.inv(ubar)) / k
+    d1 = qbar @ np.linalg.inv(ubar) @ qbar / (k * (1 + r1))
+    t = k * (m - 1)
+    v1 = 4 + (t - 4) * (1 + (1 - 2 / t) / r1) ** 2
+    assert test.statistic == pytest.approx(d1, rel=1e-12)
+    assert test.df_den == pytest.approx(v1, rel=1e-12)
+    assert test.p_value == pytest.approx(stats.f.sf(d1, k, v1), rel=1e-10)
+
+
+def test_wald_for_categorical_exposure_terms():
+    pooled = pool_fits(_penguin_fits(m=5))
+    test = pooled.wald("species")
+    assert set(test.terms) == {"species[T.Chinstrap]", "species[T.Gentoo]"} and test.df_num == 2
+    assert test.p_value < 1e-10  # Gentoo penguins are far heavier at a given flipper length (known from the data)
+
+
+def test_bad_pooling_input():
+    with pytest.raises(InputError):
+        pool_fits([])
+    with pytest.raises(AnalysisError):
+        wald_d1(ESTIMATES[:1], np.eye(2)[None], [0, 1])
+    fits = _penguin_fits(m=2)
+    other = fit_model(load_penguins(), "body_mass_g ~ flipper_length_mm")
+    with pytest.raises(AnalysisError):
+        pool_fits([fits[0], other])
