@@ -846,11 +846,21 @@ def fit_missingness_model(data: pd.DataFrame, variable: str, predictors: Sequenc
     coef, se = result.params, result.bse
     auc = roc_auc(indicator, np.asarray(result.predict()))
     note = ""
-    per_term = n_missing / max(len(coef) - 1, 1)
-    if min(n_missing, len(frame) - n_missing) / max(len(coef) - 1, 1) < 10:
+    per_term = min(n_missing, len(frame) - n_missing) / max(len(coef) - 1, 1)
+    if per_term < 10:
         # Peduzzi et al. (1996, J Clin Epidemiol 49:1373): fewer than 10 events per term makes estimates unstable.
-        note = f"fewer than 10 of the rarer outcome per model term ({per_term:.1f} missing per term); ORs may be unstable"
-    terms = pd.DataFrame({
+        note = f"fewer than 10 rows of the rarer outcome per model term ({per_term:.1f}); odds ratios may be unstable"
+    # An intercept far from the data (e.g. calendar years as a predictor) can overflow exp(): inf is honest.
+    with np.errstate(over="ignore"):
+        terms = _term_rows(variable, coef, se, result, crit, auc, n_missing, note)
+    summary.update(auc=auc, lr_statistic=float(result.llr), lr_df=float(result.df_model),
+                   lr_p_value=float(result.llr_pvalue), note=note)
+    return terms, summary
+
+
+def _term_rows(variable: str, coef: pd.Series, se: pd.Series, result: Any, crit: float, auc: float,
+               n_missing: int, note: str) -> pd.DataFrame:
+    return pd.DataFrame({
         "incomplete_variable": variable, "term": list(coef.index), "coefficient": coef.to_numpy(),
         "std_error": se.to_numpy(), "odds_ratio": np.exp(coef.to_numpy()),
         "ci_lower": np.exp(coef.to_numpy() - crit * se.to_numpy()),
@@ -858,9 +868,6 @@ def fit_missingness_model(data: pd.DataFrame, variable: str, predictors: Sequenc
         "auc": auc, "lr_p_value": float(result.llr_pvalue), "n_used": int(result.nobs), "n_missing": n_missing,
         "note": note,
     }, columns=list(MODEL_COLUMNS))
-    summary.update(auc=auc, lr_statistic=float(result.llr), lr_df=float(result.df_model),
-                   lr_p_value=float(result.llr_pvalue), note=note)
-    return terms, summary
 
 
 def missingness_models(data: pd.DataFrame, types: Mapping[str, str], missing: Optional[pd.DataFrame] = None,

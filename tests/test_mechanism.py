@@ -1,0 +1,380 @@
+"""Tests of the mechanism stage against published formulas, scipy, statsmodels and palmerpenguins."""
+from __future__ import annotations
+
+import re
+
+import numpy as np
+import pandas as pd
+import pytest
+import statsmodels.api as sm
+from palmerpenguins import load_penguins
+from scipy import optimize, stats
+from statsmodels.stats.multitest import multipletests
+
+from gapbook import mechanism as mech
+from gapbook.demo import demo_params
+from gapbook.errors import InputError
+from gapbook.intake import load_study
+
+
+# ---------------------------------------------------------------------------
+# fixtures
+
+@pytest.fixture(scope="module")
+def penguins() -> pd.DataFrame:
+    frame = load_penguins()
+    frame["species"] = pd.Categorical(frame["species"])
+    frame["island"] = pd.Categorical(frame["island"])
+    frame["sex"] = pd.Categorical(frame["sex"], categories=["female", "male"])
+    frame["year"] = frame["year"].astype(float)
+    # A binary 0/1 column with a small group, so that a 2x2 table with small expected counts arises.
+    frame["torgersen"] = (frame["island"] == "Torgersen").astype(float)
+    return frame
+
+
+PENGUIN_TYPES = {"species": "nominal", "island": "nominal", "bill_length_mm": "continuous",
+                 "bill_depth_mm": "continuous", "flipper_length_mm": "continuous", "body_mass_g": "continuous",
+                 "sex": "binary", "year": "count", "torgersen": "binary"}
+
+
+@pytest.fixture(scope="module")
+def demo():
+    params = demo_params()
+    study = load_study(params)
+    return study, mech.assess_study(study, params.mechanism)
+
+
+def monotone_bivariate(seed: int, n: int = 400, r: int = 260) -> pd.DataFrame:
+    """y1 fully observed; y2 observed in the first r rows only (a monotone pattern)."""
+    rng = np.random.default_rng(seed)
+    values = rng.multivariate_normal([10.0, -3.0], [[4.0, 1.8], [1.8, 2.5]], size=n)
+    values[r:, 1] = np.nan
+    return pd.DataFrame(values, columns=["y1", "y2"])
+
+
+def anderson_estimates(frame: pd.DataFrame):
+    """Closed-form ML for the bivariate monotone normal (Anderson 1957, JASA 52:200-203;
+    Little & Rubin, Statistical Analysis with Missing Data, ch. 7, factored likelihood;
+    formulas recalled from memory)."""
+    y1, y2 = frame["y1"].to_numpy(), frame["y2"].to_numpy()
+    complete = ~np.isnan(y2)
+    mu1, s11 = y1.mean(), y1.var()              # all n rows, divisor n
+    a, b = y1[complete], y2[complete]
+    s11_r, s22_r = a.var(), b.var()             # complete rows, divisor r
+    s12_r = np.mean((a - a.mean()) * (b - b.mean()))
+    beta = s12_r / s11_r
+    mu2 = b.mean() + beta * (mu1 - a.mean())
+    s22 = s22_r + beta ** 2 * (s11 - s11_r)
+    s12 = beta * s11
+    return np.array([mu1, mu2]), np.array([[s11, s12], [s12, s22]])
+
+
+# ---------------------------------------------------------------------------
+# EM
+
+@pytest.mark.parametrize("seed", [1, 2])
+def test_em_equals_closed_form_for_monotone_bivariate_normal(seed):
+    frame = monotone_bivariate(seed)
+    mean, covariance = anderson_estimates(frame)
+    em = mech.em_multivariate_normal(frame, tolerance=1e-12, max_iterations=5000)
+    assert em.converged
+    # Anderson (1957) / Little & Rubin ch. 7: EM must reach the closed-form ML estimates.
+    np.testing.assert_allclose(em.mean.to_numpy(), mean, atol=1e-6, rtol=0)
+    np.testing.assert_allclose(em.covariance.to_numpy(), covariance, atol=1e-6, rtol=0)
+
+
+def test_em_with_no_missing_values_gives_sample_moments(penguins):
+    frame = penguins[["bill_length_mm", "bill_depth_mm", "flipper_length_mm", "body_mass_g"]].dropna()
+    em = mech.em_multivariate_normal(frame)
+    # Complete data: the ML estimates are the sample mean and the covariance with divisor n (numpy).
+    np.testing.assert_allclose(em.mean.to_numpy(), frame.mean().to_numpy(), rtol=1e-10)
+    np.testing.assert_allclose(em.covariance.to_numpy(), np.cov(frame.to_numpy().T, bias=True), rtol=1e-8)
+
+
+def _general_pattern_data(seed: int = 7, n: int = 150) -> pd.DataFrame:
+    rng = np.random.default_rng(seed)
+    values = rng.multivariate_normal([1.0, 2.0, 3.0], [[1.0, 0.6, 0.3], [0.6, 2.0, 0.5], [0.3, 0.5, 1.5]], size=n)
+    values[rng.random(values.shape) < 0.2] = np.nan
+    return pd.DataFrame(values, columns=["a", "b", "c"])
+
+
+def _observed_loglik(frame: pd.DataFrame, mean: np.ndarray, covariance: np.ndarray) -> float:
+    """Observed-data log-likelihood summed row by row with scipy's multivariate normal density."""
+    total = 0.0
+    for row in frame.to_numpy():
+        o = ~np.isnan(row)
+        if o.any():
+            total += stats.multivariate_normal(mean[o], covariance[np.ix_(o, o)]).logpdf(row[o])
+    return total
+
+
+def test_em_log_likelihood_never_decreases_and_matches_scipy():
+    frame = _general_pattern_data()
+    em = mech.em_multivariate_normal(frame, tolerance=1e-10)
+    path = np.array(em.loglik)
+    # Dempster, Laird & Rubin (1977, JRSS B 39:1), theorem 1: EM never lowers the likelihood.
+    assert np.all(np.diff(path) >= -1e-9)
+    # Our pattern-wise log-likelihood equals scipy.stats.multivariate_normal summed over rows.
+    reference = _observed_loglik(frame, em.mean.to_numpy(), em.covariance.to_numpy())
+    assert path[-1] == pytest.approx(reference, abs=1e-7)
+
+
+def test_em_estimate_is_a_maximum_of_the_observed_likelihood():
+    frame = _general_pattern_data(seed=11, n=120)
+    em = mech.em_multivariate_normal(frame, tolerance=1e-11)
+    mean, covariance = em.mean.to_numpy(), em.covariance.to_numpy()
+    chol = np.linalg.cholesky(covariance)
+    rows = np.tril_indices(3)
+
+    def negative(theta):
+        lower = np.zeros((3, 3))
+        lower[rows] = theta[3:]
+        return -_observed_loglik(frame, theta[:3], lower @ lower.T)
+
+    start = np.r_[mean, chol[rows]]
+    # scipy.optimize started at our estimate finds no higher likelihood (a general-purpose optimiser).
+    found = optimize.minimize(negative, start, method="BFGS", options={"gtol": 1e-6, "maxiter": 50})
+    assert -found.fun <= -negative(start) + 1e-6
+
+
+# ---------------------------------------------------------------------------
+# Little's test
+
+def test_little_statistic_equals_formula_with_closed_form_estimates():
+    frame = monotone_bivariate(3)
+    mean, covariance = anderson_estimates(frame)
+    complete = frame.dropna().to_numpy()
+    partial = frame.loc[frame["y2"].isna(), "y1"].to_numpy()
+    d = complete.mean(axis=0) - mean
+    # Little (1988, JASA 83:1198), eq. for d^2 with ML estimates: sum over patterns of
+    # n_j (ybar_j - mu_j)' Sigma_j^-1 (ybar_j - mu_j); df = sum p_j - p = 2 + 1 - 2.
+    expected = len(complete) * d @ np.linalg.solve(covariance, d) + len(partial) * (
+        partial.mean() - mean[0]) ** 2 / covariance[0, 0]
+    test = mech.little_mcar_test(frame, tolerance=1e-12, max_iterations=5000)
+    assert test.df == 1
+    assert test.n_patterns == 2
+    assert test.statistic == pytest.approx(expected, rel=1e-6)
+    assert test.p_value == pytest.approx(stats.chi2.sf(expected, 1), rel=1e-5)
+
+
+def test_little_p_values_are_uniform_under_mcar():
+    rng = np.random.default_rng(19880101)
+    covariance = np.array([[1, .5, .3, .2], [.5, 1, .4, .1], [.3, .4, 1, .3], [.2, .1, .3, 1]])
+    p_values = []
+    for _ in range(200):
+        values = rng.multivariate_normal(np.zeros(4), covariance, size=200)
+        values[rng.random(values.shape) < 0.15] = np.nan       # MCAR: 15 % of cells, independently
+        p_values.append(mech.little_mcar_test(pd.DataFrame(values, columns=list("abcd"))).p_value)
+    # Little (1988): under MCAR (and normality) d^2 is asymptotically chi-square, so p ~ U(0, 1);
+    # checked by scipy's Kolmogorov-Smirnov test. A wrong df or a non-ML covariance fails this.
+    assert stats.kstest(p_values, "uniform").pvalue > 0.01
+
+
+def test_little_rejects_under_mar():
+    # Design: 4 correlated normals, n = 200; b is missing with probability logistic(-1 + a)
+    # (MAR on the fully observed a), c is 10 % MCAR. Power found with this seed: 0.985 at
+    # alpha 0.05 over 200 datasets; we require at least 0.9.
+    rng = np.random.default_rng(19880202)
+    covariance = np.array([[1, .5, .3, .2], [.5, 1, .4, .1], [.3, .4, 1, .3], [.2, .1, .3, 1]])
+    rejected = 0
+    for _ in range(200):
+        values = rng.multivariate_normal(np.zeros(4), covariance, size=200)
+        values[rng.random(200) < 1 / (1 + np.exp(1.0 - values[:, 0])), 1] = np.nan
+        values[rng.random(200) < 0.1, 2] = np.nan
+        rejected += mech.little_mcar_test(pd.DataFrame(values, columns=list("abcd"))).p_value < 0.05
+    assert rejected / 200 >= 0.9
+
+
+def test_little_with_one_pattern_is_zero_with_zero_df(penguins):
+    frame = penguins[["bill_length_mm", "bill_depth_mm", "body_mass_g"]].dropna()
+    test = mech.little_mcar_test(frame)
+    assert test.statistic == 0.0 and test.df == 0 and test.n_patterns == 1
+    assert np.isnan(test.p_value)
+    assert any("one missingness pattern" in note for note in test.notes)
+    assert "no p-value" in mech.mcar_sentence(test)
+
+
+def test_little_skips_rows_with_everything_missing():
+    frame = _general_pattern_data(seed=5)
+    padded = pd.concat([frame, pd.DataFrame(np.nan, index=range(500, 520), columns=frame.columns)])
+    # Rows with nothing observed add nothing to the likelihood (Little 1988): same result.
+    plain, padded_test = mech.little_mcar_test(frame), mech.little_mcar_test(padded)
+    assert padded_test.n_rows_skipped == 20 + plain.n_rows_skipped
+    assert padded_test.statistic == pytest.approx(plain.statistic, rel=1e-10)
+    assert padded_test.df == plain.df
+
+
+def test_little_singular_covariance_is_explained_not_raised():
+    frame = _general_pattern_data(seed=9)
+    frame["total"] = frame["a"] + frame["b"]                  # exact linear dependence
+    test = mech.little_mcar_test(frame)
+    assert np.isnan(test.statistic) and np.isnan(test.p_value)
+    note = " ".join(test.notes)
+    assert "singular" in note and "total" in note and "mechanism.variables" in note
+    assert test.table().shape[0] == 1
+
+
+def test_mcar_variables_binary_codes_and_not_applicable(demo):
+    study, result = demo
+    frame, notes = mech.mcar_test_data(study.data, study.types, study.not_applicable)
+    # Binary text enters as 0/1 with the second declared level as 1 (arm: control, sms).
+    assert set(frame["arm"].unique()) == {0.0, 1.0}
+    assert (frame["arm"] == 1).sum() == (study.data["arm"] == "sms").sum()
+    assert "clinic" not in frame.columns and "insulin_dose" not in frame.columns
+    assert any("insulin_dose" in note for note in notes)
+    with pytest.raises(InputError, match="mechanism.variables: 'hba1c_O'.*did you mean 'hba1c_0'"):
+        mech.mcar_test_data(study.data, study.types, study.not_applicable, ["hba1c_O"])
+    with pytest.raises(InputError, match="'clinic' is nominal"):
+        mech.mcar_test_data(study.data, study.types, study.not_applicable, ["clinic", "age"])
+    chosen, notes = mech.mcar_test_data(study.data, study.types, study.not_applicable, ["insulin_dose", "age"])
+    assert len(chosen) == int((~study.not_applicable["insulin_dose"]).sum())
+
+
+# ---------------------------------------------------------------------------
+# group comparisons
+
+def test_group_tests_equal_scipy(penguins):
+    frame = penguins.drop(columns=["species"])
+    groups = mech.compare_groups(frame, PENGUIN_TYPES)
+    table = groups.table.set_index(["incomplete_variable", "compared_variable"])
+    sex_missing = frame["sex"].isna()
+
+    # Welch t-test: scipy.stats.ttest_ind(equal_var=False).
+    bill = frame["bill_length_mm"]
+    x1, x0 = bill[sex_missing & bill.notna()], bill[~sex_missing & bill.notna()]
+    welch = stats.ttest_ind(x1, x0, equal_var=False)
+    row = table.loc[("sex", "bill_length_mm")]
+    assert row["test"] == "Welch t-test"
+    assert row["statistic"] == pytest.approx(welch.statistic, rel=1e-12)
+    assert row["p_value"] == pytest.approx(welch.pvalue, rel=1e-12)
+    assert (row["n_missing_group"], row["n_observed_group"]) == (len(x1), len(x0))
+    # SMD over the pooled SD sqrt((s1^2 + s0^2)/2) (Austin 2009, Stat Med 28:3083).
+    pooled = np.sqrt((x1.var(ddof=1) + x0.var(ddof=1)) / 2)
+    assert row["smd"] == pytest.approx((x1.mean() - x0.mean()) / pooled, rel=1e-12)
+
+    # Chi-square on a 2x3 table: scipy.stats.chi2_contingency (no continuity correction).
+    crosstab = pd.crosstab(sex_missing, frame["island"]).reindex([True, False]).to_numpy()
+    chi2 = stats.chi2_contingency(crosstab, correction=False)
+    row = table.loc[("sex", "island")]
+    assert row["test"] == "chi-square test"
+    assert row["statistic"] == pytest.approx(chi2.statistic, rel=1e-12)
+    assert row["p_value"] == pytest.approx(chi2.pvalue, rel=1e-12)
+    assert row["df"] == chi2.dof
+
+    # Small expected counts in a 2x2 table: scipy.stats.fisher_exact.
+    crosstab = pd.crosstab(sex_missing, frame["torgersen"]).reindex([True, False]).to_numpy()
+    assert stats.contingency.expected_freq(crosstab).min() < 5
+    fisher = stats.fisher_exact(crosstab)
+    row = table.loc[("sex", "torgersen")]
+    assert row["test"] == "Fisher's exact test"
+    assert row["p_value"] == pytest.approx(fisher.pvalue, rel=1e-12)
+
+    # Holm adjustment over the whole table: statsmodels multipletests(method="holm").
+    tested = groups.table["p_value"].notna()
+    holm = multipletests(groups.table.loc[tested, "p_value"], method="holm")[1]
+    np.testing.assert_allclose(groups.table.loc[tested, "p_adjusted"], holm, rtol=1e-12)
+
+
+def test_binary_smd_uses_the_proportions_formula(penguins):
+    groups = mech.compare_groups(penguins.drop(columns=["species"]), PENGUIN_TYPES)
+    row = groups.table.set_index(["incomplete_variable", "compared_variable"]).loc[("sex", "torgersen")]
+    missing = penguins["sex"].isna()
+    p1, p0 = penguins.loc[missing, "torgersen"].mean(), penguins.loc[~missing, "torgersen"].mean()
+    # Austin (2009, Stat Med 28:3083), binary variables: (p1 - p0) / sqrt((p1(1-p1) + p0(1-p0)) / 2).
+    assert row["smd"] == pytest.approx((p1 - p0) / np.sqrt((p1 * (1 - p1) + p0 * (1 - p0)) / 2), rel=1e-12)
+
+
+def test_not_applicable_rows_are_in_neither_group(demo):
+    study, result = demo
+    table = result.groups.table.set_index(["incomplete_variable", "compared_variable"])
+    applies = int((~study.not_applicable["insulin_dose"]).sum())
+    row = table.loc[("insulin_dose", "arm")]
+    assert row["n_missing_group"] == int(study.missing["insulin_dose"].sum())
+    assert row["n_missing_group"] + row["n_observed_group"] == applies
+    # on_insulin is 'yes' in every row where the dose applies: nothing to compare.
+    assert table.loc[("insulin_dose", "on_insulin"), "test"] == "not tested"
+
+
+# ---------------------------------------------------------------------------
+# missingness models
+
+def test_missingness_model_equals_statsmodels_logit(penguins):
+    frame = penguins.drop(columns=["species", "torgersen"])
+    models = mech.missingness_models(frame, PENGUIN_TYPES, min_missing=5)
+    fit = models.fits.set_index("incomplete_variable").loc["sex"]
+    # Fully observed predictors: island and year (the measurements miss 2 rows).
+    assert fit["predictors"] == "island,year"
+    indicator = frame["sex"].isna().astype(float)
+    design = sm.add_constant(pd.get_dummies(frame["island"], drop_first=True, dtype=float).join(frame["year"]))
+    reference = sm.Logit(indicator, design).fit(disp=0)
+    terms = models.table[models.table["incomplete_variable"] == "sex"]
+    # statsmodels Logit on the same rows and design: same coefficients, SEs and Wald CIs.
+    np.testing.assert_allclose(terms["coefficient"], reference.params.to_numpy(), rtol=1e-5)
+    np.testing.assert_allclose(terms["std_error"], reference.bse.to_numpy(), rtol=1e-5)
+    with np.errstate(over="ignore"):   # the intercept's odds at year 0 overflows; both sides give inf
+        interval = np.exp(reference.conf_int(alpha=0.05).to_numpy())
+    np.testing.assert_allclose(terms[["ci_lower", "ci_upper"]].to_numpy(), interval, rtol=1e-5)
+    assert fit["lr_p_value"] == pytest.approx(reference.llr_pvalue, rel=1e-6)
+    # AUC equals the Mann-Whitney U over n1 * n0 (Hanley & McNeil 1982, Radiology 143:29; scipy).
+    score = reference.predict()
+    positive = indicator.to_numpy() == 1
+    u = stats.mannwhitneyu(score[positive], score[~positive]).statistic
+    assert fit["auc"] == pytest.approx(u / (positive.sum() * (~positive).sum()), rel=1e-9)
+
+
+def test_perfect_separation_is_reported_in_words(penguins):
+    # No Chinstrap penguin lacks sex (palmerpenguins): species separates the indicator.
+    frame = penguins[["species", "year", "sex"]]
+    models = mech.missingness_models(frame, PENGUIN_TYPES, min_missing=5)
+    fit = models.fits.set_index("incomplete_variable").loc["sex"]
+    assert bool(fit["separation"])
+    assert "perfect separation" in fit["note"] and "species[T.Chinstrap]" in fit["note"]
+    assert models.table["odds_ratio"].isna().all()
+    assert any("perfect separation" in s for s in mech.model_sentences(models))
+
+
+def test_too_few_missing_values_are_not_modelled(penguins):
+    models = mech.missingness_models(penguins, PENGUIN_TYPES, min_missing=10)
+    fits = models.fits.set_index("incomplete_variable")
+    assert fits.loc["bill_length_mm", "note"].startswith("not modelled: 2 missing")
+    assert np.isnan(fits.loc["bill_length_mm", "auc"])
+
+
+# ---------------------------------------------------------------------------
+# the demo study and the wording
+
+FORBIDDEN = re.compile(r"\b(data|values|they) (are|is) (MCAR|MAR|missing completely at random|missing at random)",
+                       re.IGNORECASE)
+
+
+def test_demo_outcome_missingness_relates_to_baseline_hba1c(demo):
+    study, result = demo
+    row = result.groups.table.set_index(["incomplete_variable", "compared_variable"]).loc[("hba1c_12m", "hba1c_0")]
+    # By construction of the demo (gapbook.demo): logit P(dropout) = -2.3 + 0.55 (baseline HbA1c - 8).
+    assert row["test"] == "Welch t-test"
+    assert bool(row["evidence"]) and row["p_adjusted"] < 0.001
+    assert row["smd"] > 0.3 and row["mean_missing_group"] > row["mean_observed_group"]
+    assert result.mcar.p_value < 0.05
+    assert any(s.startswith("Evidence that missingness of hba1c_12m depends on hba1c_0") for s in result.sentences)
+
+
+def test_wording_never_claims_mcar_and_names_the_mar_mnar_limit(demo):
+    _, result = demo
+    text = " ".join(result.sentences)
+    assert not FORBIDDEN.search(text)
+    assert "MNAR" in text and "sensitivity stage" in text and "qualified statistician" in text
+    assert result.sentences[0].startswith("Little's test gives evidence against missing completely at random")
+
+
+def test_wording_when_there_is_no_evidence():
+    rng = np.random.default_rng(3)
+    values = rng.normal(size=(300, 3))
+    values[rng.random(values.shape) < 0.1] = np.nan
+    frame = pd.DataFrame(values, columns=["a", "b", "c"])
+    result = mech.assess_mechanism(frame, {c: "continuous" for c in frame})
+    first = result.sentences[0]
+    assert result.mcar.p_value >= 0.05          # MCAR by construction; with this seed the test does not reject
+    assert first.startswith("Little's test gives no evidence against MCAR (") and "p = " in first
+    assert "not proof" in first
+    assert not FORBIDDEN.search(" ".join(result.sentences))
+    assert mech.format_p(0.0004) == "p < 0.001" and mech.format_p(0.0123) == "p = 0.012"
