@@ -147,6 +147,7 @@ class SimulationDesign:
     n: int
     types: Dict[str, str] = field(default_factory=dict)
     outcome_levels: Optional[Tuple[object, ...]] = None
+    terms: Tuple[str, ...] = ()
 
 
 def default_mar_on(model: AnalysisModel, data: pd.DataFrame, covariates: Sequence[str]) -> List[str]:
@@ -220,7 +221,7 @@ def design_from_data(data: pd.DataFrame, model: AnalysisModel, mar_on: Optional[
                             linear_predictor=linear, scale=scale, true_values=true_values,
                             missing_fractions=fractions, mar_on=tuple(mar_on), n=int(n or len(data)),
                             types={c: t for c, t in (types or {}).items() if c in (outcome, *keep_columns)},
-                            outcome_levels=outcome_levels)
+                            outcome_levels=outcome_levels, terms=tuple(terms))
 
 
 def _fit_generating_model(frame: pd.DataFrame, model: AnalysisModel, outcome: str):
@@ -332,28 +333,112 @@ ESTIMATE_FIELDS = ("term", "estimate", "std_error", "ci_lower", "ci_upper")
 
 
 @dataclass(frozen=True)
+class Replicate:
+    """One incomplete replicate, with the design matrix of its complete version.
+
+    ``complete_design`` lets the least-squares strategies rebuild a design matrix only on
+    the rows whose covariates were imputed, instead of parsing the formula again.
+    """
+
+    data: pd.DataFrame
+    complete_design: Optional[np.ndarray]
+
+
+@dataclass(frozen=True)
+class LeastSquares:
+    """Ordinary least squares on a design matrix, giving the same ModelFit as ``fit_model`` (gaussian, nonrobust).
+
+    Used only inside the simulation, where the formula is parsed once per study instead of
+    once per fit; checked against statsmodels in the tests.
+    """
+
+    formula: str
+    outcome: str
+    terms: Tuple[str, ...]
+    design_info: object
+    alpha: float = 0.05
+
+    def design(self, frame: pd.DataFrame) -> np.ndarray:
+        import patsy
+        return np.asarray(patsy.build_design_matrices([self.design_info], frame, NA_action="raise")[0], dtype=float)
+
+    def fit(self, x: np.ndarray, y: np.ndarray):
+        from .models import ModelFit
+        n, p = x.shape
+        if n <= p:
+            raise AnalysisError(f"{n} rows for {p} coefficients")
+        xtx = x.T @ x
+        xtx_inv = np.linalg.pinv(xtx)
+        beta = xtx_inv @ (x.T @ y)
+        resid = y - x @ beta
+        df_resid = float(n - np.linalg.matrix_rank(xtx))  # rank of X'X equals rank of X, at p x p cost
+        cov = xtx_inv * float(resid @ resid) / df_resid
+        return ModelFit(formula=self.formula, family="gaussian", terms=self.terms, params=beta, cov=cov,
+                        df_resid=df_resid, nobs=n, robust=False, alpha=self.alpha)
+
+
+def least_squares_for(design: "SimulationDesign") -> Optional[LeastSquares]:
+    """The fast path when the model is gaussian without robust SEs and patsy names the terms as statsmodels does."""
+    model = design.model
+    if model.family != "gaussian" or model.robust:
+        return None
+    try:
+        import patsy
+        _, x = patsy.dmatrices(model.formula, design.pool.assign(**{design.outcome: 0.0}), return_type="dataframe")
+    except Exception:
+        return None
+    terms = tuple(x.columns)
+    if terms != design.terms:  # patsy must name and order the terms exactly as the fitted model does
+        return None
+    return LeastSquares(model.formula, design.outcome, terms, x.design_info, model.alpha)
+
+
+@dataclass(frozen=True)
 class CompleteCaseStrategy:
     """The analysis model on the rows with every model variable observed."""
 
     model: AnalysisModel
+    columns: Tuple[str, ...] = ()
+    fast: Optional[LeastSquares] = None
     name: str = "complete_case"
 
-    def __call__(self, data: pd.DataFrame, rng: np.random.Generator) -> pd.DataFrame:
-        return self.model.fit(data).table(self.name)[list(ESTIMATE_FIELDS)]
+    def __call__(self, replicate: Replicate, rng: np.random.Generator) -> pd.DataFrame:
+        data = replicate.data
+        if self.fast is None or replicate.complete_design is None:
+            return self.model.fit(data).table(self.name)[list(ESTIMATE_FIELDS)]
+        keep = data[list(self.columns)].notna().all(axis=1).to_numpy()
+        y = data[self.fast.outcome].to_numpy(dtype=float)[keep]
+        return self.fast.fit(replicate.complete_design[keep], y).table(self.name)[list(ESTIMATE_FIELDS)]
 
 
 @dataclass(frozen=True)
 class MissingCategoryStrategy:
-    """The missing-category (indicator) analysis of :mod:`gapbook.indicator`."""
+    """The missing-category analysis of :mod:`gapbook.indicator`, as its stage runs it.
+
+    ``indicator_for_continuous`` mirrors the indicator stage (which uses the
+    missing-indicator method for continuous covariates).
+    """
 
     model: AnalysisModel
     types: Tuple[Tuple[str, str], ...] = ()
+    indicator_for_continuous: bool = True
+    fast: Optional[LeastSquares] = None
     name: str = "missing_category"
 
-    def __call__(self, data: pd.DataFrame, rng: np.random.Generator) -> pd.DataFrame:
+    def __call__(self, replicate: Replicate, rng: np.random.Generator) -> pd.DataFrame:
         from . import indicator
-        result = indicator.missing_category_analysis(data, self.model, types=dict(self.types) or None)
-        return result.estimates[list(ESTIMATE_FIELDS)]
+        types = dict(self.types) or None
+        if self.fast is None:
+            result = indicator.missing_category_analysis(replicate.data, self.model, types=types,
+                                                         indicator_for_continuous=self.indicator_for_continuous)
+            return result.estimates[list(ESTIMATE_FIELDS)]
+        import patsy
+        prepared = indicator.prepare_missing_category(replicate.data, self.model, types, None,
+                                                      self.indicator_for_continuous)
+        y, x = patsy.dmatrices(prepared.formula, prepared.data, return_type="dataframe")
+        solver = LeastSquares(prepared.formula, self.fast.outcome, tuple(x.columns), x.design_info, self.fast.alpha)
+        fit = solver.fit(x.to_numpy(dtype=float), y.to_numpy(dtype=float).ravel())
+        return fit.table(self.name)[list(ESTIMATE_FIELDS)]
 
 
 @dataclass(frozen=True)
@@ -364,18 +449,35 @@ class ImputationStrategy:
     m: int = 5
     iterations: int = 5
     types: Tuple[Tuple[str, str], ...] = ()
+    covariates: Tuple[str, ...] = ()
+    fast: Optional[LeastSquares] = None
     name: str = "multiple_imputation"
 
-    def __call__(self, data: pd.DataFrame, rng: np.random.Generator) -> pd.DataFrame:
-        from . import impute
+    def __call__(self, replicate: Replicate, rng: np.random.Generator) -> pd.DataFrame:
+        from .impute import impute_chained
+        from .pool import pool_fits
+        data = replicate.data
         seed = int(rng.integers(0, 2 ** 31 - 1))
-        imputed = impute.impute_chained(data, m=self.m, iterations=self.iterations, seed=seed,
-                                        types=dict(self.types) or None)
-        pooled = imputed.fit(self.model.formula, self.model.family)
-        return pooled.table[list(ESTIMATE_FIELDS)]
+        imputed = impute_chained(data, m=self.m, iterations=self.iterations, seed=seed,
+                                 types=dict(self.types) or None, progress=False)
+        if self.fast is None or replicate.complete_design is None:
+            pooled = imputed.fit(self.model.formula, self.model.family, self.model.robust, None, self.model.alpha)
+            return pooled.table[list(ESTIMATE_FIELDS)]
+        changed = np.flatnonzero(data[list(self.covariates)].isna().any(axis=1).to_numpy())
+        completed = [imputed.completed(i) for i in range(imputed.m)]
+        # One design-matrix build for the imputed rows of all m datasets (formula evaluation has a fixed cost).
+        stacked = self.fast.design(pd.concat([c.iloc[changed] for c in completed], ignore_index=True)) \
+            if len(changed) else None
+        fits = []
+        for i, frame in enumerate(completed):
+            x = replicate.complete_design.copy()
+            if stacked is not None:
+                x[changed] = stacked[i * len(changed):(i + 1) * len(changed)]
+            fits.append(self.fast.fit(x, frame[self.fast.outcome].to_numpy(dtype=float)))
+        return pool_fits(fits).table[list(ESTIMATE_FIELDS)]
 
 
-Strategy = Callable[[pd.DataFrame, np.random.Generator], pd.DataFrame]
+Strategy = Callable[[Replicate, np.random.Generator], pd.DataFrame]
 
 
 def default_strategies(design: SimulationDesign, m: int = 5, iterations: int = 5,
@@ -383,11 +485,14 @@ def default_strategies(design: SimulationDesign, m: int = 5, iterations: int = 5
                        ) -> Dict[str, Strategy]:
     """Every strategy gapbook offers, set up for the design (cheap imputation settings: m, iterations)."""
     types = tuple(sorted(design.types.items()))
-    available: Dict[str, Strategy] = {"complete_case": CompleteCaseStrategy(design.model)}
+    fast = least_squares_for(design)
+    columns = (design.outcome, *design.covariates)
+    available: Dict[str, Strategy] = {"complete_case": CompleteCaseStrategy(design.model, columns, fast)}
     if "missing_category" in include and _has_module("indicator"):
-        available["missing_category"] = MissingCategoryStrategy(design.model, types)
+        available["missing_category"] = MissingCategoryStrategy(design.model, types, True, fast)
     if "multiple_imputation" in include and _has_module("impute"):
-        available["multiple_imputation"] = ImputationStrategy(design.model, m, iterations, types)
+        available["multiple_imputation"] = ImputationStrategy(design.model, m, iterations, types, design.covariates,
+                                                              fast)
     return {name: s for name, s in available.items() if name in include}
 
 
@@ -400,13 +505,15 @@ def _has_module(name: str) -> bool:
 # running the simulation
 
 def run_replicate(design: SimulationDesign, strategies: Mapping[str, Strategy], mechanisms: Sequence[str],
-                  seed: np.random.SeedSequence, replicate: int, strength: float = DEFAULT_STRENGTH) -> List[dict]:
+                  seed: np.random.SeedSequence, replicate: int, strength: float = DEFAULT_STRENGTH,
+                  fast: Optional[LeastSquares] = None) -> List[dict]:
     """One replicate: a complete dataset, each mechanism's incomplete copy, each strategy's estimates.
 
     A strategy that fails on a replicate gives NaN rows (counted as failures, not hidden).
     """
     data_seed, *mechanism_seeds = seed.spawn(1 + len(mechanisms))
     complete = simulate_complete(design, np.random.default_rng(data_seed))
+    complete_design = fast.design(complete) if fast is not None else None
     rows: List[dict] = []
     for mechanism, mseed in zip(mechanisms, mechanism_seeds):
         missing_seed, strategy_seed = mseed.spawn(2)
@@ -415,7 +522,7 @@ def run_replicate(design: SimulationDesign, strategies: Mapping[str, Strategy], 
             try:
                 with warnings.catch_warnings():
                     warnings.simplefilter("ignore")
-                    table = strategy(incomplete, np.random.default_rng(sseed))
+                    table = strategy(Replicate(incomplete, complete_design), np.random.default_rng(sseed))
                 table = table[table["term"].isin(list(design.true_values))]
                 for record in table.to_dict("records"):
                     rows.append({"replicate": replicate, "mechanism": mechanism, "strategy": name, **record,
@@ -449,7 +556,7 @@ def run_simulation(design: SimulationDesign, strategies: Mapping[str, Strategy],
     Parameters
     ----------
     design : from :func:`design_from_data`.
-    strategies : {name: callable(data, rng) -> estimates rows}; see :func:`default_strategies`.
+    strategies : {name: callable(Replicate, rng) -> estimates rows}; see :func:`default_strategies`.
     replicates : number of replicate datasets R.
     seed : the params seed; replicate r uses the r-th child of ``SeedSequence(seed)``.
     n_jobs : parallel workers (joblib); results do not depend on it.
@@ -474,7 +581,8 @@ def run_simulation(design: SimulationDesign, strategies: Mapping[str, Strategy],
     if not strategies:
         raise InputError("no strategy to simulate; give at least complete_case")
     seeds = np.random.SeedSequence(seed).spawn(replicates)
-    tasks = ((design, strategies, tuple(mechanisms), s, r, strength) for r, s in enumerate(seeds))
+    fast = next((s.fast for s in strategies.values() if getattr(s, "fast", None) is not None), None)
+    tasks = ((design, strategies, tuple(mechanisms), s, r, strength, fast) for r, s in enumerate(seeds))
     bar = _progress(replicates, progress)
     rows: List[dict] = []
     if n_jobs == 1:

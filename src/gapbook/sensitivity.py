@@ -1,0 +1,456 @@
+"""How far the conclusion moves if data are missing not at random: delta adjustment.
+
+Pattern-mixture delta adjustment: the chained-equations imputation runs as under missing
+at random, except that after each imputation step of a chosen variable (the outcome by
+default) its imputed values are shifted by delta (added for a continuous variable, on the
+log-odds scale for a binary one), optionally with a different delta per group (e.g. per
+arm). The analysis model is re-fitted and re-pooled for every delta on the grid. Every
+delta uses the same seed, so the curve shows the effect of delta rather than Monte Carlo
+noise, and delta = 0 is exactly the missing-at-random imputation with those settings.
+
+The tipping point is the delta at which the exposure's confidence interval first reaches
+the null (equivalently, its p-value crosses alpha): located between two grid points and
+refined by a root search that re-runs the imputation at intermediate deltas.
+
+References
+----------
+Carpenter JR, Kenward MG (2013). Multiple Imputation and its Application. Wiley,
+chapter 10 (sensitivity analysis via pattern-mixture delta adjustment).
+Rubin DB (1987). Multiple Imputation for Nonresponse in Surveys. Wiley.
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from typing import Callable, Dict, List, Mapping, Optional, Sequence, Tuple
+
+import numpy as np
+import pandas as pd
+from scipy import optimize, stats
+
+from .errors import InputError, did_you_mean
+from .models import AnalysisModel, exposure_terms
+
+ALL_GROUPS = "all"
+DELTA_COLUMNS: Tuple[str, ...] = ("variable", "group", "delta", "term", "estimate", "ci_lower", "ci_upper", "p_value")
+TIPPING_COLUMNS: Tuple[str, ...] = ("variable", "group", "term", "side", "baseline_conclusion", "found",
+                                    "tipping_delta", "bracket_lower", "bracket_upper", "grid_min", "grid_max",
+                                    "evaluations", "statement")
+
+
+# ---------------------------------------------------------------------------
+# the grid
+
+@dataclass(frozen=True)
+class DeltaSeries:
+    """One curve of the sensitivity analysis: a variable, the group its delta applies to, and the deltas.
+
+    ``by`` is the grouping column (None: the delta applies to every imputed value of the
+    variable, shown as group ``"all"``); ``group`` is the level of ``by`` that is shifted
+    (the other groups keep delta 0).
+    """
+
+    variable: str
+    group: str
+    by: Optional[str]
+    deltas: Tuple[float, ...]
+
+    def engine_arguments(self, delta: float) -> Tuple[Dict[str, object], Optional[Dict[str, str]]]:
+        """The ``delta`` and ``delta_by`` arguments of the imputation engine for one delta."""
+        if self.by is None:
+            return {self.variable: float(delta)}, None
+        return {self.variable: {self.group: float(delta)}}, {self.variable: self.by}
+
+
+def default_deltas(values: pd.Series, variable_type: str) -> Tuple[float, ...]:
+    """A grid when the params give none: 0 to 1 observed SD for continuous variables, 0 to 2 log-odds for binary.
+
+    Common practice, no source: a shift of one SD (or an odds ratio of about 7) is large
+    enough that most conclusions tip within it, so the tipping point lands on the grid.
+    """
+    if variable_type == "binary":
+        return (0.0, 0.25, 0.5, 0.75, 1.0, 1.5, 2.0)
+    sd = float(pd.to_numeric(values, errors="coerce").std())
+    if not math.isfinite(sd) or sd == 0:
+        sd = 1.0
+    step = float(f"{sd / 8:.1g}")  # a round step so the deltas read well
+    return tuple(round(k * step, 10) for k in range(0, 9))
+
+
+def delta_series(params_section, data: pd.DataFrame, outcome: str,
+                 types: Optional[Mapping[str, str]] = None) -> Tuple[DeltaSeries, ...]:
+    """Turn ``sensitivity.delta`` into the curves to compute.
+
+    Parameters
+    ----------
+    params_section : ``params.sensitivity`` (variable, delta).
+    data : the study data (for the default grid and to check names).
+    outcome : the analysis model's outcome (the default variable).
+    types : {column: type}; binary variables are shifted on the log-odds scale.
+
+    Returns
+    -------
+    Tuple of DeltaSeries; a plain list of values gives one series for every imputed value,
+    ``{by: col, groups: {level: [...]}}`` one series per level, ``values`` with ``by`` a
+    series that shifts every group alike.
+    """
+    types = dict(types or {})
+    grids = dict(params_section.delta)
+    if not grids:
+        variable = params_section.variable or outcome
+        _check_column(variable, data, "sensitivity.variable")
+        return (DeltaSeries(variable, ALL_GROUPS, None, default_deltas(data[variable], types.get(variable, ""))),)
+    series: List[DeltaSeries] = []
+    for variable, grid in grids.items():
+        _check_column(variable, data, f"sensitivity.delta.{variable}")
+        if isinstance(grid, (list, tuple)):
+            series.append(DeltaSeries(variable, ALL_GROUPS, None, _with_zero(grid, variable)))
+            continue
+        by = grid.by
+        if grid.groups and by is None:
+            raise InputError(f"sensitivity.delta.{variable}.groups needs 'by': the column whose levels the groups "
+                             "name (e.g. by: arm)")
+        if by is not None:
+            _check_column(by, data, f"sensitivity.delta.{variable}.by")
+        if grid.values:
+            series.append(DeltaSeries(variable, ALL_GROUPS, None, _with_zero(grid.values, variable)))
+        levels = [str(level) for level in pd.unique(data[by].dropna().astype(str))] if by is not None else []
+        for level, values in grid.groups.items():
+            if str(level) not in levels:
+                raise InputError(f"sensitivity.delta.{variable}.groups: '{level}' is not a level of '{by}' "
+                                 f"({', '.join(levels)}){did_you_mean(str(level), levels)}")
+            series.append(DeltaSeries(variable, str(level), by, _with_zero(values, variable)))
+        if not grid.values and not grid.groups:
+            series.append(DeltaSeries(variable, ALL_GROUPS, None, default_deltas(data[variable], types.get(variable, ""))))
+    return tuple(series)
+
+
+def _with_zero(values: Sequence[float], variable: str) -> Tuple[float, ...]:
+    """The grid sorted with 0 (missing at random) included, since every curve starts from it."""
+    numbers = sorted({float(v) for v in values} | {0.0})
+    if any(not math.isfinite(v) for v in numbers):
+        raise InputError(f"sensitivity.delta.{variable}: every delta must be a finite number")
+    return tuple(numbers)
+
+
+def _check_column(name: str, data: pd.DataFrame, key: str) -> None:
+    if name not in data.columns:
+        raise InputError(f"{key}: '{name}' is not a column of the data{did_you_mean(name, data.columns)}")
+
+
+# ---------------------------------------------------------------------------
+# running the imputations
+
+Evaluate = Callable[[DeltaSeries, float], pd.DataFrame]
+
+
+def imputation_evaluator(data: pd.DataFrame, model: AnalysisModel, impute_options: Mapping[str, object]) -> Evaluate:
+    """A function (series, delta) -> pooled estimates of the analysis model after delta-adjusted imputation.
+
+    Parameters
+    ----------
+    data : the study data (NaN where missing).
+    model : the analysis model.
+    impute_options : keyword arguments of ``gapbook.impute.impute_chained`` (m, iterations,
+        seed, methods, predictors, passive, types, impute_mask, ...); the same seed for every delta.
+    """
+    from .impute import impute_chained
+
+    def evaluate(series: DeltaSeries, delta: float) -> pd.DataFrame:
+        delta_arg, delta_by = series.engine_arguments(delta)
+        imputed = impute_chained(data, delta=delta_arg, delta_by=delta_by, **dict(impute_options))
+        pooled = imputed.fit(model.formula, model.family)
+        return pooled.table
+
+    return evaluate
+
+
+def interval(table: pd.DataFrame, alpha: float) -> pd.DataFrame:
+    """CI at level 1 - alpha and p-value from estimate, std_error and df (normal when df is missing or infinite)."""
+    est = table["estimate"].to_numpy(dtype=float)
+    se = table["std_error"].to_numpy(dtype=float)
+    df = table["df"].to_numpy(dtype=float) if "df" in table.columns else np.full(len(table), np.inf)
+    df = np.where(np.isfinite(df), df, np.inf)
+    finite_df = np.where(np.isinf(df), 1.0, df)
+    crit = np.where(np.isinf(df), stats.norm.ppf(1 - alpha / 2), stats.t.ppf(1 - alpha / 2, finite_df))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        z = np.abs(est / se)
+    p = np.where(np.isinf(df), 2 * stats.norm.sf(z), 2 * stats.t.sf(z, finite_df))
+    return table.assign(ci_lower=est - crit * se, ci_upper=est + crit * se, p_value=p)
+
+
+# ---------------------------------------------------------------------------
+# the tipping point
+
+def conclusion_margin(ci_lower: float, ci_upper: float, baseline: str, null: float = 0.0) -> float:
+    """Positive while the conclusion of the baseline holds, zero where it tips, negative after.
+
+    ``baseline`` is "above" (CI above the null), "below" (CI below it) or "includes"
+    (CI includes it; the conclusion changes when the interval leaves the null).
+    """
+    if baseline == "above":
+        return ci_lower - null
+    if baseline == "below":
+        return null - ci_upper
+    return min(ci_upper - null, null - ci_lower)
+
+
+def conclusion_of(ci_lower: float, ci_upper: float, null: float = 0.0) -> str:
+    if ci_lower > null:
+        return "above"
+    if ci_upper < null:
+        return "below"
+    return "includes"
+
+
+@dataclass(frozen=True)
+class TippingPoint:
+    """Where the conclusion tips on one side of delta = 0 (``found`` False when it holds over the grid)."""
+
+    term: str
+    side: str
+    baseline: str
+    found: bool
+    delta: float
+    bracket: Tuple[float, float]
+    grid_range: Tuple[float, float]
+    evaluations: int
+    extra: pd.DataFrame = field(repr=False, default_factory=pd.DataFrame)
+
+
+def find_tipping_point(grid: pd.DataFrame, term: str, evaluate: Optional[Callable[[float], Tuple[float, float]]],
+                       null: float = 0.0, tolerance: Optional[float] = None, max_evaluations: int = 8,
+                       side: str = "positive") -> TippingPoint:
+    """Locate the delta at which the term's CI first reaches the null, moving away from delta = 0.
+
+    Parameters
+    ----------
+    grid : rows for this term with delta, ci_lower, ci_upper (one per grid delta; must include 0).
+    term : the exposure term (for the result).
+    evaluate : delta -> (ci_lower, ci_upper) at a new delta, for the root search; None keeps
+        the grid answer, refined by linear interpolation of the margin between the two grid points.
+    null : the null value on the model's scale (0 for differences and log ratios).
+    tolerance : the root search stops when the bracket is this narrow (default: a tenth of
+        the bracketing grid step).
+    max_evaluations : cap on extra imputation runs.
+    side : "positive" (deltas above 0) or "negative" (below 0).
+
+    Returns
+    -------
+    TippingPoint.
+
+    References
+    ----------
+    Brent RP (1973). Algorithms for Minimization without Derivatives. Prentice-Hall (root search).
+    """
+    rows = grid.sort_values("delta")
+    zero = rows[np.isclose(rows["delta"], 0.0)]
+    if zero.empty:
+        raise InputError("sensitivity.delta: the grid must include 0 (missing at random) to find a tipping point")
+    baseline = conclusion_of(float(zero["ci_lower"].iloc[0]), float(zero["ci_upper"].iloc[0]), null)
+    chosen = rows[rows["delta"] >= 0] if side == "positive" else rows[rows["delta"] <= 0].iloc[::-1]
+    deltas = chosen["delta"].to_numpy(dtype=float)
+    margins = np.array([conclusion_margin(lo, hi, baseline, null)
+                        for lo, hi in zip(chosen["ci_lower"], chosen["ci_upper"])])
+    span = (float(rows["delta"].min()), float(rows["delta"].max()))
+    crossed = np.flatnonzero(margins <= 0)
+    crossed = crossed[crossed > 0]
+    if len(crossed) == 0:
+        return TippingPoint(term, side, baseline, False, float("nan"), (float("nan"), float("nan")), span, 0)
+    k = int(crossed[0])
+    a, b = float(deltas[k - 1]), float(deltas[k])
+    ma, mb = float(margins[k - 1]), float(margins[k])
+    if evaluate is None or mb == 0:
+        root = a + (b - a) * ma / (ma - mb) if ma != mb else b
+        return TippingPoint(term, side, baseline, True, float(root), (min(a, b), max(a, b)), span, 0)
+    tolerance = tolerance if tolerance is not None else abs(b - a) / 10
+    extra: List[dict] = []
+
+    def margin(delta: float) -> float:
+        lo, hi = evaluate(delta)
+        extra.append({"delta": delta, "ci_lower": lo, "ci_upper": hi})
+        return conclusion_margin(lo, hi, baseline, null)
+
+    # Common random numbers make the margin a smooth-enough function of delta for Brent's method;
+    # if it is not monotone between the grid points the search still ends inside the bracket.
+    root, info = optimize.brentq(margin, a, b, xtol=tolerance, maxiter=max_evaluations, full_output=True, disp=False)
+    lo_b, hi_b = sorted((a, b))
+    # brentq first re-evaluates both grid ends (answered from the caller's cache, not new runs).
+    return TippingPoint(term, side, baseline, True, float(root), (lo_b, hi_b), span, max(0, len(extra) - 2),
+                        extra=pd.DataFrame(extra))
+
+
+def tipping_statement(point: TippingPoint, variable: str, group: str, by: Optional[str], variable_type: str,
+                      exposure_label: str) -> str:
+    """The tipping point in words, e.g. 'the conclusion holds unless the missing outcomes are 0.8 units higher'."""
+    where = f"the missing values of {variable}" + (f" in {by} = {group}" if by is not None else "")
+    scale = " on the log-odds scale" if variable_type == "binary" else ""
+    direction = "higher" if point.side == "positive" else "lower"
+    held = {"above": f"{exposure_label} above the null", "below": f"{exposure_label} below the null",
+            "includes": f"no clear effect of {exposure_label}"}[point.baseline]
+    if not point.found:
+        edge = point.grid_range[1] if point.side == "positive" else point.grid_range[0]
+        return (f"The conclusion ({held}) holds over the whole grid: {where} would have to be on average more than "
+                f"{abs(edge):.3g} units{scale} {direction} than imputed under missing at random to change it.")
+    return (f"The conclusion ({held}) holds unless {where} are on average {abs(point.delta):.3g} units{scale} "
+            f"{direction} than imputed under missing at random.")
+
+
+# ---------------------------------------------------------------------------
+# the whole analysis
+
+@dataclass(frozen=True)
+class DeltaResult:
+    """The delta-adjusted estimates and the tipping points.
+
+    ``table`` has the ``sensitivity_delta.csv`` columns plus std_error, df and
+    ``evaluated_by`` (grid or root_search); ``tipping`` has the ``tipping_point.csv`` columns.
+    """
+
+    table: pd.DataFrame
+    tipping: pd.DataFrame
+    series: Tuple[DeltaSeries, ...]
+    terms: Tuple[str, ...]
+    alpha: float
+    null: float = 0.0
+
+
+def delta_analysis(evaluate: Evaluate, series: Sequence[DeltaSeries], terms: Sequence[str], alpha: float = 0.05,
+                   refine: bool = True, tolerance: Optional[float] = None, max_evaluations: int = 6,
+                   types: Optional[Mapping[str, str]] = None, both_sides: bool = False) -> DeltaResult:
+    """Run every delta of every series, pool, and find each exposure term's tipping point.
+
+    Parameters
+    ----------
+    evaluate : (series, delta) -> pooled estimates table (see :func:`imputation_evaluator`).
+    series : from :func:`delta_series`.
+    terms : the exposure's model terms.
+    alpha : 1 - confidence level (``analysis.alpha``); the CI is recomputed at this level.
+    refine : root search between the bracketing grid points (extra imputation runs).
+    tolerance : width at which the root search stops (default a tenth of the grid step).
+    max_evaluations : cap on extra imputation runs per tipping point.
+    types : {column: type}, for the wording (log-odds scale for binary variables).
+    both_sides : also search below delta = 0 (always done when the grid has negative deltas).
+
+    Returns
+    -------
+    DeltaResult.
+
+    References
+    ----------
+    Carpenter JR, Kenward MG (2013). Multiple Imputation and its Application. Wiley, chapter 10.
+    """
+    types = dict(types or {})
+    terms = list(terms)
+    if not terms:
+        raise InputError("analysis.exposure: no exposure term to follow across deltas")
+    frames: List[pd.DataFrame] = []
+    tipping_rows: List[dict] = []
+    for s in series:
+        cache: Dict[float, pd.DataFrame] = {}
+
+        def run(delta: float, how: str, s: DeltaSeries = s, cache: Dict[float, pd.DataFrame] = cache) -> pd.DataFrame:
+            if delta not in cache:
+                table = interval(evaluate(s, delta), alpha)
+                missing = [t for t in terms if t not in set(table["term"])]
+                if missing:
+                    raise InputError(f"analysis.exposure: {', '.join(missing)} is not a term of the pooled model")
+                cache[delta] = table[table["term"].isin(terms)].assign(
+                    variable=s.variable, group=s.group, delta=float(delta), evaluated_by=how)
+            return cache[delta]
+
+        for delta in s.deltas:
+            run(delta, "grid")
+        grid = pd.concat([cache[d] for d in s.deltas], ignore_index=True)
+        sides = ["positive"] + (["negative"] if both_sides or min(s.deltas) < 0 else [])
+        if max(s.deltas) <= 0:
+            sides = ["negative"]
+        for term in terms:
+            term_grid = grid[grid["term"] == term]
+            for side in sides:
+                def bounds(delta: float, term: str = term) -> Tuple[float, float]:
+                    row = run(float(delta), "root_search")
+                    row = row[row["term"] == term].iloc[0]
+                    return float(row["ci_lower"]), float(row["ci_upper"])
+
+                point = find_tipping_point(term_grid, term, bounds if refine else None, 0.0, tolerance,
+                                           max_evaluations, side)
+                statement = tipping_statement(point, s.variable, s.group, s.by, types.get(s.variable, ""), term)
+                tipping_rows.append({
+                    "variable": s.variable, "group": s.group, "term": term, "side": side,
+                    "baseline_conclusion": point.baseline, "found": point.found, "tipping_delta": point.delta,
+                    "bracket_lower": point.bracket[0], "bracket_upper": point.bracket[1],
+                    "grid_min": point.grid_range[0], "grid_max": point.grid_range[1],
+                    "evaluations": point.evaluations, "statement": statement})
+        frames.append(pd.concat(list(cache.values()), ignore_index=True))
+    table = pd.concat(frames, ignore_index=True).sort_values(["variable", "group", "term", "delta"], kind="stable")
+    extra = [c for c in ("std_error", "df", "evaluated_by") if c in table.columns]
+    table = table[list(DELTA_COLUMNS) + extra].reset_index(drop=True)
+    tipping = pd.DataFrame(tipping_rows, columns=list(TIPPING_COLUMNS))
+    return DeltaResult(table=table, tipping=tipping, series=tuple(series), terms=tuple(terms), alpha=alpha)
+
+
+# ---------------------------------------------------------------------------
+# every strategy side by side
+
+@dataclass(frozen=True)
+class StrategyAndDelta:
+    """The exposure effect under each strategy and each delta-adjusted imputation, and one sentence."""
+
+    table: pd.DataFrame
+    sentence: str
+    changes: bool
+
+
+def compare_with_deltas(estimates: Optional[pd.DataFrame], result: DeltaResult, null: float = 0.0) -> StrategyAndDelta:
+    """Put complete case, missing category, multiple imputation and the delta-adjusted runs in one table.
+
+    Parameters
+    ----------
+    estimates : ``estimates.csv`` (None when no other strategy has run).
+    result : the delta analysis.
+    null : the null value on the model's scale.
+
+    Returns
+    -------
+    StrategyAndDelta whose table has analysis, variable, group, delta, term, estimate,
+    ci_lower, ci_upper, p_value, conclusion; the sentence says whether the conclusion changes.
+    """
+    rows: List[pd.DataFrame] = []
+    if estimates is not None and len(estimates):
+        base = estimates[estimates["term"].isin(result.terms)]
+        rows.append(pd.DataFrame({
+            "analysis": base["strategy"].to_numpy(), "variable": "", "group": "", "delta": np.nan,
+            "term": base["term"].to_numpy(), "estimate": base["estimate"].to_numpy(),
+            "ci_lower": base["ci_lower"].to_numpy(), "ci_upper": base["ci_upper"].to_numpy(),
+            "p_value": base["p_value"].to_numpy()}))
+    grid = result.table[result.table["evaluated_by"] == "grid"] if "evaluated_by" in result.table.columns \
+        else result.table
+    rows.append(pd.DataFrame({
+        "analysis": [f"delta_adjusted ({v}{'' if g == ALL_GROUPS else ', ' + g} {d:+g})"
+                     for v, g, d in zip(grid["variable"], grid["group"], grid["delta"])],
+        "variable": grid["variable"].to_numpy(), "group": grid["group"].to_numpy(),
+        "delta": grid["delta"].to_numpy(), "term": grid["term"].to_numpy(), "estimate": grid["estimate"].to_numpy(),
+        "ci_lower": grid["ci_lower"].to_numpy(), "ci_upper": grid["ci_upper"].to_numpy(),
+        "p_value": grid["p_value"].to_numpy()}))
+    table = pd.concat(rows, ignore_index=True)
+    table["conclusion"] = [conclusion_of(lo, hi, null) for lo, hi in zip(table["ci_lower"], table["ci_upper"])]
+    words = {"above": "above the null", "below": "below the null", "includes": "including the null"}
+    sentences = []
+    changes = False
+    for term, part in table.groupby("term", sort=False):
+        found = list(dict.fromkeys(part["conclusion"]))
+        if len(found) == 1:
+            sentences.append(f"For {term} the conclusion is the same under every analysis ({len(part)} analyses, "
+                             f"every interval {words[found[0]]}).")
+        else:
+            changes = True
+            counts = part["conclusion"].value_counts()
+            differing = part[part["conclusion"] != part["conclusion"].iloc[0]]["analysis"].tolist()
+            shown = ", ".join(differing[:4]) + (f" and {len(differing) - 4} more" if len(differing) > 4 else "")
+            sentences.append(f"For {term} the conclusion changes across analyses: "
+                             + ", ".join(f"{n} with the interval {words[c]}" for c, n in counts.items())
+                             + f" (differing from {part['analysis'].iloc[0]}: {shown}).")
+    sentences.append("Missing at random cannot be verified from the data; the delta-adjusted rows show how the "
+                     "answer depends on that assumption.")
+    return StrategyAndDelta(table=table, sentence=" ".join(sentences), changes=changes)
