@@ -337,7 +337,17 @@ def pattern_table(patterns: PatternCounts, names: Sequence[str]) -> pd.DataFrame
 
 
 def dropout_order(missing_counts: Sequence[int], names: Sequence[str]) -> Tuple[str, ...]:
-    """Variables from least to most missing (ties kept in column order)."""
+    """Variables from least to most missing (ties kept in column order).
+
+    Parameters
+    ----------
+    missing_counts : missing values per variable, in column order.
+    names : the variable names, in column order.
+
+    Returns
+    -------
+    tuple of names; for monotone patterns this is an order in which the gaps are tails.
+    """
     order = np.argsort(np.asarray(missing_counts), kind="stable")
     return tuple(names[i] for i in order)
 
@@ -374,7 +384,19 @@ def is_monotone(missing_bits: np.ndarray) -> bool:
 
 
 def rows_in_dropout_order(patterns: PatternCounts, order_index: Sequence[int]) -> float:
-    """Percent of rows whose missing variables are the last ones of the dropout order."""
+    """Percent of rows whose missing variables are the last ones of the dropout order.
+
+    100 for monotone patterns; lower values say how many rows break a dropout reading.
+
+    Parameters
+    ----------
+    patterns : from :func:`count_patterns`.
+    order_index : column positions from least to most missing (:func:`dropout_order`).
+
+    Returns
+    -------
+    float, percent of rows.
+    """
     total = int(patterns.n_rows.sum())
     if total == 0:
         return float("nan")
