@@ -352,3 +352,18 @@ def test_map_slices_preserve_missing_counts(demo_audit):
     expected = demo_audit.variables.set_index("variable").loc[order, "n_missing"].to_numpy()
     assert np.allclose(recovered, expected)
     assert rows_in_dropout_order(count_patterns(np.zeros((3, 2), dtype=bool)), [0, 1]) == 100.0
+
+
+def test_pattern_order_breaks_ties_as_documented():
+    # Hand-built: four patterns with one row each; the documented order is fewer missing variables
+    # first, then left to right with observed (1) before missing (0).
+    from gapbook.audit import pattern_table
+    missing = np.array([[0, 0, 1, 1],    # lacks c, d
+                        [0, 1, 0, 0],    # lacks b
+                        [0, 0, 0, 1],    # lacks d
+                        [1, 0, 0, 0],    # lacks a
+                        [0, 0, 0, 1]],   # lacks d again -> the most common pattern
+                       dtype=bool)
+    table = pattern_table(count_patterns(missing), ["a", "b", "c", "d"])
+    assert table[["a", "b", "c", "d"]].values.tolist() == [[1, 1, 1, 0], [1, 0, 1, 1], [0, 1, 1, 1], [1, 1, 0, 0]]
+    assert table["n_rows"].tolist() == [2, 1, 1, 1]
