@@ -299,3 +299,9 @@ def test_comparison_of_gaussian_keeps_coefficient_scale(demo):
     # since dropout depends on baseline HbA1c, a model covariate (MAR given covariates).
     row = comparison.table.iloc[0]
     assert row["ci_lower"] < -0.40 < row["ci_upper"]
+
+
+def test_binomial_family_with_a_measured_outcome_is_an_input_error(penguins):
+    # A logistic model needs a 0/1 (or two-level) outcome; body mass in grams is neither.
+    with pytest.raises(InputError, match="binomial needs a 0/1 or two-level outcome"):
+        complete_case_analysis(penguins, AnalysisModel("body_mass_g ~ species", family="binomial"))

@@ -123,6 +123,15 @@ def _outcome_as_number(data: pd.DataFrame, outcome: str, family: str) -> pd.Data
                              "it needs exactly two")
         data = data.copy()
         data[outcome] = column.map({levels[0]: 0.0, levels[1]: 1.0}).astype(float)
+        return data
+    values = column.dropna().to_numpy(dtype=float) if pd.api.types.is_numeric_dtype(column) else None
+    if family == "binomial" and values is not None and not np.isin(values, (0.0, 1.0)).all():
+        raise InputError(f"analysis.family: binomial needs a 0/1 or two-level outcome, but '{outcome}' holds "
+                         f"other values (e.g. {values[~np.isin(values, (0.0, 1.0))][0]:g}); choose gaussian or "
+                         "recode the outcome")
+    if family == "poisson" and values is not None and (values < 0).any():
+        raise InputError(f"analysis.family: poisson needs counts, but '{outcome}' holds negative values; "
+                         "choose gaussian or check the outcome")
     return data
 
 
