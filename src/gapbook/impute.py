@@ -939,7 +939,8 @@ def impute_chained(data: pd.DataFrame, m: int = 20, iterations: int = 10, seed: 
     columns = [str(c) for c in data.columns]
     if len(set(columns)) != len(columns):
         raise InputError("impute_chained: the data have duplicate column names")
-    type_map = _check_names(types, columns, "variables")
+    # a wider mapping (e.g. every study column's type) is fine: only the data's columns are used
+    type_map = {k: v for k, v in dict(types or {}).items() if k in columns}
     for name, kind in type_map.items():
         if kind not in VARIABLE_TYPES:
             raise InputError(f"variables.{name}.type: '{kind}' is not one of {', '.join(VARIABLE_TYPES)}"
