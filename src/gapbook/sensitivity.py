@@ -165,6 +165,30 @@ def imputation_evaluator(data: pd.DataFrame, model: AnalysisModel, impute_option
     return evaluate
 
 
+DEFAULT_M = 5  # imputations per delta when sensitivity.m is not set: the grid re-runs the imputation many times
+
+
+def plan_evaluator(plan, m: Optional[int] = None, iterations: Optional[int] = None,
+                   n_jobs: Optional[int] = None) -> Evaluate:
+    """Like :func:`imputation_evaluator`, for a ``gapbook.impute.ImputationPlan`` (the params' imputation).
+
+    Parameters
+    ----------
+    plan : from ``gapbook.impute.plan_imputation(params, study)``.
+    m : imputations per delta (default :data:`DEFAULT_M`, or the plan's m when smaller).
+    iterations, n_jobs : override the plan's settings (None keeps them); the seed is the plan's.
+    """
+    m = min(plan.m, DEFAULT_M) if m is None else m
+
+    def evaluate(series: DeltaSeries, delta: float) -> pd.DataFrame:
+        delta_arg, delta_by = series.engine_arguments(delta)
+        imputed = plan.run(m=m, iterations=iterations, delta=delta_arg, delta_by=delta_by, n_jobs=n_jobs,
+                           progress=False)
+        return plan.fit(imputed).table
+
+    return evaluate
+
+
 def interval(table: pd.DataFrame, alpha: float) -> pd.DataFrame:
     """CI at level 1 - alpha and p-value from estimate, std_error and df (normal when df is missing or infinite)."""
     est = table["estimate"].to_numpy(dtype=float)

@@ -1,0 +1,84 @@
+"""Figures of the delta-adjustment sensitivity analysis.
+
+``delta_curve`` answers "how far does the exposure effect move as the imputed values are
+shifted, and where does the conclusion tip?"; ``analyses_side_by_side`` answers "does the
+conclusion change between complete cases, the missing category, imputation under missing
+at random and the delta-adjusted imputations?".
+"""
+from __future__ import annotations
+
+from typing import Optional
+
+import matplotlib.pyplot as plt
+import numpy as np
+
+from . import EMPHASIS, MISSING, NEUTRAL, OBSERVED, REFERENCE
+from ..sensitivity import ALL_GROUPS, DeltaResult, StrategyAndDelta
+
+
+def delta_curve(result: DeltaResult, term: Optional[str] = None):
+    """Estimate and CI of one exposure term against delta, one panel per delta series.
+
+    The null is a dashed line; the tipping point (when reached) a vertical line with its
+    value; root-search evaluations are hollow points, grid deltas filled ones.
+    """
+    term = term or result.terms[0]
+    table = result.table[result.table["term"] == term]
+    keys = list(dict.fromkeys(zip(table["variable"], table["group"])))
+    figure, axes = plt.subplots(1, len(keys), figsize=(max(5.0, 4.6 * len(keys)), 3.8), squeeze=False,
+                                sharey=True, layout="constrained")
+    level = int(round(100 * (1 - result.alpha)))
+    for ax, (variable, group) in zip(axes[0], keys):
+        part = table[(table["variable"] == variable) & (table["group"] == group)].sort_values("delta")
+        ax.fill_between(part["delta"], part["ci_lower"], part["ci_upper"], color=OBSERVED, alpha=0.18, lw=0,
+                        label=f"{level}% CI")
+        ax.plot(part["delta"], part["estimate"], color=OBSERVED, lw=1.6, label="pooled estimate")
+        grid = part[part["evaluated_by"] == "grid"] if "evaluated_by" in part.columns else part
+        ax.plot(grid["delta"], grid["estimate"], "o", color=OBSERVED, ms=4)
+        searched = part[part["evaluated_by"] == "root_search"] if "evaluated_by" in part.columns else part.iloc[0:0]
+        if len(searched):
+            ax.plot(searched["delta"], searched["estimate"], "o", mfc="white", mec=OBSERVED, ms=4,
+                    label="root search")
+        ax.axhline(result.null, color=REFERENCE, lw=1, ls="--", label="null")
+        ax.axvline(0.0, color=NEUTRAL, lw=0.8, ls=":")
+        tips = result.tipping[(result.tipping["variable"] == variable) & (result.tipping["group"] == group)
+                              & (result.tipping["term"] == term)]
+        for tip in tips.itertuples():
+            if tip.found:
+                ax.axvline(tip.tipping_delta, color=EMPHASIS, lw=1.4)
+                ax.annotate(f"tipping point\ndelta = {tip.tipping_delta:.3g}", (tip.tipping_delta, 1.0),
+                            xycoords=("data", "axes fraction"), xytext=(-4, -4), textcoords="offset points",
+                            ha="right", va="top", fontsize=8, color=EMPHASIS)
+            else:
+                ax.text(0.02, 0.04, "conclusion holds over the whole grid", transform=ax.transAxes, fontsize=8,
+                        color=REFERENCE)
+        shifted = f"{variable}" + ("" if group == ALL_GROUPS else f" in group {group}")
+        ax.set_title(f"shift of imputed {shifted}", fontsize=10)
+        ax.set_xlabel("delta (added to imputed values)")
+    axes[0][0].set_ylabel(f"{term} estimate")
+    axes[0][-1].legend(fontsize=8, loc="best", frameon=False)
+    figure.suptitle("How the exposure effect moves if missing values differ from the MAR imputation", fontsize=11)
+    return figure
+
+
+def analyses_side_by_side(comparison: StrategyAndDelta, term: Optional[str] = None):
+    """Intervals of the exposure effect under every strategy and delta, top to bottom, with the null."""
+    table = comparison.table
+    term = term or table["term"].iloc[0]
+    part = table[table["term"] == term].reset_index(drop=True)
+    height = 1.2 + 0.32 * len(part)
+    figure, ax = plt.subplots(figsize=(7.0, height), layout="constrained")
+    y = np.arange(len(part))[::-1]
+    for yi, row in zip(y, part.itertuples()):
+        delta_row = str(row.analysis).startswith("delta_adjusted")
+        colour = MISSING if delta_row else OBSERVED
+        changed = row.conclusion != part["conclusion"].iloc[0]
+        ax.plot([row.ci_lower, row.ci_upper], [yi, yi], color=EMPHASIS if changed else colour, lw=2)
+        ax.plot(row.estimate, yi, "o", color=EMPHASIS if changed else colour, ms=5)
+    ax.axvline(0.0, color=REFERENCE, lw=1, ls="--")
+    ax.set_yticks(y)
+    ax.set_yticklabels([str(a).replace("delta_adjusted", "delta-adjusted") if str(a).startswith("delta_adjusted")
+                        else str(a).replace("_", " ") for a in part["analysis"]], fontsize=8)
+    ax.set_xlabel(f"{term} estimate and interval (red: conclusion differs from the first row)")
+    ax.set_title("The exposure effect under each analysis", fontsize=11)
+    return figure
