@@ -121,10 +121,11 @@ class GroupComparison:
     alpha: float
 
     def strongest(self, top: int = 6) -> pd.DataFrame:
-        """The rows with the smallest adjusted p-values (ties broken by the larger |SMD|)."""
+        """The rows with the smallest p-values (ranked on the unadjusted p, whose order Holm keeps but
+        whose ties at 1 it does not make; further ties broken by the larger |SMD|)."""
         tested = self.table[self.table["p_adjusted"].notna()]
         order = tested.assign(_abs=tested["smd"].abs().fillna(0.0)).sort_values(
-            ["p_adjusted", "_abs"], ascending=[True, False], kind="stable")
+            ["p_value", "_abs"], ascending=[True, False], kind="stable")
         return order.drop(columns="_abs").head(top).reset_index(drop=True)
 
 
