@@ -23,6 +23,7 @@ import pandas as pd
 from gapbook.mechanism import em_multivariate_normal, little_mcar_test
 
 N_ROWS, N_VARIABLES, N_PATTERNS, SEED = 100_000, 20, 30, 20261202
+REPEATS = 3  # times are the best of 3, run alternately
 
 
 def make_data(rng: np.random.Generator) -> pd.DataFrame:
@@ -67,20 +68,24 @@ def reference_em(values: np.ndarray, iterations: int) -> tuple[np.ndarray, np.nd
 
 def main() -> None:
     data = make_data(np.random.default_rng(SEED))
-    start = time.perf_counter()
-    test = little_mcar_test(data)
-    ours = time.perf_counter() - start
-    em = test.em
-    start = time.perf_counter()
-    ref_mu, ref_sigma = reference_em(data.to_numpy(), em.iterations)
-    reference = time.perf_counter() - start
+    ours, reference = [], []
+    for _ in range(REPEATS):
+        start = time.perf_counter()
+        test = little_mcar_test(data)
+        ours.append(time.perf_counter() - start)
+        em = test.em
+        start = time.perf_counter()
+        ref_mu, ref_sigma = reference_em(data.to_numpy(), em.iterations)
+        reference.append(time.perf_counter() - start)
+    ours, reference = min(ours), min(reference)
     difference = max(np.max(np.abs(ref_mu - em.mean.to_numpy())), np.max(np.abs(ref_sigma - em.covariance.to_numpy())))
     print(f"machine: {platform.machine()} {platform.processor() or ''} cores={os.cpu_count()} "
           f"python {platform.python_version()} numpy {np.__version__}")
     print(f"data: {N_ROWS:,} rows x {N_VARIABLES} variables, {test.n_patterns} patterns")
-    print(f"Little's test (EM on pattern sufficient statistics): {ours:.3f} s, EM iterations {em.iterations}, "
+    print(f"Little's test (EM on pattern sufficient statistics), best of {REPEATS}: {ours:.3f} s, EM iterations {em.iterations}, "
           f"converged {em.converged}; d2 = {test.statistic:.2f}, df = {test.df}, p = {test.p_value:.3f}")
-    print(f"reference EM (all rows every iteration, same {em.iterations} iterations): {reference:.3f} s")
+    print(f"reference EM (all rows every iteration, same {em.iterations} iterations), best of {REPEATS}: "
+          f"{reference:.3f} s")
     print(f"ratio reference / ours: {reference / ours:.1f}x; largest difference in estimates {difference:.2e}")
     print(f"target under 2 s: {'met' if ours < 2 else 'NOT met'}")
 

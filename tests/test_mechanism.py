@@ -378,3 +378,36 @@ def test_wording_when_there_is_no_evidence():
     assert "not proof" in first
     assert not FORBIDDEN.search(" ".join(result.sentences))
     assert mech.format_p(0.0004) == "p < 0.001" and mech.format_p(0.0123) == "p = 0.012"
+
+
+# ---------------------------------------------------------------------------
+# edge cases and figures
+
+def test_complete_data_runs_without_tests():
+    rng = np.random.default_rng(4)
+    frame = pd.DataFrame({"a": rng.normal(size=40), "g": pd.Categorical(rng.choice(["x", "y"], 40))})
+    result = mech.assess_mechanism(frame, {"a": "continuous", "g": "binary"})
+    assert result.groups.table.empty and result.models.fits.empty
+    assert result.mcar.df == 0 and result.mcar.statistic == 0.0
+    assert result.sentences[-2] == mech.MAR_CAUTION
+
+
+def test_figures_draw_from_result_objects(demo):
+    import matplotlib.pyplot as plt
+    from gapbook.plots import mechanism as plots
+
+    _, result = demo
+    overview = plots.relation_overview(result.groups)
+    # One dot per relation with Holm-adjusted p < alpha.
+    dots = sum(len(c.get_offsets()) for c in overview.axes[0].collections if hasattr(c, "get_offsets"))
+    assert dots == int(result.groups.table["evidence"].sum())
+    strongest = plots.strongest_relations(result.groups, top=4)
+    titles = [ax.get_title(loc="left") for ax in strongest.axes if ax.get_title(loc="left")]
+    assert titles[0].startswith("hba1c_0 by whether hba1c_12m is missing")
+    parts = plots.pattern_contributions(result.mcar)
+    assert sum(p.get_width() for p in parts.axes[0].patches) == pytest.approx(
+        result.mcar.patterns.sort_values("contribution").tail(15)["contribution"].sum())
+    odds = plots.missingness_odds_ratios(result.models)
+    assert odds.axes[0].get_xscale() == "log"
+    for figure in (overview, strongest, parts, odds):
+        plt.close(figure)

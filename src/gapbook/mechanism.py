@@ -974,7 +974,7 @@ def mcar_sentence(test: LittleTest, alpha: float = 0.05) -> str:
     """Little's test in words: evidence against MCAR, or no evidence against it (never 'the data are MCAR')."""
     if not np.isfinite(test.p_value):
         reason = " ".join(test.notes) if test.notes else "it could not be computed."
-        return f"Little's test gives no p-value: {reason}"
+        return f"Little's test gives no p-value. {reason}"
     numbers = f"d\u00b2 = {test.statistic:.2f}, df = {test.df}, {format_p(test.p_value)}; {test.n_patterns} patterns"
     if test.p_value < alpha:
         return (f"Little's test gives evidence against missing completely at random (MCAR) for "
