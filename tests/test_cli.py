@@ -1,0 +1,139 @@
+"""The command line as a user meets it: exit codes, one-line errors, records and verify."""
+from __future__ import annotations
+
+import hashlib
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import pandas as pd
+import pytest
+
+from gapbook.demo import demo_csv_path, demo_params_path
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def gapbook(*args, cwd=None):
+    return subprocess.run([sys.executable, "-m", "gapbook.cli", *map(str, args)], capture_output=True, text=True,
+                          cwd=cwd, timeout=600)
+
+
+def digest(path: Path) -> str:
+    return hashlib.sha256(path.read_bytes()).hexdigest()
+
+
+def assert_user_error(result, needle):
+    assert result.returncode == 2, result.stderr
+    lines = [line for line in result.stderr.splitlines() if line.strip()]
+    assert len(lines) == 1, result.stderr
+    assert needle in lines[0]
+    assert "Traceback" not in result.stderr
+
+
+@pytest.fixture
+def study(tmp_path):
+    """A small study folder with its own copy of the demo data."""
+    data = tmp_path / "data"
+    data.mkdir()
+    (data / "trial.csv").write_bytes(demo_csv_path().read_bytes())
+    text = demo_params_path().read_text().replace("path: demo_trial.csv", "path: data/trial.csv")
+    params = tmp_path / "params.yaml"
+    params.write_text(text)
+    return tmp_path
+
+
+def test_check_accepts_the_demo(study):
+    result = gapbook("check", study / "params.yaml")
+    assert result.returncode == 0, result.stderr
+    assert result.stdout.strip().endswith("ok")
+    assert "1200 rows" in result.stdout
+
+
+@pytest.mark.parametrize("edit,needle", [
+    (lambda p, d: p.write_text(p.read_text().replace("imputation:", "imputaton:")), "did you mean 'imputation'?"),
+    (lambda p, d: p.write_text(p.read_text().replace("type: continuous, range: [18, 100]", "type: continous")),
+     "did you mean 'continuous'?"),
+    (lambda p, d: d.write_text(d.read_text().replace("P0002,", "P0001,", 1)), "duplicate id 'P0001'"),
+    (lambda p, d: d.write_text(d.read_text().replace(",58,", ",fifty-eight,", 1)),
+     "column 'age' is declared continuous but holds the text 'fifty-eight'"),
+    (lambda p, d: d.write_text(""), "the data file is empty"),
+    (lambda p, d: d.unlink(), "data file not found"),
+    (lambda p, d: p.write_text(p.read_text().replace("id: participant_id", "id: participant")),
+     "did you mean 'participant_id'?"),
+])
+def test_bad_input_exits_2_with_one_line_and_leaves_nothing(study, edit, needle):
+    params, data = study / "params.yaml", study / "data" / "trial.csv"
+    edit(params, data)
+    before = {p: digest(p) for p in study.rglob("*") if p.is_file()}
+    for args in (("check", params), ("run", params, "--out", study / "records", "--only", "audit")):
+        assert_user_error(gapbook(*args), needle)
+    after = {p: digest(p) for p in study.rglob("*") if p.is_file()}
+    assert after == before  # input files untouched, no record (or partial record) left behind
+    assert not (study / "records").exists() or not any((study / "records").iterdir())
+
+
+def test_unknown_stage_and_missing_record(study, tmp_path):
+    assert_user_error(gapbook("run", study / "params.yaml", "--only", "audti", "--out", tmp_path / "r"),
+                      "did you mean 'audit'?")
+    assert_user_error(gapbook("verify", tmp_path), "not a gapbook record")
+    assert_user_error(gapbook("check", tmp_path / "none.yaml"), "params file not found")
+
+
+def test_new_scaffolds_a_study_folder(tmp_path):
+    result = gapbook("new", tmp_path / "mystudy")
+    assert result.returncode == 0, result.stderr
+    assert (tmp_path / "mystudy" / "params.yaml").is_file()
+    assert (tmp_path / "mystudy" / "data").is_dir()
+    assert sorted(p.name for p in (tmp_path / "mystudy" / "notebooks").glob("*.ipynb")) == \
+        sorted(p.name for p in (ROOT / "notebooks").glob("*.ipynb"))
+    assert_user_error(gapbook("new", tmp_path / "mystudy"), "not empty")
+
+
+def test_run_audit_then_verify_and_tamper(study):
+    params, data = study / "params.yaml", study / "data" / "trial.csv"
+    before = digest(data)
+    result = gapbook("run", params, "--out", study / "records", "--only", "audit")
+    assert result.returncode == 0, result.stderr
+    lines = result.stdout.strip().splitlines()
+    record = Path(lines[-1])
+    assert lines[0].startswith("audit") and lines[0].rstrip().endswith("s")
+    assert record.is_dir() and record.parent == study / "records"
+    assert digest(data) == before
+    manifest = json.loads((record / "manifest.json").read_text())
+    for key in ("params", "data", "notebooks", "packages", "python", "platform", "seed", "started", "ended",
+                "gapbook_version"):
+        assert key in manifest
+    assert manifest["data"]["sha256"] == before
+    for name in ("audit_variables", "audit_patterns"):
+        assert (record / "tables" / f"{name}.csv").is_file()
+    variables = pd.read_csv(record / "tables" / "audit_variables.csv")
+    assert list(variables.columns[:6]) == ["variable", "type", "n", "n_missing", "pct_missing", "over_threshold"]
+    assert (record / "report" / "index.html").is_file() and (record / "report" / "01_audit.html").is_file()
+    assert (record / "notebooks" / "01_audit.ipynb").is_file()
+    # raw rows never reach the record: no participant's outcome value row appears in any table
+    assert not any("hba1c_12m" in p.read_text() and "P0001," in p.read_text() for p in (record / "tables").glob("*.csv"))
+
+    # a second run never overwrites the first
+    second = Path(gapbook("run", params, "--out", study / "records", "--only", "audit").stdout.strip().splitlines()[-1])
+    assert second != record and record.is_dir()
+    for table in (record / "tables").glob("*.csv"):  # same inputs, same bytes
+        assert table.read_bytes() == (second / "tables" / table.name).read_bytes(), table.name
+
+    verified = gapbook("verify", record)
+    assert verified.returncode == 0, verified.stdout + verified.stderr
+    assert "FAIL" not in verified.stdout
+
+    table = record / "tables" / "audit_variables.csv"
+    table.write_text(table.read_text().replace(",13,", ",14,", 1) + "")
+    frame = pd.read_csv(table)
+    frame.loc[0, "n_missing"] = frame.loc[0, "n_missing"] + 1
+    frame.to_csv(table, index=False)
+    tampered = gapbook("verify", record)
+    assert tampered.returncode == 1
+    assert "FAIL audit_variables.csv" in tampered.stdout
+
+    data.write_text(data.read_text() + "")  # unchanged bytes: still verifiable
+    data.write_text(data.read_text().replace("P1200", "P9999"))
+    assert_user_error(gapbook("verify", record), "data file changed")
