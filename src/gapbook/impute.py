@@ -1089,6 +1089,33 @@ class ImputationPlan:
                          "predictors": predictor_text})
         return pd.DataFrame(rows)
 
+    def describe(self) -> str:
+        """The imputation settings in words (Markdown), for the notebook and the report."""
+        to_impute = [c for c in self.data.columns if self.impute_mask[c].any()]
+        by_method: Dict[str, List[str]] = {}
+        for name in to_impute:
+            by_method.setdefault(self.methods[name], []).append(name)
+        words = {"pmm": f"predictive mean matching ({self.donors} donors)", "normal": "Bayesian linear regression",
+                 "logistic": "logistic regression", "multinomial": "multinomial logistic regression",
+                 "ordinal": "proportional-odds regression", "passive": "passive (recomputed from a formula)"}
+        methods = "; ".join(f"{words[k]}: {', '.join(f'`{v}`' for v in names)}" for k, names in by_method.items())
+        passive = "; ".join(f"`{k}` = `{v}`" for k, v in self.passive.items()) or "none"
+        custom = sorted(set(self.predictors) | set(self.exclude_predictors))
+        left = [c for c in self.data.columns if (self.data[c].isna() & ~self.impute_mask[c]).any()]
+        lines = [
+            f"- **Method:** multiple imputation by chained equations (fully conditional specification), "
+            f"{self.m} imputed datasets, {self.iterations} iterations per chain, seed {self.seed}.",
+            f"- **Variables imputed and how:** {methods or 'nothing is missing'}.",
+            f"- **Passive variables:** {passive}.",
+            f"- **Predictors:** every other variable in the imputation model, the outcome `{self.outcome}` "
+            f"included" + (f"; own choices for {', '.join(f'`{c}`' for c in custom)}" if custom else "") + ".",
+            f"- **Auxiliary variables** (in the imputation model, not the analysis model): "
+            f"{', '.join(f'`{c}`' for c in self.auxiliary) or 'none'}.",
+        ]
+        if left:
+            lines.append(f"- **Left missing** (not applicable, so not imputed): {', '.join(f'`{c}`' for c in left)}.")
+        return "\n".join(lines)
+
     def run(self, m: Optional[int] = None, iterations: Optional[int] = None, seed: Optional[int] = None,
             delta: Optional[Mapping[str, Any]] = None, delta_by: Optional[Mapping[str, str]] = None,
             n_jobs: Optional[int] = None, progress: bool = True) -> ChainedImputation:
