@@ -510,8 +510,8 @@ def em_multivariate_normal(data: pd.DataFrame, tolerance: float = 1e-8, max_iter
     ----------
     Dempster AP, Laird NM, Rubin DB (1977). Maximum likelihood from incomplete data via the
     EM algorithm. JRSS B 39:1-38.
-    Little RJA, Rubin DB (2019). Statistical Analysis with Missing Data, 3rd ed., Wiley, ch. 8
-    (section 8.2.1, the EM algorithm for the multivariate normal).
+    Little RJA, Rubin DB (2002). Statistical Analysis with Missing Data, 2nd ed., Wiley,
+    section 11.2 (EM for the multivariate normal; section number recalled from memory).
     """
     names = list(data.columns)
     raw = data.to_numpy(dtype=float)
