@@ -130,7 +130,7 @@ class SensitivitySection(_Section):
 
 
 class SimulationSection(_Section):
-    replicates: int = Field(200, ge=2)
+    replicates: int = Field(100, ge=2)  # fits the demo's 3-minute budget on 2 cores (benchmarks/README.md)
     seed: int = Field(20261203, ge=0)
     n_jobs: int = Field(2, ge=1)
     m: int = Field(5, ge=1)

@@ -41,6 +41,9 @@ PERFORMANCE_COLUMNS: Tuple[str, ...] = ("mechanism", "strategy", "term", "n_rep"
 # Log-odds change in the chance of being missing per SD of the driving variable: a strong
 # but not extreme dependence (an odds ratio of e = 2.7 per SD). Common practice, no source.
 DEFAULT_STRENGTH = 1.0
+# Chained-equation sweeps per imputation inside the simulation: few variables have missing
+# values there, and the chains start from draws of the observed values (common practice, no source).
+SIMULATION_ITERATIONS = 5
 
 
 # ---------------------------------------------------------------------------
@@ -348,19 +351,34 @@ class Replicate:
 class LeastSquares:
     """Ordinary least squares on a design matrix, giving the same ModelFit as ``fit_model`` (gaussian, nonrobust).
 
-    Used only inside the simulation, where the formula is parsed once per study instead of
-    once per fit; checked against statsmodels in the tests.
+    Used only inside the simulation, where the formula is parsed once per worker instead of
+    once per fit; checked against statsmodels in the tests. ``template`` is the data the
+    formula's coding is learnt from (patsy's design description cannot be pickled, so
+    each worker rebuilds it from the template).
     """
 
     formula: str
     outcome: str
     terms: Tuple[str, ...]
-    design_info: object
+    template: Optional[pd.DataFrame] = None
     alpha: float = 0.05
+
+    def __getstate__(self):
+        state = dict(self.__dict__)
+        state.pop("_design_info", None)
+        return state
+
+    def __setstate__(self, state):
+        self.__dict__.update(state)
 
     def design(self, frame: pd.DataFrame) -> np.ndarray:
         import patsy
-        return np.asarray(patsy.build_design_matrices([self.design_info], frame, NA_action="raise")[0], dtype=float)
+        info = self.__dict__.get("_design_info")
+        if info is None:
+            _, x = patsy.dmatrices(self.formula, self.template, return_type="dataframe")
+            info = x.design_info
+            self.__dict__["_design_info"] = info  # a per-process cache, not part of the value
+        return np.asarray(patsy.build_design_matrices([info], frame, NA_action="raise")[0], dtype=float)
 
     def fit(self, x: np.ndarray, y: np.ndarray):
         from .models import ModelFit
@@ -382,15 +400,16 @@ def least_squares_for(design: "SimulationDesign") -> Optional[LeastSquares]:
     model = design.model
     if model.family != "gaussian" or model.robust:
         return None
+    template = design.pool.assign(**{design.outcome: 0.0})
     try:
         import patsy
-        _, x = patsy.dmatrices(model.formula, design.pool.assign(**{design.outcome: 0.0}), return_type="dataframe")
+        _, x = patsy.dmatrices(model.formula, template, return_type="dataframe")
     except Exception:
         return None
     terms = tuple(x.columns)
     if terms != design.terms:  # patsy must name and order the terms exactly as the fitted model does
         return None
-    return LeastSquares(model.formula, design.outcome, terms, x.design_info, model.alpha)
+    return LeastSquares(model.formula, design.outcome, terms, template, model.alpha)
 
 
 @dataclass(frozen=True)
@@ -436,7 +455,7 @@ class MissingCategoryStrategy:
         prepared = indicator.prepare_missing_category(replicate.data, self.model, types, None,
                                                       self.indicator_for_continuous)
         y, x = patsy.dmatrices(prepared.formula, prepared.data, return_type="dataframe")
-        solver = LeastSquares(prepared.formula, self.fast.outcome, tuple(x.columns), x.design_info, self.fast.alpha)
+        solver = LeastSquares(prepared.formula, self.fast.outcome, tuple(x.columns), None, self.fast.alpha)
         fit = solver.fit(x.to_numpy(dtype=float), y.to_numpy(dtype=float).ravel())
         return fit.table(self.name)[list(ESTIMATE_FIELDS)]
 
