@@ -292,10 +292,14 @@ def missing_summary(study: Study, threshold: float, audit_variables: Optional[pd
     table = pd.DataFrame(rows)
     if audit_variables is not None and {"variable", "n_missing"} <= set(audit_variables.columns):
         audit = audit_variables.set_index("variable")
-        for column in ("n", "n_missing", "pct_missing", "over_threshold"):
+        for column in ("n", "n_missing", "pct_missing"):
             if column in audit.columns:
-                mapped = table["variable"].map(audit[column])
+                # a rerun on a record whose tables are already suppressed holds text like "<5": keep our own count
+                mapped = pd.to_numeric(table["variable"].map(audit[column]), errors="coerce")
                 table[column] = mapped.where(mapped.notna(), table[column])
+        if "over_threshold" in audit.columns:
+            mapped = table["variable"].map(audit["over_threshold"].astype(str).str.lower().eq("true"))
+            table["over_threshold"] = mapped.where(mapped.notna(), table["over_threshold"]).astype(bool)
     flagged = tuple(table.loc[table["over_threshold"].astype(bool), "variable"])
     return MissingSummary(table=table, threshold=threshold, over_threshold=flagged)
 
@@ -335,6 +339,17 @@ def _fmt(value: object, digits: int = 2) -> str:
     return f"{number:.{digits}f}"
 
 
+def _count(value: object, min_cell: int = 0) -> str:
+    """A count as text, shown as '<min_cell' when it is small enough to identify people (1..min_cell-1)."""
+    try:
+        number = float(value)  # type: ignore[arg-type]
+    except (TypeError, ValueError):
+        return str(value)
+    if min_cell > 1 and 1 <= number < min_cell:
+        return f"<{min_cell}"
+    return _fmt(number)
+
+
 def _fmt_p(p: object) -> str:
     try:
         value = float(p)  # type: ignore[arg-type]
@@ -360,7 +375,7 @@ def effect_phrase(row: Mapping[str, object], alpha: float) -> str:
 
 
 def build_checklist(params: Params, flow: ParticipantFlow, missing: MissingSummary,
-                    tables: Mapping[str, Optional[pd.DataFrame]], terms: Sequence[str]) -> Checklist:
+                    tables: Mapping[str, Optional[pd.DataFrame]], terms: Sequence[str], min_cell: int = 0) -> Checklist:
     """The missing-data reporting checklist with where each item is answered and its value.
 
     Parameters
@@ -369,6 +384,7 @@ def build_checklist(params: Params, flow: ParticipantFlow, missing: MissingSumma
     flow, missing : from :func:`participant_flow` and :func:`missing_summary`.
     tables : the record's tables by name (None for a stage that did not run).
     terms : the exposure's model terms.
+    min_cell : counts from 1 to min_cell - 1 are shown as '<min_cell' (0: show every count).
 
     Returns
     -------
@@ -400,7 +416,7 @@ def build_checklist(params: Params, flow: ParticipantFlow, missing: MissingSumma
         + (f"; analysed: {analysed}" if analysed else "; no analysis stage has run")))
     # Losses with reasons (CONSORT 13b; STROBE 13b)
     if outcome is not None:
-        losses = [f"{step.split(': ', 1)[1]} {_fmt(n)}" for step, n in flow_all.items()
+        losses = [f"{step.split(': ', 1)[1]} {_count(n, min_cell)}" for step, n in flow_all.items()
                   if str(step).startswith("outcome_missing: ")]
         by_group = ""
         if flow.group is not None:
@@ -408,23 +424,25 @@ def build_checklist(params: Params, flow: ParticipantFlow, missing: MissingSumma
             observed = flow.table.set_index("step").loc["outcome_observed"]
             total = flow.table.set_index("step").loc["in_file"]
             by_group = " (outcome missing by " + flow.group + ": " + ", ".join(
-                f"{level} {_fmt(total[level] - observed[level])}" for level in levels) + ")"
+                f"{level} {_count(total[level] - observed[level], min_cell)}" for level in levels) + ")"
         items.append(ChecklistItem(
             "losses of the outcome with reasons, by group", "CONSORT 13b; STROBE 13b",
             "tables/participant_flow.csv",
-            f"{outcome} missing {_fmt(n_rows - flow_all['outcome_observed'])}: "
+            f"{outcome} missing {_count(n_rows - flow_all['outcome_observed'], min_cell)}: "
             + ("; ".join(losses) if losses else "none") + by_group))
     # Missing data per variable (STROBE 14b; Sterne et al. 2009)
     with_missing = missing.table[missing.table["n_missing"].astype(float) > 0]
     items.append(ChecklistItem(
         "number missing for each variable", "STROBE 14b; Sterne et al. 2009",
         "tables/audit_variables.csv" if tables.get("audit_variables") is not None else "summary table (this page)",
-        "; ".join(f"{r.variable} {_fmt(r.n_missing)} ({_fmt(r.pct_missing, 1)}%)" for r in with_missing.itertuples())
-        or "no missing values"))
+        "; ".join(f"{r.variable} {_count(r.n_missing, min_cell)}"
+                  + ("" if _count(r.n_missing, min_cell).startswith("<") else f" ({_fmt(r.pct_missing, 1)}%)")
+                  for r in with_missing.itertuples()) or "no missing values"))
     items.append(ChecklistItem(
         "reasons for missing values", "Sterne et al. 2009; CONSORT 13b",
         "summary table (this page), reasons column",
-        "; ".join(f"{r.variable}: {r.reasons}" for r in with_missing.itertuples() if r.reasons) or "none recorded"))
+        "; ".join(f"{r.variable}: {_suppress_reasons(r.reasons, min_cell)}" for r in with_missing.itertuples()
+                  if r.reasons) or "none recorded"))
     items.append(ChecklistItem(
         f"variables above the audit threshold ({_fmt(100 * missing.threshold, 0)}% missing)",
         "common practice, no source", "tables/audit_variables.csv, over_threshold",
@@ -478,6 +496,15 @@ def build_checklist(params: Params, flow: ParticipantFlow, missing: MissingSumma
         simulation_phrase(performance) if performance is not None else "simulation stage not run"))
     table = pd.DataFrame([item.__dict__ for item in items], columns=["item", "guideline", "answered_in", "value"])
     return Checklist(table=table)
+
+
+def _suppress_reasons(text: str, min_cell: int) -> str:
+    """'declined 3; blank 40' with small counts masked."""
+    parts = []
+    for part in str(text).split("; "):
+        reason, _, n = part.rpartition(" ")
+        parts.append(f"{reason} {_count(n, min_cell)}" if reason else part)
+    return "; ".join(parts)
 
 
 def flow_columns(missing: MissingSummary) -> List[str]:
@@ -566,7 +593,7 @@ def draft_methods(params: Params, flow: ParticipantFlow, missing: MissingSummary
 
 
 def draft_results(params: Params, flow: ParticipantFlow, missing: MissingSummary,
-                  tables: Mapping[str, Optional[pd.DataFrame]], terms: Sequence[str]) -> str:
+                  tables: Mapping[str, Optional[pd.DataFrame]], terms: Sequence[str], min_cell: int = 0) -> str:
     """A results paragraph on missing data and the exposure effect, with this run's numbers."""
     alpha = params.analysis.alpha
     sentences = [f"Of {_fmt(flow.n_rows)} participants, {_fmt(flow.n_complete)} "
@@ -576,7 +603,9 @@ def draft_results(params: Params, flow: ParticipantFlow, missing: MissingSummary
         "n_missing", ascending=False, key=lambda s: s.astype(float))
     if len(with_missing):
         sentences.append("Values were missing for " + "; ".join(
-            f"{r.variable} {_fmt(r.n_missing)} ({_fmt(r.pct_missing, 1)}%)" for r in with_missing.itertuples()) + ".")
+            f"{r.variable} {_count(r.n_missing, min_cell)}"
+            + ("" if _count(r.n_missing, min_cell).startswith("<") else f" ({_fmt(r.pct_missing, 1)}%)")
+            for r in with_missing.itertuples()) + ".")
     sentences.append(f"{'No variable' if not missing.over_threshold else ', '.join(missing.over_threshold)} "
                      f"{'was' if len(missing.over_threshold) <= 1 else 'were'} missing for more than "
                      f"{_fmt(100 * missing.threshold, 0)}% of participants.")
@@ -637,7 +666,7 @@ STAGE_OF_TABLE = {"audit_variables": "audit", "mcar_test": "mechanism", "estimat
 
 
 def summarise(params: Params, study: Study, tables: Mapping[str, Optional[pd.DataFrame]],
-              terms: Optional[Sequence[str]] = None) -> ReportSummary:
+              terms: Optional[Sequence[str]] = None, min_cell: Optional[int] = None) -> ReportSummary:
     """Build the summary page from the study and the record's tables.
 
     Parameters
@@ -647,6 +676,8 @@ def summarise(params: Params, study: Study, tables: Mapping[str, Optional[pd.Dat
     tables : the record's tables by name, None for a stage that did not run.
     terms : the exposure's model terms; by default taken from ``estimates.csv`` with
         :func:`gapbook.models.exposure_terms`.
+    min_cell : mask counts below it in the text; default ``report.min_cell`` when
+        ``report.suppress_small`` is true, else 0 (no masking).
 
     Returns
     -------
@@ -659,12 +690,14 @@ def summarise(params: Params, study: Study, tables: Mapping[str, Optional[pd.Dat
         from .models import exposure_terms
         terms = exposure_terms(list(dict.fromkeys(estimates["term"])), params.analysis.exposure) \
             if estimates is not None and len(estimates) else []
+    if min_cell is None:
+        min_cell = params.report.min_cell if params.report.suppress_small else 0
     group = flow_group(params, study)
     flow = participant_flow(study, params.analysis.formula, group, estimates)
     missing = missing_summary(study, params.audit.threshold, tables.get("audit_variables"))
-    checklist = build_checklist(params, flow, missing, tables, terms)
+    checklist = build_checklist(params, flow, missing, tables, terms, min_cell)
     not_run = tuple(dict.fromkeys(stage for name, stage in STAGE_OF_TABLE.items() if tables.get(name) is None))
     return ReportSummary(flow=flow, missing=missing, checklist=checklist,
                          methods_text=draft_methods(params, flow, missing, tables),
-                         results_text=draft_results(params, flow, missing, tables, terms),
+                         results_text=draft_results(params, flow, missing, tables, terms, min_cell),
                          cautions=CAUTIONS, not_run=not_run)
