@@ -1,0 +1,105 @@
+"""Tests of the summary page: flow, missing data per variable, checklist, drafted text, small counts."""
+from __future__ import annotations
+
+import re
+
+import numpy as np
+import pandas as pd
+import pytest
+import statsmodels.formula.api as smf
+
+from gapbook import report
+from gapbook.audit import audit_study
+from gapbook.cases import complete_case_analysis
+from gapbook.demo import demo_csv_path, demo_params
+from gapbook.indicator import missing_category_analysis
+from gapbook.intake import load_study
+from gapbook.models import analysis_model
+
+
+@pytest.fixture(scope="module")
+def demo():
+    params = demo_params()
+    study = load_study(params)
+    model = analysis_model(params)
+    audit = audit_study(study, params.audit.threshold, params.audit.by)
+    cc = complete_case_analysis(study.data, model, study.reasons, study.not_applicable)
+    mc = missing_category_analysis(study.data, model, study.types, study.missing, study.reasons,
+                                   study.not_applicable, indicator_for_continuous=True)
+    estimates = pd.concat([cc.estimates, mc.estimates], ignore_index=True)
+    tables = {name: None for name in report.REPORT_TABLES}
+    tables.update(audit_variables=audit.variables, audit_patterns=audit.patterns, estimates=estimates)
+    return params, study, tables, report.summarise(params, study, tables)
+
+
+def test_summary_names_every_checklist_item(demo):
+    params, study, tables, summary = demo
+    text = summary.markdown("demo")
+    for item in summary.checklist.items:
+        assert item in text
+    # Stages that did not run are named, not crashed on.
+    assert "mechanism stage not run" in text and "sensitivity stage not run" in text
+    for caution in report.CAUTIONS:
+        assert caution in text
+
+
+def test_flow_numbers_match_the_file_and_statsmodels(demo):
+    params, study, tables, summary = demo
+    flow = summary.flow.table.set_index("step")
+    raw = pd.read_csv(demo_csv_path(), dtype=str, keep_default_na=False)  # pandas reading the shipped file
+    assert flow.loc["in_file", "all"] == len(raw)
+    # Reference library: statsmodels drops every row with a missing model variable.
+    fitted = smf.ols(params.analysis.formula, data=study.data).fit()
+    assert flow.loc["complete_for_model", "all"] == fitted.nobs
+    assert flow.loc["analysed: complete_case", "all"] == fitted.nobs
+    # By arm: the groups add up to the total, and match a pandas cross-tabulation of the raw markers.
+    assert flow.loc["in_file", ["control", "sms"]].sum() == len(raw)
+    lost = raw["hba1c_12m"].str.strip().isin(["-9", "na", "NA", ""])
+    by_arm = pd.crosstab(raw["arm"], lost)[True]
+    outcome_missing = flow.loc["in_file", ["control", "sms"]] - flow.loc["outcome_observed", ["control", "sms"]]
+    assert outcome_missing.to_dict() == {"control": by_arm["control"], "sms": by_arm["sms"]}
+
+
+def test_checklist_numbers_match_the_tables(demo):
+    params, study, tables, summary = demo
+    checklist = summary.checklist.table.set_index("item")
+    per_variable = checklist.loc["number missing for each variable", "value"]
+    audit = tables["audit_variables"].set_index("variable")
+    for variable, row in audit[audit["n_missing"] > 0].iterrows():
+        assert f"{variable} {int(row['n_missing'])} ({row['pct_missing']:.1f}%)" in per_variable
+        assert int(row["n_missing"]) == int(study.missing[variable].sum())  # pandas count of the missing cells
+    flow_value = checklist.loc["participants at each step and analysed under each strategy", "value"]
+    for strategy, n_used in tables["estimates"].groupby("strategy")["n_used"].first().items():
+        assert f"{strategy} {int(n_used):,}" in flow_value
+    effects = checklist.loc["results of complete-case and imputed analyses side by side", "value"]
+    arm = tables["estimates"][tables["estimates"]["term"] == "arm[T.sms]"]
+    for estimate in arm["estimate"]:
+        assert f"{estimate:.2f}" in effects
+    patterns = checklist.loc["missingness patterns", "value"]
+    assert patterns.startswith(f"{len(tables['audit_patterns'])} patterns")
+    # The results paragraph carries the same complete-case count as the flow.
+    assert f"{summary.flow.n_complete:,} (" in summary.results_text
+
+
+def test_small_counts_are_masked_and_zero_and_large_counts_kept():
+    # Threshold rule of statistical disclosure control (common practice, no source): 1..min_cell-1 hidden.
+    frame = pd.DataFrame({"variable": list("abcd"), "n": [100, 100, 100, 100], "n_missing": [0, 1, 4, 5],
+                          "pct_missing": [0.0, 1.0, 4.0, 5.0]})
+    masked = report.suppress_small_counts(frame, 5, ["n", "n_missing"], linked={"n_missing": "pct_missing"})
+    assert masked.n_masked == 2
+    assert list(masked.table["n_missing"]) == [0, "<5", "<5", 5]
+    assert list(masked.table["pct_missing"]) == [0.0, "suppressed", "suppressed", 5.0]
+    assert list(masked.table["n"]) == [100] * 4
+    assert report.suppress_small_counts(frame, 1).n_masked == 0
+
+
+def test_record_tables_and_text_are_suppressed_when_asked(demo):
+    params, study, tables, _ = demo
+    suppressed = report.suppress_record_tables({"audit_variables": tables["audit_variables"]}, 5)
+    table = suppressed["audit_variables"].table.set_index("variable")
+    assert table.loc["age", "n_missing"] == "<5"        # 4 missing ages in the demo
+    assert table.loc["hba1c_12m", "n_missing"] == 153
+    summary = report.summarise(params, study, tables, min_cell=5)
+    value = summary.checklist.table.set_index("item").loc["number missing for each variable", "value"]
+    assert "age <5" in value and "age 4" not in value
+    assert not re.search(r"\bage 4\b", summary.results_text)
