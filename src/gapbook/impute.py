@@ -52,6 +52,8 @@ CATEGORICAL = ("binary", "nominal", "ordinal")
 DELTA_METHODS = ("pmm", "normal", "logistic")
 CHUNK_ROWS = 1 << 15          # rows per block when gathering rows of the design matrix
 NEWTON_MAX_STEPS = 30
+NEWTON_SD_FRACTION = 0.02     # stop when every Newton step is below this fraction of its posterior SD
+WARMUP_ROWS = 50_000          # a cold start first converges on an evenly spaced subset of this many rows
 NEWTON_TOLERANCE = 1e-6        # on the standardised scale; far below any posterior SD
 PASSIVE_FUNCTIONS = {"log": np.log, "exp": np.exp, "sqrt": np.sqrt, "abs": np.abs, "log10": np.log10,
                      "log2": np.log2, "minimum": np.minimum, "maximum": np.maximum, "np": np}
@@ -426,7 +428,9 @@ def _augmentation(gram_observed: np.ndarray, predictor_columns: np.ndarray, n_fi
     """Pseudo-records that keep logistic-type fits finite under perfect prediction.
 
     For each predictor, two records at its mean plus and minus one SD (others at their
-    means), one per outcome category, with total weight (p + 1) spread evenly.
+    means), one per outcome category, with total weight (p + 1) spread evenly. Means and
+    SDs are those of the current completed data (all rows), read off the kept
+    cross-product matrix, so no extra pass over the rows is needed.
 
     References
     ----------
@@ -460,6 +464,13 @@ def _multinomial_terms(x: np.ndarray, y: np.ndarray, w: np.ndarray, beta: np.nda
     """Log-likelihood, gradient and information of a baseline-category logit on one block of rows."""
     q = x.shape[1]
     k1 = n_classes - 1
+    if n_classes == 2:
+        eta = x @ beta
+        prob = expit(eta)
+        loglik = float(np.sum(w * (np.where(y == 1, eta, 0.0) - np.logaddexp(0.0, eta))))
+        grad = x.T @ (w * ((y == 1) - prob))
+        scaled = x * np.sqrt(w * prob * (1 - prob))[:, None]
+        return loglik, grad, scaled.T @ scaled             # same operand twice: a symmetric rank-k update
     eta = x @ beta.reshape(k1, q).T                       # (rows, k1)
     top = np.maximum(eta.max(axis=1, keepdims=True), 0.0)
     expo = np.exp(eta - top)
@@ -527,9 +538,18 @@ def _ordinal_terms(x: np.ndarray, y: np.ndarray, w: np.ndarray, params: np.ndarr
 
 
 def _newton(terms, design: np.ndarray, rows: np.ndarray, y: np.ndarray, columns: np.ndarray,
-            augment: Tuple[np.ndarray, np.ndarray, np.ndarray], start: np.ndarray, n_classes: int,
+            augment: Tuple[np.ndarray, np.ndarray, np.ndarray], start: Optional[np.ndarray], n_classes: int,
             ordered: bool) -> Tuple[np.ndarray, np.ndarray]:
-    """Maximise a concave log-likelihood by Newton steps with step halving; returns (estimate, information)."""
+    """Maximise a concave log-likelihood by Newton steps with step halving; returns (estimate, information).
+
+    ``start`` None means a cold start: with many rows, the fit first converges on an evenly
+    spaced subset of rows, so the passes over all rows start near the optimum.
+    """
+    if start is None:
+        start = _cold_start(n_classes, len(columns), y, ordered)
+        if len(rows) > 4 * WARMUP_ROWS:
+            every = len(rows) // WARMUP_ROWS
+            start, _ = _newton(terms, design, rows[::every], y[::every], columns, augment, start, n_classes, ordered)
     aug_x, aug_y, aug_w = augment
     if ordered:
         aug_x = aug_x[:, 1:]
@@ -538,7 +558,7 @@ def _newton(terms, design: np.ndarray, rows: np.ndarray, y: np.ndarray, columns:
         loglik, grad, info = terms(aug_x, aug_y, aug_w, params, n_classes)
         for begin in range(0, len(rows), CHUNK_ROWS):
             idx = rows[begin:begin + CHUNK_ROWS]
-            block = design[idx][:, columns]
+            block = design[idx[:, None], columns]
             part = terms(block, y[begin:begin + CHUNK_ROWS], np.ones(len(idx)), params, n_classes)
             loglik += part[0]
             grad = grad + part[1]
@@ -551,7 +571,11 @@ def _newton(terms, design: np.ndarray, rows: np.ndarray, y: np.ndarray, columns:
         lower = _cholesky(info)
         step = linalg.cho_solve((lower, True), grad)
         biggest = float(np.max(np.abs(step))) if step.size else 0.0
-        if biggest < NEWTON_TOLERANCE:         # converged: the information at params is good enough
+        # Stop when the step is tiny against the posterior SD: what remains after it (quadratic
+        # convergence) cannot matter for a draw from N(estimate, information^-1). Warm-started
+        # visits usually stop here after one pass over the rows.
+        posterior_sd = np.sqrt(np.diag(linalg.cho_solve((lower, True), np.eye(len(step)))))
+        if biggest < NEWTON_TOLERANCE or float(np.max(np.abs(step) / posterior_sd)) < NEWTON_SD_FRACTION:
             params = params + step
             break
         if biggest > 5.0:                      # keep a wild first step from overshooting
@@ -569,6 +593,16 @@ def _newton(terms, design: np.ndarray, rows: np.ndarray, y: np.ndarray, columns:
             break
         params, (loglik, grad, info) = trial, new
     return params, info
+
+
+def _cold_start(n_classes: int, n_columns: int, y: np.ndarray, ordered: bool) -> np.ndarray:
+    """Zero slopes; for the ordinal model, cut points at the logits of the cumulative shares."""
+    if not ordered:
+        return np.zeros((n_classes - 1) * n_columns)
+    shares = np.bincount(y, minlength=n_classes).cumsum()[:-1] / max(len(y), 1)
+    shares = np.clip(shares, 1e-3, 1 - 1e-3)
+    theta = np.log(shares / (1 - shares)) + np.arange(n_classes - 1) * 1e-6   # strictly increasing
+    return np.concatenate([theta, np.zeros(n_columns)])
 
 
 # ---------------------------------------------------------------------------
@@ -662,14 +696,13 @@ class _Chain:
     # -- one visit
     def visit(self, name: str) -> None:
         variable = self.problem.variables[name]
-        gram_other = _gram_rows(self.design, variable.other_rows)
-        gram_observed = self.gram - gram_other
         if variable.method in ("pmm", "normal"):
+            gram_observed = self.gram - _gram_rows(self.design, variable.other_rows)
             self._visit_linear(variable, gram_observed)
         elif variable.method in ("logistic", "multinomial"):
-            self._visit_multinomial(variable, gram_observed)
+            self._visit_multinomial(variable)
         else:
-            self._visit_ordinal(variable, gram_observed)
+            self._visit_ordinal(variable)
         self._refresh_gram(variable)
         for dependent in self.dependents[name]:
             self._update_passive(self.problem.variables[dependent])
@@ -678,26 +711,29 @@ class _Chain:
         cols = variable.predictor_columns
         y_col = variable.columns[0]
         beta_hat, beta_draw, sigma = _linear_draw(gram_observed, y_col, cols, len(variable.fit_rows), self.rng)
-        predicted_missing = _predict_rows(self.design, variable.impute_rows, cols, beta_draw)
         if variable.method == "normal":
+            predicted_missing = _predict_rows(self.design, variable.impute_rows, cols, beta_draw)
             values = predicted_missing + sigma * self.rng.standard_normal(len(predicted_missing))
         else:
-            full = np.zeros(self.design.shape[1])
-            full[cols] = beta_hat
-            predicted_observed = (self.design @ full)[variable.fit_rows]
+            # one pass over the whole design (no row gathering) gives both sets of predictions
+            coef = np.zeros((self.design.shape[1], 2))
+            coef[cols, 0], coef[cols, 1] = beta_hat, beta_draw
+            predicted = self.design @ coef
+            predicted_observed = predicted[variable.fit_rows, 0]
+            predicted_missing = predicted[variable.impute_rows, 1]
             donor = _pmm_match(predicted_observed, predicted_missing, self.problem.donors, self.rng)
             values = self.design[variable.fit_rows[donor], y_col]
         self._set_numeric(variable, values + self._shift(variable.name))
 
-    def _visit_multinomial(self, variable: _Variable, gram_observed: np.ndarray) -> None:
+    def _visit_multinomial(self, variable: _Variable) -> None:
         cols = variable.predictor_columns
         n_classes = len(variable.used_levels)
         if n_classes < 2:
             self._set_codes(variable, np.zeros(len(variable.impute_rows), dtype=np.int64))
             return
         y = self.codes[variable.name][variable.fit_rows]
-        augment = _augmentation(gram_observed, cols, len(variable.fit_rows), n_classes)
-        start = self.warm.get(variable.name, np.zeros((n_classes - 1) * len(cols)))
+        augment = _augmentation(self.gram, cols, self.design.shape[0], n_classes)
+        start = self.warm.get(variable.name)
         estimate, info = _newton(_multinomial_terms, self.design, variable.fit_rows, y, cols, augment, start,
                                  n_classes, ordered=False)
         self.warm[variable.name] = estimate
@@ -715,21 +751,15 @@ class _Chain:
         u = self.rng.random(len(eta))
         self._set_codes(variable, (u[:, None] > cumulative).sum(axis=1))
 
-    def _visit_ordinal(self, variable: _Variable, gram_observed: np.ndarray) -> None:
+    def _visit_ordinal(self, variable: _Variable) -> None:
         cols = variable.predictor_columns
         n_classes = len(variable.used_levels)
         if n_classes < 2:
             self._set_codes(variable, np.zeros(len(variable.impute_rows), dtype=np.int64))
             return
         y = self.codes[variable.name][variable.fit_rows]
-        augment = _augmentation(gram_observed, cols, len(variable.fit_rows), n_classes)
+        augment = _augmentation(self.gram, cols, self.design.shape[0], n_classes)
         start = self.warm.get(variable.name)
-        if start is None:
-            shares = np.bincount(y, minlength=n_classes).cumsum()[:-1] / len(y)
-            shares = np.clip(shares, 1e-3, 1 - 1e-3)
-            theta = np.log(shares / (1 - shares))
-            theta = theta + np.arange(len(theta)) * 1e-6   # strictly increasing
-            start = np.concatenate([theta, np.zeros(len(cols) - 1)])
         estimate, info = _newton(_ordinal_terms, self.design, variable.fit_rows, y, cols[1:], augment, start,
                                  n_classes, ordered=True)
         self.warm[variable.name] = estimate
