@@ -61,3 +61,14 @@ def test_shipped_params_files_validate():
     root = Path(__file__).resolve().parents[1]
     for name in ("demo.yaml", "template.yaml"):
         load_params(root / "params" / name)
+
+
+def test_repository_demo_params_match_the_packaged_ones():
+    from pathlib import Path
+
+    from gapbook.demo import demo_params
+
+    root = Path(__file__).resolve().parents[1]
+    shown, packaged = load_params(root / "params" / "demo.yaml"), demo_params()
+    assert shown.data_path == packaged.data_path
+    assert shown.model_dump(exclude={"source", "data"}) == packaged.model_dump(exclude={"source", "data"})
