@@ -179,6 +179,7 @@ def write_index(folder: Path, title: str, pages: Sequence[Tuple[str, str, float]
     tables = "\n".join(f'<li><a href="../tables/{html.escape(n)}">{html.escape(n)}</a></li>'
                        for n in manifest.get("tables", {}))
     cautions = "\n".join(f"<li>{html.escape(c)}</li>" for c in CAUTIONS)
+    summary = _summary_html(folder)
     body = f"""<!DOCTYPE html>
 <html lang="en"><head><meta charset="utf-8"><title>{html.escape(title)}</title>
 <style>body{{font-family:system-ui,sans-serif;max-width:52rem;margin:2rem auto;line-height:1.5;color:#222}}
@@ -190,6 +191,7 @@ code{{background:#f3f3f3;padding:0 .2em}}</style></head>
 (sha256 <code>{manifest['data']['sha256'][:16]}…</code>). Run {html.escape(manifest['started'])} to {html.escape(manifest['ended'])},
 gapbook {html.escape(manifest['gapbook_version'])}, Python {html.escape(manifest['python'])}.</p>
 <div class="caution"><b>Cautions</b><ul>{cautions}</ul></div>
+{summary}
 <h2>Stages</h2><ol>{items}</ol>
 <h2>Tables</h2><ul>{tables}</ul>
 <p class="t">Re-run and check this record with <code>gapbook verify &lt;this folder&gt;</code>.</p>
@@ -198,6 +200,19 @@ gapbook {html.escape(manifest['gapbook_version'])}, Python {html.escape(manifest
     path = folder / "report" / "index.html"
     path.write_text(body, encoding="utf-8")
     return path
+
+
+def _summary_html(folder: Path) -> str:
+    """The summary stage's drafted text (``tables/report_text.md``) as the front page's body, when it ran."""
+    text_path = folder / "tables" / "report_text.md"
+    if not text_path.is_file():
+        return ""
+    import mistune  # nbconvert's own markdown renderer
+
+    text = text_path.read_text(encoding="utf-8")
+    # The page has its own title; drop the summary's first-level heading.
+    text = re.sub(r"\A# [^\n]*\n", "", text)
+    return f'<section class="summary">{mistune.html(text)}</section>'
 
 
 # ---------------------------------------------------------------------------
