@@ -939,6 +939,15 @@ def impute_chained(data: pd.DataFrame, m: int = 20, iterations: int = 10, seed: 
     impute_mask : bool frame of the cells to impute (default ``data.isna()``); missing cells
         outside it stay missing (see the module docstring for how they act as predictors).
     donors : k, the number of nearest observed predictions a pmm donor is drawn from.
+        A limitation of predictive mean matching, not of this engine: it only ever imputes
+        observed values, so where many missing values sit in a tail of the predictors that
+        has few observed donors it pulls them towards the middle. In our simulation (normal
+        outcome, 40 % missing, missingness odds x4.5 per SD of a complete covariate, 1,000
+        replicates) pmm attenuated the regression slope by 7 % (coverage 81 %), exactly as
+        the published algorithm written independently in the tests did; 'normal' was
+        unbiased with 95 % coverage. More donors made it worse (10 donors: 9 %), one donor
+        halved the bias but not the undercoverage (79 %). With a roughly normal variable and
+        many missing values concentrated in a tail, prefer ``methods={col: "normal"}``.
     exclude_predictors : {column: [columns not to use as its predictors]}.
     progress : show a progress bar over chains.
 
