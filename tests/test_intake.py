@@ -39,6 +39,9 @@ def csv_file(tmp_path):
     return path
 
 
+MARKERS = {"markers": ["", "NA", "?", "unknown"], "reasons": {-9: "lost to follow-up", -7: "declined"}}
+
+
 def study_of(path, **extra):
     params = make_params(
         path,
@@ -83,7 +86,7 @@ def test_range_flags_or_sets_missing(csv_file):
     assert flagged.data["weight"].notna().all()
     params_missing = {"out_of_range": "missing"}
     study = load_study(make_params(csv_file, variables={"weight": {"type": "continuous", "range": [30, 250],
-                                                                    **params_missing}}))
+                                                                    **params_missing}}, missing=MARKERS))
     assert study.reasons["weight"].astype(object).tolist()[1] == IMPLAUSIBLE
     assert study.data["weight"].isna().sum() == 2
 
@@ -167,10 +170,22 @@ def test_duplicate_ids_empty_file_and_unknown_columns(tmp_path):
 
 def test_bad_applies_if_names_the_key(csv_file):
     with pytest.raises(InputError, match=r"variables\.dose\.applies_if"):
-        load_study(make_params(csv_file, variables={"dose": {"type": "continuous", "applies_if": "treatd == 'yes'"}}))
+        load_study(make_params(csv_file, variables={"dose": {"type": "continuous", "applies_if": "treatd == 'yes'"}},
+                               missing=MARKERS))
 
 
 def test_read_raw_keeps_cells_as_written(csv_file):
     raw = read_raw(csv_file)
     assert raw["age"].tolist()[3] == " na "
     assert raw["age"].tolist()[6] == "-9.0"
+
+
+def test_undeclared_numbers_with_stray_text_are_refused(tmp_path):
+    path = tmp_path / "stray.csv"
+    pd.DataFrame({"pid": range(5), "sbp": ["120", "135", "n.d.", "128", "141"],
+                  "site": ["north", "south", "2", "north", "east"]}).to_csv(path, index=False)
+    with pytest.raises(InputError, match="column 'sbp' holds numbers and the text 'n.d.' at data rows 3"):
+        load_study(make_params(path))
+    # declared as a marker, the same column reads as a number; a mostly-text column stays nominal
+    study = load_study(make_params(path, missing={"markers": ["n.d."]}))
+    assert study.types["sbp"] == "continuous" and study.types["site"] == "nominal"

@@ -357,6 +357,8 @@ def _normalise_column(raw: pd.Series, column: str, spec: VariableSpec, markers: 
         raise InputError(f"{label}: column '{column}' is declared {declared_type} but holds the text "
                          f"'{uniques[bad]}' at {_rows_note(rows, ids)}; declare it as a missing marker "
                          f"(missing.markers or missing.columns.{column}.markers) or correct the data")
+    if declared_type is None and not all_numeric:
+        _refuse_stray_text(codes, kept, numbers, uniques, column, ids, label)
 
     reason_codes = np.where(codes < 0, len(uniques), codes)  # the extra last entry stands for NA cells
     reason_labels = sorted({r for r in unique_reason if r is not None} | ({na_reason} if (codes < 0).any() else set()))
@@ -417,6 +419,25 @@ def _normalise_column(raw: pd.Series, column: str, spec: VariableSpec, markers: 
     info = VariableInfo(name=column, type=vtype, declared=declared, reason=why, levels=levels, label=spec.label,
                         range=spec.range, numeric_storage=numeric_storage)
     return value, pd.Series(reason_cat, index=raw.index, name=column), info
+
+
+def _refuse_stray_text(codes: np.ndarray, kept: List[int], numbers: Dict[int, Optional[float]], uniques: List[Any],
+                       column: str, ids: pd.Series, label: str) -> None:
+    """An undeclared column that is mostly numbers but holds some text is an undeclared marker, not a category.
+
+    Treating such a column as nominal would silently turn a measurement into hundreds of
+    levels; the user must say whether the text is a missing marker (common practice, no source).
+    """
+    counts = np.bincount(codes[codes >= 0], minlength=len(uniques))
+    numeric_cells = sum(int(counts[i]) for i in kept if numbers[i] is not None)
+    text = [i for i in kept if numbers[i] is None]
+    text_cells = sum(int(counts[i]) for i in text)
+    if numeric_cells > text_cells:
+        worst = max(text, key=lambda i: counts[i])
+        rows = np.flatnonzero(codes == worst)
+        raise InputError(f"{label}: column '{column}' holds numbers and the text '{uniques[worst]}' at "
+                         f"{_rows_note(rows, ids)}; declare the text a missing marker (missing.markers or "
+                         f"missing.columns.{column}.markers) or declare variables.{column}.type")
 
 
 def _check_levels(value: pd.Series, allowed: set, column: str, ids: pd.Series, label: str) -> None:
