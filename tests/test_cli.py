@@ -94,7 +94,8 @@ def test_new_scaffolds_a_study_folder(tmp_path):
 def test_run_audit_then_verify_and_tamper(study):
     params, data = study / "params.yaml", study / "data" / "trial.csv"
     before = digest(data)
-    result = gapbook("run", params, "--out", study / "records", "--only", "audit")
+    # a relative --out, as a user types it, resolved against the working directory
+    result = gapbook("run", "params.yaml", "--out", "records", "--only", "audit", cwd=study)
     assert result.returncode == 0, result.stderr
     lines = result.stdout.strip().splitlines()
     record = Path(lines[-1])
@@ -137,3 +138,17 @@ def test_run_audit_then_verify_and_tamper(study):
     data.write_text(data.read_text() + "")  # unchanged bytes: still verifiable
     data.write_text(data.read_text().replace("P1200", "P9999"))
     assert_user_error(gapbook("verify", record), "data file changed")
+
+
+def test_without_a_model_the_missing_data_stages_still_run(tmp_path):
+    data = tmp_path / "small.csv"
+    pd.DataFrame({"id": range(1, 41), "x": [1.5, None] * 20, "g": ["a", "b", "?", "a"] * 10}).to_csv(data, index=False)
+    params = tmp_path / "p.yaml"
+    params.write_text("data: {path: small.csv, id: id}\nmissing: {markers: ['', '?']}\n")
+    result = gapbook("run", params, "--out", tmp_path / "out")
+    assert result.returncode == 0, result.stderr
+    assert "skipped: cases" in result.stdout
+    record = Path(result.stdout.strip().splitlines()[-1])
+    assert (record / "tables" / "audit_variables.csv").is_file() and (record / "tables" / "mcar_test.csv").is_file()
+    assert not (record / "tables" / "estimates.csv").exists()
+    assert_user_error(gapbook("run", params, "--out", tmp_path / "out", "--only", "impute"), "needs analysis.formula")

@@ -72,6 +72,8 @@ class RecordFolder:
 
     @classmethod
     def create(cls, out_root: Path, name: str) -> "RecordFolder":
+        # Absolute, because notebooks run with the record as their working directory.
+        out_root = Path(out_root).expanduser().resolve()
         try:
             out_root.mkdir(parents=True, exist_ok=True)
         except OSError as exc:

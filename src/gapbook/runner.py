@@ -42,6 +42,7 @@ STAGE_TITLES: Dict[str, str] = {
     "simulate": "Bias simulation for a study like this one",
     "report": "Summary for reporting",
 }
+MODEL_STAGES = frozenset({"cases", "indicator", "impute", "sensitivity", "simulate", "report"})
 KERNEL_NAME = "gapbook-python"
 
 Log = Callable[[str], None]
@@ -60,12 +61,23 @@ def available_stages() -> List[str]:
     return [name for name, file in STAGES.items() if (folder / file).is_file()]
 
 
-def resolve_stages(only: Optional[Sequence[str]]) -> List[str]:
-    """The stages to run, in pipeline order; unknown names exit 2 with a suggestion."""
+def resolve_stages(only: Optional[Sequence[str]], params: Optional[Params] = None,
+                   log: Optional[Log] = None) -> List[str]:
+    """The stages to run, in pipeline order; unknown names exit 2 with a suggestion.
+
+    Without ``--only``, stages that need the analysis model are skipped (and said so) when
+    the params have no ``analysis.formula``: describing the missing data needs no model.
+    """
     available = available_stages()
     if not available:
         raise InputError(f"{notebooks_dir()}: no stage notebooks found; set GAPBOOK_NOTEBOOKS to the notebooks folder")
+    no_model = params is not None and not params.analysis.formula
     if not only:
+        if no_model:
+            skipped = [s for s in available if s in MODEL_STAGES]
+            if skipped and log is not None:
+                log(f"skipped: {', '.join(skipped)} (they need analysis.formula in {params.label})")
+            return [s for s in available if s not in MODEL_STAGES]
         return available
     wanted = []
     for name in only:
@@ -75,6 +87,9 @@ def resolve_stages(only: Optional[Sequence[str]]) -> List[str]:
                              f"(stages: {', '.join(STAGES)})")
         if name not in available:
             raise InputError(f"--only: stage '{name}' has no notebook in {notebooks_dir()}")
+        if no_model and name in MODEL_STAGES:
+            raise InputError(f"{params.label}: stage '{name}' needs analysis.formula; add it to the analysis section "
+                             "(e.g. formula: \"outcome ~ exposure + covariates\")")
         wanted.append(name)
     return [s for s in STAGES if s in wanted]
 
@@ -135,7 +150,7 @@ def run_study(params: Params, out_root: Path, only: Optional[Sequence[str]] = No
     """
     from .intake import load_study
 
-    stages = resolve_stages(only)
+    stages = resolve_stages(only, params, log)
     study = load_study(params)  # fails fast, exit 2, on bad data
     started = datetime.now(timezone.utc)
     folder = rec.RecordFolder.create(out_root, name or rec.record_name(params.study.name, started))
