@@ -151,4 +151,8 @@ def test_without_a_model_the_missing_data_stages_still_run(tmp_path):
     record = Path(result.stdout.strip().splitlines()[-1])
     assert (record / "tables" / "audit_variables.csv").is_file() and (record / "tables" / "mcar_test.csv").is_file()
     assert not (record / "tables" / "estimates.csv").exists()
+    flow = pd.read_csv(record / "tables" / "participant_flow.csv").set_index("step")["all"]
+    assert flow["in_file"] == 40 and flow["complete_all_variables"] == 10  # x missing in odd rows, g '?' in 3rd of 4
+    assert "report" not in result.stdout.split("skipped:")[1].splitlines()[0]
+    assert (record / "tables" / "report_text.md").is_file()
     assert_user_error(gapbook("run", params, "--out", tmp_path / "out", "--only", "impute"), "needs analysis.formula")

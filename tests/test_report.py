@@ -103,3 +103,34 @@ def test_record_tables_and_text_are_suppressed_when_asked(demo):
     value = summary.checklist.table.set_index("item").loc["number missing for each variable", "value"]
     assert "age <5" in value and "age 4" not in value
     assert not re.search(r"\bage 4\b", summary.results_text)
+
+
+def test_summary_without_an_analysis_model_reports_the_missing_data(tmp_path):
+    from palmerpenguins import load_penguins
+
+    from gapbook.params import Params
+
+    # palmerpenguins ships 344 penguins; sex is missing for 11 and the four body measures for 2
+    # (Horst, Hill & Gorman 2020, the package's documented counts)
+    penguins = load_penguins()
+    path = tmp_path / "penguins.csv"
+    penguins.to_csv(path, index=False)
+    params = Params.from_dict({"data": {"path": str(path)}})
+    study = load_study(params)
+    tables = {name: None for name in report.REPORT_TABLES}
+    tables["audit_variables"] = audit_study(study, params.audit.threshold, []).variables
+    summary = report.summarise(params, study, tables)
+    flow = summary.flow.table.set_index("step")["all"]
+    assert list(flow.index) == ["in_file", "complete_all_variables"]
+    assert flow["in_file"] == len(penguins) == 344
+    assert flow["complete_all_variables"] == len(penguins.dropna()) == 333  # pandas' own count of complete rows
+    missing = summary.missing.table.set_index("variable")["n_missing"]
+    assert missing["sex"] == penguins["sex"].isna().sum() == 11
+    assert missing["bill_length_mm"] == penguins["bill_length_mm"].isna().sum() == 2
+    items = " ".join(summary.checklist.items)
+    assert "number missing for each variable" in items and "reasons for missing values" in items
+    assert "imputation" not in items and "sensitivity" not in items  # items about a model do not apply
+    assert "analysis model" not in summary.methods_text and "analysis model" not in summary.results_text
+    assert "333" in summary.results_text and "344" in summary.results_text
+    assert summary.not_run == ("mechanism",)  # model stages are not reported as missing from the record
+    assert "Missing at random cannot be verified" in summary.markdown("penguins")

@@ -29,6 +29,10 @@ CAUTIONS: Tuple[str, ...] = (
     "studies) and local data-protection rules before sharing any table from this record.",
 )
 
+NO_MODEL_MAR_CAUTION = (
+    "Missing at random cannot be verified from the observed data: a test can give evidence against missing "
+    "completely at random, none can tell missing at random from missing not at random.")
+
 STRATEGY_LABELS = {
     "complete_case": "complete cases",
     "missing_category": "missing-category (indicator) analysis",
@@ -175,14 +179,16 @@ def flow_group(params: Params, study: Study) -> Optional[str]:
     return None
 
 
-def participant_flow(study: Study, formula: str, group: Optional[str] = None,
+def participant_flow(study: Study, formula: Optional[str], group: Optional[str] = None,
                      estimates: Optional[pd.DataFrame] = None) -> ParticipantFlow:
     """Count participants from the file to each analysis (CONSORT-style flow), by group when given.
 
     Parameters
     ----------
     study : the study after intake.
-    formula : the analysis formula (its variables define "complete data for the model").
+    formula : the analysis formula (its variables define "complete data for the model"), or None
+        when the params have no model: the flow is then rows in the file and rows with every
+        variable observed.
     group : a column to split the counts by (e.g. the trial arm), or None.
     estimates : ``estimates.csv``; its ``n_used`` per strategy gives the analysed counts.
         A strategy's counts by group are shown when the rows it used can be identified
@@ -197,10 +203,12 @@ def participant_flow(study: Study, formula: str, group: Optional[str] = None,
     Schulz KF, Altman DG, Moher D (2010). CONSORT 2010 statement. BMJ 340:c332 (participant flow).
     """
     data = study.data
-    outcome, used = check_formula(formula, list(data.columns))
-    model_columns = [outcome] + [c for c in used if c != outcome]
     missing = study.missing
-    observed_outcome = ~missing[outcome].to_numpy()
+    if formula:
+        outcome, used = check_formula(formula, list(data.columns))
+        model_columns = [outcome] + [c for c in used if c != outcome]
+    else:
+        outcome, model_columns = None, list(data.columns)
     complete = ~missing[model_columns].any(axis=1).to_numpy()
     everyone = np.ones(len(data), dtype=bool)
     levels: List[str] = []
@@ -221,10 +229,14 @@ def participant_flow(study: Study, formula: str, group: Optional[str] = None,
             row[level] = float((mask & (group_values == level).to_numpy()).sum())
         return row
 
-    rows = [
-        {"step": "in_file", "description": "rows in the data file", **counts(everyone)},
-        {"step": "outcome_observed", "description": f"outcome ({outcome}) observed", **counts(observed_outcome)},
-    ]
+    rows = [{"step": "in_file", "description": "rows in the data file", **counts(everyone)}]
+    if outcome is None:
+        rows.append({"step": "complete_all_variables", "description": "every variable observed", **counts(complete)})
+        table = pd.DataFrame(rows, columns=["step", "description", "all", *levels])
+        return ParticipantFlow(table=table, group=group, n_rows=int(everyone.sum()), n_complete=int(complete.sum()))
+    observed_outcome = ~missing[outcome].to_numpy()
+    rows.append({"step": "outcome_observed", "description": f"outcome ({outcome}) observed",
+                 **counts(observed_outcome)})
     reasons = study.reasons[outcome]
     for reason in [r for r in reasons.cat.categories if (reasons == r).any()]:
         rows.append({"step": f"outcome_missing: {reason}", "description": f"outcome missing: {reason}",
@@ -409,11 +421,17 @@ def build_checklist(params: Params, flow: ParticipantFlow, missing: MissingSumma
     flow_all = flow.table.set_index("step")["all"]
     analysed = "; ".join(f"{row['step'].split(': ', 1)[1]} {_fmt(row['all'])}"
                          for _, row in flow.table.iterrows() if str(row["step"]).startswith("analysed: "))
-    items.append(ChecklistItem(
-        "participants at each step and analysed under each strategy", "CONSORT 13a, 16; STROBE 13a",
-        "tables/participant_flow.csv",
-        f"in file {_fmt(n_rows)}; complete for the model {_fmt(flow.n_complete)}"
-        + (f"; analysed: {analysed}" if analysed else "; no analysis stage has run")))
+    if outcome is None:
+        items.append(ChecklistItem(
+            "participants in the file and with every variable observed", "CONSORT 13a; STROBE 13a",
+            "tables/participant_flow.csv",
+            f"in file {_fmt(n_rows)}; every variable observed {_fmt(flow.n_complete)} (no analysis model given)"))
+    else:
+        items.append(ChecklistItem(
+            "participants at each step and analysed under each strategy", "CONSORT 13a, 16; STROBE 13a",
+            "tables/participant_flow.csv",
+            f"in file {_fmt(n_rows)}; complete for the model {_fmt(flow.n_complete)}"
+            + (f"; analysed: {analysed}" if analysed else "; no analysis stage has run")))
     # Losses with reasons (CONSORT 13b; STROBE 13b)
     if outcome is not None:
         losses = [f"{step.split(': ', 1)[1]} {_count(n, min_cell)}" for step, n in flow_all.items()
@@ -462,6 +480,10 @@ def build_checklist(params: Params, flow: ParticipantFlow, missing: MissingSumma
     items.append(ChecklistItem(
         "comparison of participants with and without missing data; test of MCAR", "Sterne et al. 2009",
         "tables/mcar_test.csv, tables/mechanism_groups.csv, tables/mechanism_models.csv", mcar_value))
+    if outcome is None:
+        # without an analysis model the items on handling missing data in the analysis do not apply
+        table = pd.DataFrame([item.__dict__ for item in items], columns=["item", "guideline", "answered_in", "value"])
+        return Checklist(table=table)
     # Methods for handling missing data (STROBE 12c; Sterne et al. 2009)
     strategies = sorted(set(exposure["strategy"])) if len(exposure) else []
     items.append(ChecklistItem(
@@ -557,6 +579,8 @@ def draft_methods(params: Params, flow: ParticipantFlow, missing: MissingSummary
         sentences.append("Whether the data were missing completely at random was assessed with Little's test "
                          "(Little 1988), and participants with and without missing values were compared.")
     formula = params.analysis.formula
+    if not formula:
+        return " ".join(sentences)
     sentences.append(f"The analysis model was `{formula}` ({params.analysis.family} family"
                      + (", robust standard errors" if params.analysis.robust else "") + ").")
     if "multiple_imputation" in strategies:
@@ -596,9 +620,10 @@ def draft_results(params: Params, flow: ParticipantFlow, missing: MissingSummary
                   tables: Mapping[str, Optional[pd.DataFrame]], terms: Sequence[str], min_cell: int = 0) -> str:
     """A results paragraph on missing data and the exposure effect, with this run's numbers."""
     alpha = params.analysis.alpha
+    scope = "of the analysis model " if params.analysis.formula else ""
+    share = _fmt(100 * flow.n_complete / flow.n_rows, 1) if flow.n_rows else "n/a"
     sentences = [f"Of {_fmt(flow.n_rows)} participants, {_fmt(flow.n_complete)} "
-                 f"({_fmt(100 * flow.n_complete / flow.n_rows, 1)}%) had every variable of the analysis model "
-                 "observed."]
+                 f"({share}%) had every variable {scope}observed."]
     with_missing = missing.table[missing.table["n_missing"].astype(float) > 0].sort_values(
         "n_missing", ascending=False, key=lambda s: s.astype(float))
     if len(with_missing):
@@ -615,6 +640,8 @@ def draft_results(params: Params, flow: ParticipantFlow, missing: MissingSummary
         sentences.append(f"Little's test gave chi-square {_fmt(row['statistic'])} on {_fmt(row['df'])} degrees of "
                          f"freedom (p {_fmt_p(row['p_value'])}); a small p-value is evidence against missing "
                          "completely at random, a large one is not evidence for it.")
+    if not params.analysis.formula:
+        return " ".join(sentences)
     exposure = exposure_rows(tables.get("estimates"), terms)
     if len(exposure):
         parts = [f"{STRATEGY_LABELS.get(r['strategy'], r['strategy'])} {effect_phrase(r, alpha)}"
@@ -683,8 +710,6 @@ def summarise(params: Params, study: Study, tables: Mapping[str, Optional[pd.Dat
     -------
     ReportSummary.
     """
-    if not params.analysis.formula:
-        raise InputError("analysis.formula: the summary needs the analysis formula; add it to the params file")
     estimates = tables.get("estimates")
     if terms is None:
         from .models import exposure_terms
@@ -696,8 +721,12 @@ def summarise(params: Params, study: Study, tables: Mapping[str, Optional[pd.Dat
     flow = participant_flow(study, params.analysis.formula, group, estimates)
     missing = missing_summary(study, params.audit.threshold, tables.get("audit_variables"))
     checklist = build_checklist(params, flow, missing, tables, terms, min_cell)
-    not_run = tuple(dict.fromkeys(stage for name, stage in STAGE_OF_TABLE.items() if tables.get(name) is None))
+    # without a model only the audit and mechanism stages apply; the others are not "missing" from the record
+    applies = STAGE_OF_TABLE if params.analysis.formula else {
+        name: stage for name, stage in STAGE_OF_TABLE.items() if name in ("audit_variables", "mcar_test")}
+    not_run = tuple(dict.fromkeys(stage for name, stage in applies.items() if tables.get(name) is None))
+    cautions = CAUTIONS if params.analysis.formula else (NO_MODEL_MAR_CAUTION,) + CAUTIONS[1:]
     return ReportSummary(flow=flow, missing=missing, checklist=checklist,
                          methods_text=draft_methods(params, flow, missing, tables),
                          results_text=draft_results(params, flow, missing, tables, terms, min_cell),
-                         cautions=CAUTIONS, not_run=not_run)
+                         cautions=cautions, not_run=not_run)

@@ -42,7 +42,7 @@ STAGE_TITLES: Dict[str, str] = {
     "simulate": "Bias simulation for a study like this one",
     "report": "Summary for reporting",
 }
-MODEL_STAGES = frozenset({"cases", "indicator", "impute", "sensitivity", "simulate", "report"})
+MODEL_STAGES = frozenset({"cases", "indicator", "impute", "sensitivity", "simulate"})
 KERNEL_NAME = "gapbook-python"
 
 Log = Callable[[str], None]
