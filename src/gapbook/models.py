@@ -172,6 +172,9 @@ def fit_model(data: pd.DataFrame, formula: str, family: str = "gaussian", robust
                 if offset is not None:
                     if offset not in data.columns:
                         raise InputError(f"analysis.offset: '{offset}' is not a column{did_you_mean(offset, data.columns)}")
+                    if (pd.to_numeric(data[offset], errors="coerce") <= 0).any():
+                        raise InputError(f"analysis.offset: '{offset}' has values <= 0; give the person-time "
+                                         "itself (gapbook takes its log), not its log")
                     kwargs["offset"] = np.log(data[offset])
                     kwargs["missing"] = "drop"
                 result = smf.glm(formula, data=data, family=fam, **kwargs).fit(cov_type=cov_type)

@@ -184,9 +184,6 @@ def design_from_data(data: pd.DataFrame, model: AnalysisModel, mar_on: Optional[
     -------
     SimulationDesign.
     """
-    if model.offset is not None:
-        raise InputError("analysis.offset: the bias simulation does not support offsets; "
-                         "run without the simulate stage or drop the offset")
     outcome, covariates = model.variables(list(data.columns))
     mar_on = list(mar_on) if mar_on else default_mar_on(model, data, covariates)
     for column in mar_on:
@@ -198,8 +195,10 @@ def design_from_data(data: pd.DataFrame, model: AnalysisModel, mar_on: Optional[
                              "variables, so name covariates or auxiliary variables")
     missing = data.isna() if missing is None else missing
     keep_columns = list(dict.fromkeys([*covariates, *mar_on]))
-    pool_rows = ~missing[keep_columns].any(axis=1).to_numpy()
-    fitted_rows = pool_rows & ~missing[outcome].to_numpy()
+    # a not-applicable cell is not missing but has no value either: such rows are outside the model's population
+    absent = missing[keep_columns].to_numpy(dtype=bool) | data[keep_columns].isna().to_numpy()
+    pool_rows = ~absent.any(axis=1)
+    fitted_rows = pool_rows & data[outcome].notna().to_numpy()
     if fitted_rows.sum() < max(20, 2 * len(keep_columns) + 5):
         raise AnalysisError(f"only {int(fitted_rows.sum())} complete rows: too few to fit the model the "
                             "simulation generates data from")
@@ -211,7 +210,9 @@ def design_from_data(data: pd.DataFrame, model: AnalysisModel, mar_on: Optional[
             linear = np.asarray(fitted.predict(pool), dtype=float)
             scale: Optional[float] = float(np.sqrt(fitted.scale))
         else:
-            linear = np.asarray(fitted.predict(pool, which="linear"), dtype=float)
+            # the offset (log person-time) is part of each row's linear predictor, as in the analysis model
+            offset = np.log(pool[model.offset].to_numpy(dtype=float)) if model.offset is not None else None
+            linear = np.asarray(fitted.predict(pool, which="linear", offset=offset), dtype=float)
             scale = None
     terms = list(fitted.params.index)
     true_values = {t: float(fitted.params[t]) for t in exposure_terms(terms, model.exposure)}
@@ -242,7 +243,8 @@ def _fit_generating_model(frame: pd.DataFrame, model: AnalysisModel, outcome: st
             if model.family == "gaussian":
                 return smf.ols(model.formula, data=frame).fit()
             family = sm.families.Binomial() if model.family == "binomial" else sm.families.Poisson()
-            return smf.glm(model.formula, data=frame, family=family).fit()
+            offset = np.log(frame[model.offset].to_numpy(dtype=float)) if model.offset is not None else None
+            return smf.glm(model.formula, data=frame, family=family, offset=offset).fit()
     except Exception as exc:  # the analysis model itself fails on the complete cases
         raise AnalysisError(f"the simulation's generating model could not be fitted: {exc}") from None
 
@@ -480,7 +482,8 @@ class ImputationStrategy:
         imputed = impute_chained(data, m=self.m, iterations=self.iterations, seed=seed,
                                  types=dict(self.types) or None, progress=False)
         if self.fast is None or replicate.complete_design is None:
-            pooled = imputed.fit(self.model.formula, self.model.family, self.model.robust, None, self.model.alpha)
+            pooled = imputed.fit(self.model.formula, self.model.family, self.model.robust, self.model.offset,
+                                 self.model.alpha)
             return pooled.table[list(ESTIMATE_FIELDS)]
         changed = np.flatnonzero(data[list(self.covariates)].isna().any(axis=1).to_numpy())
         completed = [imputed.completed(i) for i in range(imputed.m)]

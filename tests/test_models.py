@@ -1,0 +1,22 @@
+"""Tests of the shared analysis-model fit: input checks a user can trip over."""
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from gapbook.errors import InputError
+from gapbook.models import fit_model
+
+
+def test_an_offset_column_with_values_at_or_below_zero_is_an_input_error():
+    # The offset column holds person-time and the model uses its log (McCullagh & Nelder 1989, sec. 6.2);
+    # a column of log person-time (negative for under a year) would otherwise turn rows into NaN silently.
+    rng = np.random.default_rng(4)
+    years = rng.uniform(0.5, 3.0, 200)
+    frame = pd.DataFrame({"events": rng.poisson(years).astype(float), "x": rng.normal(0, 1, 200),
+                          "years": years, "log_years": np.log(years)})
+    fit = fit_model(frame, "events ~ x", "poisson", offset="years")
+    assert fit.nobs == 200
+    with pytest.raises(InputError, match=r"analysis.offset: 'log_years' has values <= 0"):
+        fit_model(frame, "events ~ x", "poisson", offset="log_years")
