@@ -20,3 +20,14 @@ def test_an_offset_column_with_values_at_or_below_zero_is_an_input_error():
     assert fit.nobs == 200
     with pytest.raises(InputError, match=r"analysis.offset: 'log_years' has values <= 0"):
         fit_model(frame, "events ~ x", "poisson", offset="log_years")
+
+
+@pytest.mark.parametrize("formula", ["y ~ x + (arm", "y ~ x +", "y ~ x ** "])
+def test_a_formula_that_does_not_parse_is_an_input_error_naming_the_key(formula):
+    # Formula grammar of patsy (the library statsmodels formulas use): these do not parse there either.
+    import patsy
+    with pytest.raises(patsy.PatsyError):
+        patsy.ModelDesc.from_formula(formula)
+    from gapbook.models import check_formula
+    with pytest.raises(InputError, match=r"^analysis.formula: .* is not a valid formula"):
+        check_formula(formula, ["y", "x", "arm"])

@@ -90,6 +90,13 @@ def check_formula(formula: str, columns: Sequence[str], where: str = "analysis.f
     """The outcome and the right-hand-side columns; exits 2 when a name is not a column."""
     if "~" not in formula:
         raise InputError(f"{where}: '{formula}' has no '~'; write it as 'outcome ~ exposure + covariates'")
+    try:
+        import patsy
+        patsy.ModelDesc.from_formula(formula)  # parses only; nothing is evaluated
+    except Exception as exc:  # patsy's own syntax errors (unmatched brackets, dangling operators)
+        first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        raise InputError(f"{where}: '{formula}' is not a valid formula ({first}); check its brackets and "
+                         "operators") from None
     lhs, rhs = formula.split("~", 1)
     outcome = lhs.strip()
     outcome_col = re.fullmatch(r"Q\(\s*['\"](.+)['\"]\s*\)", outcome)

@@ -152,6 +152,9 @@ def run_study(params: Params, out_root: Path, only: Optional[Sequence[str]] = No
 
     stages = resolve_stages(only, params, log)
     study = load_study(params)  # fails fast, exit 2, on bad data
+    if params.analysis.formula and any(stage in MODEL_STAGES or stage == "report" for stage in stages):
+        from .models import check_formula
+        check_formula(params.analysis.formula, list(study.data.columns))  # a bad formula stops before any stage
     started = datetime.now(timezone.utc)
     folder = rec.RecordFolder.create(out_root, name or rec.record_name(params.study.name, started))
     kernel = ensure_kernel()
