@@ -72,3 +72,14 @@ def test_repository_demo_params_match_the_packaged_ones():
     shown, packaged = load_params(root / "params" / "demo.yaml"), demo_params()
     assert shown.data_path == packaged.data_path
     assert shown.model_dump(exclude={"source", "data"}) == packaged.model_dump(exclude={"source", "data"})
+
+
+def test_an_unknown_data_encoding_is_named_before_any_file_is_read():
+    import codecs
+    # Python's codec registry is the reference: it knows latin-1 and not latin-9x.
+    codecs.lookup("latin-1")
+    with pytest.raises(LookupError):
+        codecs.lookup("latin-9x")
+    assert Params.from_dict({"data": {"path": "x.csv", "encoding": "latin-1"}}).data.encoding == "latin-1"
+    with pytest.raises(InputError, match=r"data.encoding: unknown text encoding.*'latin-9x'"):
+        Params.from_dict({"data": {"path": "x.csv", "encoding": "latin-9x"}})

@@ -43,6 +43,16 @@ class DataSection(_Section):
     sheet: Optional[Union[str, int]] = None
     encoding: str = "utf-8"
 
+    @field_validator("encoding")
+    @classmethod
+    def _known_encoding(cls, value: str) -> str:
+        import codecs
+        try:
+            codecs.lookup(value)
+        except LookupError:
+            raise ValueError("unknown text encoding; use one Python knows, e.g. utf-8, latin-1, cp1252") from None
+        return value
+
 
 class VariableSpec(_Section):
     type: Optional[VariableType] = None
