@@ -156,3 +156,15 @@ def test_without_a_model_the_missing_data_stages_still_run(tmp_path):
     assert "report" not in result.stdout.split("skipped:")[1].splitlines()[0]
     assert (record / "tables" / "report_text.md").is_file()
     assert_user_error(gapbook("run", params, "--out", tmp_path / "out", "--only", "impute"), "needs analysis.formula")
+
+
+def test_a_formula_that_does_not_parse_stops_the_run_before_any_stage(study):
+    params = study / "params.yaml"
+    text = params.read_text()
+    assert 'formula: "hba1c_12m ~ arm +' in text
+    params.write_text(text.replace('formula: "hba1c_12m ~ arm +', 'formula: "hba1c_12m ~ (arm +'))
+    result = gapbook("run", params, "--out", study / "records")
+    assert_user_error(result, "analysis.formula")
+    assert "is not a valid formula" in result.stderr
+    assert "audit" not in result.stdout  # no stage ran
+    assert not (study / "records").exists() or not any((study / "records").iterdir())
