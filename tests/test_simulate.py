@@ -214,3 +214,13 @@ def test_poisson_model_with_an_offset_is_simulated_with_its_person_time():
     # complete cases are unbiased under MCAR (Little & Rubin 2019, ch. 3): within 4 Monte Carlo SEs
     row = perf.loc["complete_case"]
     assert abs(row["bias"]) < 4 * row["bias_mcse"] + 1e-9
+
+
+def test_a_study_too_small_to_simulate_from_is_an_input_error_saying_what_to_do(penguins):
+    # 15 penguins: fewer complete rows than the 20 the generating fit needs (common practice, no source).
+    small = penguins.iloc[:15].reset_index(drop=True)
+    model = AnalysisModel(formula="body_mass_g ~ flipper_length_mm + sex", exposure="flipper_length_mm")
+    with pytest.raises(InputError, match=r"^simulation: only 15 rows .* leave the simulate stage out"):
+        simulate.design_from_data(small, model, mar_on=["bill_length_mm"])
+    # 40 penguins are enough
+    assert len(simulate.design_from_data(penguins.iloc[:40], model, mar_on=["bill_length_mm"]).pool) == 40

@@ -199,9 +199,12 @@ def design_from_data(data: pd.DataFrame, model: AnalysisModel, mar_on: Optional[
     absent = missing[keep_columns].to_numpy(dtype=bool) | data[keep_columns].isna().to_numpy()
     pool_rows = ~absent.any(axis=1)
     fitted_rows = pool_rows & data[outcome].notna().to_numpy()
-    if fitted_rows.sum() < max(20, 2 * len(keep_columns) + 5):
-        raise AnalysisError(f"only {int(fitted_rows.sum())} complete rows: too few to fit the model the "
-                            "simulation generates data from")
+    needed = max(20, 2 * len(keep_columns) + 5)  # common practice, no source
+    if fitted_rows.sum() < needed:
+        # the study's size, not a failure of the method: say what to do instead of failing the record with exit 1
+        raise InputError(f"simulation: only {int(fitted_rows.sum())} rows have every model variable observed, "
+                         f"fewer than the {needed} needed to fit the model the simulation generates data from; "
+                         "leave the simulate stage out (--only with the other stages)")
     fitted = _fit_generating_model(data.loc[fitted_rows, [outcome, *keep_columns]], model, outcome)
     pool = data.loc[pool_rows, keep_columns].reset_index(drop=True)
     with warnings.catch_warnings():
