@@ -100,6 +100,7 @@ class _Problem:
     iterations: int
     donors: int
     delta_rows: Dict[str, Any]       # variable -> shift per imputed row (array), scalar, or (group, lookup)
+    originals: Dict[str, np.ndarray]  # numbers on their own scale (donor values are copied from here, exactly)
 
 
 # ---------------------------------------------------------------------------
@@ -195,6 +196,7 @@ def _prepare(data: pd.DataFrame, types: Dict[str, str], methods: Dict[str, str],
     # design layout: intercept, then one block per variable
     blocks: Dict[str, np.ndarray] = {}
     centers, scales, levels, used, fit_rows_all, codes = {}, {}, {}, {}, {}, {}
+    originals: Dict[str, np.ndarray] = {}
     width = 1
     for name in columns:
         column = data[name]
@@ -244,6 +246,7 @@ def _prepare(data: pd.DataFrame, types: Dict[str, str], methods: Dict[str, str],
             # Not-to-impute missing cells count as 0 on the original scale (see module docstring).
             filled = np.where(np.isnan(values), 0.0, values)
             design[:, cols[0]] = (filled - centers[name]) / scales[name]
+            originals[name] = filled
 
     variables: Dict[str, _Variable] = {}
     visit, passive_order = [], []
@@ -296,7 +299,8 @@ def _prepare(data: pd.DataFrame, types: Dict[str, str], methods: Dict[str, str],
 
     delta_rows = _delta_rows(data, variables, delta, delta_by)
     return _Problem(design=design, codes=codes, variables=variables, visit_order=tuple(visit),
-                    passive_order=tuple(passive_order), iterations=iterations, donors=donors, delta_rows=delta_rows)
+                    passive_order=tuple(passive_order), iterations=iterations, donors=donors, delta_rows=delta_rows,
+                    originals=originals)
 
 
 def _delta_rows(data: pd.DataFrame, variables: Dict[str, _Variable], delta: Dict[str, Any],
@@ -719,6 +723,7 @@ class _Chain:
         self.rng = rng
         self.design = np.array(problem.design, order="F", copy=True)
         self.codes = {name: np.array(code, copy=True) for name, code in problem.codes.items()}
+        self.originals = {name: np.array(values, copy=True) for name, values in problem.originals.items()}
         self.warm: Dict[str, np.ndarray] = {}
         self.gram = np.zeros((0, 0))
         self.dependents: Dict[str, List[str]] = {name: [] for name in problem.variables}
@@ -727,8 +732,13 @@ class _Chain:
                 self.dependents[source].append(name)
 
     # -- writing values into the design
-    def _set_numeric(self, variable: _Variable, standardised: np.ndarray) -> None:
+    def _set_numeric(self, variable: _Variable, standardised: np.ndarray,
+                     original: Optional[np.ndarray] = None) -> None:
+        """Write imputed numbers; ``original`` (own scale) is given where exact values exist, so a pmm donor's
+        value is copied as observed rather than recovered from the standardised design with round-off."""
         self.design[variable.impute_rows, variable.columns[0]] = standardised
+        self.originals[variable.name][variable.impute_rows] = (
+            standardised * variable.scale + variable.center if original is None else original)
 
     def _set_codes(self, variable: _Variable, local: np.ndarray) -> None:
         rows = variable.impute_rows
@@ -748,7 +758,7 @@ class _Chain:
         variable = self.problem.variables[name]
         if variable.categorical:
             return self.codes[name][rows].astype(float)
-        return self.design[rows, variable.columns[0]] * variable.scale + variable.center
+        return self.originals[name][rows]
 
     # -- start
     def start(self) -> None:
@@ -759,7 +769,8 @@ class _Chain:
             if variable.categorical:
                 self._set_codes(variable, self.codes[name][donor_rows])
             else:
-                self._set_numeric(variable, self.design[donor_rows, variable.columns[0]])
+                self._set_numeric(variable, self.design[donor_rows, variable.columns[0]],
+                                  self.originals[name][donor_rows])
         for name in self.problem.passive_order:
             self._update_passive(self.problem.variables[name], refresh=False)
         self.gram = self.design.T @ self.design
@@ -772,7 +783,7 @@ class _Chain:
         if not np.all(np.isfinite(values)):
             raise AnalysisError(f"imputation.passive.{variable.name}: the formula gave non-finite values for some "
                                 "imputed rows; check its inputs' imputed values (e.g. division by zero)")
-        self._set_numeric(variable, (values - variable.center) / variable.scale)
+        self._set_numeric(variable, (values - variable.center) / variable.scale, values)
         if refresh:
             self._refresh_gram(variable)
 
@@ -825,7 +836,11 @@ class _Chain:
             predicted_observed = np.take(predicted[:, 0], variable.fit_rows, mode="clip")
             predicted_missing = np.take(predicted[:, 1], variable.impute_rows, mode="clip")
             donor = _pmm_match(predicted_observed, predicted_missing, self.problem.donors, self.rng)
-            values = np.take(self.design[:, y_col], np.take(variable.fit_rows, donor, mode="clip"), mode="clip")
+            donor_rows = np.take(variable.fit_rows, donor, mode="clip")
+            shift = self._shift(variable.name)
+            self._set_numeric(variable, np.take(self.design[:, y_col], donor_rows, mode="clip") + shift,
+                              np.take(self.originals[variable.name], donor_rows, mode="clip") + shift * variable.scale)
+            return
         self._set_numeric(variable, values + self._shift(variable.name))
 
     def _visit_multinomial(self, variable: _Variable) -> None:
