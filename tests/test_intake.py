@@ -189,3 +189,14 @@ def test_undeclared_numbers_with_stray_text_are_refused(tmp_path):
     # declared as a marker, the same column reads as a number; a mostly-text column stays nominal
     study = load_study(make_params(path, missing={"markers": ["n.d."]}))
     assert study.types["sbp"] == "continuous" and study.types["site"] == "nominal"
+
+
+def test_constant_and_many_level_columns_are_described_plainly(tmp_path):
+    path = tmp_path / "c.csv"
+    pd.DataFrame({"pid": range(30), "site": ["A"] * 30, "batch": [7] * 30,
+                  "visit_date": [f"2026-01-{d:02d}" for d in range(1, 31)]}).to_csv(path, index=False)
+    study = load_study(make_params(path))
+    assert study.types["site"] == "nominal" and study.types["batch"] == "continuous"
+    assert "constant" in study.variables["site"].reason
+    levels = study.variables_table().set_index("variable").loc["visit_date", "levels"]
+    assert levels.endswith("... (30 levels)")

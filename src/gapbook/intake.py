@@ -96,10 +96,18 @@ class Study:
         """One row per variable: type, whether declared or inferred, and why."""
         rows = [
             {"variable": v.name, "type": v.type, "source": "declared" if v.declared else "inferred",
-             "levels": "" if v.levels is None else ", ".join(str(x) for x in v.levels), "why": v.reason}
+             "levels": _levels_text(v.levels), "why": v.reason}
             for v in self.variables.values()
         ]
         return pd.DataFrame(rows, columns=["variable", "type", "source", "levels", "why"])
+
+
+def _levels_text(levels: Optional[Tuple[Any, ...]], shown: int = 12) -> str:
+    """Levels for a table cell; a long list (dates, free text read as categories) is cut with its count."""
+    if levels is None:
+        return ""
+    text = ", ".join(str(x) for x in levels[:shown])
+    return text if len(levels) <= shown else f"{text}, ... ({len(levels)} levels)"
 
 
 # ---------------------------------------------------------------------------
@@ -249,6 +257,9 @@ def infer_type(values: pd.Series) -> Tuple[str, str]:
     distinct = observed.unique()
     if len(distinct) == 0:
         return "continuous", "no observed values; declare its type"
+    if len(distinct) == 1:
+        kind = "continuous" if pd.api.types.is_numeric_dtype(observed) else "nominal"
+        return kind, "one distinct value (constant where observed)"
     if pd.api.types.is_numeric_dtype(observed):
         if len(distinct) <= 2:
             return "binary", f"{len(distinct)} distinct numbers"

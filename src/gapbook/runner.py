@@ -100,7 +100,7 @@ def ensure_kernel() -> str:
     spec_dir = root / "kernels" / KERNEL_NAME
     spec_dir.mkdir(parents=True, exist_ok=True)
     spec = {"argv": [sys.executable, "-m", "ipykernel_launcher", "-f", "{connection_file}",
-                     "--IPKernelApp.log_level=ERROR"],
+                     "--IPKernelApp.log_level=CRITICAL"],
             "display_name": "Python (gapbook)", "language": "python",
             "env": {"PYTHONHASHSEED": "0", "MPLBACKEND": "module://matplotlib_inline.backend_inline"}}
     path = spec_dir / "kernel.json"
