@@ -6,29 +6,17 @@ import pandas as pd
 import pytest
 import statsmodels.api as sm
 import statsmodels.formula.api as smf
-from palmerpenguins import load_penguins
 from scipy import stats
 
 from gapbook.cases import (available_case_summary, compare_strategies, complete_case_analysis,
                            complete_case_flow, completeness_baseline, descriptive_table, pairwise_correlations,
                            standardised_difference)
-from gapbook.demo import demo_params
 from gapbook.errors import InputError
-from gapbook.intake import load_study
 from gapbook.models import AnalysisModel, analysis_model
 
 TOL = 1e-8
 
 
-@pytest.fixture(scope="module")
-def penguins() -> pd.DataFrame:
-    return load_penguins()
-
-
-@pytest.fixture(scope="module")
-def demo():
-    params = demo_params()
-    return params, load_study(params)
 
 
 def _assert_matches(ours: pd.DataFrame, reference, n: int) -> None:

@@ -5,27 +5,15 @@ import numpy as np
 import pandas as pd
 import pytest
 import statsmodels.formula.api as smf
-from palmerpenguins import load_penguins
 
 from gapbook.cases import complete_case_analysis
-from gapbook.demo import demo_params
 from gapbook.errors import InputError
 from gapbook.indicator import MISSING_LEVEL, missing_category_analysis, prepare_missing_category
-from gapbook.intake import load_study
 from gapbook.models import AnalysisModel, analysis_model
 
 TOL = 1e-8
 
 
-@pytest.fixture(scope="module")
-def penguins() -> pd.DataFrame:
-    return load_penguins()
-
-
-@pytest.fixture(scope="module")
-def demo():
-    params = demo_params()
-    return params, load_study(params)
 
 
 def _by_term(result) -> pd.Series:

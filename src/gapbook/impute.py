@@ -843,20 +843,30 @@ class _Chain:
             return
         self._set_numeric(variable, values + self._shift(variable.name))
 
-    def _visit_multinomial(self, variable: _Variable) -> None:
+    def _posterior_draw(self, variable: _Variable, ordered: bool) -> Optional[np.ndarray]:
+        """Fit the variable's categorical model (warm-started Newton) and draw its parameters from the
+        normal approximation to their posterior; None when only one category was observed."""
         cols = variable.predictor_columns
         n_classes = len(variable.used_levels)
         if n_classes < 2:
             self._set_codes(variable, np.zeros(len(variable.impute_rows), dtype=np.int64))
-            return
+            return None
         y = self.codes[variable.name][variable.fit_rows]
         augment = _augmentation(self.gram, cols, self.design.shape[0], n_classes)
         start = self.warm.get(variable.name)
-        estimate, info = _newton(_multinomial_terms, self.design, variable.fit_rows, y, cols, augment, start,
-                                 n_classes, ordered=False)
+        terms = _ordinal_terms if ordered else _multinomial_terms
+        estimate, info = _newton(terms, self.design, variable.fit_rows, y, cols[1:] if ordered else cols, augment,
+                                 start, n_classes, ordered=ordered)
         self.warm[variable.name] = estimate
         lower = _cholesky(info)
-        draw = estimate + linalg.solve_triangular(lower.T, self.rng.standard_normal(len(estimate)), lower=False)
+        return estimate + linalg.solve_triangular(lower.T, self.rng.standard_normal(len(estimate)), lower=False)
+
+    def _visit_multinomial(self, variable: _Variable) -> None:
+        draw = self._posterior_draw(variable, ordered=False)
+        if draw is None:
+            return
+        cols = variable.predictor_columns
+        n_classes = len(variable.used_levels)
         eta = _predict_rows(self.design, variable.impute_rows, cols, draw.reshape(n_classes - 1, len(cols)).T)
         if n_classes == 2:
             # delta on the log-odds scale of the second (observed) level
@@ -870,19 +880,11 @@ class _Chain:
         self._set_codes(variable, (u[:, None] > cumulative).sum(axis=1))
 
     def _visit_ordinal(self, variable: _Variable) -> None:
+        draw = self._posterior_draw(variable, ordered=True)
+        if draw is None:
+            return
         cols = variable.predictor_columns
         n_classes = len(variable.used_levels)
-        if n_classes < 2:
-            self._set_codes(variable, np.zeros(len(variable.impute_rows), dtype=np.int64))
-            return
-        y = self.codes[variable.name][variable.fit_rows]
-        augment = _augmentation(self.gram, cols, self.design.shape[0], n_classes)
-        start = self.warm.get(variable.name)
-        estimate, info = _newton(_ordinal_terms, self.design, variable.fit_rows, y, cols[1:], augment, start,
-                                 n_classes, ordered=True)
-        self.warm[variable.name] = estimate
-        lower = _cholesky(info)
-        draw = estimate + linalg.solve_triangular(lower.T, self.rng.standard_normal(len(estimate)), lower=False)
         theta = np.sort(draw[:n_classes - 1])
         eta = _predict_rows(self.design, variable.impute_rows, cols[1:], draw[n_classes - 1:])
         cumulative = expit(theta[None, :] - eta[:, None])
