@@ -16,7 +16,7 @@ import time
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
-from typing import Callable, Dict, List, Optional, Sequence, Tuple
+from typing import Any, Callable, Dict, List, Optional, Sequence, Tuple
 
 from .errors import AnalysisError, InputError, did_you_mean
 from .params import Params
@@ -140,6 +140,28 @@ def execute_stage(stage: str, params: Params, folder: Path, kernel: str) -> Stag
     return StageRun(stage, STAGES[stage], time.perf_counter() - start)
 
 
+def check_model_up_front(params: Params, study: Any) -> None:
+    """Stop before any stage when the model cannot be fitted for a reason the user can fix.
+
+    A bad formula, a model variable with no observed value, a wrong outcome for the family
+    or an impossible offset would otherwise surface in the middle of a run. A complete-case
+    fit is cheap next to the stages; analysis failures are left for the stages to explain.
+    """
+    from .cases import check_model_data
+    from .models import analysis_model
+
+    model = analysis_model(params)
+    outcome, covariates = check_model_data(study.data, model)
+    for column in covariates:
+        if study.data[column].notna().sum() == 0:
+            raise InputError(f"{params.label}: analysis.formula uses '{column}', which has no observed values; "
+                             "drop it from the formula or check its missing markers")
+    try:
+        model.fit(study.data)
+    except AnalysisError:
+        pass
+
+
 def run_study(params: Params, out_root: Path, only: Optional[Sequence[str]] = None, log: Log = print,
               name: Optional[str] = None) -> Path:
     """Run the chosen stages and write a complete record; returns the record folder.
@@ -153,8 +175,7 @@ def run_study(params: Params, out_root: Path, only: Optional[Sequence[str]] = No
     stages = resolve_stages(only, params, log)
     study = load_study(params)  # fails fast, exit 2, on bad data
     if params.analysis.formula and any(stage in MODEL_STAGES or stage == "report" for stage in stages):
-        from .models import check_formula
-        check_formula(params.analysis.formula, list(study.data.columns))  # a bad formula stops before any stage
+        check_model_up_front(params, study)
     started = datetime.now(timezone.utc)
     folder = rec.RecordFolder.create(out_root, name or rec.record_name(params.study.name, started))
     kernel = ensure_kernel()
