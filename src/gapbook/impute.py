@@ -412,18 +412,44 @@ def _linear_draw(gram_observed: np.ndarray, y_column: int, predictor_columns: np
     return beta_hat, beta_draw, sigma
 
 
-def _sorted_order(values: np.ndarray) -> Tuple[np.ndarray, np.ndarray]:
-    """``np.argsort(values, kind="stable")`` and the sorted values.
+def _stable_argsort(values: np.ndarray) -> np.ndarray:
+    """``np.argsort(values, kind="stable")`` for finite floats, about a third faster on a million values.
 
-    Without ties the sort order is unique, so numpy's default (vectorised, unstable) sort,
-    about a quarter faster on a million predictions, gives the same order; with any tie
-    the stable sort is used, so the result is the same either way."""
-    order = np.argsort(values)
-    ordered = values[order]
-    if np.any(ordered[1:] == ordered[:-1]):
-        order = np.argsort(values, kind="stable")
-        ordered = values[order]
-    return order, ordered
+    Each value's bits are mapped to an unsigned integer with the same order, the lowest
+    bits are replaced by the row's position, and the integers are sorted (a plain sort of
+    integers is faster than an argsort of floats); the positions are read back from the
+    low bits. Values whose kept high bits collide (equal to about 1e-10 relative, a few
+    pairs in a million) are put in exact order, ties by position, so the result is the
+    stable argsort's, bit for bit."""
+    n = len(values)
+    shift = max(int(n - 1).bit_length(), 1)
+    if n < 2 or shift > 40 or not np.all(np.isfinite(values)):
+        return np.argsort(values, kind="stable")
+    bits = (values + 0.0).view(np.int64)                 # + 0.0 turns -0.0 into 0.0, which compare equal
+    # negative floats: flip every bit; non-negative: flip the sign bit -> unsigned order = float order
+    keys = (bits ^ ((bits >> 63) | np.int64(-(1 << 63)))).view(np.uint64)
+    keys >>= np.uint64(shift)
+    keys <<= np.uint64(shift)
+    keys |= np.arange(n, dtype=np.uint64)
+    keys.sort()
+    order = (keys & np.uint64((1 << shift) - 1)).astype(np.intp)
+    keys >>= np.uint64(shift)
+    same = keys[1:] == keys[:-1]
+    if same.any():
+        in_run = np.zeros(n, dtype=bool)
+        in_run[1:] = same
+        in_run[:-1] |= same
+        positions = np.flatnonzero(in_run)
+        run = np.cumsum(np.concatenate([[True], ~same[positions[1:] - 1]]))
+        rows = order[positions]
+        order[positions] = rows[np.lexsort((rows, values[rows], run))]
+    return order
+
+
+def _sorted_order(values: np.ndarray) -> Tuple[np.ndarray, np.ndarray]:
+    """``np.argsort(values, kind="stable")`` and the sorted values."""
+    order = _stable_argsort(values)
+    return order, values[order]
 
 
 def _pmm_match(predicted_observed: np.ndarray, predicted_missing: np.ndarray, donors: int,
@@ -442,7 +468,7 @@ def _pmm_match(predicted_observed: np.ndarray, predicted_missing: np.ndarray, do
     width = min(2 * k, n_obs)
     # binary search with the queries in increasing order (each search starts near the last
     # one, so it stays in cache: about twice as fast); the positions do not depend on it
-    query_order = np.argsort(predicted_missing)
+    query_order = _stable_argsort(predicted_missing)
     position = np.empty(len(predicted_missing), dtype=np.intp)
     position[query_order] = np.searchsorted(sorted_values, predicted_missing[query_order])
     start = np.clip(position - k, 0, n_obs - width)
