@@ -852,12 +852,13 @@ class _Chain:
             predicted_missing = _predict_rows(self.design, variable.impute_rows, cols, beta_draw)
             values = predicted_missing + sigma * self.rng.standard_normal(len(predicted_missing))
         else:
-            # one pass over the whole design (no row gathering) gives both sets of predictions
-            coef = np.zeros((self.design.shape[1], 2))
-            coef[cols, 0], coef[cols, 1] = beta_hat, beta_draw
-            predicted = self.design @ coef
-            predicted_observed = np.take(predicted[:, 0], variable.fit_rows, mode="clip")
-            predicted_missing = np.take(predicted[:, 1], variable.impute_rows, mode="clip")
+            # products with the whole design (no row gathering), one coefficient vector at a
+            # time: two matrix-vector products take about a third of the time of one product
+            # with a two-column matrix (the BLAS handles a matrix that narrow poorly)
+            coef_hat, coef_draw = np.zeros(self.design.shape[1]), np.zeros(self.design.shape[1])
+            coef_hat[cols], coef_draw[cols] = beta_hat, beta_draw
+            predicted_observed = np.take(self.design @ coef_hat, variable.fit_rows, mode="clip")
+            predicted_missing = np.take(self.design @ coef_draw, variable.impute_rows, mode="clip")
             donor = _pmm_match(predicted_observed, predicted_missing, self.problem.donors, self.rng)
             donor_rows = np.take(variable.fit_rows, donor, mode="clip")
             shift = self._shift(variable.name)
