@@ -12,7 +12,7 @@ from pathlib import Path
 from typing import List, Optional, Sequence
 
 from . import __version__
-from .errors import AnalysisError, InputError
+from .errors import AnalysisError, InputError, did_you_mean
 
 TEMPLATE_NAME = "params_template.yaml"
 
@@ -25,23 +25,25 @@ def _stages(text: Optional[str]) -> Optional[List[str]]:
     return [s for s in text.split(",") if s.strip()] if text else None
 
 
-def cmd_demo(args: argparse.Namespace) -> int:
-    from .demo import demo_params
+def _run_and_print(params, args: argparse.Namespace) -> int:
+    """Run the stages, one line each, and print the record's path last (the contract scripts rely on)."""
     from .runner import run_study
 
-    record = run_study(demo_params(), Path(args.out), only=_stages(args.only), log=_print)
+    record = run_study(params, Path(args.out), only=_stages(args.only), log=_print)
     _print(str(record))
     return 0
+
+
+def cmd_demo(args: argparse.Namespace) -> int:
+    from .demo import demo_params
+
+    return _run_and_print(demo_params(), args)
 
 
 def cmd_run(args: argparse.Namespace) -> int:
     from .params import load_params
-    from .runner import run_study
 
-    params = load_params(args.params)
-    record = run_study(params, Path(args.out), only=_stages(args.only), log=_print)
-    _print(str(record))
-    return 0
+    return _run_and_print(load_params(args.params), args)
 
 
 def cmd_check(args: argparse.Namespace) -> int:
@@ -63,7 +65,6 @@ def cmd_check(args: argparse.Namespace) -> int:
         _print(f"range: {len(study.range_issues)} values outside their plausible range (listed by the audit stage)")
     for column in params.audit.by:
         if column not in study.data.columns:
-            from .errors import did_you_mean
             raise InputError(f"{params.label}: audit.by '{column}' is not a column{did_you_mean(column, study.data.columns)}")
     if params.analysis.formula:
         outcome, used = check_formula(params.analysis.formula, list(study.data.columns))
@@ -104,13 +105,17 @@ def cmd_verify(args: argparse.Namespace) -> int:
     return 0 if result.ok else 1
 
 
+def _record_options(command: argparse.ArgumentParser) -> None:
+    command.add_argument("--out", default="records", help="folder for the record (default: ./records)")
+    command.add_argument("--only", help="comma-separated stages to run, e.g. audit,mechanism")
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(prog="gapbook", description="Analyse incomplete study data and keep a re-runnable record.")
     parser.add_argument("--version", action="version", version=f"gapbook {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     demo = sub.add_parser("demo", help="run every stage on the demo study")
-    demo.add_argument("--out", default="records", help="folder for the record (default: ./records)")
-    demo.add_argument("--only", help="comma-separated stages to run")
+    _record_options(demo)
     demo.set_defaults(func=cmd_demo)
     new = sub.add_parser("new", help="scaffold a study folder (params file, notebooks, data/)")
     new.add_argument("dir")
@@ -120,8 +125,7 @@ def build_parser() -> argparse.ArgumentParser:
     check.set_defaults(func=cmd_check)
     run = sub.add_parser("run", help="execute the stages and write a record")
     run.add_argument("params")
-    run.add_argument("--out", default="records", help="folder for the record (default: ./records)")
-    run.add_argument("--only", help="comma-separated stages to run, e.g. audit,mechanism")
+    _record_options(run)
     run.set_defaults(func=cmd_run)
     verify = sub.add_parser("verify", help="re-execute a record and compare every table")
     verify.add_argument("record")
