@@ -187,10 +187,12 @@ def run_study(params: Params, out_root: Path, only: Optional[Sequence[str]] = No
             runs.append(run)
             log(f"{stage:<12} {run.seconds:7.1f} s")
         pages = []
+        bundle_start = time.perf_counter()
         for run in runs:
             page = f"{Path(run.notebook).stem}.html"
             rec.notebook_to_html(folder.temp / "notebooks" / run.notebook, folder.temp / "report" / page)
             pages.append((STAGE_TITLES[run.stage], page, run.seconds))
+        log(f"{'html pages':<12} {time.perf_counter() - bundle_start:7.1f} s")
         source_dir = notebooks_dir()
         manifest = rec.build_manifest(
             params_dict=params.to_dict(), data_path=str(params.data_path), data_sha256=study.sha256 or "",
