@@ -176,8 +176,9 @@ def test_demo_runs_every_stage_into_one_record(tmp_path):
     assert result.returncode == 0, result.stderr
     lines = result.stdout.strip().splitlines()
     record = Path(lines[-1])
-    stages = [line.split()[0] for line in lines[:-1] if line.rstrip().endswith(" s")]
-    assert stages == ["audit", "mechanism", "cases", "indicator", "impute", "sensitivity", "simulate", "report"]
+    timed = [line.split()[0] for line in lines[:-1] if line.rstrip().endswith(" s")]
+    assert timed == ["audit", "mechanism", "cases", "indicator", "impute", "sensitivity", "simulate", "report",
+                     "html"]
     tables = record / "tables"
     contracts = {
         "audit_variables": ["variable", "type", "n", "n_missing", "pct_missing", "over_threshold"],
