@@ -304,6 +304,11 @@ def find_tipping_point(grid: pd.DataFrame, term: str, evaluate: Optional[Callabl
                         extra=pd.DataFrame(extra))
 
 
+def _amount(delta: float) -> str:
+    size = abs(delta)
+    return f"{size:.3g} unit" + ("" if size == 1 else "s")
+
+
 def tipping_statement(point: TippingPoint, variable: str, group: str, by: Optional[str], variable_type: str,
                       exposure_label: str) -> str:
     """The tipping point in words, e.g. 'the conclusion holds unless the missing outcomes are 0.8 units higher'."""
@@ -315,8 +320,8 @@ def tipping_statement(point: TippingPoint, variable: str, group: str, by: Option
     if not point.found:
         edge = point.grid_range[1] if point.side == "positive" else point.grid_range[0]
         return (f"The conclusion ({held}) holds over the whole grid: {where} would have to be on average more than "
-                f"{abs(edge):.3g} units{scale} {direction} than imputed under missing at random to change it.")
-    return (f"The conclusion ({held}) holds unless {where} are on average {abs(point.delta):.3g} units{scale} "
+                f"{_amount(edge)}{scale} {direction} than imputed under missing at random to change it.")
+    return (f"The conclusion ({held}) holds unless {where} are on average {_amount(point.delta)}{scale} "
             f"{direction} than imputed under missing at random.")
 
 
