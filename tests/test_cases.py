@@ -9,7 +9,7 @@ import statsmodels.formula.api as smf
 from scipy import stats
 
 from gapbook.cases import (available_case_summary, compare_strategies, complete_case_analysis,
-                           complete_case_flow, completeness_baseline, descriptive_table, pairwise_correlations,
+                           complete_case_flow, completeness_baseline, pairwise_correlations,
                            standardised_difference)
 from gapbook.errors import InputError
 from gapbook.models import AnalysisModel, analysis_model

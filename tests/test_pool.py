@@ -3,7 +3,6 @@ published formulas and against statsmodels' own combining of the same per-imputa
 from __future__ import annotations
 
 import numpy as np
-import pandas as pd
 import pytest
 import statsmodels.api as sm
 import statsmodels.formula.api as smf

@@ -48,7 +48,7 @@ def cmd_run(args: argparse.Namespace) -> int:
 
 def cmd_check(args: argparse.Namespace) -> int:
     from .intake import load_study
-    from .models import check_formula, exposure_terms
+    from .models import check_formula
     from .params import load_params
 
     params = load_params(args.params)

@@ -30,8 +30,8 @@ from __future__ import annotations
 
 import ast
 import math
-from dataclasses import dataclass, field, replace
-from typing import Any, Dict, Iterator, List, Mapping, Optional, Sequence, Tuple, Union
+from dataclasses import dataclass, field
+from typing import Any, Dict, Iterator, List, Mapping, Optional, Sequence, Tuple
 
 import numpy as np
 import pandas as pd
@@ -39,7 +39,7 @@ from scipy import linalg
 from scipy.special import expit
 
 from .errors import AnalysisError, InputError, did_you_mean
-from .models import check_formula, fit_model, formula_columns
+from .models import fit_model
 from .pool import PooledResult, pool_fits
 
 VARIABLE_TYPES = ("continuous", "binary", "nominal", "ordinal", "count")

@@ -290,6 +290,7 @@ def missing_summary(study: Study, threshold: float, audit_variables: Optional[pd
     von Elm E et al. (2007). STROBE statement. Lancet 370:1453-1457 (item on missing data per variable).
     """
     missing = study.missing
+    not_applicable = study.not_applicable.sum()
     rows = []
     for variable in study.data.columns:
         reasons = study.reasons[variable]
@@ -297,7 +298,7 @@ def missing_summary(study: Study, threshold: float, audit_variables: Optional[pd
         counts = counts[counts > 0]
         words = "; ".join(f"{reason} {int(n)}" for reason, n in counts.items())
         n_missing = int(missing[variable].sum())
-        n = int(len(study.data) - study.not_applicable[variable].sum())
+        n = int(len(study.data) - not_applicable[variable])
         rows.append({"variable": variable, "n": n, "n_missing": n_missing,
                      "pct_missing": 100.0 * n_missing / n if n else float("nan"),
                      "over_threshold": bool(n and n_missing / n > threshold), "reasons": words})

@@ -29,7 +29,7 @@ import pandas as pd
 from scipy import optimize, stats
 
 from .errors import InputError, did_you_mean
-from .models import AnalysisModel, exposure_terms
+from .models import AnalysisModel
 
 ALL_GROUPS = "all"
 DELTA_COLUMNS: Tuple[str, ...] = ("variable", "group", "delta", "term", "estimate", "ci_lower", "ci_upper", "p_value")
