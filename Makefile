@@ -6,10 +6,10 @@ STAMP := $(VENV)/.gapbook-installed
 
 .PHONY: demo test lab bench clean-venv
 
-$(STAMP): pyproject.toml
+$(STAMP): pyproject.toml constraints.txt
 	$(PYTHON) -m venv $(VENV)
 	$(PY) -m pip install --quiet --upgrade pip
-	$(PY) -m pip install --quiet -e ".[test]"
+	$(PY) -m pip install --quiet -c constraints.txt -e ".[test]"
 	touch $(STAMP)
 
 demo: $(STAMP)

@@ -847,6 +847,13 @@ class _Chain:
     def _visit_linear(self, variable: _Variable, gram_observed: np.ndarray) -> None:
         cols = variable.predictor_columns
         y_col = variable.columns[0]
+        # The outcome's cross-products come from its observed rows alone (zeros elsewhere), so the fit
+        # cannot depend, even by round-off in the subtraction above, on the values last imputed for it:
+        # a delta-shifted chain then draws exactly the same models as the unshifted one.
+        y_observed = np.zeros(self.design.shape[0])
+        y_observed[variable.fit_rows] = self.design[variable.fit_rows, y_col]
+        gram_observed[:, y_col] = gram_observed[y_col, :] = self.design.T @ y_observed
+        gram_observed[y_col, y_col] = float(y_observed @ y_observed)
         beta_hat, beta_draw, sigma = _linear_draw(gram_observed, y_col, cols, len(variable.fit_rows), self.rng)
         if variable.method == "normal":
             predicted_missing = _predict_rows(self.design, variable.impute_rows, cols, beta_draw)
