@@ -103,8 +103,8 @@ def test_run_audit_then_verify_and_tamper(study):
     assert record.is_dir() and record.parent == study / "records"
     assert digest(data) == before
     manifest = json.loads((record / "manifest.json").read_text())
-    for key in ("params", "data", "notebooks", "packages", "python", "platform", "seed", "started", "ended",
-                "gapbook_version"):
+    for key in ("params", "data", "stages", "files", "kernel", "packages", "python", "platform", "seed", "started",
+                "ended", "gapbook_version"):
         assert key in manifest
     assert manifest["data"]["sha256"] == before
     for name in ("audit_variables", "audit_patterns"):
@@ -133,7 +133,9 @@ def test_run_audit_then_verify_and_tamper(study):
     frame.to_csv(table, index=False)
     tampered = gapbook("verify", record)
     assert tampered.returncode == 1
-    assert "FAIL audit_variables.csv" in tampered.stdout
+    assert "FAIL tables/audit_variables.csv: differs from its sha256" in tampered.stdout
+    assert "nothing was re-run" in tampered.stdout
+    table.write_bytes((second / "tables" / "audit_variables.csv").read_bytes())  # restored: verifiable again
 
     data.write_text(data.read_text() + "")  # unchanged bytes: still verifiable
     data.write_text(data.read_text().replace("P1200", "P9999"))
@@ -170,12 +172,11 @@ def test_a_formula_that_does_not_parse_stops_the_run_before_any_stage(study):
     assert not (study / "records").exists() or not any((study / "records").iterdir())
 
 
-def test_demo_runs_every_stage_into_one_record(tmp_path):
+def test_demo_runs_every_stage_into_one_record(demo_record):
     """The whole pipeline on the demo trial, as `make demo` runs it; the DESIGN.md table contracts hold."""
-    result = gapbook("demo", "--out", tmp_path)
-    assert result.returncode == 0, result.stderr
-    lines = result.stdout.strip().splitlines()
+    lines = (demo_record.parent / "stdout.txt").read_text().strip().splitlines()
     record = Path(lines[-1])
+    assert record == demo_record
     timed = [line.split()[0] for line in lines[:-1] if line.rstrip().endswith(" s")]
     assert timed == ["audit", "mechanism", "cases", "indicator", "impute", "sensitivity", "simulate", "report",
                      "html"]

@@ -6,7 +6,7 @@ from pathlib import Path
 
 import pytest
 
-from gapbook.runner import STAGES
+from gapbook.pipeline import STAGES
 
 NOTEBOOKS = Path(__file__).resolve().parents[1] / "notebooks"
 

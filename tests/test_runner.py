@@ -7,7 +7,7 @@ import pytest
 from gapbook.errors import InputError
 from gapbook.intake import load_study
 from gapbook.params import Params
-from gapbook.runner import check_model_up_front, resolve_stages
+from gapbook.pipeline import check_model_up_front, resolve_stages
 
 
 def study_with(tmp_path, formula, **analysis):

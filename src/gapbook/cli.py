@@ -7,12 +7,14 @@ from __future__ import annotations
 
 import argparse
 import shutil
+import signal
 import sys
+import threading
 from pathlib import Path
 from typing import List, Optional, Sequence
 
 from . import __version__
-from .errors import AnalysisError, InputError, did_you_mean
+from .errors import AnalysisError, InputError
 
 TEMPLATE_NAME = "params_template.yaml"
 
@@ -26,10 +28,12 @@ def _stages(text: Optional[str]) -> Optional[List[str]]:
 
 
 def _run_and_print(params, args: argparse.Namespace) -> int:
-    """Run the stages, one line each, and print the record's path last (the contract scripts rely on)."""
+    """Check, run the stages (one line each), and print the record's path last (the contract scripts rely on)."""
+    from .pipeline import preflight
     from .runner import run_study
 
-    record = run_study(params, Path(args.out), only=_stages(args.only), log=_print)
+    plan = preflight(params, only=_stages(args.only), log=_print)
+    record = run_study(plan, Path(args.out), log=_print)
     _print(str(record))
     return 0
 
@@ -47,12 +51,13 @@ def cmd_run(args: argparse.Namespace) -> int:
 
 
 def cmd_check(args: argparse.Namespace) -> int:
-    from .intake import load_study
-    from .models import check_formula
+    """Everything ``run`` checks before its first stage (the same function), and a short description."""
     from .params import load_params
+    from .pipeline import preflight
 
     params = load_params(args.params)
-    study = load_study(params)
+    plan = preflight(params, only=_stages(args.only), log=_print)
+    study = plan.study
     _print(f"params: {params.source}")
     _print(f"data:   {study.source} ({len(study.data)} rows, {study.data.shape[1]} variables, sha256 {study.sha256[:12]})")
     missing = study.missing
@@ -61,47 +66,60 @@ def cmd_check(args: argparse.Namespace) -> int:
            f"{int((~missing.any(axis=1)).sum())} rows complete")
     for note in study.notes:
         _print(f"note: {note}")
+    for note in plan.notes:
+        _print(f"note: {note}")
     if len(study.range_issues):
         _print(f"range: {len(study.range_issues)} values outside their plausible range (listed by the audit stage)")
-    for column in params.audit.by:
-        if column not in study.data.columns:
-            raise InputError(f"{params.label}: audit.by '{column}' is not a column{did_you_mean(column, study.data.columns)}")
-    if params.analysis.formula:
-        outcome, used = check_formula(params.analysis.formula, list(study.data.columns))
+    if plan.model is not None:
+        outcome, used = plan.model
         _print(f"model: {params.analysis.family} model of {outcome} on {', '.join(used)}")
+    origins = {nb.origin for nb in plan.notebooks}
+    _print(f"stages: {', '.join(plan.stages)} ({' and '.join(sorted(origins))} notebooks)")
     _print("ok")
     return 0
 
 
 def cmd_new(args: argparse.Namespace) -> int:
     from .demo import data_dir
-    from .runner import notebooks_dir
+    from .pipeline import kit_notebooks_dir
 
     target = Path(args.dir)
-    if target.exists() and any(target.iterdir()):
+    if target.exists() and (not target.is_dir() or any(target.iterdir())):
         raise InputError(f"{target}: the folder exists and is not empty; give a new folder name")
-    (target / "data").mkdir(parents=True, exist_ok=True)
-    (target / "records").mkdir(exist_ok=True)
-    shutil.copyfile(data_dir() / TEMPLATE_NAME, target / "params.yaml")
-    notebooks = target / "notebooks"
-    notebooks.mkdir(exist_ok=True)
-    for notebook in sorted(notebooks_dir().glob("*.ipynb")):
-        shutil.copyfile(notebook, notebooks / notebook.name)
-    (target / "data" / "README.txt").write_text(
-        "Put the study's data file here (CSV, TSV, XLSX or Parquet) and set data.path in ../params.yaml.\n"
-        "gapbook only reads it; it never changes or copies the file.\n", encoding="utf-8")
+    try:
+        (target / "data").mkdir(parents=True, exist_ok=True)
+        (target / "records").mkdir(exist_ok=True)
+        shutil.copyfile(data_dir() / TEMPLATE_NAME, target / "params.yaml")
+        notebooks = target / "notebooks"
+        notebooks.mkdir(exist_ok=True)
+        for notebook in sorted(kit_notebooks_dir().glob("*.ipynb")):
+            shutil.copyfile(notebook, notebooks / notebook.name)
+        (target / "data" / "README.txt").write_text(
+            "Put the study's data file here (CSV, TSV, XLSX or Parquet) and set data.path in ../params.yaml.\n"
+            "gapbook only reads it; it never changes or copies the file.\n", encoding="utf-8")
+    except OSError as exc:
+        raise InputError(f"{target}: cannot create the study folder ({exc.strerror}); choose another place") from None
     _print(f"created {target}: edit {target / 'params.yaml'}, then run 'gapbook check {target / 'params.yaml'}'")
+    _print("the stage notebooks in notebooks/ are the ones 'run' uses for this study; edit them to change a stage")
     return 0
 
 
 def cmd_verify(args: argparse.Namespace) -> int:
     from .runner import verify_record
 
-    result = verify_record(Path(args.record), log=_print)
+    result = verify_record(Path(args.record), log=_print, data=Path(args.data) if args.data else None,
+                           trust_record_notebooks=args.trust_record_notebooks)
+    if result.integrity:
+        for check in result.integrity:
+            _print(check.line())
+        _print(f"verify: {len(result.integrity)} file(s) of the record differ from its manifest; nothing was re-run")
+        return 1
     for check in result.checks:
-        _print(f"{'ok  ' if check.ok else 'FAIL'} {check.table}: {check.status}{(' - ' + check.detail) if check.detail else ''}")
-    matched = sum(c.ok for c in result.checks)
-    _print(f"verify: {matched} of {len(result.checks)} tables match")
+        _print(check.line())
+    tables = [c for c in result.checks if not c.name.startswith("figures/")]
+    figures = [c for c in result.checks if c.name.startswith("figures/")]
+    _print(f"verify: every file matches the manifest; {sum(c.ok for c in tables)} of {len(tables)} tables and "
+           f"{sum(c.ok for c in figures)} of {len(figures)} figures match the re-run")
     return 0 if result.ok else 1
 
 
@@ -122,15 +140,28 @@ def build_parser() -> argparse.ArgumentParser:
     new.set_defaults(func=cmd_new)
     check = sub.add_parser("check", help="validate params and data without running notebooks")
     check.add_argument("params")
+    check.add_argument("--only", help="comma-separated stages 'run --only' would run")
     check.set_defaults(func=cmd_check)
     run = sub.add_parser("run", help="execute the stages and write a record")
     run.add_argument("params")
     _record_options(run)
     run.set_defaults(func=cmd_run)
-    verify = sub.add_parser("verify", help="re-execute a record and compare every table")
+    verify = sub.add_parser("verify", help="check a record's files, re-execute it and compare every table")
     verify.add_argument("record")
+    verify.add_argument("--data", help="the record's data file, if it has moved (its sha256 must match)")
+    verify.add_argument("--trust-record-notebooks", action="store_true",
+                        help="run the record's own notebooks where they are not this kit's (runs their code)")
     verify.set_defaults(func=cmd_verify)
     return parser
+
+
+class Terminated(KeyboardInterrupt):
+    """SIGTERM, handled like Ctrl-C: a clean stop."""
+
+
+def _on_sigterm(signum, frame):  # pragma: no cover - exercised through a subprocess
+    signal.signal(signal.SIGTERM, signal.SIG_IGN)  # one stop is enough; let the clean-up finish
+    raise Terminated()
 
 
 def main(argv: Optional[Sequence[str]] = None) -> int:
@@ -139,6 +170,9 @@ def main(argv: Optional[Sequence[str]] = None) -> int:
     if not getattr(args, "func", None):
         parser.print_help()
         return 2
+    previous = None
+    if threading.current_thread() is threading.main_thread():
+        previous = signal.signal(signal.SIGTERM, _on_sigterm)
     try:
         return args.func(args)
     except InputError as exc:
@@ -147,9 +181,14 @@ def main(argv: Optional[Sequence[str]] = None) -> int:
     except AnalysisError as exc:
         print(f"gapbook: analysis failed: {exc}", file=sys.stderr, flush=True)
         return 1
-    except KeyboardInterrupt:
-        print("gapbook: interrupted; no record was written", file=sys.stderr)
-        return 130
+    except KeyboardInterrupt as exc:
+        terminated = isinstance(exc, Terminated)
+        print(f"gapbook: stopped by {'SIGTERM' if terminated else 'an interrupt'}; kernels shut down, "
+              "no record was written", file=sys.stderr, flush=True)
+        return 143 if terminated else 130
+    finally:
+        if previous is not None:
+            signal.signal(signal.SIGTERM, previous)
 
 
 if __name__ == "__main__":

@@ -1,252 +1,274 @@
-"""Running the stage notebooks with papermill and bundling them into a record.
+"""Running the stage notebooks with papermill and bundling them into a record; ``verify``.
 
-Each stage is a notebook in ``notebooks/``; the runner injects the resolved params and
-the record folder into its ``parameters`` cell, executes it on this Python's own kernel
-(a kernelspec is written to a private folder, so a missing or foreign ``python3``
-kernelspec cannot break a run), converts it to HTML, and finally writes the manifest and
-renames the record into place.
+A run starts from a :class:`~gapbook.pipeline.Plan` (every up-front check already
+passed), executes each stage notebook on a kernel private to the run
+(:mod:`gapbook.kernels`), converts it to an HTML page, writes the manifest and renames
+the record into place. A stage that fails keeps what finished under
+``<name>-incomplete``; an interrupted run (Ctrl-C, SIGTERM) leaves nothing behind.
+
+``verify`` checks every file of a record against its manifest before it re-runs
+anything, and re-runs only the installed kit's notebooks unless told to trust the
+record's own.
 """
 from __future__ import annotations
 
-import json
-import os
-import sys
+import shutil
 import tempfile
+import threading
 import time
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
 from typing import Any, Callable, Dict, List, Optional, Sequence, Tuple
 
-from .errors import AnalysisError, InputError, did_you_mean
-from .params import Params
-from . import record as rec
+import yaml
 
-STAGES: Dict[str, str] = {
-    "audit": "01_audit.ipynb",
-    "mechanism": "02_mechanism.ipynb",
-    "cases": "03_cases.ipynb",
-    "indicator": "04_indicator.ipynb",
-    "impute": "05_impute.ipynb",
-    "sensitivity": "06_sensitivity.ipynb",
-    "simulate": "07_simulate.ipynb",
-    "report": "08_report.ipynb",
-}
-STAGE_TITLES: Dict[str, str] = {
-    "audit": "Audit: how much is missing, why, and in which patterns",
-    "mechanism": "Mechanism: does missingness depend on what was observed?",
-    "cases": "Complete cases and available cases",
-    "indicator": "Missing category and missing indicator",
-    "impute": "Multiple imputation by chained equations",
-    "sensitivity": "Sensitivity to data missing not at random",
-    "simulate": "Bias simulation for a study like this one",
-    "report": "Summary for reporting",
-}
-MODEL_STAGES = frozenset({"cases", "indicator", "impute", "sensitivity", "simulate"})
-KERNEL_NAME = "gapbook-python"
+from . import pages
+from . import record as rec
+from .errors import AnalysisError, InputError
+from .kernels import KERNEL_NAME, PrivateKernels
+from .params import Params
+from .pipeline import (KIT, MODEL_STAGES, RECORD, STAGE_TITLES, STAGES, Plan, StageNotebook,  # noqa: F401 (re-exported)
+                       check_model_up_front, kit_notebooks_dir, preflight, resolve_stages, sha256_file)
 
 Log = Callable[[str], None]
 
 
-def notebooks_dir() -> Path:
-    """Where the stage notebooks live: $GAPBOOK_NOTEBOOKS, else the repository's notebooks/ folder."""
-    override = os.environ.get("GAPBOOK_NOTEBOOKS")
-    if override:
-        return Path(override)
-    return Path(__file__).resolve().parents[2] / "notebooks"
-
-
-def available_stages() -> List[str]:
-    folder = notebooks_dir()
-    return [name for name, file in STAGES.items() if (folder / file).is_file()]
-
-
-def resolve_stages(only: Optional[Sequence[str]], params: Optional[Params] = None,
-                   log: Optional[Log] = None) -> List[str]:
-    """The stages to run, in pipeline order; unknown names exit 2 with a suggestion.
-
-    Without ``--only``, stages that need the analysis model are skipped (and said so) when
-    the params have no ``analysis.formula``: describing the missing data needs no model.
-    """
-    available = available_stages()
-    if not available:
-        raise InputError(f"{notebooks_dir()}: no stage notebooks found; set GAPBOOK_NOTEBOOKS to the notebooks folder")
-    no_model = params is not None and not params.analysis.formula
-    if not only:
-        if no_model:
-            skipped = [s for s in available if s in MODEL_STAGES]
-            if skipped and log is not None:
-                log(f"skipped: {', '.join(skipped)} (they need analysis.formula in {params.label})")
-            return [s for s in available if s not in MODEL_STAGES]
-        return available
-    wanted = []
-    for name in only:
-        name = name.strip()
-        if name not in STAGES:
-            raise InputError(f"--only: '{name}' is not a stage{did_you_mean(name, STAGES)} "
-                             f"(stages: {', '.join(STAGES)})")
-        if name not in available:
-            raise InputError(f"--only: stage '{name}' has no notebook in {notebooks_dir()}")
-        if no_model and name in MODEL_STAGES:
-            raise InputError(f"{params.label}: stage '{name}' needs analysis.formula; add it to the analysis section "
-                             "(e.g. formula: \"outcome ~ exposure + covariates\")")
-        wanted.append(name)
-    return [s for s in STAGES if s in wanted]
-
-
-def ensure_kernel() -> str:
-    """Write a kernelspec for this very interpreter into a private folder and put it on JUPYTER_PATH."""
-    root = Path(tempfile.gettempdir()) / f"gapbook-kernels-{os.getuid() if hasattr(os, 'getuid') else 'user'}"
-    spec_dir = root / "kernels" / KERNEL_NAME
-    spec_dir.mkdir(parents=True, exist_ok=True)
-    spec = {"argv": [sys.executable, "-m", "ipykernel_launcher", "-f", "{connection_file}",
-                     "--IPKernelApp.log_level=CRITICAL"],
-            "display_name": "Python (gapbook)", "language": "python",
-            "env": {"PYTHONHASHSEED": "0", "MPLBACKEND": "module://matplotlib_inline.backend_inline"}}
-    path = spec_dir / "kernel.json"
-    text = json.dumps(spec, indent=1)
-    if not path.is_file() or path.read_text() != text:
-        path.write_text(text)
-    paths = os.environ.get("JUPYTER_PATH", "")
-    if str(root) not in paths.split(os.pathsep):
-        os.environ["JUPYTER_PATH"] = os.pathsep.join([str(root)] + ([paths] if paths else []))
-    return KERNEL_NAME
-
-
 @dataclass(frozen=True)
 class StageRun:
-    stage: str
-    notebook: str
+    notebook: StageNotebook
     seconds: float
+    python: Optional[str]
+
+    @property
+    def stage(self) -> str:
+        return self.notebook.stage
+
+    def manifest_entry(self) -> Dict[str, Any]:
+        return {"stage": self.stage, "notebook": self.notebook.file, "seconds": round(self.seconds, 2),
+                "origin": self.notebook.origin, "source_sha256": self.notebook.sha256,
+                "differs_from_kit": self.notebook.differs_from_kit}
 
 
-def execute_stage(stage: str, params: Params, folder: Path, kernel: str) -> StageRun:
-    """Execute one stage notebook into ``folder/notebooks``; a user error inside it becomes InputError."""
+class StageFailed(Exception):
+    """A stage stopped with a user error (``InputError``) or an analysis failure."""
+
+    def __init__(self, stage: str, error: Exception):
+        super().__init__(str(error))
+        self.stage = stage
+        self.error = error
+
+
+def _in_worker(work: Callable[[], Any]) -> Any:
+    """Run ``work`` in a thread and wait for it, so this (main) thread keeps its signal handlers.
+
+    nbclient installs its own SIGINT/SIGTERM handlers when it runs on the main thread,
+    which would turn a stop request into a dead-kernel error deep inside a stage.
+    """
+    outcome: Dict[str, Any] = {}
+
+    def target() -> None:
+        try:
+            outcome["value"] = work()
+        except BaseException as exc:  # handed to the main thread below
+            outcome["error"] = exc
+
+    worker = threading.Thread(target=target, name="gapbook-stage", daemon=True)
+    worker.start()
+    while worker.is_alive():
+        worker.join(0.2)
+    if "error" in outcome:
+        raise outcome["error"]
+    return outcome.get("value")
+
+
+def execute_stage(notebook: StageNotebook, params: Params, folder: Path, kernels: PrivateKernels) -> StageRun:
+    """Execute one stage notebook into ``folder/notebooks`` on a private kernel."""
+    import nbformat
     import papermill as pm
     from papermill.exceptions import PapermillExecutionError
 
-    source = notebooks_dir() / STAGES[stage]
-    target = folder / "notebooks" / STAGES[stage]
+    target = folder / "notebooks" / notebook.file
     start = time.perf_counter()
+
+    def work() -> None:
+        pm.execute_notebook(str(notebook.path), str(target),
+                            parameters={"params": params.to_dict(), "out_dir": str(folder)},
+                            kernel_name=KERNEL_NAME, language="python", cwd=str(folder), progress_bar=False,
+                            log_output=False, report_mode=False, kernel_manager_class=kernels.manager_class())
+
     try:
-        pm.execute_notebook(str(source), str(target), parameters={"params": params.to_dict(), "out_dir": str(folder)},
-                            kernel_name=kernel, language="python", cwd=str(folder), progress_bar=False, log_output=False,
-                            report_mode=False)
+        _in_worker(work)
     except PapermillExecutionError as exc:
         message = str(exc.evalue).strip().splitlines()[0] if exc.evalue else exc.ename
         if exc.ename == "InputError":
-            raise InputError(message) from None
-        raise AnalysisError(f"stage '{stage}' failed: {exc.ename}: {message} (see {target})") from None
-    return StageRun(stage, STAGES[stage], time.perf_counter() - start)
-
-
-def check_model_up_front(params: Params, study: Any) -> None:
-    """Stop before any stage when the model cannot be fitted for a reason the user can fix.
-
-    A bad formula, a model variable with no observed value, a wrong outcome for the family
-    or an impossible offset would otherwise surface in the middle of a run. A complete-case
-    fit is cheap next to the stages; analysis failures are left for the stages to explain.
-    """
-    from .cases import check_model_data
-    from .models import analysis_model
-
-    model = analysis_model(params)
-    outcome, covariates = check_model_data(study.data, model)
-    for column in covariates:
-        if study.data[column].notna().sum() == 0:
-            raise InputError(f"{params.label}: analysis.formula uses '{column}', which has no observed values; "
-                             "drop it from the formula or check its missing markers")
+            raise StageFailed(notebook.stage, InputError(message)) from None
+        raise StageFailed(notebook.stage, AnalysisError(
+            f"stage '{notebook.stage}' failed: {exc.ename}: {message}")) from None
+    except Exception as exc:  # the kernel died, could not start, timed out ...
+        first = (str(exc).strip().splitlines() or [type(exc).__name__])[0]
+        raise StageFailed(notebook.stage, AnalysisError(
+            f"stage '{notebook.stage}' failed: {type(exc).__name__}: {first}")) from None
+    python = None
     try:
-        model.fit(study.data)
-    except AnalysisError:
+        python = nbformat.read(target, as_version=4).metadata.get("language_info", {}).get("version")
+    except Exception:
         pass
+    return StageRun(notebook, time.perf_counter() - start, python)
 
 
-def run_study(params: Params, out_root: Path, only: Optional[Sequence[str]] = None, log: Log = print,
-              name: Optional[str] = None) -> Path:
-    """Run the chosen stages and write a complete record; returns the record folder.
+def run_study(plan: Plan, out_root: Path, log: Log = print, name: Optional[str] = None,
+              with_pages: bool = True) -> Path:
+    """Run the planned stages and write the record; returns the record folder.
 
-    The study is read once up front so that data errors stop the run before any notebook
-    starts. On an input error nothing is left behind; on an analysis failure the partial
-    record is kept under its temporary name for inspection and its path is given.
+    A stage that fails leaves the finished stages under ``<name>-incomplete`` (its manifest
+    says which stage failed and why) and re-raises the stage's error with that path, so
+    the exit code stays 2 for a user error and 1 for an analysis failure.
     """
-    from .intake import load_study
-
-    stages = resolve_stages(only, params, log)
-    study = load_study(params)  # fails fast, exit 2, on bad data
-    if params.analysis.formula and any(stage in MODEL_STAGES or stage == "report" for stage in stages):
-        check_model_up_front(params, study)
+    params = plan.params
+    for note in plan.notes:
+        log(f"note: {note}")
     started = datetime.now(timezone.utc)
     folder = rec.RecordFolder.create(out_root, name or rec.record_name(params.study.name, started))
-    kernel = ensure_kernel()
+    kernels: Optional[PrivateKernels] = None
     runs: List[StageRun] = []
     try:
-        (folder.temp / "params.yaml").write_text(params.to_yaml(), encoding="utf-8")
-        for stage in stages:
-            run = execute_stage(stage, params, folder.temp, kernel)
+        kernels = PrivateKernels.create()
+        params_text = params.to_yaml()
+        (folder.temp / "params.yaml").write_text(params_text, encoding="utf-8")
+        for notebook in plan.notebooks:
+            shutil.copyfile(notebook.path, folder.temp / rec.SOURCE_NOTEBOOKS / notebook.file)
+        failure: Optional[StageFailed] = None
+        for notebook in plan.notebooks:
+            try:
+                run = execute_stage(notebook, params, folder.temp, kernels)
+            except StageFailed as exc:
+                failure = exc
+                log(f"{notebook.stage:<12} failed")
+                break
             runs.append(run)
-            log(f"{stage:<12} {run.seconds:7.1f} s")
-        pages = []
-        bundle_start = time.perf_counter()
-        for run in runs:
-            page = f"{Path(run.notebook).stem}.html"
-            rec.notebook_to_html(folder.temp / "notebooks" / run.notebook, folder.temp / "report" / page)
-            pages.append((STAGE_TITLES[run.stage], page, run.seconds))
-        log(f"{'html pages':<12} {time.perf_counter() - bundle_start:7.1f} s")
-        source_dir = notebooks_dir()
+            log(f"{run.stage:<12} {run.seconds:7.1f} s")
+        stage_pages = []
+        if with_pages:
+            bundle_start = time.perf_counter()
+            for run in runs:
+                page = f"{Path(run.notebook.file).stem}.html"
+                pages.notebook_to_html(folder.temp / "notebooks" / run.notebook.file, folder.temp / "report" / page)
+                stage_pages.append((STAGE_TITLES[run.stage], page, run.seconds))
+            log(f"{'html pages':<12} {time.perf_counter() - bundle_start:7.1f} s")
+        kernel = {"executable": kernels.executable,
+                  "python": next((r.python for r in runs if r.python), None) or "unknown"}
+        error = None
+        if failure is not None:
+            kind = "input" if isinstance(failure.error, InputError) else "analysis"
+            error = {"kind": kind, "stage": failure.stage, "message": str(failure.error)}
+        summary = {"study": params.study.name, "started": started.isoformat(timespec="seconds"),
+                   "data": params.data_path.name, "sha256": plan.study.sha256 or "", "error": error}
+        if with_pages:
+            pages.write_index(folder.temp, params.report.title or params.study.name, stage_pages, summary)
         manifest = rec.build_manifest(
-            params_dict=params.to_dict(), data_path=str(params.data_path), data_sha256=study.sha256 or "",
-            stages=[{"stage": r.stage, "notebook": r.notebook, "seconds": round(r.seconds, 2)} for r in runs],
-            notebook_digests={r.notebook: rec.sha256_file(source_dir / r.notebook) for r in runs},
-            started=started, ended=datetime.now(timezone.utc), folder=folder.temp)
-        rec.write_index(folder.temp, params.report.title or params.study.name, pages, manifest)
-        rec.write_json(folder.temp / "manifest.json", manifest)
-    except InputError:
-        folder.discard()
-        raise
-    except AnalysisError as exc:
-        raise AnalysisError(f"{exc}; the partial record is kept at {folder.temp}") from None
+            status="incomplete" if failure else "complete", params_body=yaml.safe_load(params_text),
+            data_path=params.data_path, data_sha256=plan.study.sha256 or "", record_final=folder.final,
+            stages=[r.manifest_entry() for r in runs], folder=folder.temp, started=started,
+            ended=datetime.now(timezone.utc), kernel=kernel, error=error)
+        rec.write_json(folder.temp / rec.MANIFEST, manifest)
     except BaseException:
+        # Interrupted (Ctrl-C, SIGTERM) or a fault in gapbook itself: stop the kernels, keep nothing.
+        if kernels is not None:
+            kernels.close(kill=True)
         folder.discard()
         raise
-    return folder.commit()
+    kernels.close()
+    if failure is None:
+        return folder.commit()
+    kept = folder.commit(incomplete=True)
+    finished = ", ".join(r.stage for r in runs) or "none"
+    message = f"{failure.error}; finished stages ({finished}) kept in {kept}"
+    raise type(failure.error)(message)
 
+
+# ---------------------------------------------------------------------------
+# verify
 
 @dataclass(frozen=True)
 class VerifyResult:
     record: Path
-    checks: Tuple[rec.TableCheck, ...]
+    integrity: Tuple[rec.Check, ...]
+    checks: Tuple[rec.Check, ...] = ()
 
     @property
     def ok(self) -> bool:
-        return bool(self.checks) and all(c.ok for c in self.checks)
+        return not self.integrity and bool(self.checks) and all(c.ok for c in self.checks)
 
 
-def verify_record(record: Path, log: Log = print) -> VerifyResult:
-    """Re-execute a record's stages from its own params and data and compare every table."""
-    import shutil
+def _locate_data(record: Path, manifest: rec.Manifest, data: Optional[Path]) -> Path:
+    """The data file to re-run with: ``--data``, else beside the record as it was, else its absolute path."""
+    expected = manifest.data.sha256
+    if data is not None:
+        data = Path(data).expanduser().absolute()
+        if not data.is_file():
+            raise InputError(f"{data}: --data file not found")
+        if sha256_file(data) != expected:
+            raise InputError(f"{data}: --data is not the record's data file (sha256 differs from the manifest's)")
+        return data.resolve()
+    candidates = []
+    if manifest.data.path_from_record:
+        candidates.append((record / manifest.data.path_from_record))
+    candidates.append(Path(manifest.data.path))
+    changed = None
+    for candidate in candidates:
+        if candidate.is_file():
+            if sha256_file(candidate) == expected:
+                return candidate.resolve()
+            changed = changed or candidate
+    if changed is not None:
+        raise InputError(f"{changed}: the data file changed since the record was made (sha256 differs); "
+                         "verify refuses to compare against different data (give the original with --data PATH)")
+    raise InputError(f"{candidates[-1]}: the record's data file is gone; restore it or give it with --data PATH")
 
-    record = Path(record)
+
+def _notebooks_to_run(record: Path, manifest: rec.Manifest, trust: bool) -> Dict[str, Path]:
+    """The kit's notebooks when the record ran the kit's; the record's own only when trusted."""
+    kit = kit_notebooks_dir()
+    chosen: Dict[str, Path] = {}
+    foreign = []
+    for entry in manifest.stages:
+        kit_path = kit / entry.notebook
+        if kit_path.is_file() and sha256_file(kit_path) == entry.source_sha256:
+            chosen[entry.stage] = kit_path
+        else:
+            foreign.append(entry.notebook)
+            chosen[entry.stage] = record / rec.SOURCE_NOTEBOOKS / entry.notebook
+    if foreign and not trust:
+        raise InputError(f"{record}: the record ran notebooks that are not this kit's ({', '.join(foreign)}: edited "
+                         "by the study team or from another gapbook version); verify will not run them unless you "
+                         "trust whoever made the record: add --trust-record-notebooks")
+    return chosen
+
+
+def verify_record(record: Path, log: Log = print, *, data: Optional[Path] = None,
+                  trust_record_notebooks: bool = False) -> VerifyResult:
+    """Check every file of a record against its manifest, then re-execute it and compare every table."""
+    record = Path(record).expanduser().absolute()
     manifest = rec.read_manifest(record)
-    data_path = Path(manifest["data"]["path"])
-    if not data_path.is_file():
-        raise InputError(f"{data_path}: the record's data file is gone; restore it to re-run this record")
-    if rec.sha256_file(data_path) != manifest["data"]["sha256"]:
-        raise InputError(f"{data_path}: the data file changed since the record was made (sha256 differs); "
-                         "verify refuses to compare against different data")
-    params_body = dict(manifest["params"])
-    params_body.pop("source", None)
-    params = Params.from_dict(params_body, source=str(record / "params.yaml"))
-    stages = [s["stage"] for s in manifest["stages"]]
-    for stage in stages:
-        notebook = notebooks_dir() / STAGES[stage]
-        recorded = manifest["notebooks"].get(STAGES[stage])
-        if notebook.is_file() and recorded and rec.sha256_file(notebook) != recorded:
-            log(f"note: notebook {notebook.name} has changed since the record was made")
+    if manifest.status != "complete":
+        where = f" at stage '{manifest.error.stage}'" if manifest.error and manifest.error.stage else ""
+        raise InputError(f"{record}: an incomplete record (the run stopped{where}); verify checks complete records "
+                         "only - run the study again")
+    integrity = rec.check_files(record, manifest) + rec.check_params_agree(record, manifest)
+    if integrity:
+        return VerifyResult(record, tuple(integrity))
+    data_path = _locate_data(record, manifest, data)
+    body = dict(manifest.params)
+    body["data"] = {**body.get("data", {}), "path": str(data_path)}
+    params = Params.from_dict(body, source=str(record / "params.yaml"))
+    notebooks = _notebooks_to_run(record, manifest, trust_record_notebooks)
+    plan = preflight(params, only=manifest.stage_names(), notebooks=notebooks, notebook_origin=RECORD)
     scratch = Path(tempfile.mkdtemp(prefix="gapbook-verify-"))
     try:
-        rerun = run_study(params, scratch, only=stages, log=lambda line: log(f"rerun {line}"), name="rerun")
-        checks = rec.compare_tables(record, rerun)
+        rerun = run_study(plan, scratch, log=lambda line: log(f"rerun {line}"), name="rerun", with_pages=False)
+        strict = rec.same_environment(manifest)
+        checks = rec.compare_tables(record, rerun) + rec.compare_figures(record, rerun, strict=strict)
     finally:
         shutil.rmtree(scratch, ignore_errors=True)
-    return VerifyResult(record, tuple(checks))
+    return VerifyResult(record, (), tuple(checks))

@@ -1,0 +1,209 @@
+"""The stages, where their notebooks come from, and the one pre-flight check before a run.
+
+``check`` and ``run`` (and ``verify``'s re-run) all go through :func:`preflight`, so a
+params file that ``check`` accepts is one ``run`` starts: every up-front validation lives
+here and nowhere else. Add a new up-front check to :func:`preflight` (or a helper it calls).
+
+Notebooks: each stage runs the notebook in the study folder's ``notebooks/`` (the copies
+``gapbook new`` made, which a team may edit) when present, otherwise the kit's own. The
+kit's notebooks are the ones installed with the package (the wheel carries them as
+``gapbook/notebooks``), or the repository's ``notebooks/`` in a source checkout.
+"""
+from __future__ import annotations
+
+import hashlib
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Callable, Dict, List, Mapping, Optional, Sequence, Tuple
+
+from .errors import InputError, did_you_mean
+from .params import Params
+
+STAGES: Dict[str, str] = {
+    "audit": "01_audit.ipynb",
+    "mechanism": "02_mechanism.ipynb",
+    "cases": "03_cases.ipynb",
+    "indicator": "04_indicator.ipynb",
+    "impute": "05_impute.ipynb",
+    "sensitivity": "06_sensitivity.ipynb",
+    "simulate": "07_simulate.ipynb",
+    "report": "08_report.ipynb",
+}
+STAGE_TITLES: Dict[str, str] = {
+    "audit": "Audit: how much is missing, why, and in which patterns",
+    "mechanism": "Mechanism: does missingness depend on what was observed?",
+    "cases": "Complete cases and available cases",
+    "indicator": "Missing category and missing indicator",
+    "impute": "Multiple imputation by chained equations",
+    "sensitivity": "Sensitivity to data missing not at random",
+    "simulate": "Bias simulation for a study like this one",
+    "report": "Summary for reporting",
+}
+MODEL_STAGES = frozenset({"cases", "indicator", "impute", "sensitivity", "simulate"})
+KIT, STUDY, RECORD = "kit", "study", "record"
+
+Log = Callable[[str], None]
+
+
+def sha256_file(path: Path) -> str:
+    return hashlib.sha256(Path(path).read_bytes()).hexdigest()
+
+
+def kit_notebooks_dir() -> Path:
+    """The installed kit's notebooks: inside the package (a wheel), else the source checkout's ``notebooks/``."""
+    packaged = Path(__file__).resolve().parent / "notebooks"
+    if any(packaged.glob("*.ipynb")):
+        return packaged
+    return Path(__file__).resolve().parents[2] / "notebooks"
+
+
+def study_notebooks_dir(params: Params) -> Optional[Path]:
+    """The ``notebooks/`` folder beside the params file, when it is a study folder (not a record)."""
+    if not params.source:
+        return None
+    folder = Path(params.source).parent
+    # A record also has notebooks/ beside its params.yaml: those are someone's executed
+    # notebooks, never run implicitly (verify runs them only with an explicit trust flag).
+    if (folder / "manifest.json").exists():
+        return None
+    candidate = folder / "notebooks"
+    return candidate if candidate.is_dir() else None
+
+
+@dataclass(frozen=True)
+class StageNotebook:
+    """The notebook one stage runs: its path, where it came from, and whether it is the kit's."""
+
+    stage: str
+    path: Path
+    origin: str  # "kit", "study" (the study folder's copy) or "record" (a record's own, trusted by flag)
+    sha256: str
+    kit_sha256: Optional[str]
+
+    @property
+    def file(self) -> str:
+        return STAGES[self.stage]
+
+    @property
+    def differs_from_kit(self) -> bool:
+        return self.sha256 != self.kit_sha256
+
+
+def stage_notebooks(params: Params, override: Optional[Mapping[str, Path]] = None,
+                    origin: str = RECORD) -> Dict[str, StageNotebook]:
+    """The notebook for every stage that has one, study folder's copy first (``override`` replaces both)."""
+    kit = kit_notebooks_dir()
+    study = study_notebooks_dir(params) if override is None else None
+    found: Dict[str, StageNotebook] = {}
+    for stage, file in STAGES.items():
+        kit_path = kit / file
+        kit_sha = sha256_file(kit_path) if kit_path.is_file() else None
+        if override is not None:
+            if stage in override:
+                path = Path(override[stage])
+                sha = sha256_file(path)
+                found[stage] = StageNotebook(stage, path, KIT if sha == kit_sha else origin, sha, kit_sha)
+        elif study is not None and (study / file).is_file():
+            found[stage] = StageNotebook(stage, study / file, STUDY, sha256_file(study / file), kit_sha)
+        elif kit_sha is not None:
+            found[stage] = StageNotebook(stage, kit_path, KIT, kit_sha, kit_sha)
+    return found
+
+
+def resolve_stages(only: Optional[Sequence[str]], params: Optional[Params] = None, log: Optional[Log] = None,
+                   available: Optional[Sequence[str]] = None) -> List[str]:
+    """The stages to run, in pipeline order; unknown names exit 2 with a suggestion.
+
+    Without ``--only``, stages that need the analysis model are skipped (and said so) when
+    the params have no ``analysis.formula``: describing the missing data needs no model.
+    """
+    if available is None:
+        available = [s for s in STAGES if (kit_notebooks_dir() / STAGES[s]).is_file()]
+    available = [s for s in STAGES if s in set(available)]
+    if not available:
+        raise InputError(f"{kit_notebooks_dir()}: no stage notebooks found; reinstall gapbook "
+                         "(pip install gapbook, or make demo in a source checkout)")
+    no_model = params is not None and not params.analysis.formula
+    if not only:
+        if no_model:
+            skipped = [s for s in available if s in MODEL_STAGES]
+            if skipped and log is not None:
+                log(f"skipped: {', '.join(skipped)} (they need analysis.formula in {params.label})")
+            return [s for s in available if s not in MODEL_STAGES]
+        return available
+    wanted = []
+    for name in only:
+        name = name.strip()
+        if name not in STAGES:
+            raise InputError(f"--only: '{name}' is not a stage{did_you_mean(name, STAGES)} "
+                             f"(stages: {', '.join(STAGES)})")
+        if name not in available:
+            raise InputError(f"--only: stage '{name}' has no notebook (looked in {kit_notebooks_dir()})")
+        if no_model and name in MODEL_STAGES:
+            raise InputError(f"{params.label}: stage '{name}' needs analysis.formula; add it to the analysis section "
+                             "(e.g. formula: \"outcome ~ exposure + covariates\")")
+        wanted.append(name)
+    return [s for s in STAGES if s in wanted]
+
+
+def check_model_up_front(params: Params, study: Any) -> Tuple[str, List[str]]:
+    """Stop before any stage when the model cannot be fitted for a reason the user can fix.
+
+    A bad formula, a model variable with no observed value, a wrong outcome for the family
+    or an impossible offset would otherwise surface in the middle of a run. A complete-case
+    fit is cheap next to the stages; analysis failures are left for the stages to explain.
+    Returns the outcome and the right-hand-side columns.
+    """
+    from .cases import check_model_data
+    from .errors import AnalysisError
+    from .models import analysis_model, check_formula
+
+    found = check_formula(params.analysis.formula, list(study.data.columns))
+    model = analysis_model(params)
+    outcome, covariates = check_model_data(study.data, model)
+    for column in covariates:
+        if study.data[column].notna().sum() == 0:
+            raise InputError(f"{params.label}: analysis.formula uses '{column}', which has no observed values; "
+                             "drop it from the formula or check its missing markers")
+    try:
+        model.fit(study.data)
+    except AnalysisError:
+        pass
+    return found
+
+
+@dataclass(frozen=True)
+class Plan:
+    """What a run will do, after every up-front check passed."""
+
+    params: Params
+    study: Any  # gapbook.intake.Study
+    stages: Tuple[str, ...]
+    notebooks: Tuple[StageNotebook, ...]
+    model: Optional[Tuple[str, List[str]]] = None  # outcome and right-hand-side columns, when checked
+    notes: Tuple[str, ...] = field(default_factory=tuple)
+
+
+def preflight(params: Params, *, only: Optional[Sequence[str]] = None, log: Optional[Log] = None,
+              notebooks: Optional[Mapping[str, Path]] = None, notebook_origin: str = RECORD) -> Plan:
+    """Every check a run makes before its first stage: stages, notebooks, data, model.
+
+    Raises :class:`~gapbook.errors.InputError` (exit 2, one line) for anything the user
+    can fix. ``notebooks`` maps stage names to the notebooks to run instead of the study
+    folder's or the kit's (``verify`` uses it for the kit's or a trusted record's copies).
+    """
+    from .intake import load_study
+
+    found = stage_notebooks(params, notebooks, notebook_origin)
+    stages = resolve_stages(only, params, log, available=list(found))
+    study = load_study(params)  # data errors stop here, exit 2
+    for column in params.audit.by:
+        if column not in study.data.columns:
+            raise InputError(f"{params.label}: audit.by '{column}' is not a column{did_you_mean(column, study.data.columns)}")
+    model = None
+    if params.analysis.formula and any(stage in MODEL_STAGES or stage == "report" for stage in stages):
+        model = check_model_up_front(params, study)
+    chosen = tuple(found[s] for s in stages)
+    notes = tuple(f"notebook {nb.file}: the study folder's copy, which differs from the kit's"
+                  for nb in chosen if nb.origin == STUDY and nb.differs_from_kit)
+    return Plan(params=params, study=study, stages=tuple(stages), notebooks=chosen, model=model, notes=notes)
