@@ -22,7 +22,8 @@ import numpy as np
 import pandas as pd
 
 from gapbook.audit import audit_study
-from gapbook.intake import NOT_APPLICABLE, Study, VariableInfo
+from gapbook.intake import Study, VariableInfo
+from gapbook.vocabulary import NOT_APPLICABLE
 
 SEED = 20261202
 REASONS = ("blank", "declined", "lost to follow-up", "not measured")

@@ -20,7 +20,7 @@ import time
 import numpy as np
 import pandas as pd
 
-from gapbook.mechanism import little_mcar_test
+from gapbook.little import little_mcar_test
 
 N_ROWS, N_VARIABLES, N_PATTERNS, SEED = 100_000, 20, 30, 20261202
 REPEATS = 3  # times are the best of 3, run alternately

@@ -9,9 +9,9 @@ import statsmodels.formula.api as smf
 from scipy import stats
 
 from gapbook.cases import (available_case_summary, compare_strategies, complete_case_analysis,
-                           complete_case_flow, completeness_baseline, pairwise_correlations,
-                           standardised_difference)
+                           complete_case_flow, completeness_baseline, pairwise_correlations)
 from gapbook.errors import InputError
+from gapbook.inference import standardised_difference
 from gapbook.models import AnalysisModel, analysis_model
 
 TOL = 1e-8

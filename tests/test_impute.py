@@ -12,7 +12,7 @@ from scipy import stats
 from scipy.special import expit
 from statsmodels.miscmodels.ordinal_model import OrderedModel
 
-from gapbook import impute as engine
+from gapbook.impute import numerics
 from gapbook.demo import TRUE_ARM_EFFECT, demo_params
 from gapbook.errors import InputError
 from gapbook.impute import impute_chained, plan_imputation
@@ -125,7 +125,7 @@ def test_ordinal_and_multinomial_fits_equal_statsmodels():
     design = np.asfortranarray(np.column_stack([np.ones(n), x]))
     empty = (np.zeros((0, 3)), np.zeros(0, dtype=np.int64), np.zeros(0))
     start = np.concatenate([[-1.0, 0.0, 1.0], np.zeros(2)])
-    ours, _ = engine._newton(engine._ordinal_terms, design, np.arange(n), y, np.array([1, 2]), empty, start, 4,
+    ours, _ = numerics.newton(numerics.ordinal_terms, design, np.arange(n), y, np.array([1, 2]), empty, start, 4,
                              ordered=True)
     reference = OrderedModel(y, x, distr="logit").fit(method="bfgs", disp=False, maxiter=5000, gtol=1e-8)
     # statsmodels: P(y <= k) = F(cut_k - x'b); cut points stored as first cut then log increments
@@ -134,7 +134,7 @@ def test_ordinal_and_multinomial_fits_equal_statsmodels():
     assert np.allclose(ours[:3], cuts, atol=1e-4)
     # baseline-category logit
     nominal = np.digitize(x[:, 0] + rng.logistic(size=n), [-0.5, 0.8])
-    ours_mn, _ = engine._newton(engine._multinomial_terms, design, np.arange(n), nominal, np.array([0, 1, 2]),
+    ours_mn, _ = numerics.newton(numerics.multinomial_terms, design, np.arange(n), nominal, np.array([0, 1, 2]),
                                 empty, np.zeros(6), 3, ordered=False)
     mn = sm.MNLogit(nominal, design).fit(disp=0, method="newton", tol=1e-12, maxiter=100)
     assert np.allclose(ours_mn.reshape(2, 3).T, mn.params, atol=1e-6)
@@ -402,7 +402,7 @@ def test_warm_newton_step_taken_without_confirming_pass_lands_on_the_maximum_lik
     def counted(x_block, y_block, w, params, n_classes, x_low=None):
         if w is None:
             passes.append(1)
-        return engine._multinomial_terms(x_block, y_block, w, params, n_classes, x_low)
+        return numerics.multinomial_terms(x_block, y_block, w, params, n_classes, x_low)
 
     cases = [(binary, 2, sm.Logit(binary, design).fit(disp=0, method="newton", tol=1e-12, maxiter=100)),
              (nominal, 3, sm.MNLogit(nominal, design).fit(disp=0, method="newton", tol=1e-12, maxiter=100))]
@@ -412,7 +412,7 @@ def test_warm_newton_step_taken_without_confirming_pass_lands_on_the_maximum_lik
         signs = np.where(np.arange(len(mle)) % 2 == 0, 1.0, -1.0)
         for distance, most_passes in ((1.0, 1), (12.0, None)):
             passes.clear()
-            ours, info = engine._newton(counted, design, np.arange(n), y, np.arange(4), empty,
+            ours, info = numerics.newton(counted, design, np.arange(n), y, np.arange(4), empty,
                                         mle + distance * signs * se, n_classes, ordered=False)
             assert np.all(np.abs(ours - mle) < 0.02 * se), (n_classes, distance)
             if most_passes is not None:
@@ -455,4 +455,4 @@ def test_pmm_sort_order_equals_numpy_stable_argsort():
              rng.normal(size=100_000) * 1e-9 + 1.0, np.array([0.0, -0.0, 0.0, -1e-300, 1e-300, -0.0]),
              -np.abs(rng.normal(size=3_000)), rng.integers(0, 3, 20_000).astype(float), np.array([2.5])]
     for values in cases:
-        assert np.array_equal(engine._stable_argsort(values), np.argsort(values, kind="stable"))
+        assert np.array_equal(numerics.stable_argsort(values), np.argsort(values, kind="stable"))

@@ -12,7 +12,8 @@ import pytest
 from scipy import stats
 
 from gapbook.errors import InputError
-from gapbook.intake import BLANK, IMPLAUSIBLE, NOT_APPLICABLE, load_study, read_raw
+from gapbook.intake import load_study, read_raw
+from gapbook.vocabulary import BLANK, IMPLAUSIBLE, NOT_APPLICABLE
 from gapbook.params import Params
 
 

@@ -8,6 +8,7 @@ import pytest
 import statsmodels.formula.api as smf
 
 from gapbook import report
+from gapbook.vocabulary import CAUTIONS, MAR_CAUTION
 from gapbook.audit import audit_study
 from gapbook.cases import complete_case_analysis
 from gapbook.demo import demo_csv_path, demo_params
@@ -38,7 +39,7 @@ def test_summary_names_every_checklist_item(demo):
         assert item in text
     # Stages that did not run are named, not crashed on.
     assert "mechanism stage not run" in text and "sensitivity stage not run" in text
-    for caution in report.CAUTIONS:
+    for caution in CAUTIONS:
         assert caution in text
 
 
@@ -132,4 +133,4 @@ def test_summary_without_an_analysis_model_reports_the_missing_data(tmp_path):
     assert "analysis model" not in summary.methods_text and "analysis model" not in summary.results_text
     assert "333" in summary.results_text and "344" in summary.results_text
     assert summary.not_run == ("mechanism",)  # model stages are not reported as missing from the record
-    assert "Missing at random cannot be verified" in summary.markdown("penguins")
+    assert MAR_CAUTION in summary.markdown("penguins")

@@ -29,7 +29,8 @@ import numpy as np
 import pandas as pd
 
 from .errors import InputError, did_you_mean
-from .intake import NOT_APPLICABLE, Study, infer_type
+from .intake import Study
+from .vocabulary import NOT_APPLICABLE, infer_type
 
 DEFAULT_THRESHOLD = 0.20  # common practice, no source
 UNSPECIFIED = "unspecified"  # reason given to NaN cells of a plain frame that carries no reasons

@@ -20,14 +20,9 @@ import numpy as np
 import pandas as pd
 
 from .errors import InputError
-from .models import RATIO_NAMES, AnalysisModel, ModelFit, add_ratio_columns, exposure_terms, formula_columns
-
-CATEGORICAL_TYPES = ("binary", "nominal", "ordinal")
-STRATEGY_LABELS = {
-    "complete_case": "Complete cases",
-    "missing_category": "Missing category / indicator",
-    "multiple_imputation": "Multiple imputation",
-}
+from .inference import standardised_difference
+from .models import AnalysisModel, ModelFit, add_ratio_columns, exposure_terms, formula_columns
+from .vocabulary import CATEGORICAL_TYPES, NUMBER_CODED_TYPES, STRATEGY_TITLES, infer_type, ratio_name
 FLOW_COLUMNS = ("step", "variable", "role", "n_excluded", "n_not_applicable", "n_lacking", "reasons", "n_remaining")
 
 
@@ -195,10 +190,8 @@ def complete_case_analysis(data: pd.DataFrame, model: AnalysisModel, reasons: Op
 # available cases: every value of every variable
 
 def is_categorical(column: pd.Series, declared: Optional[str] = None) -> bool:
-    """Whether a column is summarised by counts (declared binary/nominal/ordinal, or text)."""
-    if declared is not None:
-        return declared in CATEGORICAL_TYPES
-    return isinstance(column.dtype, pd.CategoricalDtype) or not pd.api.types.is_numeric_dtype(column)
+    """Whether a column is summarised by counts: its declared type, else the inferred one, is categorical."""
+    return (declared or infer_type(column)[0]) in CATEGORICAL_TYPES
 
 
 def _levels(column: pd.Series) -> List[object]:
@@ -270,7 +263,7 @@ def numeric_variables(data: pd.DataFrame, types: Optional[Mapping[str, str]] = N
     types = types or {}
     return [c for c in data.columns if pd.api.types.is_numeric_dtype(data[c])
             and not isinstance(data[c].dtype, pd.CategoricalDtype)
-            and types.get(c, "continuous") in ("continuous", "count", "binary")]
+            and types.get(c, "continuous") in NUMBER_CODED_TYPES]
 
 
 def pairwise_correlations(data: pd.DataFrame, complete: Optional[pd.Series] = None,
@@ -357,18 +350,6 @@ class CompletenessBaseline:
         return float(smd.max()) if smd.notna().any() else float("nan")
 
 
-def standardised_difference(mean_a: float, sd_a: float, mean_b: float, sd_b: float) -> float:
-    """(mean_a - mean_b) / sqrt((sd_a^2 + sd_b^2) / 2); for a proportion p the SD is sqrt(p(1 - p)).
-
-    References
-    ----------
-    Austin PC (2009). Balance diagnostics for comparing the distribution of baseline
-    covariates between treatment groups in propensity-score matched samples. Stat Med 28:3083-3107.
-    """
-    pooled = np.sqrt((sd_a ** 2 + sd_b ** 2) / 2)
-    return float((mean_a - mean_b) / pooled) if pooled > 0 else float("nan")
-
-
 def completeness_baseline(data: pd.DataFrame, complete: pd.Series, types: Optional[Mapping[str, str]] = None,
                           variables: Optional[Sequence[str]] = None) -> CompletenessBaseline:
     """Compare complete with incomplete rows on the fully observed variables, by standardised differences.
@@ -406,7 +387,7 @@ def completeness_baseline(data: pd.DataFrame, complete: pd.Series, types: Option
                 sa, sb = np.sqrt(pa * (1 - pa)), np.sqrt(pb * (1 - pb))
                 rows.append({"variable": name, "level": str(level), "statistic": "proportion", "complete": pa,
                              "complete_sd": sa, "incomplete": pb, "incomplete_sd": sb,
-                             "smd": standardised_difference(pa, sa, pb, sb),
+                             "smd": standardised_difference(pa, sa ** 2, pb, sb ** 2),
                              "n_complete": int(len(hit_a)), "n_incomplete": int(len(hit_b))})
         else:
             xa, xb = a.dropna().astype(float), b.dropna().astype(float)
@@ -414,7 +395,7 @@ def completeness_baseline(data: pd.DataFrame, complete: pd.Series, types: Option
             sa = xa.std(ddof=1) if len(xa) > 1 else np.nan
             sb = xb.std(ddof=1) if len(xb) > 1 else np.nan
             rows.append({"variable": name, "level": "", "statistic": "mean", "complete": ma, "complete_sd": sa,
-                         "incomplete": mb, "incomplete_sd": sb, "smd": standardised_difference(ma, sa, mb, sb),
+                         "incomplete": mb, "incomplete_sd": sb, "smd": standardised_difference(ma, sa ** 2, mb, sb ** 2),
                          "n_complete": int(len(xa)), "n_incomplete": int(len(xb))})
     table = pd.DataFrame(rows, columns=["variable", "level", "statistic", "complete", "complete_sd", "incomplete",
                                         "incomplete_sd", "smd", "n_complete", "n_incomplete"])
@@ -471,11 +452,11 @@ def compare_strategies(estimates: pd.DataFrame, exposure: Union[str, Sequence[st
     chosen["_strategy_order"] = chosen["strategy"].map({s: i for i, s in enumerate(strategies)})
     chosen = chosen.sort_values(["_term_order", "_strategy_order"], kind="stable")
     table = chosen[["strategy", "term", "estimate", "std_error", "ci_lower", "ci_upper", "n_used"]].copy()
-    table.insert(1, "label", table["strategy"].map(lambda s: STRATEGY_LABELS.get(s, s.replace("_", " "))))
+    table.insert(1, "label", table["strategy"].map(lambda s: STRATEGY_TITLES.get(s, s.replace("_", " "))))
     table = add_ratio_columns(table, family)
     reference = table[table["strategy"] == "complete_case"].set_index("term")["std_error"]
     table["se_relative_to_complete_case"] = table["std_error"] / table["term"].map(reference)
     ordered = [c for c in table.columns if c != "n_used"] + ["n_used"]
     table = table[ordered].reset_index(drop=True)
-    return StrategyComparison(table=table, family=family, terms=tuple(terms), ratio_name=RATIO_NAMES.get(family),
+    return StrategyComparison(table=table, family=family, terms=tuple(terms), ratio_name=ratio_name(family),
                               alpha=alpha)

@@ -23,12 +23,8 @@ import pandas as pd
 
 from .errors import InputError, did_you_mean
 from .params import Params, VariableSpec
+from .vocabulary import BLANK, CATEGORICAL_TYPES, IMPLAUSIBLE, NOT_APPLICABLE, NUMERIC_TYPES, infer_type
 
-BLANK = "blank"
-NOT_APPLICABLE = "not applicable"
-IMPLAUSIBLE = "implausible"
-CATEGORICAL_TYPES = ("binary", "nominal", "ordinal")
-NUMERIC_TYPES = ("continuous", "count")
 MAD_TO_SD = 1.4826  # consistency constant of the MAD for the normal distribution (Hampel 1974)
 
 
@@ -246,30 +242,6 @@ def _add_marker(marker: Any, label: Optional[str], text: Dict[str, str], numbers
     else:
         numbers[float(marker)] = reason
         text[_text_key(marker)] = reason
-
-
-# ---------------------------------------------------------------------------
-# types
-
-def infer_type(values: pd.Series) -> Tuple[str, str]:
-    """A type for an undeclared column from its observed values, and why (common practice, no source)."""
-    observed = values.dropna()
-    distinct = observed.unique()
-    if len(distinct) == 0:
-        return "continuous", "no observed values; declare its type"
-    if len(distinct) == 1:
-        kind = "continuous" if pd.api.types.is_numeric_dtype(observed) else "nominal"
-        return kind, "one distinct value (constant where observed)"
-    if pd.api.types.is_numeric_dtype(observed):
-        if len(distinct) <= 2:
-            return "binary", f"{len(distinct)} distinct numbers"
-        whole = np.all(np.mod(observed.to_numpy(dtype=float), 1) == 0)
-        if whole and observed.min() >= 0 and observed.max() <= 20:
-            return "count", "whole numbers from 0 to 20 at most"
-        return "continuous", "numbers"
-    if len(distinct) <= 2:
-        return "binary", f"{len(distinct)} distinct texts"
-    return "nominal", f"{len(distinct)} distinct texts"
 
 
 def _rows_note(rows: np.ndarray, ids: pd.Series, limit: int = 3) -> str:

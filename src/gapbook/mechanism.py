@@ -11,10 +11,9 @@ Three pieces of evidence:
 1. :func:`compare_groups` compares each variable between the rows where an incomplete
    variable is missing and the rows where it is observed (Welch t-test, chi-square or
    Fisher's exact test, standardised differences, Holm-adjusted p-values).
-2. :func:`little_mcar_test` is Little's (1988) test on maximum-likelihood estimates from
-   the EM algorithm for the multivariate normal (:func:`em_multivariate_normal`), which
-   works on per-pattern sufficient statistics so its cost per iteration does not grow
-   with the number of rows.
+2. Little's (1988) test (:func:`gapbook.little.little_mcar_test`) on maximum-likelihood
+   estimates from the EM algorithm for the multivariate normal; this module chooses its
+   variables (:func:`mcar_test_data`).
 3. :func:`missingness_models` fits a logistic regression of each missingness indicator
    on the fully observed variables, with odds ratios and the area under the ROC curve.
 
@@ -23,24 +22,22 @@ missing nor observed: they are left out of every comparison.
 """
 from __future__ import annotations
 
-import math
 import re
 import warnings
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Any, Dict, List, Mapping, Optional, Sequence, Tuple
 
 import numpy as np
 import pandas as pd
-from scipy import linalg, stats
+from scipy import stats
 
 from .errors import InputError, did_you_mean
+from .inference import format_p, standardised_difference, standardised_difference_of_shares, wald_inference
+from .little import LittleTest, little_mcar_test
+from .vocabulary import MAR_CAUTION, NUMBER_CODED_TYPES, NUMERIC_TYPES, PLAN_CAUTION, SENSITIVITY_POINTER, infer_type
 
-NUMERIC_TYPES = ("continuous", "count")
-CATEGORICAL_TYPES = ("binary", "nominal", "ordinal")
-MCAR_TYPES = ("continuous", "count", "binary")
 QUANTILE_GRID = np.linspace(0.0, 1.0, 101)
 MIN_EXPECTED_COUNT = 5.0  # Cochran (1954): chi-square is unreliable below 5 expected per cell
-SINGULAR_EIGENVALUE = 1e-9  # on the correlation scale; below this the covariance is treated as singular
 
 GROUP_COLUMNS = ("incomplete_variable", "compared_variable", "test", "statistic", "df", "p_value", "p_adjusted",
                  "smd", "n_missing_group", "n_observed_group", "mean_missing_group", "mean_observed_group",
@@ -51,15 +48,6 @@ MODEL_COLUMNS = ("incomplete_variable", "term", "coefficient", "std_error", "odd
 
 # ---------------------------------------------------------------------------
 # small helpers
-
-def format_p(p: float) -> str:
-    """A p-value as text for sentences: 'p < 0.001', 'p = 0.012', 'p = 0.43'."""
-    if p is None or not np.isfinite(p):
-        return "p not available"
-    if p < 0.001:
-        return "p < 0.001"
-    return f"p = {p:.3f}" if p < 0.1 else f"p = {p:.2f}"
-
 
 def _missing_frame(data: pd.DataFrame, missing: Optional[pd.DataFrame]) -> pd.DataFrame:
     return data.isna() if missing is None else missing.reindex(columns=data.columns, fill_value=False)
@@ -72,10 +60,8 @@ def _not_applicable_frame(data: pd.DataFrame, not_applicable: Optional[pd.DataFr
 
 
 def _type_of(types: Mapping[str, str], column: str, values: pd.Series) -> str:
-    known = types.get(column)
-    if known is not None:
-        return known
-    return "continuous" if pd.api.types.is_numeric_dtype(values) else "nominal"
+    """The declared type, else the one rule of :func:`gapbook.vocabulary.infer_type`."""
+    return types.get(column) or infer_type(values)[0]
 
 
 def _levels_of(values: pd.Series) -> List[Any]:
@@ -129,54 +115,6 @@ class GroupComparison:
         return order.drop(columns="_abs").head(top).reset_index(drop=True)
 
 
-def smd_continuous(missing_values: np.ndarray, observed_values: np.ndarray) -> float:
-    """Standardised mean difference (missing minus observed) over the pooled SD sqrt((s1^2+s0^2)/2).
-
-    References
-    ----------
-    Austin PC (2009). Balance diagnostics for comparing the distribution of baseline
-    covariates between treatment groups in propensity-score matched samples. Stat Med 28:3083-3107.
-    """
-    if len(missing_values) < 2 or len(observed_values) < 2:
-        return float("nan")
-    pooled = math.sqrt((np.var(missing_values, ddof=1) + np.var(observed_values, ddof=1)) / 2)
-    if pooled <= 0:
-        return float("nan")
-    return float((np.mean(missing_values) - np.mean(observed_values)) / pooled)
-
-
-def smd_categorical(missing_counts: np.ndarray, observed_counts: np.ndarray) -> float:
-    """Standardised difference of two distributions over levels (signed for two levels).
-
-    Two levels: (p1 - p0) / sqrt((p1(1-p1) + p0(1-p0)) / 2) with p the share of the second
-    level (Austin 2009). More levels: the Mahalanobis form sqrt(T' S^-1 T) over all levels
-    but the first, T the share differences, S the mean of the two multinomial covariances
-    (Yang & Dalton 2012); it is unsigned.
-
-    References
-    ----------
-    Austin PC (2009). Stat Med 28:3083-3107.
-    Yang D, Dalton JE (2012). A unified approach to measuring the effect size between two
-    groups using SAS. SAS Global Forum, paper 335-2012.
-    """
-    n1, n0 = missing_counts.sum(), observed_counts.sum()
-    if n1 == 0 or n0 == 0 or len(missing_counts) < 2:
-        return float("nan")
-    p1, p0 = missing_counts / n1, observed_counts / n0
-    if len(p1) == 2:
-        spread = (p1[1] * (1 - p1[1]) + p0[1] * (1 - p0[1])) / 2
-        return float((p1[1] - p0[1]) / math.sqrt(spread)) if spread > 0 else float("nan")
-    t = (p1 - p0)[1:]
-    q1, q0 = p1[1:], p0[1:]
-    spread = (np.diag(q1) - np.outer(q1, q1) + np.diag(q0) - np.outer(q0, q0)) / 2
-    try:
-        solved = np.linalg.solve(spread, t)
-    except np.linalg.LinAlgError:
-        return float("nan")
-    value = float(t @ solved)
-    return math.sqrt(value) if value >= 0 else float("nan")
-
-
 def _empty_row(v: str, w: str, n1: int, n0: int, note: str) -> Dict[str, Any]:
     return {"incomplete_variable": v, "compared_variable": w, "test": "not tested", "statistic": np.nan,
             "df": np.nan, "p_value": np.nan, "smd": np.nan, "n_missing_group": n1, "n_observed_group": n0,
@@ -195,7 +133,8 @@ def _compare_continuous(v: str, w: str, x1: np.ndarray, x0: np.ndarray) -> Dict[
         result = stats.ttest_ind(x1, x0, equal_var=False)
         row = _empty_row(v, w, n1, n0, "")
         row.update(test="Welch t-test", statistic=float(result.statistic), df=float(result.df),
-                   p_value=float(result.pvalue), smd=smd_continuous(x1, x0))
+                   p_value=float(result.pvalue),
+                   smd=standardised_difference(np.mean(x1), np.var(x1, ddof=1), np.mean(x0), np.var(x0, ddof=1)))
     row.update(mean_missing_group=float(np.mean(x1)) if n1 else np.nan,
                mean_observed_group=float(np.mean(x0)) if n0 else np.nan,
                distribution_missing_group=_mean_sd_text(x1), distribution_observed_group=_mean_sd_text(x0))
@@ -244,7 +183,7 @@ def _compare_categorical(v: str, w: str, g1: pd.Series, g0: pd.Series, levels: S
             small = int((expected < MIN_EXPECTED_COUNT).sum())
             if small:
                 row["note"] = f"{small} cells with expected count below 5; interpret with care"
-        row["smd"] = smd_categorical(table[0], table[1])
+        row["smd"] = standardised_difference_of_shares(table[0], table[1])
     row.update(distribution_missing_group=_shares_text(kept_levels, c1[keep]),
                distribution_observed_group=_shares_text(kept_levels, c0[keep]))
     return row
@@ -357,328 +296,7 @@ def _share_frame(v: str, w: str, g1: pd.Series, g0: pd.Series, levels: Sequence[
 
 
 # ---------------------------------------------------------------------------
-# 2. EM for the multivariate normal and Little's test
-
-@dataclass(frozen=True)
-class MissingnessPatterns:
-    """Rows grouped by which variables they have observed, with per-pattern sufficient statistics.
-
-    ``observed[j]`` is the boolean mask of pattern j; ``sums[j]`` and ``crossproducts[j]``
-    are the sum and the sum of outer products of the observed values over its rows.
-    """
-
-    observed: Tuple[np.ndarray, ...]
-    counts: np.ndarray
-    sums: Tuple[np.ndarray, ...]
-    crossproducts: Tuple[np.ndarray, ...]
-
-    @property
-    def n_rows(self) -> int:
-        return int(self.counts.sum())
-
-
-def group_patterns(values: np.ndarray) -> MissingnessPatterns:
-    """Group the rows of a numeric matrix (NaN = missing) by pattern; rows with nothing observed are dropped."""
-    observed = ~np.isnan(values)
-    keep = observed.any(axis=1)
-    values, observed = values[keep], observed[keep]
-    p = values.shape[1]
-    if p <= 62:
-        # An integer key per row is far faster to group than rows of booleans.
-        keys = observed.astype(np.int64) @ (np.int64(1) << np.arange(p, dtype=np.int64))
-        _, first, inverse = np.unique(keys, return_index=True, return_inverse=True)
-    else:
-        _, first, inverse = np.unique(observed, axis=0, return_index=True, return_inverse=True)
-    inverse = np.asarray(inverse).ravel()
-    order = np.argsort(inverse, kind="stable")
-    bounds = np.searchsorted(inverse[order], np.arange(len(first) + 1))
-    masks, counts, sums, cross = [], [], [], []
-    for j in range(len(first)):
-        rows = order[bounds[j]:bounds[j + 1]]
-        mask = observed[first[j]]
-        block = values[np.ix_(rows, np.flatnonzero(mask))]
-        masks.append(mask)
-        counts.append(len(rows))
-        sums.append(block.sum(axis=0))
-        cross.append(block.T @ block)
-    return MissingnessPatterns(observed=tuple(masks), counts=np.array(counts, dtype=float), sums=tuple(sums),
-                               crossproducts=tuple(cross))
-
-
-class SingularCovariance(Exception):
-    """The covariance of the observed variables of some pattern is not positive definite."""
-
-
-@dataclass(frozen=True)
-class EMEstimate:
-    """Maximum-likelihood mean and covariance of a multivariate normal with missing values.
-
-    ``covariance`` uses the ML divisor n. ``loglik`` is the observed-data log-likelihood per
-    iteration (it never decreases under EM; Dempster, Laird & Rubin 1977, theorem 1).
-    """
-
-    mean: pd.Series
-    covariance: pd.DataFrame
-    iterations: int
-    converged: bool
-    tolerance: float
-    max_iterations: int
-    loglik: Tuple[float, ...]
-
-
-def _pattern_blocks(patterns: MissingnessPatterns) -> List[Tuple[Any, ...]]:
-    """Per pattern: n, sums, cross-products and the index blocks, built once for all iterations."""
-    blocks = []
-    for mask, n, s, ss in zip(patterns.observed, patterns.counts, patterns.sums, patterns.crossproducts):
-        o = np.flatnonzero(mask)
-        m = np.flatnonzero(~mask)
-        blocks.append((n, s, ss, o, m, np.ix_(o, o), np.ix_(o, m), np.ix_(m, o), np.ix_(m, m)))
-    return blocks
-
-
-def _pattern_step(blocks: Sequence[Tuple[Any, ...]], mu: np.ndarray, sigma: np.ndarray
-                  ) -> Tuple[np.ndarray, np.ndarray, float]:
-    """One E-step over patterns: expected sufficient statistics T1, T2 and the log-likelihood at (mu, sigma)."""
-    p = len(mu)
-    t1 = np.zeros(p)
-    t2 = np.zeros((p, p))
-    loglik = 0.0
-    log_2pi = math.log(2 * math.pi)
-    for n, s, ss, o, m, oo, om, mo, mm in blocks:
-        sigma_oo = sigma[oo]
-        try:
-            # Cholesky both checks positive definiteness and gives the log-determinant.
-            chol = np.linalg.cholesky(sigma_oo)
-        except np.linalg.LinAlgError:
-            raise SingularCovariance(o) from None
-        mu_o = mu[o]
-        # Centred scatter of the pattern's rows about mu_o, from its sufficient statistics.
-        scatter = ss - np.outer(s, mu_o) - np.outer(mu_o, s) + n * np.outer(mu_o, mu_o)
-        sigma_om = sigma[om]
-        # One solve for both right-hand sides: Sigma_oo^-1 [Sigma_om, scatter] (no explicit inverse).
-        solved = np.linalg.solve(sigma_oo, np.hstack([sigma_om, scatter]))
-        k = len(m)
-        log_det = 2.0 * np.sum(np.log(np.diag(chol)))
-        loglik -= 0.5 * (n * (log_det + len(o) * log_2pi) + np.trace(solved[:, k:]))
-        t1[o] += s
-        t2[oo] += ss
-        if k == 0:
-            continue
-        slope = solved[:, :k].T                                           # regression of y_m on y_o
-        residual_cov = sigma[mm] - sigma_om.T @ solved[:, :k]
-        intercept = mu[m] - slope @ mu_o
-        slope_s = slope @ s
-        t1[m] += n * intercept + slope_s
-        cross = np.outer(intercept, s) + slope @ ss                       # sum of E[y_m] y_o'
-        t2[mo] += cross
-        t2[om] += cross.T
-        t2[mm] += (n * np.outer(intercept, intercept) + np.outer(intercept, slope_s)
-                   + np.outer(slope_s, intercept) + slope @ ss @ slope.T + n * residual_cov)
-    return t1, t2, loglik
-
-
-def _standardise(values: np.ndarray) -> Tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Centre and scale each column by its observed mean and SD, so sums of squares keep their precision."""
-    centre = np.nanmean(values, axis=0)
-    scale = np.nanstd(values, axis=0)
-    scale = np.where(scale > 0, scale, 1.0)
-    return (values - centre) / scale, centre, scale
-
-
-def em_multivariate_normal(data: pd.DataFrame, tolerance: float = 1e-8, max_iterations: int = 1000) -> EMEstimate:
-    """Maximum-likelihood mean and covariance of a multivariate normal sample with missing values, by EM.
-
-    The E-step works on per-pattern sums and cross-products, so each iteration costs
-    O(patterns x p^3) whatever the number of rows. Conditional regressions use Cholesky
-    solves, never explicit inverses. Iteration runs on columns standardised by their
-    observed mean and SD (the estimates are transformed back); it stops when no entry of
-    the standardised mean or covariance changes by more than ``tolerance``.
-
-    Parameters
-    ----------
-    data : numeric columns, NaN where missing; rows with every value missing are ignored.
-    tolerance : convergence tolerance on the standardised scale.
-    max_iterations : iteration cap; ``converged`` is False when it is reached.
-
-    Returns
-    -------
-    EMEstimate (mean, covariance with divisor n, iterations, converged, log-likelihood path).
-    Raises SingularCovariance when the covariance of some pattern's observed variables
-    is not positive definite.
-
-    References
-    ----------
-    Dempster AP, Laird NM, Rubin DB (1977). Maximum likelihood from incomplete data via the
-    EM algorithm. JRSS B 39:1-38.
-    Little RJA, Rubin DB (2002). Statistical Analysis with Missing Data, 2nd ed., Wiley,
-    section 11.2 (EM for the multivariate normal; section number recalled from memory).
-    """
-    names = list(data.columns)
-    raw = data.to_numpy(dtype=float)
-    scaled, centre, scale = _standardise(raw)
-    patterns = group_patterns(scaled)
-    blocks = _pattern_blocks(patterns)
-    p = raw.shape[1]
-    n = patterns.n_rows
-    # Start at available-case means and variances with no correlation: always positive definite.
-    mu = np.zeros(p)
-    sigma = np.diag(np.where(np.nanstd(raw, axis=0) > 0, 1.0, 0.0))
-    history: List[float] = []
-    converged = False
-    iterations = 0
-    for iterations in range(1, max_iterations + 1):
-        t1, t2, loglik = _pattern_step(blocks, mu, sigma)
-        history.append(loglik)
-        new_mu = t1 / n
-        new_sigma = t2 / n - np.outer(new_mu, new_mu)
-        new_sigma = (new_sigma + new_sigma.T) / 2
-        change = max(np.max(np.abs(new_mu - mu)), np.max(np.abs(new_sigma - sigma)))
-        mu, sigma = new_mu, new_sigma
-        if change < tolerance:
-            converged = True
-            break
-    # Log-likelihood at the final estimates, on the original scale (Jacobian of the standardisation).
-    observed_cells = np.array([np.sum(~np.isnan(raw[:, k])) for k in range(p)])
-    _, _, final = _pattern_step(blocks, mu, sigma)
-    history.append(final)
-    jacobian = float(np.sum(observed_cells * np.log(scale)))
-    mean = centre + scale * mu
-    covariance = sigma * np.outer(scale, scale)
-    return EMEstimate(mean=pd.Series(mean, index=names), covariance=pd.DataFrame(covariance, index=names, columns=names),
-                      iterations=iterations, converged=converged, tolerance=tolerance, max_iterations=max_iterations,
-                      loglik=tuple(v - jacobian for v in history))
-
-
-@dataclass(frozen=True)
-class LittleTest:
-    """Little's MCAR test: statistic, df, p-value, the EM fit it rests on and per-pattern parts.
-
-    ``patterns`` has one row per missingness pattern used: n_rows, n_observed, the pattern's
-    share of the statistic (``contribution``) and one 0/1 column per variable (1 = observed).
-    ``notes`` explains variables left out, rows skipped, non-convergence or a singular covariance.
-    """
-
-    statistic: float
-    df: int
-    p_value: float
-    n_patterns: int
-    variables: Tuple[str, ...]
-    n_rows: int
-    n_rows_skipped: int
-    em: Optional[EMEstimate]
-    patterns: pd.DataFrame
-    notes: Tuple[str, ...] = field(default_factory=tuple)
-
-    def table(self) -> pd.DataFrame:
-        """The one-row ``mcar_test.csv``."""
-        em = self.em
-        return pd.DataFrame([{
-            "statistic": self.statistic, "df": self.df, "p_value": self.p_value, "n_patterns": self.n_patterns,
-            "variables": ",".join(self.variables), "em_iterations": em.iterations if em else 0,
-            "em_converged": em.converged if em else False, "em_tolerance": em.tolerance if em else np.nan,
-            "em_max_iterations": em.max_iterations if em else 0, "n_rows": self.n_rows,
-            "n_rows_skipped": self.n_rows_skipped, "note": " ".join(self.notes),
-        }])
-
-
-def little_mcar_test(data: pd.DataFrame, tolerance: float = 1e-8, max_iterations: int = 1000,
-                     notes: Sequence[str] = ()) -> LittleTest:
-    """Little's test of missing completely at random for numeric variables.
-
-    d^2 = sum_j n_j (ybar_j - mu_j)' Sigma_j^-1 (ybar_j - mu_j) over missingness patterns j,
-    with mu and Sigma the maximum-likelihood (EM) estimates restricted to the variables
-    observed in pattern j; under MCAR and multivariate normality d^2 is approximately
-    chi-square with df = sum_j p_j - p. Rows with every variable missing are skipped. A
-    singular covariance gives NaN with an explanation in ``notes`` rather than an error.
-
-    Parameters
-    ----------
-    data : numeric columns (binary as 0/1), NaN where missing.
-    tolerance, max_iterations : passed to :func:`em_multivariate_normal`.
-    notes : explanations from variable selection to carry in the result.
-
-    Returns
-    -------
-    LittleTest.
-
-    References
-    ----------
-    Little RJA (1988). A test of missing completely at random for multivariate data with
-    missing values. JASA 83:1198-1202.
-    """
-    names = tuple(data.columns)
-    values = data.to_numpy(dtype=float)
-    observed = ~np.isnan(values)
-    all_missing = ~observed.any(axis=1)
-    n_skipped = int(all_missing.sum())
-    notes = list(notes)
-    if n_skipped:
-        notes.append(f"{n_skipped} rows with every test variable missing were skipped.")
-    n_rows = int(len(values) - n_skipped)
-    empty_patterns = pd.DataFrame(columns=["n_rows", "n_observed", "contribution", *names])
-    if len(names) == 0 or n_rows == 0:
-        notes.append("No variable with observed values: Little's test was not computed.")
-        return LittleTest(np.nan, 0, np.nan, 0, names, n_rows, n_skipped, None, empty_patterns, tuple(notes))
-    try:
-        em = em_multivariate_normal(data, tolerance=tolerance, max_iterations=max_iterations)
-    except SingularCovariance as exc:
-        notes.append(_singular_note(data, [names[k] for k in exc.args[0]]))
-        return LittleTest(np.nan, 0, np.nan, 0, names, n_rows, n_skipped, None, empty_patterns, tuple(notes))
-    if not em.converged:
-        notes.append(f"EM did not converge in {em.max_iterations} iterations (tolerance {em.tolerance:g}); "
-                     "the statistic uses the last estimates. Raise mechanism.em_max_iterations.")
-    dependence = _dependence(em.covariance)
-    if dependence:
-        notes.append(_singular_note(data, dependence))
-        return LittleTest(np.nan, 0, np.nan, 0, names, n_rows, n_skipped, em, empty_patterns, tuple(notes))
-    mu = em.mean.to_numpy()
-    sigma = em.covariance.to_numpy()
-    patterns = group_patterns(values)
-    statistic = 0.0
-    df = 0
-    rows = []
-    for mask, n, s in zip(patterns.observed, patterns.counts, patterns.sums):
-        o = np.flatnonzero(mask)
-        difference = s / n - mu[o]
-        factor = linalg.cho_factor(sigma[np.ix_(o, o)], lower=True, check_finite=False)
-        part = float(n * difference @ linalg.cho_solve(factor, difference, check_finite=False))
-        statistic += part
-        df += len(o)
-        rows.append({"n_rows": int(n), "n_observed": len(o), "contribution": part,
-                     **{name: int(flag) for name, flag in zip(names, mask)}})
-    df -= len(names)
-    table = pd.DataFrame(rows, columns=empty_patterns.columns).sort_values(
-        "n_rows", ascending=False, kind="stable").reset_index(drop=True)
-    if df == 0:
-        # One pattern with everything observed: the sample means are the ML means, d^2 = 0.
-        notes.append("Only one missingness pattern: there is nothing to compare (statistic 0, df 0).")
-        return LittleTest(0.0, 0, np.nan, len(rows), names, n_rows, n_skipped, em, table, tuple(notes))
-    p_value = float(stats.chi2.sf(statistic, df))
-    return LittleTest(float(statistic), int(df), p_value, len(rows), names, n_rows, n_skipped, em, table,
-                      tuple(notes))
-
-
-def _dependence(covariance: pd.DataFrame) -> List[str]:
-    """Variables in a (near-)linear dependence, or [] when the covariance is safely positive definite."""
-    sd = np.sqrt(np.clip(np.diag(covariance.to_numpy()), 0, None))
-    names = list(covariance.columns)
-    constant = [name for name, s in zip(names, sd) if s <= 0]
-    if constant:
-        return constant
-    correlation = covariance.to_numpy() / np.outer(sd, sd)
-    values, vectors = np.linalg.eigh(correlation)
-    if values[0] > SINGULAR_EIGENVALUE * max(values[-1], 1.0):
-        return []
-    loading = np.abs(vectors[:, 0])
-    return [names[k] for k in np.argsort(-loading) if loading[k] > 0.1]
-
-
-def _singular_note(data: pd.DataFrame, involved: Sequence[str]) -> str:
-    listed = ", ".join(involved) if involved else ", ".join(data.columns)
-    return (f"Little's test was not computed: the covariance of {listed} is singular (a variable is constant "
-            "where observed, or is an exact linear combination of others, e.g. a total and its parts). "
-            "Choose the test variables with mechanism.variables, leaving one of them out.")
-
+# 2. the variables of Little's test (the test itself is in gapbook.little)
 
 def mcar_test_data(data: pd.DataFrame, types: Mapping[str, str], not_applicable: Optional[pd.DataFrame] = None,
                    variables: Optional[Sequence[str]] = None) -> Tuple[pd.DataFrame, Tuple[str, ...]]:
@@ -701,7 +319,7 @@ def mcar_test_data(data: pd.DataFrame, types: Mapping[str, str], not_applicable:
                 raise InputError(f"mechanism.variables: '{name}' is not a column of the data"
                                  f"{did_you_mean(name, data.columns)}")
             kind = _type_of(types, name, data[name])
-            if kind not in MCAR_TYPES:
+            if kind not in NUMBER_CODED_TYPES:
                 raise InputError(f"mechanism.variables: '{name}' is {kind}; Little's test takes continuous, count "
                                  "and binary variables, so leave it out of mechanism.variables")
             if data[name].notna().sum() == 0:
@@ -714,7 +332,7 @@ def mcar_test_data(data: pd.DataFrame, types: Mapping[str, str], not_applicable:
         rows = np.ones(len(data), dtype=bool)
         for name in data.columns:
             kind = _type_of(types, name, data[name])
-            if kind not in MCAR_TYPES or data[name].notna().sum() == 0:
+            if kind not in NUMBER_CODED_TYPES or data[name].notna().sum() == 0:
                 continue
             if bool(not_applicable[name].any()):
                 notes.append(f"{name} was left out because it does not apply to every row.")
@@ -843,7 +461,6 @@ def fit_missingness_model(data: pd.DataFrame, variable: str, predictors: Sequenc
         terms = pd.DataFrame([{"incomplete_variable": variable, "term": "", "n_used": len(frame),
                                "n_missing": n_missing, "note": note}], columns=list(MODEL_COLUMNS))
         return terms, summary
-    crit = stats.norm.ppf(1 - alpha / 2)
     coef, se = result.params, result.bse
     auc = roc_auc(indicator, np.asarray(result.predict()))
     note = ""
@@ -853,19 +470,19 @@ def fit_missingness_model(data: pd.DataFrame, variable: str, predictors: Sequenc
         note = f"fewer than 10 rows of the rarer outcome per model term ({per_term:.1f}); odds ratios may be unstable"
     # An intercept far from the data (e.g. calendar years as a predictor) can overflow exp(): inf is honest.
     with np.errstate(over="ignore"):
-        terms = _term_rows(variable, coef, se, result, crit, auc, n_missing, note)
+        terms = _term_rows(variable, coef, se, result, alpha, auc, n_missing, note)
     summary.update(auc=auc, lr_statistic=float(result.llr), lr_df=float(result.df_model),
                    lr_p_value=float(result.llr_pvalue), note=note)
     return terms, summary
 
 
-def _term_rows(variable: str, coef: pd.Series, se: pd.Series, result: Any, crit: float, auc: float,
+def _term_rows(variable: str, coef: pd.Series, se: pd.Series, result: Any, alpha: float, auc: float,
                n_missing: int, note: str) -> pd.DataFrame:
+    lower, upper, _ = wald_inference(coef.to_numpy(), se.to_numpy(), None, alpha)
     return pd.DataFrame({
         "incomplete_variable": variable, "term": list(coef.index), "coefficient": coef.to_numpy(),
         "std_error": se.to_numpy(), "odds_ratio": np.exp(coef.to_numpy()),
-        "ci_lower": np.exp(coef.to_numpy() - crit * se.to_numpy()),
-        "ci_upper": np.exp(coef.to_numpy() + crit * se.to_numpy()), "p_value": result.pvalues.to_numpy(),
+        "ci_lower": np.exp(lower), "ci_upper": np.exp(upper), "p_value": result.pvalues.to_numpy(),
         "auc": auc, "lr_p_value": float(result.llr_pvalue), "n_used": int(result.nobs), "n_missing": n_missing,
         "note": note,
     }, columns=list(MODEL_COLUMNS))
@@ -943,13 +560,6 @@ def missingness_models(data: pd.DataFrame, types: Mapping[str, str], missing: Op
 
 # ---------------------------------------------------------------------------
 # 4. wording
-
-MAR_CAUTION = ("No test on the observed data can tell missing at random (MAR) from missing not at random (MNAR): "
-               "whether missingness depends on the values that are missing cannot be checked from the data. "
-               "The sensitivity stage shows how far the conclusions move if the data are missing not at random.")
-PLAN_CAUTION = ("These results support, not replace, the pre-specified analysis plan and the judgement of a "
-                "qualified statistician.")
-
 
 def discrimination_words(auc: float) -> str:
     """How well a missingness model separates missing from observed rows, in words.
@@ -1047,7 +657,7 @@ def summary_sentences(groups: Optional[GroupComparison], mcar: Optional[LittleTe
         sentences.extend(group_sentences(groups))
     if models is not None:
         sentences.extend(model_sentences(models))
-    sentences.append(MAR_CAUTION)
+    sentences.append(f"{MAR_CAUTION} {SENSITIVITY_POINTER}")
     sentences.append(PLAN_CAUTION)
     return tuple(sentences)
 

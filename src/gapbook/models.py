@@ -16,12 +16,10 @@ import numpy as np
 import pandas as pd
 import statsmodels.api as sm
 import statsmodels.formula.api as smf
-from scipy import stats
 
 from .errors import AnalysisError, InputError, did_you_mean
-
-FAMILIES = ("gaussian", "binomial", "poisson")
-RATIO_NAMES = {"binomial": "odds_ratio", "poisson": "rate_ratio"}
+from .inference import wald_inference
+from .vocabulary import FAMILY_NAMES, ratio_name
 
 
 @dataclass(frozen=True)
@@ -49,17 +47,10 @@ class ModelFit:
     def table(self, strategy: str) -> pd.DataFrame:
         """Rows for ``estimates.csv``: one per term, with CI at level 1 - alpha and p-value."""
         se = self.std_errors
-        with np.errstate(divide="ignore", invalid="ignore"):
-            z = self.params / se
-        if self.df_resid is None:
-            crit = stats.norm.ppf(1 - self.alpha / 2)
-            p = 2 * stats.norm.sf(np.abs(z))
-        else:
-            crit = stats.t.ppf(1 - self.alpha / 2, self.df_resid)
-            p = 2 * stats.t.sf(np.abs(z), self.df_resid)
+        lower, upper, p = wald_inference(self.params, se, self.df_resid, self.alpha)
         frame = pd.DataFrame({
             "strategy": strategy, "term": list(self.terms), "estimate": self.params, "std_error": se,
-            "ci_lower": self.params - crit * se, "ci_upper": self.params + crit * se, "p_value": p,
+            "ci_lower": lower, "ci_upper": upper, "p_value": p,
             "n_used": self.nobs,
         })
         return add_ratio_columns(frame, self.family)
@@ -67,7 +58,7 @@ class ModelFit:
 
 def add_ratio_columns(frame: pd.DataFrame, family: str) -> pd.DataFrame:
     """For log-link models, the estimate and CI on the ratio scale (odds or rate ratio)."""
-    name = RATIO_NAMES.get(family)
+    name = ratio_name(family)
     if name is None:
         return frame
     return frame.assign(**{name: np.exp(frame["estimate"]), f"{name}_ci_lower": np.exp(frame["ci_lower"]),
@@ -159,9 +150,9 @@ def fit_model(data: pd.DataFrame, formula: str, family: str = "gaussian", robust
     White H (1980). A heteroskedasticity-consistent covariance matrix estimator and a
     direct test for heteroskedasticity. Econometrica 48:817-838.
     """
-    if family not in FAMILIES:
-        raise InputError(f"analysis.family: '{family}' is not one of {', '.join(FAMILIES)}"
-                         f"{did_you_mean(family, FAMILIES)}")
+    if family not in FAMILY_NAMES:
+        raise InputError(f"analysis.family: '{family}' is not one of {', '.join(FAMILY_NAMES)}"
+                         f"{did_you_mean(family, FAMILY_NAMES)}")
     outcome, _ = check_formula(formula, list(data.columns))
     if data[outcome].notna().sum() == 0:
         raise InputError(f"analysis.formula: the outcome '{outcome}' has no observed values")
@@ -231,9 +222,9 @@ class AnalysisModel:
 
     def variables(self, columns: Sequence[str]) -> Tuple[str, List[str]]:
         """The outcome and the other model columns (formula order, then the offset); exits 2 on unknown names."""
-        if self.family not in FAMILIES:
-            raise InputError(f"analysis.family: '{self.family}' is not one of {', '.join(FAMILIES)}"
-                             f"{did_you_mean(self.family, FAMILIES)}")
+        if self.family not in FAMILY_NAMES:
+            raise InputError(f"analysis.family: '{self.family}' is not one of {', '.join(FAMILY_NAMES)}"
+                             f"{did_you_mean(self.family, FAMILY_NAMES)}")
         outcome, used = check_formula(self.formula, list(columns))
         used = [c for c in used if c != outcome]
         if self.offset is not None:

@@ -17,12 +17,14 @@ import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
 from .errors import InputError, did_you_mean
+from .vocabulary import FAMILY_NAMES, IMPUTATION_METHODS, VARIABLE_TYPES
 
-VariableType = Literal["continuous", "binary", "nominal", "ordinal", "count"]
-VARIABLE_TYPES: Tuple[str, ...] = ("continuous", "binary", "nominal", "ordinal", "count")
-FAMILIES: Tuple[str, ...] = ("gaussian", "binomial", "poisson")
 DATA_FORMATS: Tuple[str, ...] = ("auto", "csv", "tsv", "xlsx", "parquet")
-IMPUTATION_METHODS: Tuple[str, ...] = ("pmm", "normal", "logistic", "multinomial", "ordinal", "passive")
+# pydantic checks a value against a Literal; the Literals are built from the vocabulary's tuples.
+VariableType = Literal.__getitem__(VARIABLE_TYPES)
+FamilyName = Literal.__getitem__(FAMILY_NAMES)
+ImputationMethod = Literal.__getitem__(IMPUTATION_METHODS)
+DataFormat = Literal.__getitem__(DATA_FORMATS)
 STAGES: Tuple[str, ...] = ("audit", "mechanism", "cases", "indicator", "impute", "sensitivity", "simulate", "report")
 
 Marker = Union[str, int, float]
@@ -39,7 +41,7 @@ class StudySection(_Section):
 class DataSection(_Section):
     path: str
     id: Optional[str] = None
-    format: Literal["auto", "csv", "tsv", "xlsx", "parquet"] = "auto"
+    format: DataFormat = "auto"
     sheet: Optional[Union[str, int]] = None
     encoding: str = "utf-8"
 
@@ -105,7 +107,7 @@ class MechanismSection(_Section):
 
 class AnalysisSection(_Section):
     formula: Optional[str] = None
-    family: Literal["gaussian", "binomial", "poisson"] = "gaussian"
+    family: FamilyName = "gaussian"
     exposure: Optional[str] = None
     offset: Optional[str] = None
     robust: bool = False
@@ -118,9 +120,7 @@ class ImputationSection(_Section):
     seed: int = Field(20261202, ge=0)
     donors: int = Field(5, ge=1)
     n_jobs: int = Field(1, ge=1)
-    methods: Dict[str, Literal["pmm", "normal", "logistic", "multinomial", "ordinal", "passive"]] = Field(
-        default_factory=dict
-    )
+    methods: Dict[str, ImputationMethod] = Field(default_factory=dict)
     passive: Dict[str, str] = Field(default_factory=dict)
     predictors: Dict[str, List[str]] = Field(default_factory=dict)
     exclude_predictors: Dict[str, List[str]] = Field(default_factory=dict)

@@ -18,9 +18,10 @@ import pandas as pd
 from scipy import stats
 
 from .errors import AnalysisError, InputError
+from .inference import wald_inference
 from .models import ModelFit, add_ratio_columns, exposure_terms
 
-STRATEGY = "multiple_imputation"
+STRATEGY = "multiple_imputation"  # the vocabulary's name for this strategy (gapbook.vocabulary.STRATEGIES)
 
 
 @dataclass(frozen=True)
@@ -226,14 +227,10 @@ class PooledResult:
         pooled = self.pooled
         se = np.sqrt(pooled.total)
         df = pooled.df
-        crit = np.where(np.isinf(df), stats.norm.ppf(1 - self.alpha / 2),
-                        stats.t.ppf(1 - self.alpha / 2, np.where(np.isinf(df), 1.0, df)))
-        with np.errstate(divide="ignore", invalid="ignore"):
-            z = pooled.estimate / se
-        p = np.where(np.isinf(df), 2 * stats.norm.sf(np.abs(z)), 2 * stats.t.sf(np.abs(z), np.where(np.isinf(df), 1.0, df)))
+        lower, upper, p = wald_inference(pooled.estimate, se, df, self.alpha)
         frame = pd.DataFrame({
             "strategy": self.strategy, "term": list(self.terms), "estimate": pooled.estimate, "std_error": se,
-            "ci_lower": pooled.estimate - crit * se, "ci_upper": pooled.estimate + crit * se, "p_value": p,
+            "ci_lower": lower, "ci_upper": upper, "p_value": p,
             "n_used": self.nobs, "df": df, "fmi": pooled.fmi, "riv": pooled.riv,
         })
         return add_ratio_columns(frame, self.family)

@@ -18,26 +18,9 @@ import pandas as pd
 from .errors import InputError, did_you_mean
 from .intake import Study
 from .models import check_formula
+from .inference import format_p
 from .params import Params
-
-CAUTIONS: Tuple[str, ...] = (
-    "Missing at random cannot be verified from the observed data: every imputation-based result rests on an "
-    "assumption about the values nobody saw, which is why the delta-adjusted analyses are shown beside it.",
-    "These results support, and do not replace, a pre-specified statistical analysis plan and the judgement of a "
-    "qualified statistician.",
-    "Follow the reporting guideline your journal asks for (e.g. CONSORT for trials, STROBE for observational "
-    "studies) and local data-protection rules before sharing any table from this record.",
-)
-
-NO_MODEL_MAR_CAUTION = (
-    "Missing at random cannot be verified from the observed data: a test can give evidence against missing "
-    "completely at random, none can tell missing at random from missing not at random.")
-
-STRATEGY_LABELS = {
-    "complete_case": "complete cases",
-    "missing_category": "missing-category (indicator) analysis",
-    "multiple_imputation": "multiple imputation",
-}
+from .vocabulary import STRATEGY_PHRASES, cautions as page_cautions
 
 # Count columns of the record's tables that small-count suppression masks, by table.
 COUNT_TABLES: Dict[str, Tuple[str, ...]] = {
@@ -250,7 +233,7 @@ def participant_flow(study: Study, formula: Optional[str], group: Optional[str] 
                 continue
             n_used = float(total.iloc[0])
             row = {"step": f"analysed: {strategy}",
-                   "description": f"analysed under {STRATEGY_LABELS.get(strategy, strategy)}", "all": n_used}
+                   "description": f"analysed under {STRATEGY_PHRASES.get(strategy, strategy)}", "all": n_used}
             match = next((mask for mask in candidates if float(mask.sum()) == n_used), None)
             for level in levels:
                 row[level] = counts(match)[level] if match is not None else float("nan")
@@ -363,16 +346,6 @@ def _count(value: object, min_cell: int = 0) -> str:
     return _fmt(number)
 
 
-def _fmt_p(p: object) -> str:
-    try:
-        value = float(p)  # type: ignore[arg-type]
-    except (TypeError, ValueError):
-        return "n/a"
-    if not math.isfinite(value):
-        return "n/a"
-    return "< 0.001" if value < 0.001 else f"{value:.3f}"
-
-
 def exposure_rows(estimates: Optional[pd.DataFrame], terms: Sequence[str]) -> pd.DataFrame:
     """The rows of ``estimates.csv`` for the exposure terms (empty when none)."""
     if estimates is None or estimates.empty:
@@ -384,7 +357,7 @@ def effect_phrase(row: Mapping[str, object], alpha: float) -> str:
     """'-0.40 (95% CI -0.49 to -0.31; p < 0.001)' for one estimates row."""
     level = int(round(100 * (1 - alpha)))
     return (f"{_fmt(row['estimate'])} ({level}% CI {_fmt(row['ci_lower'])} to {_fmt(row['ci_upper'])}; "
-            f"p {'' if _fmt_p(row['p_value']).startswith('<') else '= '}{_fmt_p(row['p_value'])})")
+            f"{format_p(row['p_value'])})")
 
 
 def build_checklist(params: Params, flow: ParticipantFlow, missing: MissingSummary,
@@ -475,7 +448,7 @@ def build_checklist(params: Params, flow: ParticipantFlow, missing: MissingSumma
     if mcar is not None and len(mcar):
         first = mcar.iloc[0]
         mcar_value = (f"Little's test chi-square {_fmt(first['statistic'])}, df {_fmt(first['df'])}, "
-                      f"p {_fmt_p(first['p_value'])}")
+                      f"{format_p(first['p_value'])}")
     else:
         mcar_value = "mechanism stage not run"
     items.append(ChecklistItem(
@@ -490,7 +463,7 @@ def build_checklist(params: Params, flow: ParticipantFlow, missing: MissingSumma
     items.append(ChecklistItem(
         "how missing data were addressed", "STROBE 12c",
         "tables/estimates.csv, strategy column",
-        ", ".join(STRATEGY_LABELS.get(s, s) for s in strategies) or "no analysis stage has run"))
+        ", ".join(STRATEGY_PHRASES.get(s, s) for s in strategies) or "no analysis stage has run"))
     imputation = tables.get("imputation_summary")
     mi = exposure[exposure["strategy"] == "multiple_imputation"]
     items.append(ChecklistItem(
@@ -505,7 +478,7 @@ def build_checklist(params: Params, flow: ParticipantFlow, missing: MissingSumma
     items.append(ChecklistItem(
         "results of complete-case and imputed analyses side by side", "Sterne et al. 2009",
         "tables/estimates.csv; tables/strategy_comparison.csv",
-        "; ".join(f"{STRATEGY_LABELS.get(r['strategy'], r['strategy'])} {effect_phrase(r, params.analysis.alpha)}"
+        "; ".join(f"{STRATEGY_PHRASES.get(r['strategy'], r['strategy'])} {effect_phrase(r, params.analysis.alpha)}"
                   for _, r in exposure.iterrows()) or "no analysis stage has run"))
     sensitivity = tables.get("tipping_point")
     items.append(ChecklistItem(
@@ -595,7 +568,7 @@ def draft_methods(params: Params, flow: ParticipantFlow, missing: MissingSummary
             f"the outcome, the exposure and every covariate of the analysis model{aux}{passive}. "
             f"{imputation_methods_phrase(tables.get('imputation_summary')).capitalize()}. Estimates were "
             "combined with Rubin's rules (Rubin 1987) with small-sample degrees of freedom (Barnard & Rubin 1999).")
-    others = [STRATEGY_LABELS[s] for s in ("complete_case", "missing_category") if s in strategies]
+    others = [STRATEGY_PHRASES[s] for s in ("complete_case", "missing_category") if s in strategies]
     if others:
         sentences.append(f"For comparison the model was also fitted by {' and '.join(others)}.")
     sensitivity = tables.get("sensitivity_delta")
@@ -639,13 +612,13 @@ def draft_results(params: Params, flow: ParticipantFlow, missing: MissingSummary
     if mcar is not None and len(mcar):
         row = mcar.iloc[0]
         sentences.append(f"Little's test gave chi-square {_fmt(row['statistic'])} on {_fmt(row['df'])} degrees of "
-                         f"freedom (p {_fmt_p(row['p_value'])}); a small p-value is evidence against missing "
+                         f"freedom ({format_p(row['p_value'])}); a small p-value is evidence against missing "
                          "completely at random, a large one is not evidence for it.")
     if not params.analysis.formula:
         return " ".join(sentences)
     exposure = exposure_rows(tables.get("estimates"), terms)
     if len(exposure):
-        parts = [f"{STRATEGY_LABELS.get(r['strategy'], r['strategy'])} {effect_phrase(r, alpha)}"
+        parts = [f"{STRATEGY_PHRASES.get(r['strategy'], r['strategy'])} {effect_phrase(r, alpha)}"
                  for _, r in exposure.iterrows()]
         sentences.append(f"The estimated effect ({', '.join(terms)}) was " + "; ".join(parts) + ".")
     else:
@@ -726,7 +699,7 @@ def summarise(params: Params, study: Study, tables: Mapping[str, Optional[pd.Dat
     applies = STAGE_OF_TABLE if params.analysis.formula else {
         name: stage for name, stage in STAGE_OF_TABLE.items() if name in ("audit_variables", "mcar_test")}
     not_run = tuple(dict.fromkeys(stage for name, stage in applies.items() if tables.get(name) is None))
-    cautions = CAUTIONS if params.analysis.formula else (NO_MODEL_MAR_CAUTION,) + CAUTIONS[1:]
+    cautions = page_cautions(with_model=bool(params.analysis.formula))
     return ReportSummary(flow=flow, missing=missing, checklist=checklist,
                          methods_text=draft_methods(params, flow, missing, tables),
                          results_text=draft_results(params, flow, missing, tables, terms, min_cell),

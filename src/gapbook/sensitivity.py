@@ -26,10 +26,12 @@ from typing import Callable, Dict, List, Mapping, Optional, Sequence, Tuple
 
 import numpy as np
 import pandas as pd
-from scipy import optimize, stats
+from scipy import optimize
 
 from .errors import InputError, did_you_mean
+from .inference import wald_inference
 from .models import AnalysisModel
+from .vocabulary import MAR_CAUTION
 
 ALL_GROUPS = "all"
 DELTA_COLUMNS: Tuple[str, ...] = ("variable", "group", "delta", "term", "estimate", "ci_lower", "ci_upper", "p_value")
@@ -191,16 +193,10 @@ def plan_evaluator(plan, m: Optional[int] = None, iterations: Optional[int] = No
 
 def interval(table: pd.DataFrame, alpha: float) -> pd.DataFrame:
     """CI at level 1 - alpha and p-value from estimate, std_error and df (normal when df is missing or infinite)."""
-    est = table["estimate"].to_numpy(dtype=float)
-    se = table["std_error"].to_numpy(dtype=float)
-    df = table["df"].to_numpy(dtype=float) if "df" in table.columns else np.full(len(table), np.inf)
-    df = np.where(np.isfinite(df), df, np.inf)
-    finite_df = np.where(np.isinf(df), 1.0, df)
-    crit = np.where(np.isinf(df), stats.norm.ppf(1 - alpha / 2), stats.t.ppf(1 - alpha / 2, finite_df))
-    with np.errstate(divide="ignore", invalid="ignore"):
-        z = np.abs(est / se)
-    p = np.where(np.isinf(df), 2 * stats.norm.sf(z), 2 * stats.t.sf(z, finite_df))
-    return table.assign(ci_lower=est - crit * se, ci_upper=est + crit * se, p_value=p)
+    df = table["df"].to_numpy(dtype=float) if "df" in table.columns else None
+    lower, upper, p = wald_inference(table["estimate"].to_numpy(dtype=float), table["std_error"].to_numpy(dtype=float),
+                                     df, alpha)
+    return table.assign(ci_lower=lower, ci_upper=upper, p_value=p)
 
 
 # ---------------------------------------------------------------------------
@@ -480,6 +476,5 @@ def compare_with_deltas(estimates: Optional[pd.DataFrame], result: DeltaResult, 
             sentences.append(f"For {term} the conclusion changes across analyses: "
                              + ", ".join(f"{n} with the interval {words[c]}" for c, n in counts.items())
                              + f" (differing from {part['analysis'].iloc[0]}: {shown}).")
-    sentences.append("Missing at random cannot be verified from the data; the delta-adjusted rows show how the "
-                     "answer depends on that assumption.")
+    sentences.append(f"{MAR_CAUTION} The delta-adjusted rows show how the answer depends on that assumption.")
     return StrategyAndDelta(table=table, sentence=" ".join(sentences), changes=changes)

@@ -17,9 +17,9 @@ import pandas as pd
 
 from .intake import Study, load_study
 from .params import Params, load_params
+from .vocabulary import strategy_rank
 
 CSV_FLOAT_FORMAT = "%.10g"
-STRATEGY_ORDER = ("complete_case", "missing_category", "multiple_imputation")
 ESTIMATE_COLUMNS = ("strategy", "term", "estimate", "std_error", "ci_lower", "ci_upper", "p_value", "n_used",
                     "df", "fmi", "riv")
 
@@ -78,8 +78,7 @@ def merge_estimates(existing: Optional[pd.DataFrame], rows: pd.DataFrame, path: 
         if column not in table.columns:
             table[column] = float("nan")
     extra = [c for c in table.columns if c not in ESTIMATE_COLUMNS]
-    rank = {s: i for i, s in enumerate(STRATEGY_ORDER)}
-    table = table.assign(_order=table["strategy"].map(lambda s: rank.get(s, len(rank))))
+    table = table.assign(_order=table["strategy"].map(strategy_rank))
     table = table.sort_values(["_order", "strategy"], kind="stable").drop(columns="_order")
     table = table[list(ESTIMATE_COLUMNS) + extra].reset_index(drop=True)
     write_csv(table, path)

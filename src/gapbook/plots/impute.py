@@ -7,8 +7,9 @@ import math
 import matplotlib.pyplot as plt
 import numpy as np
 
-from ..impute import CATEGORICAL, ChainedImputation
+from ..impute import ChainedImputation
 from ..pool import PooledResult
+from ..vocabulary import CATEGORICAL_TYPES
 from . import EMPHASIS, MISSING, NEUTRAL, OBSERVED, REFERENCE
 
 
@@ -57,7 +58,7 @@ def plot_observed_vs_imputed(imputation: ChainedImputation, bins: int = 30):
         data = imputation.data[name]
         observed_rows = data.notna().to_numpy() & ~imputation.impute_mask[name].to_numpy(dtype=bool)
         values = imputation.imputed[name]
-        if imputation.types[name] in CATEGORICAL:
+        if imputation.types[name] in CATEGORICAL_TYPES:
             levels = list(data.cat.categories) if hasattr(data, "cat") else sorted(data.dropna().unique())
             position = {v: i for i, v in enumerate(levels)}
             observed = data[observed_rows].map(position).to_numpy(dtype=int)

@@ -19,7 +19,9 @@ from matplotlib.colors import LinearSegmentedColormap
 from matplotlib.lines import Line2D
 
 from . import EMPHASIS, MISSING, NEUTRAL, OBSERVED, REFERENCE, new_figure
-from ..mechanism import GroupComparison, LittleTest, MissingnessModels, format_p
+from ..inference import format_p
+from ..little import LittleTest
+from ..mechanism import GroupComparison, MissingnessModels
 
 SMD_CAP = 0.5          # colour saturates here; |SMD| >= 0.1 is often read as a meaningful imbalance (Austin 2009)
 SMD_COLOURS = LinearSegmentedColormap.from_list("gapbook_smd", ["#FFFFFF", "#E8C2A0", MISSING, EMPHASIS])

@@ -1,0 +1,522 @@
+"""The chain engine: m chains of chained-equations imputation, run in parallel, and their result.
+
+Each of the m chains starts from random draws of each variable's observed values, then
+visits the incomplete variables in a fixed order, ``iterations`` times. A visit fits the
+variable's conditional model to the rows where it is observed, draws the model's
+parameters from their (approximate) posterior and draws new values for the cells to
+impute. The final state of chain i is completed dataset i.
+
+How it stays fast (the design goals of the engine):
+- every variable is coded once into one float design matrix (numbers standardised,
+  categories dummy-coded); a visit changes that matrix in place, on the imputed rows of
+  one variable's columns only;
+- the cross-product matrix of the whole design is kept up to date column by column, so a
+  linear model's normal equations over the observed rows are that matrix minus the
+  cross-products of the (few) rows where the variable is not observed;
+- predictive mean matching finds donors by binary search in the sorted predictions;
+- logistic, multinomial and ordinal models are fitted by Newton steps warm-started from
+  the previous visit, over row blocks of bounded size;
+- chains run in parallel (joblib), each with its own child of one ``SeedSequence``, so the
+  completed data do not depend on the number of workers.
+
+Cells that are missing but not to be imputed (``impute_mask`` False, e.g. "not
+applicable") stay missing in the completed data. Where such a variable is a predictor,
+its value counts as 0 in those rows (numbers) or as the reference category (categories);
+include the variable that defines applicability (e.g. on_insulin for insulin dose) among
+the predictors so the model can tell those rows apart. A row whose value is not
+applicable is never used to fit that variable's own model.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any, Dict, Iterator, List, Mapping, Optional, Sequence
+
+import numpy as np
+import pandas as pd
+from scipy import linalg
+from scipy.special import expit
+
+from ..errors import AnalysisError, InputError, did_you_mean
+from ..models import fit_model
+from ..pool import PooledResult, pool_fits
+from ..vocabulary import CATEGORICAL_TYPES, IMPUTATION_METHODS, VARIABLE_TYPES, infer_type
+from .numerics import (augmentation, cholesky, gram_rows, linear_draw, multinomial_terms, newton, ordinal_terms,
+                       pmm_match, predict_rows)
+from .preparation import Problem, Variable, check_names, evaluate_passive, levels_of, prepare
+
+__all__ = ["ChainedImputation", "impute_chained", "Chain", "run_chain", "run_chains"]
+
+
+class Chain:
+    """The state of one chain: its own copy of the design, current category codes and warm starts."""
+
+    def __init__(self, problem: Problem, rng: np.random.Generator):
+        self.problem = problem
+        self.rng = rng
+        self.design = np.array(problem.design, order="F", copy=True)
+        self.codes = {name: np.array(code, copy=True) for name, code in problem.codes.items()}
+        self.originals = {name: np.array(values, copy=True) for name, values in problem.originals.items()}
+        self.warm: Dict[str, np.ndarray] = {}
+        self.gram = np.zeros((0, 0))
+        self.dependents: Dict[str, List[str]] = {name: [] for name in problem.variables}
+        for name in problem.passive_order:
+            for source in problem.variables[name].passive_inputs:
+                self.dependents[source].append(name)
+
+    # -- writing values into the design
+    def _set_numeric(self, variable: Variable, standardised: np.ndarray,
+                     original: Optional[np.ndarray] = None) -> None:
+        """Write imputed numbers; ``original`` (own scale) is given where exact values exist, so a pmm donor's
+        value is copied as observed rather than recovered from the standardised design with round-off."""
+        self.design[variable.impute_rows, variable.columns[0]] = standardised
+        self.originals[variable.name][variable.impute_rows] = (
+            standardised * variable.scale + variable.center if original is None else original)
+
+    def _set_codes(self, variable: Variable, local: np.ndarray) -> None:
+        rows = variable.impute_rows
+        self.codes[variable.name][rows] = local
+        for j, col in enumerate(variable.columns):
+            self.design[rows, col] = (local == j + 1)
+
+    def _refresh_gram(self, variable: Variable) -> None:
+        cols = variable.columns
+        if len(cols) == 0:
+            return
+        block = self.design.T @ self.design[:, cols]
+        self.gram[:, cols] = block
+        self.gram[cols, :] = block.T
+
+    def original_values(self, name: str, rows: np.ndarray) -> np.ndarray:
+        variable = self.problem.variables[name]
+        if variable.categorical:
+            return self.codes[name][rows].astype(float)
+        return self.originals[name][rows]
+
+    # -- start
+    def start(self) -> None:
+        for name in self.problem.visit_order:
+            variable = self.problem.variables[name]
+            pick = self.rng.integers(0, len(variable.fit_rows), size=len(variable.impute_rows))
+            donor_rows = variable.fit_rows[pick]
+            if variable.categorical:
+                self._set_codes(variable, self.codes[name][donor_rows])
+            else:
+                self._set_numeric(variable, self.design[donor_rows, variable.columns[0]],
+                                  self.originals[name][donor_rows])
+        for name in self.problem.passive_order:
+            self._update_passive(self.problem.variables[name], refresh=False)
+        self.gram = self.design.T @ self.design
+
+    # -- passive
+    def _update_passive(self, variable: Variable, refresh: bool = True) -> None:
+        rows = variable.impute_rows
+        inputs = {source: self.original_values(source, rows) for source in variable.passive_inputs}
+        values = evaluate_passive(variable.passive_formula, inputs)
+        if not np.all(np.isfinite(values)):
+            raise AnalysisError(f"imputation.passive.{variable.name}: the formula gave non-finite values for some "
+                                "imputed rows; check its inputs' imputed values (e.g. division by zero)")
+        self._set_numeric(variable, (values - variable.center) / variable.scale, values)
+        if refresh:
+            self._refresh_gram(variable)
+
+    # -- delta
+    def _shift(self, name: str) -> Any:
+        spec = self.problem.delta_rows.get(name)
+        if spec is None:
+            return 0.0
+        if not isinstance(spec, tuple):
+            return spec
+        kind, by, lookup = spec
+        rows = self.problem.variables[name].impute_rows
+        group = self.problem.variables[by]
+        if kind == "categorical":
+            local = self.codes[by][rows]
+            positions = np.where(local >= 0, group.used_levels[np.maximum(local, 0)], len(group.levels))
+            return lookup[positions]
+        values = self.original_values(by, rows)
+        shift = np.zeros(len(rows))
+        for key, value in lookup.items():
+            shift[np.isclose(values, key)] = value
+        return shift
+
+    # -- one visit
+    def visit(self, name: str) -> None:
+        variable = self.problem.variables[name]
+        if variable.method in ("pmm", "normal"):
+            gram_observed = self.gram - gram_rows(self.design, variable.other_rows)
+            self._visit_linear(variable, gram_observed)
+        elif variable.method in ("logistic", "multinomial"):
+            self._visit_multinomial(variable)
+        else:
+            self._visit_ordinal(variable)
+        self._refresh_gram(variable)
+        for dependent in self.dependents[name]:
+            self._update_passive(self.problem.variables[dependent])
+
+    def _visit_linear(self, variable: Variable, gram_observed: np.ndarray) -> None:
+        cols = variable.predictor_columns
+        y_col = variable.columns[0]
+        # The outcome's cross-products come from its observed rows alone (zeros elsewhere), so the fit
+        # cannot depend, even by round-off in the subtraction above, on the values last imputed for it:
+        # a delta-shifted chain then draws exactly the same models as the unshifted one.
+        y_observed = np.zeros(self.design.shape[0])
+        y_observed[variable.fit_rows] = self.design[variable.fit_rows, y_col]
+        gram_observed[:, y_col] = gram_observed[y_col, :] = self.design.T @ y_observed
+        gram_observed[y_col, y_col] = float(y_observed @ y_observed)
+        beta_hat, beta_draw, sigma = linear_draw(gram_observed, y_col, cols, len(variable.fit_rows), self.rng)
+        if variable.method == "normal":
+            predicted_missing = predict_rows(self.design, variable.impute_rows, cols, beta_draw)
+            values = predicted_missing + sigma * self.rng.standard_normal(len(predicted_missing))
+        else:
+            # products with the whole design (no row gathering), one coefficient vector at a
+            # time: two matrix-vector products take about a third of the time of one product
+            # with a two-column matrix (the BLAS handles a matrix that narrow poorly)
+            coef_hat, coef_draw = np.zeros(self.design.shape[1]), np.zeros(self.design.shape[1])
+            coef_hat[cols], coef_draw[cols] = beta_hat, beta_draw
+            predicted_observed = np.take(self.design @ coef_hat, variable.fit_rows, mode="clip")
+            predicted_missing = np.take(self.design @ coef_draw, variable.impute_rows, mode="clip")
+            donor = pmm_match(predicted_observed, predicted_missing, self.problem.donors, self.rng)
+            donor_rows = np.take(variable.fit_rows, donor, mode="clip")
+            shift = self._shift(variable.name)
+            self._set_numeric(variable, np.take(self.design[:, y_col], donor_rows, mode="clip") + shift,
+                              np.take(self.originals[variable.name], donor_rows, mode="clip") + shift * variable.scale)
+            return
+        self._set_numeric(variable, values + self._shift(variable.name))
+
+    def _posterior_draw(self, variable: Variable, ordered: bool) -> Optional[np.ndarray]:
+        """Fit the variable's categorical model (warm-started Newton) and draw its parameters from the
+        normal approximation to their posterior; None when only one category was observed."""
+        cols = variable.predictor_columns
+        n_classes = len(variable.used_levels)
+        if n_classes < 2:
+            self._set_codes(variable, np.zeros(len(variable.impute_rows), dtype=np.int64))
+            return None
+        y = self.codes[variable.name][variable.fit_rows]
+        augment = augmentation(self.gram, cols, self.design.shape[0], n_classes)
+        start = self.warm.get(variable.name)
+        terms = ordinal_terms if ordered else multinomial_terms
+        estimate, info = newton(terms, self.design, variable.fit_rows, y, cols[1:] if ordered else cols, augment,
+                                start, n_classes, ordered=ordered)
+        self.warm[variable.name] = estimate
+        lower = cholesky(info)
+        return estimate + linalg.solve_triangular(lower.T, self.rng.standard_normal(len(estimate)), lower=False)
+
+    def _visit_multinomial(self, variable: Variable) -> None:
+        draw = self._posterior_draw(variable, ordered=False)
+        if draw is None:
+            return
+        cols = variable.predictor_columns
+        n_classes = len(variable.used_levels)
+        eta = predict_rows(self.design, variable.impute_rows, cols, draw.reshape(n_classes - 1, len(cols)).T)
+        if n_classes == 2:
+            # delta on the log-odds scale of the second (observed) level
+            eta[:, 0] = eta[:, 0] + self._shift(variable.name)
+        eta_all = np.concatenate([np.zeros((len(eta), 1)), eta], axis=1)
+        eta_all -= eta_all.max(axis=1, keepdims=True)
+        prob = np.exp(eta_all)
+        prob /= prob.sum(axis=1, keepdims=True)
+        cumulative = np.cumsum(prob, axis=1)[:, :-1]
+        u = self.rng.random(len(eta))
+        self._set_codes(variable, (u[:, None] > cumulative).sum(axis=1))
+
+    def _visit_ordinal(self, variable: Variable) -> None:
+        draw = self._posterior_draw(variable, ordered=True)
+        if draw is None:
+            return
+        cols = variable.predictor_columns
+        n_classes = len(variable.used_levels)
+        theta = np.sort(draw[:n_classes - 1])
+        eta = predict_rows(self.design, variable.impute_rows, cols[1:], draw[n_classes - 1:])
+        cumulative = expit(theta[None, :] - eta[:, None])
+        u = self.rng.random(len(eta))
+        self._set_codes(variable, (u[:, None] > cumulative).sum(axis=1))
+
+    # -- the imputed values in the data's own coding
+    def imputed(self, name: str) -> np.ndarray:
+        variable = self.problem.variables[name]
+        rows = variable.impute_rows
+        if variable.categorical:
+            return variable.used_levels[self.codes[name][rows]].astype(np.int32)
+        return self.original_values(name, rows)
+
+    def summary_rows(self, chain: int, iteration: int) -> List[Dict[str, Any]]:
+        rows = []
+        for name in self.problem.visit_order + self.problem.passive_order:
+            values = self.imputed(name).astype(float)
+            rows.append({"chain": chain, "iteration": iteration, "variable": name, "mean": float(values.mean()),
+                         "sd": float(values.std(ddof=1)) if len(values) > 1 else float("nan")})
+        return rows
+
+
+def run_chain(problem: Problem, chain: int, seed: np.random.SeedSequence):
+    """Run one chain to the end; returns its imputed values per variable and its convergence rows."""
+    state = Chain(problem, np.random.Generator(np.random.PCG64(seed)))
+    state.start()
+    trace: List[Dict[str, Any]] = []
+    for iteration in range(1, problem.iterations + 1):
+        for name in problem.visit_order:
+            state.visit(name)
+        trace.extend(state.summary_rows(chain, iteration))
+    imputed = {name: state.imputed(name) for name in problem.visit_order + problem.passive_order}
+    return imputed, trace
+
+
+# ---------------------------------------------------------------------------
+# the result
+
+@dataclass(frozen=True)
+class ChainedImputation:
+    """m completed datasets, kept as the original data plus the imputed cells.
+
+    ``convergence``: chain (0-based, chain i gives ``completed(i)``), iteration (1..iterations),
+    variable, mean and sd of its imputed values (categories: the level position 0..K-1, so
+    for a binary variable the share in its second level).
+    ``variables``: variable, type, method, n_observed, n_imputed, n_left_missing, predictors.
+    """
+
+    m: int
+    iterations: int
+    seed: int
+    data: pd.DataFrame
+    impute_mask: pd.DataFrame
+    imputed: Dict[str, np.ndarray]          # variable -> (m, n_imputed) values (categories: level positions)
+    impute_rows: Dict[str, np.ndarray]
+    types: Dict[str, str]
+    methods: Dict[str, str]
+    convergence: pd.DataFrame
+    variables: pd.DataFrame
+    donors: int = 5
+    delta: Dict[str, Any] = field(default_factory=dict)
+
+    def completed(self, i: int) -> pd.DataFrame:
+        """The i-th completed dataset (i = 0..m-1), with the data's own dtypes and categories."""
+        if not 0 <= int(i) < self.m:
+            raise InputError(f"completed({i}): there are {self.m} imputed datasets, numbered 0 to {self.m - 1}")
+        frame = self.data.copy()
+        for name, values in self.imputed.items():
+            rows = self.impute_rows[name]
+            column = frame[name]
+            if isinstance(column.dtype, pd.CategoricalDtype):
+                codes = column.cat.codes.to_numpy().copy()
+                codes[rows] = values[i]
+                frame[name] = pd.Categorical.from_codes(codes, dtype=column.dtype)
+            elif self.types[name] in CATEGORICAL_TYPES:
+                levels = np.array(levels_of(column), dtype=object)
+                filled = column.to_numpy(dtype=object, copy=True)
+                filled[rows] = levels[values[i]]
+                frame[name] = pd.Series(filled, index=frame.index).astype(column.dtype)
+            else:
+                filled = column.to_numpy(dtype=float, na_value=np.nan, copy=True)
+                filled[rows] = values[i]
+                frame[name] = pd.Series(filled, index=frame.index).astype(column.dtype)
+        return frame
+
+    def completed_all(self) -> Iterator[pd.DataFrame]:
+        """The completed datasets one after another (one in memory at a time)."""
+        for i in range(self.m):
+            yield self.completed(i)
+
+    def fit(self, formula: str, family: str = "gaussian", robust: bool = False, offset: Optional[str] = None,
+            alpha: float = 0.05) -> PooledResult:
+        """Fit the analysis model to every completed dataset and pool with Rubin's rules."""
+        fits = [fit_model(self.completed(i), formula, family, robust, offset, alpha) for i in range(self.m)]
+        return pool_fits(fits)
+
+    def imputed_long(self, name: str) -> pd.DataFrame:
+        """Imputed values of one variable: imputation, row, value (categories as their labels)."""
+        if name not in self.imputed:
+            raise InputError(f"'{name}' was not imputed (imputed: {', '.join(self.imputed)})")
+        values = self.imputed[name]
+        rows = self.impute_rows[name]
+        frame = pd.DataFrame({"imputation": np.repeat(np.arange(self.m), len(rows)),
+                              "row": np.tile(rows, self.m)})
+        if self.types[name] in CATEGORICAL_TYPES:
+            levels = np.array(levels_of(self.data[name]), dtype=object)
+            frame["value"] = levels[values.ravel()]
+        else:
+            frame["value"] = values.ravel()
+        return frame
+
+    def summary(self) -> pd.DataFrame:
+        """Per imputed variable: method, n_imputed, observed and imputed mean and SD, and what 'mean' measures."""
+        rows = []
+        for name, values in self.imputed.items():
+            column = self.data[name]
+            observed_mask = column.notna().to_numpy() & ~self.impute_mask[name].to_numpy(dtype=bool)
+            if self.types[name] in CATEGORICAL_TYPES:
+                levels = levels_of(column)
+                position = {v: i for i, v in enumerate(levels)}
+                observed = column[observed_mask].map(position).to_numpy(dtype=float)
+                scale = (f"share '{levels[1]}'" if self.types[name] == "binary" and len(levels) == 2
+                         else f"level position (0 = {levels[0]})")
+            else:
+                observed = column.to_numpy(dtype=float, na_value=np.nan)[observed_mask]
+                scale = "value"
+            flat = values.astype(float).ravel()
+            rows.append({"variable": name, "type": self.types[name], "method": self.methods[name],
+                         "n_imputed": int(values.shape[1]), "n_observed": int(observed_mask.sum()),
+                         "observed_mean": float(np.mean(observed)) if len(observed) else np.nan,
+                         "observed_sd": float(np.std(observed, ddof=1)) if len(observed) > 1 else np.nan,
+                         "imputed_mean": float(flat.mean()) if len(flat) else np.nan,
+                         "imputed_sd": float(flat.std(ddof=1)) if len(flat) > 1 else np.nan,
+                         "scale": scale})
+        return pd.DataFrame(rows, columns=["variable", "type", "method", "n_imputed", "n_observed", "observed_mean",
+                                           "observed_sd", "imputed_mean", "imputed_sd", "scale"])
+
+
+# ---------------------------------------------------------------------------
+# the engine's entry point
+
+def impute_chained(data: pd.DataFrame, m: int = 20, iterations: int = 10, seed: Optional[int] = None,
+                   methods: Optional[Mapping[str, str]] = None, predictors: Optional[Mapping[str, Sequence[str]]] = None,
+                   passive: Optional[Mapping[str, str]] = None, n_jobs: int = 1,
+                   types: Optional[Mapping[str, str]] = None, delta: Optional[Mapping[str, Any]] = None,
+                   delta_by: Optional[Mapping[str, str]] = None, impute_mask: Optional[pd.DataFrame] = None,
+                   donors: int = 5, exclude_predictors: Optional[Mapping[str, Sequence[str]]] = None,
+                   progress: bool = True) -> ChainedImputation:
+    """Multiple imputation by chained equations (fully conditional specification).
+
+    Parameters
+    ----------
+    data : one column per variable (numbers float, categories pandas Categorical or text).
+    m : number of imputed datasets (chains).
+    iterations : sweeps over the incomplete variables per chain.
+    seed : integer seed; one ``SeedSequence`` is spawned into one child per chain, so the
+        result is the same for any ``n_jobs``. None draws fresh entropy (kept in ``.seed``).
+    methods : {column: pmm|normal|logistic|multinomial|ordinal|passive}; default from the type
+        (pmm for continuous and count, logistic binary, multinomial nominal, ordinal ordinal).
+    predictors : {column: [predictor columns]}; default every other column, the outcome
+        included (leaving the outcome out biases its associations towards zero). A passive
+        variable does not predict its own inputs.
+    passive : {column: formula}, recomputed from its inputs after each of their updates,
+        e.g. ``{"bmi": "weight_kg / (height_cm / 100) ** 2"}``; never imputed directly.
+    n_jobs : chains run in parallel with joblib.
+    types : {column: continuous|binary|nominal|ordinal|count}; default inferred (``infer_type``).
+    delta : {column: shift or {group level: shift}}, added to each imputed value after every
+        draw (pmm/normal: on the variable's scale; logistic: on the log-odds of the second level
+        before drawing). A shift of 0 reproduces the unshifted run exactly.
+    delta_by : {column: grouping column} for group-specific shifts.
+    impute_mask : bool frame of the cells to impute (default ``data.isna()``); missing cells
+        outside it stay missing (see the module docstring for how they act as predictors).
+    donors : k, the number of nearest observed predictions a pmm donor is drawn from.
+        A limitation of predictive mean matching, not of this engine: it only ever imputes
+        observed values, so where many missing values sit in a tail of the predictors that
+        has few observed donors it pulls them towards the middle. In our simulation (normal
+        outcome, 40 % missing, missingness odds x4.5 per SD of a complete covariate, 1,000
+        replicates) pmm attenuated the regression slope by 7 % (coverage 81 %), exactly as
+        the published algorithm written independently in the tests did; 'normal' was
+        unbiased with 95 % coverage. More donors made it worse (10 donors: 9 %), one donor
+        halved the bias but not the undercoverage (79 %). With a roughly normal variable and
+        many missing values concentrated in a tail, prefer ``methods={col: "normal"}``.
+    exclude_predictors : {column: [columns not to use as its predictors]}.
+    progress : show a progress bar over chains.
+
+    Returns
+    -------
+    ChainedImputation with ``.m``, ``.completed(i)``, ``.convergence``, ``.fit(formula, family)``.
+
+    References
+    ----------
+    van Buuren S, Brand JPL, Groothuis-Oudshoorn CGM, Rubin DB (2006). Fully conditional
+    specification in multivariate imputation. J Stat Comput Simul 76:1049-1064.
+    White IR, Royston P, Wood AM (2011). Multiple imputation using chained equations: issues
+    and guidance for practice. Stat Med 30:377-399.
+    Moons KGM et al. (2006). Using the outcome for imputation of missing predictor values was
+    preferred. J Clin Epidemiol 59:1092-1101.
+    """
+    if not isinstance(data, pd.DataFrame) or data.shape[1] == 0:
+        raise InputError("impute_chained: data must be a DataFrame with at least one column")
+    if not isinstance(m, (int, np.integer)) or m < 1:
+        raise InputError(f"imputation.m: {m!r} is not allowed; give a whole number of imputed datasets, 1 or more")
+    if not isinstance(iterations, (int, np.integer)) or iterations < 1:
+        raise InputError(f"imputation.iterations: {iterations!r} is not allowed; give a whole number, 1 or more")
+    if not isinstance(donors, (int, np.integer)) or donors < 1:
+        raise InputError(f"imputation.donors: {donors!r} is not allowed; give a whole number, 1 or more")
+    if not isinstance(n_jobs, (int, np.integer)) or n_jobs < 1:
+        raise InputError(f"imputation.n_jobs: {n_jobs!r} is not allowed; give a whole number, 1 or more")
+    data = data.reset_index(drop=True)
+    columns = [str(c) for c in data.columns]
+    if len(set(columns)) != len(columns):
+        raise InputError("impute_chained: the data have duplicate column names")
+    # a wider mapping (e.g. every study column's type) is fine: only the data's columns are used
+    type_map = {k: v for k, v in dict(types or {}).items() if k in columns}
+    for name, kind in type_map.items():
+        if kind not in VARIABLE_TYPES:
+            raise InputError(f"variables.{name}.type: '{kind}' is not one of {', '.join(VARIABLE_TYPES)}"
+                             f"{did_you_mean(str(kind), VARIABLE_TYPES)}")
+    full_types = {c: type_map.get(c) or infer_type(data[c])[0] for c in columns}
+    for name, kind in full_types.items():
+        if kind in ("continuous", "count") and not pd.api.types.is_numeric_dtype(data[name].dtype):
+            raise InputError(f"variables.{name}.type: '{name}' holds text, so it cannot be {kind}; "
+                             "declare it binary, nominal or ordinal")
+    method_map = check_names(methods, columns, "imputation.methods")
+    for name, method in method_map.items():
+        if method not in IMPUTATION_METHODS:
+            raise InputError(f"imputation.methods.{name}: '{method}' is not one of {', '.join(IMPUTATION_METHODS)}"
+                             f"{did_you_mean(str(method), IMPUTATION_METHODS)}")
+    predictor_map = {k: list(v) for k, v in check_names(predictors, columns, "imputation.predictors").items()}
+    exclude_map = {k: list(v) for k, v in check_names(exclude_predictors, columns,
+                                                      "imputation.exclude_predictors").items()}
+    passive_map = {k: str(v) for k, v in check_names(passive, columns, "imputation.passive").items()}
+    delta_map = check_names(delta, columns, "sensitivity.delta")
+    delta_by_map = {k: str(v) for k, v in check_names(delta_by, columns, "sensitivity.delta_by").items()}
+    if impute_mask is None:
+        mask = data.isna()
+    else:
+        if not isinstance(impute_mask, pd.DataFrame):
+            raise InputError("impute_mask: give a DataFrame of True/False with the data's columns")
+        extra = [c for c in impute_mask.columns if c not in columns]
+        if extra:
+            raise InputError(f"impute_mask: column '{extra[0]}' is not a column of the data")
+        if len(impute_mask) != len(data):
+            raise InputError(f"impute_mask: {len(impute_mask)} rows, but the data have {len(data)}")
+        mask = pd.DataFrame({c: (impute_mask[c].to_numpy(dtype=bool) if c in impute_mask.columns
+                                 else np.zeros(len(data), dtype=bool)) for c in columns})
+    mask.columns = columns
+    data.columns = columns
+
+    problem = prepare(data, full_types, method_map, predictor_map, exclude_map, passive_map, mask, int(iterations),
+                      int(donors), delta_map, delta_by_map)
+    sequence = np.random.SeedSequence(seed)
+    children = sequence.spawn(int(m))
+    results = run_chains(problem, children, int(n_jobs), progress)
+
+    names = list(problem.visit_order + problem.passive_order)
+    imputed = {name: np.vstack([r[0][name] for r in results]) for name in names}
+    convergence = pd.DataFrame([row for r in results for row in r[1]],
+                               columns=["chain", "iteration", "variable", "mean", "sd"])
+    methods_used = {name: problem.variables[name].method for name in names}
+    table = pd.DataFrame([{
+        "variable": v.name, "type": v.type, "method": v.method or "(complete: predictor only)",
+        "n_observed": len(v.fit_rows), "n_imputed": len(v.impute_rows),
+        "n_left_missing": len(v.other_rows) - len(v.impute_rows),
+        "predictors": "" if v.method in ("", "passive") else ", ".join(v.predictors),
+    } for v in problem.variables.values()])
+    keep_mask = pd.DataFrame({c: mask[c].to_numpy(dtype=bool) for c in columns})
+    return ChainedImputation(m=int(m), iterations=int(iterations), seed=int(sequence.entropy), data=data,
+                             impute_mask=keep_mask, imputed=imputed,
+                             impute_rows={n: problem.variables[n].impute_rows for n in names}, types=full_types,
+                             methods=methods_used, convergence=convergence, variables=table, donors=int(donors),
+                             delta=dict(delta_map))
+
+
+def run_chains(problem: Problem, children: List[np.random.SeedSequence], n_jobs: int, progress: bool):
+    from tqdm import tqdm
+
+    bar = tqdm(total=len(children), desc="imputation chains", disable=not progress, leave=False)
+    try:
+        if n_jobs == 1 or len(children) == 1:
+            results = []
+            for chain, child in enumerate(children):
+                results.append(run_chain(problem, chain, child))
+                bar.update(1)
+            return results
+        from joblib import Parallel, delayed
+        runner = Parallel(n_jobs=n_jobs, return_as="generator")
+        results = []
+        for result in runner(delayed(run_chain)(problem, chain, child) for chain, child in enumerate(children)):
+            results.append(result)
+            bar.update(1)
+        return results
+    finally:
+        bar.close()

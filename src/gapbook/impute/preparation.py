@@ -1,0 +1,302 @@
+"""Preparing an imputation problem: the design matrix every chain starts from, the
+variables with their methods and predictors, passive formulas and delta shifts.
+
+The problem is built once and shared read-only by every chain (:mod:`.engine`).
+Passive formulas are parsed here; :func:`evaluate_passive` is the one place a formula is
+evaluated.
+"""
+from __future__ import annotations
+
+import ast
+from dataclasses import dataclass
+from typing import Any, Dict, List, Mapping, Optional, Sequence, Tuple
+
+import numpy as np
+import pandas as pd
+
+from ..errors import InputError, did_you_mean
+from ..vocabulary import ALLOWED_METHODS, CATEGORICAL_TYPES, DEFAULT_METHOD, DELTA_METHODS
+
+__all__ = ["Variable", "Problem", "levels_of", "check_names", "passive_inputs", "evaluate_passive", "prepare",
+           "delta_shifts", "PASSIVE_FUNCTIONS"]
+
+PASSIVE_FUNCTIONS = {"log": np.log, "exp": np.exp, "sqrt": np.sqrt, "abs": np.abs, "log10": np.log10,
+                     "log2": np.log2, "minimum": np.minimum, "maximum": np.maximum, "np": np}
+
+
+# ---------------------------------------------------------------------------
+# the prepared problem (built once, shared read-only by every chain)
+
+@dataclass(frozen=True)
+class Variable:
+    """One column as the engine sees it."""
+
+    name: str
+    type: str
+    method: str                      # "" for a complete variable that is only a predictor
+    columns: np.ndarray              # its columns in the design matrix
+    center: float                    # numbers: observed mean (design holds (x - center) / scale)
+    scale: float
+    levels: Tuple[Any, ...]          # categories as stored in the data (categorical types)
+    used_levels: np.ndarray          # positions (in levels) of the observed levels; the first is the reference
+    fit_rows: np.ndarray             # rows where observed (its own model is fitted here)
+    impute_rows: np.ndarray          # rows to impute
+    other_rows: np.ndarray           # rows not observed: impute_rows and not-to-impute missing rows, sorted
+    predictor_columns: np.ndarray    # design columns of its predictors, intercept first
+    predictors: Tuple[str, ...]
+    passive_formula: str = ""
+    passive_inputs: Tuple[str, ...] = ()
+
+    @property
+    def categorical(self) -> bool:
+        return self.type in CATEGORICAL_TYPES
+
+
+@dataclass(frozen=True)
+class Problem:
+    """Everything a chain needs: the starting design, the variables, visit order and options."""
+
+    design: np.ndarray               # (n, P) Fortran order; column 0 is the intercept
+    codes: Dict[str, np.ndarray]     # categorical: index into used_levels per row (-1 where not observed)
+    variables: Dict[str, Variable]
+    visit_order: Tuple[str, ...]     # incomplete, non-passive variables
+    passive_order: Tuple[str, ...]
+    iterations: int
+    donors: int
+    delta_rows: Dict[str, Any]       # variable -> shift per imputed row (array), scalar, or (group, lookup)
+    originals: Dict[str, np.ndarray]  # numbers on their own scale (donor values are copied from here, exactly)
+
+
+def levels_of(column: pd.Series) -> Tuple[Any, ...]:
+    if isinstance(column.dtype, pd.CategoricalDtype):
+        return tuple(column.cat.categories)
+    values = column.dropna().unique()
+    try:
+        return tuple(sorted(values))
+    except TypeError:
+        return tuple(sorted(values, key=str))
+
+
+def check_names(mapping: Optional[Mapping[str, Any]], columns: Sequence[str], key: str) -> Dict[str, Any]:
+    mapping = dict(mapping or {})
+    for name in mapping:
+        if name not in columns:
+            raise InputError(f"{key}.{name}: '{name}' is not a column of the imputation data"
+                             f"{did_you_mean(name, columns)}")
+    return mapping
+
+
+def passive_inputs(formula: str, columns: Sequence[str], variable: str) -> Tuple[str, ...]:
+    """The columns a passive formula uses; exits 2 when it cannot be parsed or names an unknown column."""
+    try:
+        tree = ast.parse(formula, mode="eval")
+    except SyntaxError:
+        raise InputError(f"imputation.passive.{variable}: '{formula}' is not a valid formula; write it like "
+                         "'weight_kg / (height_cm / 100) ** 2'") from None
+    names = [node.id for node in ast.walk(tree) if isinstance(node, ast.Name)]
+    inputs = []
+    for name in names:
+        if name in PASSIVE_FUNCTIONS:
+            continue
+        if name not in columns:
+            raise InputError(f"imputation.passive.{variable}: '{name}' is not a column of the imputation data"
+                             f"{did_you_mean(name, columns)}")
+        if name == variable:
+            raise InputError(f"imputation.passive.{variable}: the formula uses '{variable}' itself")
+        if name not in inputs:
+            inputs.append(name)
+    if not inputs:
+        raise InputError(f"imputation.passive.{variable}: '{formula}' uses no column")
+    return tuple(inputs)
+
+
+def evaluate_passive(formula: str, values: Dict[str, np.ndarray]) -> np.ndarray:
+    """The values of a passive formula for the imputed rows, from its inputs' current values.
+
+    The seam for the expression language (``gapbook.expressions``): parsing
+    (:func:`passive_inputs`) and evaluation of passive formulas happen only in these two
+    functions, so replacing them replaces the passive language everywhere.
+    """
+    namespace = dict(PASSIVE_FUNCTIONS)
+    namespace.update(values)
+    with np.errstate(all="ignore"):
+        return np.asarray(eval(compile(formula, "<passive>", "eval"), {"__builtins__": {}}, namespace), dtype=float)
+
+
+# ---------------------------------------------------------------------------
+# building the problem
+
+def prepare(data: pd.DataFrame, types: Dict[str, str], methods: Dict[str, str], predictors: Dict[str, List[str]],
+            exclude: Dict[str, List[str]], passive: Dict[str, str], mask: pd.DataFrame, iterations: int,
+            donors: int, delta: Dict[str, Any], delta_by: Dict[str, str]) -> Problem:
+    """Build the design matrix, the variables (method, rows, predictors) and the visit order once.
+
+    Parameters
+    ----------
+    data : one column per variable (numbers float, categories Categorical or text).
+    types : {column: variable type} for every column.
+    methods, predictors, exclude, passive : the engine's options, already checked by name.
+    mask : True for the cells to impute.
+    iterations, donors : copied into the problem for the chains.
+    delta, delta_by : the sensitivity shifts (see :func:`delta_shifts`).
+
+    Returns
+    -------
+    Problem
+    """
+    columns = list(data.columns)
+    n = len(data)
+    passive_in = {v: passive_inputs(f, columns, v) for v, f in passive.items()}
+    for v, inputs in passive_in.items():
+        for name in inputs:
+            if types[name] not in ("continuous", "count"):
+                raise InputError(f"imputation.passive.{v}: '{name}' is {types[name]}; passive formulas take numbers")
+            if name in passive:
+                raise InputError(f"imputation.passive.{v}: '{name}' is itself passive; write the formula from "
+                                 "measured variables")
+
+    # design layout: intercept, then one block per variable
+    blocks: Dict[str, np.ndarray] = {}
+    centers, scales, levels, used, fit_rows_all, codes = {}, {}, {}, {}, {}, {}
+    originals: Dict[str, np.ndarray] = {}
+    width = 1
+    for name in columns:
+        column = data[name]
+        is_masked = mask[name].to_numpy(dtype=bool)
+        observed = column.notna().to_numpy() & ~is_masked
+        fit_rows_all[name] = np.flatnonzero(observed)
+        if types[name] in CATEGORICAL_TYPES:
+            lv = levels_of(column)
+            position = {value: i for i, value in enumerate(lv)}
+            code = np.full(n, -1, dtype=np.int64)
+            obs_values = column[observed]
+            code[observed] = obs_values.map(position).to_numpy(dtype=np.int64) if len(obs_values) else []
+            present = np.unique(code[observed])
+            levels[name] = lv
+            used[name] = present
+            internal = np.full(len(lv), -1, dtype=np.int64)
+            internal[present] = np.arange(len(present))
+            local = np.where(code >= 0, internal[np.maximum(code, 0)], -1)
+            codes[name] = local
+            k = max(len(present) - 1, 0)
+            blocks[name] = np.arange(width, width + k)
+            width += k
+            centers[name], scales[name] = 0.0, 1.0
+        else:
+            values = column.to_numpy(dtype=float, na_value=np.nan)[observed]
+            if values.size >= 2 and np.std(values) > 0:
+                centers[name], scales[name] = float(values.mean()), float(values.std())
+            elif values.size >= 1:
+                centers[name], scales[name] = float(values.mean()), 1.0
+            else:
+                centers[name], scales[name] = 0.0, 1.0
+            levels[name], used[name] = (), np.array([], dtype=np.int64)
+            blocks[name] = np.array([width])
+            width += 1
+
+    design = np.zeros((n, width), order="F")
+    design[:, 0] = 1.0
+    for name in columns:
+        fit_rows = fit_rows_all[name]
+        cols = blocks[name]
+        if types[name] in CATEGORICAL_TYPES:
+            local = codes[name]
+            for j, col in enumerate(cols):
+                design[:, col] = (local == j + 1)
+        else:
+            values = data[name].to_numpy(dtype=float, na_value=np.nan)
+            # Not-to-impute missing cells count as 0 on the original scale (see module docstring).
+            filled = np.where(np.isnan(values), 0.0, values)
+            design[:, cols[0]] = (filled - centers[name]) / scales[name]
+            originals[name] = filled
+
+    variables: Dict[str, Variable] = {}
+    visit, passive_order = [], []
+    for name in columns:
+        is_masked = mask[name].to_numpy(dtype=bool)
+        impute_rows = np.flatnonzero(is_masked)
+        fit_rows = fit_rows_all[name]
+        other_rows = np.setdiff1d(np.arange(n), fit_rows, assume_unique=True)
+        method = methods.get(name, "passive" if name in passive else DEFAULT_METHOD[types[name]])
+        if name in passive and method != "passive":
+            raise InputError(f"imputation.methods.{name}: '{method}' given but imputation.passive.{name} is a formula; "
+                             "use one or the other")
+        if method == "passive" and name not in passive:
+            raise InputError(f"imputation.methods.{name}: 'passive' needs a formula in imputation.passive.{name}")
+        if method not in ALLOWED_METHODS[types[name]]:
+            raise InputError(f"imputation.methods.{name}: '{method}' does not suit a {types[name]} variable; use "
+                             f"{' or '.join(ALLOWED_METHODS[types[name]])}")
+        if len(impute_rows) == 0:
+            method_used = "passive" if name in passive else ""
+        else:
+            method_used = method
+            if method != "passive" and len(fit_rows) == 0:
+                raise InputError(f"{name}: the column has no observed values, so it cannot be imputed; drop it from "
+                                 "the imputation model or supply values")
+        # predictors: every other variable unless listed; a passive variable never predicts its own inputs
+        if name in predictors:
+            chosen = list(predictors[name])
+            for p in chosen:
+                if p not in columns:
+                    raise InputError(f"imputation.predictors.{name}: '{p}' is not a column of the imputation data"
+                                     f"{did_you_mean(p, columns)}")
+        else:
+            chosen = [c for c in columns if c != name]
+            chosen = [c for c in chosen if not (c in passive_in and name in passive_in[c])]
+        for p in exclude.get(name, []):
+            if p not in columns:
+                raise InputError(f"imputation.exclude_predictors.{name}: '{p}' is not a column of the imputation data"
+                                 f"{did_you_mean(p, columns)}")
+        chosen = [c for c in chosen if c != name and c not in exclude.get(name, [])]
+        pred_cols = np.concatenate([[0]] + [blocks[c] for c in chosen]).astype(np.int64)
+        variables[name] = Variable(
+            name=name, type=types[name], method=method_used, columns=blocks[name], center=centers[name],
+            scale=scales[name], levels=levels[name], used_levels=used[name], fit_rows=fit_rows,
+            impute_rows=impute_rows, other_rows=other_rows, predictor_columns=pred_cols, predictors=tuple(chosen),
+            passive_formula=passive.get(name, ""), passive_inputs=passive_in.get(name, ()))
+        if len(impute_rows):
+            (passive_order if method_used == "passive" else visit).append(name)
+        if method_used not in ("", "passive") and types[name] in CATEGORICAL_TYPES and len(used[name]) < 1:
+            raise InputError(f"{name}: the column has no observed values, so it cannot be imputed")
+
+    shifts = delta_shifts(data, variables, delta, delta_by)
+    return Problem(design=design, codes=codes, variables=variables, visit_order=tuple(visit),
+                   passive_order=tuple(passive_order), iterations=iterations, donors=donors, delta_rows=shifts,
+                   originals=originals)
+
+
+def delta_shifts(data: pd.DataFrame, variables: Dict[str, Variable], delta: Dict[str, Any],
+                 delta_by: Dict[str, str]) -> Dict[str, Any]:
+    """Per variable, the shift of each imputed value: a float, or (group column, {level position: shift})."""
+    out: Dict[str, Any] = {}
+    for name, shift in delta.items():
+        variable = variables[name]
+        if variable.method not in DELTA_METHODS:
+            raise InputError(f"sensitivity.delta.{name}: delta adjustment applies to variables imputed by pmm, normal "
+                             f"or logistic; '{name}' is imputed by '{variable.method or 'nothing (it is complete)'}'")
+        scale = 1.0 if variable.categorical else variable.scale
+        by = delta_by.get(name)
+        if not isinstance(shift, Mapping):
+            if by is not None:
+                raise InputError(f"sensitivity.delta.{name}: with a grouping column ({by}) give one delta per group")
+            out[name] = float(shift) / scale
+            continue
+        if by is None:
+            raise InputError(f"sensitivity.delta.{name}: deltas by group need delta_by.{name} (the grouping column)")
+        if by not in variables:
+            raise InputError(f"sensitivity.delta.{name}: grouping column '{by}' is not a column of the imputation data"
+                             f"{did_you_mean(by, list(variables))}")
+        group = variables[by]
+        if group.categorical:
+            names = [str(x) for x in group.levels]
+            lookup = np.zeros(len(group.levels) + 1)
+            for key, value in shift.items():
+                if str(key) not in names:
+                    raise InputError(f"sensitivity.delta.{name}: '{key}' is not a level of '{by}' "
+                                     f"({', '.join(names)}){did_you_mean(str(key), names)}")
+                lookup[names.index(str(key))] = float(value) / scale
+            out[name] = ("categorical", by, lookup)
+        else:
+            keys = {float(k): float(v) / scale for k, v in shift.items()}
+            out[name] = ("numeric", by, keys)
+    return out

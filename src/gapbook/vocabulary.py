@@ -1,0 +1,176 @@
+"""The words gapbook uses, written once: variable types, imputation methods, model families,
+strategies, missing reasons and the cautions every report carries.
+
+Every other module imports these names from here; nothing else lists them. Adding a
+model family (e.g. a proportional hazards model) or a strategy (e.g. the repeated-measures
+strategies) means adding an entry below: the params schema, the record's tables and the
+wording all take their lists from this module.
+
+One rule lives here too, :func:`infer_type`, because it is the rule that gives an
+undeclared column its word.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Dict, Optional, Tuple
+
+import numpy as np
+import pandas as pd
+
+__all__ = [
+    "VARIABLE_TYPES", "CATEGORICAL_TYPES", "NUMERIC_TYPES", "NUMBER_CODED_TYPES", "infer_type",
+    "IMPUTATION_METHODS", "DEFAULT_METHOD", "ALLOWED_METHODS", "DELTA_METHODS", "METHOD_WORDS",
+    "Family", "FAMILIES", "FAMILY_NAMES", "RATIO_NAMES", "ratio_name",
+    "Strategy", "STRATEGIES", "STRATEGY_NAMES", "STRATEGY_TITLES", "STRATEGY_PHRASES", "strategy_rank",
+    "BLANK", "NOT_APPLICABLE", "IMPLAUSIBLE",
+    "MAR_CAUTION", "SENSITIVITY_POINTER", "PLAN_CAUTION", "REPORTING_CAUTION", "CAUTIONS", "cautions",
+]
+
+# ---------------------------------------------------------------------------
+# variable types
+
+VARIABLE_TYPES: Tuple[str, ...] = ("continuous", "binary", "nominal", "ordinal", "count")
+CATEGORICAL_TYPES: Tuple[str, ...] = ("binary", "nominal", "ordinal")
+NUMERIC_TYPES: Tuple[str, ...] = ("continuous", "count")
+# Types that can enter a computation as numbers (binary as 0/1): Little's test, correlations.
+NUMBER_CODED_TYPES: Tuple[str, ...] = ("continuous", "count", "binary")
+COUNT_MAX = 20  # whole numbers from 0 to this are read as counts (common practice, no source)
+
+
+def infer_type(values: pd.Series) -> Tuple[str, str]:
+    """A type for an undeclared column from its values, and why.
+
+    The rule (common practice, no source): no observed value -> continuous (declare it);
+    one distinct value -> continuous for numbers, nominal for text (constant where
+    observed); an ordered ``Categorical`` -> ordinal; numbers with two distinct values ->
+    binary; whole numbers from 0 to 20 -> count; other numbers -> continuous; text with two
+    distinct values -> binary; other text -> nominal.
+
+    Parameters
+    ----------
+    values : the column's values, NaN where missing (numbers as floats, text or
+        ``Categorical`` categories as they are).
+
+    Returns
+    -------
+    (type, reason) : one of :data:`VARIABLE_TYPES`, and the reason in words for the audit.
+    """
+    observed = values.dropna()
+    distinct = observed.unique()
+    if len(distinct) == 0:
+        return "continuous", "no observed values; declare its type"
+    if len(distinct) == 1:
+        kind = "continuous" if pd.api.types.is_numeric_dtype(observed) else "nominal"
+        return kind, "one distinct value (constant where observed)"
+    if isinstance(values.dtype, pd.CategoricalDtype) and values.dtype.ordered:
+        return "ordinal", f"ordered categories ({len(distinct)} observed)"
+    if pd.api.types.is_numeric_dtype(observed):
+        if len(distinct) <= 2:
+            return "binary", f"{len(distinct)} distinct numbers"
+        whole = np.all(np.mod(observed.to_numpy(dtype=float), 1) == 0)
+        if whole and observed.min() >= 0 and observed.max() <= COUNT_MAX:
+            return "count", f"whole numbers from 0 to {COUNT_MAX} at most"
+        return "continuous", "numbers"
+    if len(distinct) <= 2:
+        return "binary", f"{len(distinct)} distinct texts"
+    return "nominal", f"{len(distinct)} distinct texts"
+
+
+# ---------------------------------------------------------------------------
+# imputation methods
+
+IMPUTATION_METHODS: Tuple[str, ...] = ("pmm", "normal", "logistic", "multinomial", "ordinal", "passive")
+DEFAULT_METHOD: Dict[str, str] = {"continuous": "pmm", "count": "pmm", "binary": "logistic",
+                                  "nominal": "multinomial", "ordinal": "ordinal"}
+ALLOWED_METHODS: Dict[str, Tuple[str, ...]] = {
+    "continuous": ("pmm", "normal", "passive"), "count": ("pmm", "passive"), "binary": ("logistic",),
+    "nominal": ("multinomial",), "ordinal": ("ordinal", "multinomial"),
+}
+# Methods whose imputed values a delta can shift (on the value scale, or the log-odds for logistic).
+DELTA_METHODS: Tuple[str, ...] = ("pmm", "normal", "logistic")
+METHOD_WORDS: Dict[str, str] = {
+    "pmm": "predictive mean matching", "normal": "Bayesian linear regression", "logistic": "logistic regression",
+    "multinomial": "multinomial logistic regression", "ordinal": "proportional-odds regression",
+    "passive": "passive (recomputed from a formula)",
+}
+
+# ---------------------------------------------------------------------------
+# analysis-model families
+
+
+@dataclass(frozen=True)
+class Family:
+    """An analysis-model family: its name in params and, for log-link models, its ratio's name."""
+
+    name: str
+    ratio: Optional[str] = None       # column stem of the exponentiated coefficient, e.g. odds_ratio
+    ratio_words: Optional[str] = None  # the same in words, e.g. "odds ratio"
+
+
+FAMILIES: Tuple[Family, ...] = (
+    Family("gaussian"),
+    Family("binomial", "odds_ratio", "odds ratio"),
+    Family("poisson", "rate_ratio", "rate ratio"),
+)
+FAMILY_NAMES: Tuple[str, ...] = tuple(f.name for f in FAMILIES)
+RATIO_NAMES: Dict[str, str] = {f.name: f.ratio for f in FAMILIES if f.ratio}
+
+
+def ratio_name(family: str) -> Optional[str]:
+    """The ratio column stem of a family (``odds_ratio``, ``rate_ratio``), or None for an identity link."""
+    return RATIO_NAMES.get(family)
+
+
+# ---------------------------------------------------------------------------
+# strategies (the ``strategy`` column of estimates.csv, in the order tables list them)
+
+
+@dataclass(frozen=True)
+class Strategy:
+    """A way of handling missing data in the analysis: its table name, title and phrase in a sentence."""
+
+    name: str
+    title: str
+    phrase: str
+
+
+STRATEGIES: Tuple[Strategy, ...] = (
+    Strategy("complete_case", "Complete cases", "complete cases"),
+    Strategy("missing_category", "Missing category / indicator", "missing-category (indicator) analysis"),
+    Strategy("multiple_imputation", "Multiple imputation", "multiple imputation"),
+)
+STRATEGY_NAMES: Tuple[str, ...] = tuple(s.name for s in STRATEGIES)
+STRATEGY_TITLES: Dict[str, str] = {s.name: s.title for s in STRATEGIES}
+STRATEGY_PHRASES: Dict[str, str] = {s.name: s.phrase for s in STRATEGIES}
+
+
+def strategy_rank(name: str) -> int:
+    """Position of a strategy in table order; unknown strategies come after the known ones."""
+    return STRATEGY_NAMES.index(name) if name in STRATEGY_NAMES else len(STRATEGY_NAMES)
+
+
+# ---------------------------------------------------------------------------
+# missing reasons the kit itself gives (users' reason codes add their own labels)
+
+BLANK = "blank"                    # an empty cell
+NOT_APPLICABLE = "not applicable"  # outside the variable's applies_if condition: not missing
+IMPLAUSIBLE = "implausible"        # outside its plausible range, set missing on request
+
+# ---------------------------------------------------------------------------
+# the cautions of the trade, carried by every report
+
+MAR_CAUTION = ("Missing at random (MAR) cannot be verified from the observed data: a test can give evidence "
+               "against missing completely at random (MCAR), none can tell MAR from missing not at random (MNAR).")
+SENSITIVITY_POINTER = ("Every imputation-based result rests on that assumption, which is why the sensitivity "
+                       "analyses show how far the conclusions move if the data are missing not at random.")
+PLAN_CAUTION = ("These results support, and do not replace, a pre-specified statistical analysis plan and the "
+                "judgement of a qualified statistician.")
+REPORTING_CAUTION = ("Follow the reporting guideline your journal asks for (e.g. CONSORT for trials, STROBE for "
+                     "observational studies) and local data-protection rules before sharing any table from this "
+                     "record.")
+CAUTIONS: Tuple[str, ...] = (f"{MAR_CAUTION} {SENSITIVITY_POINTER}", PLAN_CAUTION, REPORTING_CAUTION)
+
+
+def cautions(with_model: bool = True) -> Tuple[str, ...]:
+    """The cautions a page carries; without an analysis model there is no imputation to point to."""
+    return CAUTIONS if with_model else (MAR_CAUTION, PLAN_CAUTION, REPORTING_CAUTION)
