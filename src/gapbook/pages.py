@@ -7,15 +7,7 @@ from pathlib import Path
 from typing import Any, Dict, Sequence, Tuple
 
 from . import __version__
-
-CAUTIONS = (
-    "Missing at random (MAR) cannot be verified from the data: every analysis here rests on assumptions about "
-    "why values are missing, and the sensitivity analyses show how far conclusions depend on them.",
-    "These results support, and do not replace, the study's pre-specified statistical analysis plan and the "
-    "judgement of a qualified statistician.",
-    "Report missing data as the journal's reporting guideline asks (e.g. CONSORT, STROBE) and follow local "
-    "data-protection rules before sharing this record.",
-)
+from .vocabulary import CAUTIONS
 
 
 def notebook_to_html(notebook: Path, target: Path) -> None:
