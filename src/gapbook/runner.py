@@ -151,9 +151,11 @@ def run_study(plan: Plan, out_root: Path, log: Log = print, name: Optional[str] 
         stage_pages = []
         if with_pages:
             bundle_start = time.perf_counter()
+            summary = pages.parameters_summary(params)
             for run in runs:
                 page = f"{Path(run.notebook.file).stem}.html"
-                pages.notebook_to_html(folder.temp / "notebooks" / run.notebook.file, folder.temp / "report" / page)
+                pages.notebook_to_html(folder.temp / "notebooks" / run.notebook.file, folder.temp / "report" / page,
+                                       title=STAGE_TITLES[run.stage], parameters=summary)
                 stage_pages.append((STAGE_TITLES[run.stage], page, run.seconds))
             log(f"{'html pages':<12} {time.perf_counter() - bundle_start:7.1f} s")
         kernel = {"executable": kernels.executable,
@@ -162,10 +164,9 @@ def run_study(plan: Plan, out_root: Path, log: Log = print, name: Optional[str] 
         if failure is not None:
             kind = "input" if isinstance(failure.error, InputError) else "analysis"
             error = {"kind": kind, "stage": failure.stage, "message": str(failure.error)}
-        summary = {"study": params.study.name, "started": started.isoformat(timespec="seconds"),
-                   "data": params.data_path.name, "sha256": plan.study.sha256 or "", "error": error}
         if with_pages:
-            pages.write_index(folder.temp, params.report.title or params.study.name, stage_pages, summary)
+            pages.write_index(folder.temp, params=params, pages=stage_pages, error=error,
+                              started=started.strftime("%Y-%m-%d %H:%M UTC"), data_sha256=plan.study.sha256 or "")
         manifest = rec.build_manifest(
             status="incomplete" if failure else "complete", params_body=yaml.safe_load(params_text),
             data_path=params.data_path, data_sha256=plan.study.sha256 or "", record_final=folder.final,
