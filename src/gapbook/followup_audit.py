@@ -95,9 +95,12 @@ def _completeness(outcome: RepeatedOutcome, groups) -> pd.DataFrame:
     observed = outcome.observed
     for level, members in groups:
         for k, visit in enumerate(outcome.visits):
-            n_obs = int(observed[members, k].sum())
-            rows.append({"group": level, "visit": visit, "n_participants": len(members), "n_observed": n_obs,
-                         "pct_observed": 100.0 * n_obs / len(members) if len(members) else np.nan})
+            values = outcome.values[members, k]
+            values = values[~np.isnan(values)]
+            rows.append({"group": level, "visit": visit, "n_participants": len(members), "n_observed": len(values),
+                         "pct_observed": 100.0 * len(values) / len(members) if len(members) else np.nan,
+                         "mean_observed": float(values.mean()) if len(values) else np.nan,
+                         "sd_observed": float(values.std(ddof=1)) if len(values) > 1 else np.nan})
     return pd.DataFrame(rows)
 
 

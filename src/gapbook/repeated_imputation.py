@@ -340,10 +340,57 @@ def _delta_vector(delta: Union[None, float, Sequence[float], Dict[Any, float]], 
     return vector
 
 
+@dataclass(frozen=True)
+class ArmPosteriors:
+    """Posterior draws of every group's model, and the seeds of the imputation draws that use them.
+
+    Every rule imputes from the same draws, so rules differ only by what they assume
+    (common random numbers make the comparison between rules less noisy).
+    """
+
+    groups: Dict[Any, GroupPosterior]
+    draw_seeds: Tuple[np.random.SeedSequence, ...] = field(repr=False)
+    seed: Optional[int]
+    burn_in: int
+    thin: int
+
+    @property
+    def m(self) -> int:
+        return len(self.draw_seeds)
+
+
+def draw_posteriors(outcome: RepeatedOutcome, *, m: int = 20, seed: Optional[int] = None, burn_in: int = 200,
+                    thin: int = 20) -> ArmPosteriors:
+    """Posterior draws of each exposure group's multivariate normal regression (data augmentation).
+
+    Parameters
+    ----------
+    outcome : repeated-measures data with a categorical exposure (the groups).
+    m : number of draws (one per imputed dataset).
+    seed : seed of the ``numpy.random.SeedSequence`` everything is drawn from.
+    burn_in, thin : data augmentation iterations before the first draw and between draws.
+    """
+    if m < 2:
+        raise InputError("imputation.m: at least two imputed datasets are needed to pool; raise m")
+    if not outcome.levels:
+        raise InputError("analysis.exposure: imputation by group needs a categorical exposure (the arm)")
+    covariates = outcome.covariate_matrix()
+    sequence = np.random.SeedSequence(seed)
+    group_seeds = sequence.spawn(len(outcome.levels))
+    draw_seeds = tuple(sequence.spawn(m))
+    groups = {}
+    for level, child in zip(outcome.levels, group_seeds):
+        members = outcome.group_rows(level)
+        groups[level] = draw_group_parameters(outcome.values[members], covariates[members], draws=m,
+                                              burn_in=burn_in, thin=thin, rng=np.random.default_rng(child),
+                                              level=level)
+    return ArmPosteriors(groups=groups, draw_seeds=draw_seeds, seed=seed, burn_in=burn_in, thin=thin)
+
+
 def impute_repeated(outcome: RepeatedOutcome, *, rule: str = "mar", m: int = 20, seed: Optional[int] = None,
                     reference: Any = None, delta: Union[None, float, Sequence[float], Dict[Any, float]] = None,
                     delta_groups: Optional[Sequence[Any]] = None, burn_in: int = 200,
-                    thin: int = 20) -> RepeatedImputation:
+                    thin: int = 20, posteriors: Optional[ArmPosteriors] = None) -> RepeatedImputation:
     """Multiply impute a repeated outcome under missing at random or a reference-based rule.
 
     Parameters
@@ -357,6 +404,8 @@ def impute_repeated(outcome: RepeatedOutcome, *, rule: str = "mar", m: int = 20,
         number, one per visit, or a mapping visit -> shift.
     delta_groups : groups the delta applies to (default: every group but the reference).
     burn_in, thin : data augmentation iterations before the first draw and between draws.
+    posteriors : draws from :func:`draw_posteriors` to reuse (then ``m``, ``seed``,
+        ``burn_in`` and ``thin`` are theirs).
 
     Returns
     -------
@@ -371,30 +420,21 @@ def impute_repeated(outcome: RepeatedOutcome, *, rule: str = "mar", m: int = 20,
     """
     if rule not in RULES:
         raise InputError(f"imputation rule '{rule}' is not one of {', '.join(RULES)}{did_you_mean(rule, RULES)}")
-    if m < 2:
-        raise InputError("imputation.m: at least two imputed datasets are needed to pool; raise m")
     if not outcome.levels:
         raise InputError("analysis.exposure: imputation by group needs a categorical exposure (the arm)")
     reference = outcome.reference if reference is None else reference
     if reference not in outcome.levels:
-        raise InputError(f"reference group '{reference}' is not a level of {outcome.exposure} "
-                         f"({', '.join(map(str, outcome.levels))})")
+        raise InputError(f"reference group '{label(reference)}' is not a level of {outcome.exposure} "
+                         f"({', '.join(map(label, outcome.levels))})")
     shift = _delta_vector(delta, outcome.visits)
     if delta_groups is None:
         delta_groups = tuple(level for level in outcome.levels if level != reference)
+    if posteriors is None:
+        posteriors = draw_posteriors(outcome, m=m, seed=seed, burn_in=burn_in, thin=thin)
     covariates = outcome.covariate_matrix()
-    sequence = np.random.SeedSequence(seed)
-    group_seeds = sequence.spawn(len(outcome.levels))
-    draw_seeds = sequence.spawn(m)
-    posteriors = {}
-    for level, child in zip(outcome.levels, group_seeds):
-        members = outcome.group_rows(level)
-        posteriors[level] = draw_group_parameters(outcome.values[members], covariates[members], draws=m,
-                                                  burn_in=burn_in, thin=thin, rng=np.random.default_rng(child),
-                                                  level=level)
-    completed = np.stack([_impute_once(outcome, covariates, posteriors, i, rule, reference, shift,
+    completed = np.stack([_impute_once(outcome, covariates, posteriors.groups, i, rule, reference, shift,
                                        tuple(delta_groups), np.random.default_rng(child))
-                          for i, child in enumerate(draw_seeds)])
+                          for i, child in enumerate(posteriors.draw_seeds)])
     return RepeatedImputation(outcome=outcome, rule=rule, reference=reference, completed=completed, delta=shift,
-                              delta_groups=tuple(delta_groups), seed=seed, burn_in=burn_in, thin=thin,
-                              posteriors=posteriors)
+                              delta_groups=tuple(delta_groups), seed=posteriors.seed, burn_in=posteriors.burn_in,
+                              thin=posteriors.thin, posteriors=posteriors.groups)
