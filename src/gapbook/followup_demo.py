@@ -20,10 +20,18 @@ their last observed change (less improvement, more leaving) and ``a`` is -2.4 in
 (intermittent, missing completely at random). Leavers get a reason: lack of efficacy
 when their last change was above -2, otherwise adverse event, withdrew consent or lost to
 follow-up at random.
+
+As a data file (``gapbook/data/followup_trial.csv``, long layout, one row per participant
+per planned visit), a missed visit's ``chg`` holds a reason code: ``LOE`` lack of efficacy,
+``AE`` adverse event, ``WC`` withdrew consent, ``MV`` missed visit (the participant came
+back); participants lost to follow-up have no rows after they left. ``write_followup_csv``
+regenerates the shipped file byte for byte.
 """
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from importlib import resources
+from pathlib import Path
 from typing import Optional, Sequence, Tuple
 
 import numpy as np
@@ -41,6 +49,9 @@ DROPOUT_SLOPE = 0.6
 INTERMITTENT = 0.03
 SEED = 20261202
 OTHER_REASONS = ("adverse event", "withdrew consent", "lost to follow-up")
+REASON_CODES = {"lack of efficacy": "LOE", "adverse event": "AE", "withdrew consent": "WC", "missed visit": "MV"}
+DEMO_CSV = "followup_trial.csv"
+DEMO_PARAMS = "followup_params.yaml"
 
 
 @dataclass(frozen=True)
@@ -107,3 +118,30 @@ def simulate_followup_trial(*, n_per_arm: int = 150, weeks: Sequence[int] = WEEK
     })
     return FollowupTrial(data=data, complete=complete, observed=observed, arm=arm, reasons=reasons,
                          effect=tuple(float(e) for e in effect), weeks=tuple(int(w) for w in weeks))
+
+
+def followup_demo_frame(trial: Optional[FollowupTrial] = None) -> pd.DataFrame:
+    """The trial as a data manager would send it: long layout, reason codes in ``chg``, no rows after loss."""
+    trial = simulate_followup_trial() if trial is None else trial
+    reasons = trial.reasons.ravel()
+    values = trial.data["chg"].to_numpy()
+    text = np.array([f"{v:.1f}" if v == v else REASON_CODES.get(r, "") for v, r in zip(values, reasons)],
+                    dtype=object)
+    frame = pd.DataFrame({"subject": trial.data["subject"].to_numpy(), "arm": trial.data["arm"].astype(str).to_numpy(),
+                          "base": trial.data["base"].map(lambda v: f"{v:.1f}").to_numpy(),
+                          "week": trial.data["week"].to_numpy(), "chg": text})
+    lost = np.array([r == "lost to follow-up" for r in reasons]) & np.isnan(values)
+    return frame[~lost].reset_index(drop=True)
+
+
+def write_followup_csv(path: Path) -> Path:
+    """Write the demo data file (the shipped one is this, byte for byte)."""
+    path = Path(path)
+    followup_demo_frame().to_csv(path, index=False, lineterminator="\n")
+    return path
+
+
+def followup_demo_files() -> Tuple[Path, Path]:
+    """The shipped data file and params file of the follow-up demo."""
+    folder = Path(str(resources.files("gapbook") / "data"))
+    return folder / DEMO_CSV, folder / DEMO_PARAMS
