@@ -88,7 +88,7 @@ def test_kaplan_meier_and_log_rank_by_hand(worked):
 def test_stopping_reasons_come_from_the_first_missed_visit_after_leaving(worked):
     _, audit = worked
     reasons = {(r.group, r.reason): r.n for r in audit.stopping_reasons.itertuples()}
-    assert reasons == {("ctl", "adverse event"): 1, ("trt", "lack of efficacy"): 1, ("trt", "not recorded"): 1,
+    assert reasons == {("ctl", "adverse event"): 1, ("trt", "lack of efficacy"): 1, ("trt", "reason not given"): 1,
                        ("trt", "lost to follow-up"): 1}
 
 

@@ -28,10 +28,7 @@ from gapbook import mixed_model as mm
 from gapbook.errors import AnalysisError
 from gapbook.followup_comparisons import comparison_effects
 from gapbook.followup_demo import simulate_followup_trial
-try:  # the EM's own module (package consolidate); before that it lived in mechanism
-    from gapbook.little import em_multivariate_normal
-except ImportError:
-    from gapbook.mechanism import em_multivariate_normal
+from gapbook.little import em_multivariate_normal
 from gapbook.repeated import repeated_outcome
 from test_mechanism import anderson_estimates, monotone_bivariate
 
@@ -96,7 +93,7 @@ def test_ml_monotone_two_visits_equals_anderson_closed_form():
     mean, covariance = anderson_estimates(frame)       # Anderson (1957), as the kit's EM tests implement it
     np.testing.assert_allclose([fit.coef[0], fit.coef[0] + fit.coef[1]], mean, rtol=1e-7)
     np.testing.assert_allclose(fit.sigma, covariance, rtol=1e-6)
-    # And the kit's EM (mechanism.em_multivariate_normal) reaches the same maximum.
+    # And the kit's EM (little.em_multivariate_normal) reaches the same maximum.
     em = em_multivariate_normal(frame, tolerance=1e-12, max_iterations=5000)
     np.testing.assert_allclose(fit.sigma, em.covariance.to_numpy(), rtol=1e-6)
 

@@ -7,7 +7,8 @@ import pytest
 import statsmodels.formula.api as smf
 
 from gapbook.errors import InputError
-from gapbook.repeated import last_observed_index, pattern_groups, repeated_outcome, wide_to_long
+from gapbook.little import pattern_rows
+from gapbook.repeated import last_observed_index, repeated_outcome, wide_to_long
 
 FORMULA = "y ~ arm * C(week) + base"
 
@@ -102,7 +103,7 @@ def test_text_visits_keep_plan_order_and_wide_to_long_round_trip():
 def test_pattern_groups_and_last_observed_by_definition():
     rng = np.random.default_rng(3)
     observed = rng.random((200, 5)) < 0.7
-    masks, rows = pattern_groups(observed)
+    masks, rows = pattern_rows(observed)
     # Every row is in exactly one group and equals its group's mask (definition of a pattern).
     assert sorted(np.concatenate(rows).tolist()) == list(range(200))
     for mask, members in zip(masks, rows):

@@ -23,12 +23,10 @@ from scipy import stats
 from gapbook import repeated_imputation as ri
 from gapbook.errors import InputError
 from gapbook.followup_demo import simulate_followup_trial
-try:  # the EM's own module (package consolidate); before that it lived in mechanism
-    from gapbook.little import em_multivariate_normal
-except ImportError:
-    from gapbook.mechanism import em_multivariate_normal
+from gapbook.little import em_multivariate_normal
 from gapbook.mixed_model import fit_mixed_model
 from gapbook.repeated import repeated_outcome
+from gapbook.vocabulary import INFORMATION_ANCHORING, REFERENCE_BASED_VARIANCE
 
 FORMULA = "chg ~ arm * C(week) + base * C(week)"
 
@@ -107,7 +105,7 @@ def test_jump_to_reference_with_dropout_before_first_visit_scales_the_mar_effect
         # And against the truth (1 - pi) x true effect, within the estimate's own standard error.
         truth = (1 - share_left) * (-2.0, -3.0, -4.0)[k]
         assert abs(j2r.loc[week, "estimate"] - truth) < 3 * j2r.loc[week, "std_error"]
-    assert pooled.sentences == (ri.RUBIN_CAUTION, ri.ANCHORING_NOTE)
+    assert pooled.sentences == (REFERENCE_BASED_VARIANCE, INFORMATION_ANCHORING)
 
 
 def test_reference_rules_coincide_when_nobody_has_a_visit_before_leaving(early_dropout_trial):

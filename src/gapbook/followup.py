@@ -26,8 +26,8 @@ from .followup_comparisons import (COMPLETERS, LAST_OBSERVATION, NOT_RECOMMENDED
 from .mixed_model import STRATEGY as MIXED_MODEL
 from .mixed_model import VISIT_EFFECT_COLUMNS, MixedModelFit, fit_mixed_model
 from .repeated import RepeatedOutcome, label
-from .repeated_imputation import (ANCHORING_NOTE, DELTA_STRATEGY, RUBIN_CAUTION, RULE_STRATEGY, draw_posteriors,
-                                  impute_repeated)
+from .repeated_imputation import DELTA_STRATEGY, RULE_STRATEGY, draw_posteriors, impute_repeated
+from .vocabulary import INFORMATION_ANCHORING, REFERENCE_BASED_VARIANCE
 
 # Every strategy of the stage, in the order tables and figures show them.
 FOLLOWUP_STRATEGIES: Tuple[str, ...] = (MIXED_MODEL, "multiple_imputation", "jump_to_reference", "copy_reference",
@@ -107,7 +107,7 @@ def _sentences(effects: pd.DataFrame, last_visit: Any, alpha: float, method: str
                                  f"{_effect_sentence(by.loc[strategy], alpha)}.")
     present = set(effects["strategy"])
     if present & set(REFERENCE_BASED):
-        sentences.extend([RUBIN_CAUTION, ANCHORING_NOTE])
+        sentences.extend([REFERENCE_BASED_VARIANCE, INFORMATION_ANCHORING])
     sentences.extend(NOT_RECOMMENDED[s] for s in (COMPLETERS, LAST_OBSERVATION) if s in present)
     return tuple(sentences)
 

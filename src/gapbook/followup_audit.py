@@ -25,8 +25,8 @@ import pandas as pd
 from scipy import stats
 
 from .repeated import RepeatedOutcome, last_observed_index
+from .vocabulary import REASON_NOT_GIVEN
 
-NOT_RECORDED = "not recorded"
 PATTERN_LABELS = ("complete", "monotone dropout", "intermittent", "intermittent and dropout", "no visit attended")
 ALL_GROUPS = "all"
 
@@ -159,14 +159,14 @@ def _stopping_reasons(outcome: RepeatedOutcome, groups, reasons: Optional[np.nda
     last = outcome.last_observed
     t = outcome.n_visits
     left = np.flatnonzero(last < t - 1)
-    labels = np.full(outcome.n, NOT_RECORDED, dtype=object)
+    labels = np.full(outcome.n, REASON_NOT_GIVEN, dtype=object)
     if reasons is not None:
         reasons = np.asarray(reasons, dtype=object)
         if reasons.ndim == 1:
             chosen = reasons[left]
         else:
             chosen = reasons[left, last[left] + 1]
-        labels[left] = [NOT_RECORDED if (r is None or (isinstance(r, float) and np.isnan(r)) or str(r) == "")
+        labels[left] = [REASON_NOT_GIVEN if (r is None or (isinstance(r, float) and np.isnan(r)) or str(r) == "")
                         else str(r) for r in chosen]
     rows = []
     for level, members in groups:

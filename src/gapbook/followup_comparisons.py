@@ -18,18 +18,11 @@ import pandas as pd
 from .errors import AnalysisError
 from .mixed_model import fit_mixed_model
 from .repeated import RepeatedOutcome, label
+from .vocabulary import COMPLETERS_CAUTION, LAST_OBSERVATION_CAUTION
 
 COMPLETERS = "completers"
 LAST_OBSERVATION = "last_observation"
-NOT_RECOMMENDED: Dict[str, str] = {
-    COMPLETERS: ("Completers only (participants who attended the last planned visit) is shown for comparison and "
-                 "is not recommended: it assumes those who left are like those who stayed (National Research "
-                 "Council 2010, recalled from memory)."),
-    LAST_OBSERVATION: ("Last observation carried forward is shown for comparison and is not recommended: it "
-                       "assumes each participant's outcome froze at their last attended visit, which can bias the "
-                       "effect in either direction and understates uncertainty (National Research Council 2010, "
-                       "recalled from memory)."),
-}
+NOT_RECOMMENDED: Dict[str, str] = {COMPLETERS: COMPLETERS_CAUTION, LAST_OBSERVATION: LAST_OBSERVATION_CAUTION}
 
 
 def completers(outcome: RepeatedOutcome) -> RepeatedOutcome:

@@ -16,7 +16,7 @@ import numpy as np
 import pandas as pd
 from scipy import linalg, stats
 
-__all__ = ["MissingnessPatterns", "group_patterns", "SingularCovariance", "EMEstimate", "em_multivariate_normal",
+__all__ = ["MissingnessPatterns", "pattern_rows", "group_patterns", "SingularCovariance", "EMEstimate", "em_multivariate_normal",
            "LittleTest", "little_mcar_test"]
 
 SINGULAR_EIGENVALUE = 1e-9  # on the correlation scale; below this the covariance is treated as singular
@@ -40,12 +40,25 @@ class MissingnessPatterns:
         return int(self.counts.sum())
 
 
-def group_patterns(values: np.ndarray) -> MissingnessPatterns:
-    """Group the rows of a numeric matrix (NaN = missing) by pattern; rows with nothing observed are dropped."""
-    observed = ~np.isnan(values)
-    keep = observed.any(axis=1)
-    values, observed = values[keep], observed[keep]
-    p = values.shape[1]
+def pattern_rows(observed: np.ndarray) -> Tuple[np.ndarray, List[np.ndarray]]:
+    """Group the rows of a boolean matrix by their pattern of True cells.
+
+    The one grouping the EM here, the mixed model for repeated measures and the
+    repeated-measures imputation share: each costs per pattern, not per row.
+
+    Parameters
+    ----------
+    observed : (n, p) boolean matrix (True = observed).
+
+    Returns
+    -------
+    masks : (J, p) boolean, one row per distinct pattern, in order of the patterns' integer keys.
+    rows : list of J arrays of row positions (increasing), one per pattern.
+    """
+    observed = np.asarray(observed, dtype=bool)
+    n, p = observed.shape
+    if n == 0:
+        return np.zeros((0, p), dtype=bool), []
     if p <= 62:
         # An integer key per row is far faster to group than rows of booleans.
         keys = observed.astype(np.int64) @ (np.int64(1) << np.arange(p, dtype=np.int64))
@@ -55,10 +68,16 @@ def group_patterns(values: np.ndarray) -> MissingnessPatterns:
     inverse = np.asarray(inverse).ravel()
     order = np.argsort(inverse, kind="stable")
     bounds = np.searchsorted(inverse[order], np.arange(len(first) + 1))
+    return observed[first], [order[bounds[j]:bounds[j + 1]] for j in range(len(first))]
+
+
+def group_patterns(values: np.ndarray) -> MissingnessPatterns:
+    """Group the rows of a numeric matrix (NaN = missing) by pattern; rows with nothing observed are dropped."""
+    observed = ~np.isnan(values)
+    keep = observed.any(axis=1)
+    values, observed = values[keep], observed[keep]
     masks, counts, sums, cross = [], [], [], []
-    for j in range(len(first)):
-        rows = order[bounds[j]:bounds[j + 1]]
-        mask = observed[first[j]]
+    for mask, rows in zip(*pattern_rows(observed)):
         block = values[np.ix_(rows, np.flatnonzero(mask))]
         masks.append(mask)
         counts.append(len(rows))

@@ -29,14 +29,16 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
-from typing import Any, Dict, List, Optional, Sequence, Tuple
+from typing import Dict, List, Optional, Sequence, Tuple
 
 import numpy as np
 import pandas as pd
-from scipy import linalg, optimize, stats
+from scipy import linalg, optimize
 
 from .errors import AnalysisError, InputError
-from .repeated import RepeatedOutcome, label, pattern_groups
+from .inference import wald_inference
+from .little import pattern_rows
+from .repeated import RepeatedOutcome, label
 
 METHODS = ("reml", "ml")
 STRATEGY = "mixed_model"
@@ -80,7 +82,7 @@ def _patterns(design: np.ndarray, values: np.ndarray, complete_xx: Optional[np.n
         xy = (flat.T @ values).reshape(t, p, t).transpose(0, 2, 1)
         return [_Pattern(visits=np.arange(t), n=n, xx=complete_xx, xy=np.ascontiguousarray(xy),
                          yy=values.T @ values)]
-    masks, groups = pattern_groups(observed)
+    masks, groups = pattern_rows(observed)
     found = []
     for mask, rows in zip(masks, groups):
         visits = np.flatnonzero(mask)
@@ -246,11 +248,7 @@ class Contrast:
 
     def interval(self) -> Tuple[np.ndarray, np.ndarray, np.ndarray]:
         """Lower and upper confidence limits at level 1 - alpha and the two-sided p-value (t with df)."""
-        df = np.where(np.isfinite(self.df), self.df, 1e12)
-        crit = stats.t.ppf(1 - self.alpha / 2, df)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            p = 2 * stats.t.sf(np.abs(self.estimate / self.std_error), df)
-        return self.estimate - crit * self.std_error, self.estimate + crit * self.std_error, p
+        return wald_inference(self.estimate, self.std_error, self.df, self.alpha)
 
 
 @dataclass(frozen=True)

@@ -17,7 +17,7 @@ refused, because a post-baseline covariate would be missing exactly when the out
 from __future__ import annotations
 
 from dataclasses import dataclass, field, replace
-from typing import Any, Dict, List, Optional, Sequence, Tuple
+from typing import Any, Dict, Optional, Sequence, Tuple
 
 import numpy as np
 import pandas as pd
@@ -41,35 +41,6 @@ def label(value: Any) -> str:
     if isinstance(value, float) and value.is_integer():
         return str(int(value))
     return str(value)
-
-
-def pattern_groups(observed: np.ndarray) -> Tuple[np.ndarray, List[np.ndarray]]:
-    """Group the rows of a boolean matrix by their pattern of True cells.
-
-    Parameters
-    ----------
-    observed : (n, T) boolean matrix (True = observed).
-
-    Returns
-    -------
-    masks : (J, T) boolean, one row per distinct pattern, in order of the patterns' integer keys.
-    rows : list of J arrays of row positions (increasing), one per pattern.
-    """
-    observed = np.asarray(observed, dtype=bool)
-    n, t = observed.shape
-    if n == 0:
-        return np.zeros((0, t), dtype=bool), []
-    if t <= 62:
-        # One integer key per row groups far faster than rows of booleans.
-        keys = observed.astype(np.int64) @ (np.int64(1) << np.arange(t, dtype=np.int64))
-        _, first, inverse = np.unique(keys, return_index=True, return_inverse=True)
-    else:
-        _, first, inverse = np.unique(observed, axis=0, return_index=True, return_inverse=True)
-    inverse = np.asarray(inverse).ravel()
-    order = np.argsort(inverse, kind="stable")
-    bounds = np.searchsorted(inverse[order], np.arange(len(first) + 1))
-    rows = [order[bounds[j]:bounds[j + 1]] for j in range(len(first))]
-    return observed[first], rows
 
 
 def last_observed_index(observed: np.ndarray) -> np.ndarray:

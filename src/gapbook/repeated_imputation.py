@@ -37,32 +37,26 @@ and the exposure effects are combined with Rubin's rules (``gapbook.pool``).
 """
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass, field
-from typing import Any, Dict, List, Optional, Sequence, Tuple, Union
+from typing import Any, Dict, Optional, Sequence, Tuple, Union
 
 import numpy as np
 import pandas as pd
 from scipy import linalg, stats
 
 from .errors import AnalysisError, InputError, did_you_mean
+from .inference import wald_inference
 from .mixed_model import VISIT_EFFECT_COLUMNS, design_crossproducts, fit_mixed_model
 from .pool import rubin_pool
-from .repeated import RepeatedOutcome, label, pattern_groups
+from .little import pattern_rows
+from .repeated import RepeatedOutcome, label
+from .vocabulary import INFORMATION_ANCHORING, REFERENCE_BASED_VARIANCE
 
 RULES = ("mar", "jump_to_reference", "copy_reference", "copy_increments_reference")
 # The strategy label each rule gets in visit_effects.csv.
 RULE_STRATEGY = {"mar": "multiple_imputation", "jump_to_reference": "jump_to_reference",
                  "copy_reference": "copy_reference", "copy_increments_reference": "copy_increments_reference"}
 DELTA_STRATEGY = "delta_adjusted"
-
-RUBIN_CAUTION = ("Rubin's variance formula overstates the variance of a reference-based estimate: the imputed "
-                 "values follow the reference group's mean, which does not vary with the active group's data as "
-                 "the formula assumes, so intervals are wider than the estimate's repeated-sampling spread.")
-ANCHORING_NOTE = ("Whether that wider variance is a defect or the right answer is debated: it keeps the share of "
-                  "information lost to missing data about the same as under missing at random ('information "
-                  "anchoring'; Cro, Carpenter & Kenward 2019, JRSS A 182:623-645, citation recalled from "
-                  "memory), while the repeated-sampling variance is smaller.")
 
 
 # ---------------------------------------------------------------------------
@@ -153,7 +147,7 @@ def draw_group_parameters(values: np.ndarray, covariates: np.ndarray, *, draws: 
                             "its distribution cannot be estimated")
     xtx_inv = np.linalg.inv(covariates.T @ covariates)
     xtx_inv_chol = np.linalg.cholesky(xtx_inv)
-    masks, rows = pattern_groups(observed)
+    masks, rows = pattern_rows(observed)
     groups = [(np.flatnonzero(mask), np.flatnonzero(~mask), r) for mask, r in zip(masks, rows) if not mask.all()]
     completed = np.where(observed, values, np.nanmean(values, axis=0))
     kept_b = np.empty((draws, q, t))
@@ -207,7 +201,7 @@ def _impute_once(outcome: RepeatedOutcome, covariates: np.ndarray, posteriors: D
         sigma = posterior.covariances[draw]
         own_rule = "mar" if level == reference else rule
         shift = delta if level in delta_groups else None
-        masks, rows = pattern_groups(observed[members])
+        masks, rows = pattern_rows(observed[members])
         for mask, local in zip(masks, rows):
             if mask.all():
                 continue
@@ -308,10 +302,9 @@ class PooledVisitEffects:
         for k, (term, visit) in enumerate(self.names):
             pooled = rubin_pool(self.estimates[:, [k]], self.variances[:, [k]], float(self.complete_df[k]))
             estimate, se, df = float(pooled.estimate[0]), float(np.sqrt(pooled.total[0])), float(pooled.df[0])
-            crit = stats.t.ppf(1 - self.alpha / 2, df) if np.isfinite(df) else stats.norm.ppf(1 - self.alpha / 2)
-            p = 2 * (stats.t.sf(abs(estimate / se), df) if np.isfinite(df) else stats.norm.sf(abs(estimate / se)))
+            lower, upper, p = (float(v) for v in wald_inference(estimate, se, df, self.alpha))
             rows.append({"strategy": self.strategy, "visit": visit, "term": term, "estimate": estimate,
-                         "std_error": se, "ci_lower": estimate - crit * se, "ci_upper": estimate + crit * se,
+                         "std_error": se, "ci_lower": lower, "ci_upper": upper,
                          "p_value": p, "df": df, "n_used": self.n_used, "fmi": float(pooled.fmi[0]),
                          "riv": float(pooled.riv[0])})
         return pd.DataFrame(rows, columns=list(VISIT_EFFECT_COLUMNS) + ["fmi", "riv"])
@@ -320,7 +313,7 @@ class PooledVisitEffects:
     def sentences(self) -> Tuple[str, ...]:
         if self.rule in ("mar",):
             return ()
-        return (RUBIN_CAUTION, ANCHORING_NOTE)
+        return (REFERENCE_BASED_VARIANCE, INFORMATION_ANCHORING)
 
 
 def _delta_vector(delta: Union[None, float, Sequence[float], Dict[Any, float]], visits: Sequence[Any]) -> np.ndarray:

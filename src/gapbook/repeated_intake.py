@@ -23,9 +23,9 @@ import pandas as pd
 
 from .errors import InputError, did_you_mean
 from .repeated import RepeatedOutcome, label, repeated_outcome, wide_to_long
+from .vocabulary import NO_RECORD
 
 LAYOUTS = ("long", "wide")
-NO_RECORD = "no record of the visit"
 
 
 def _as_number(value: Any) -> Optional[float]:

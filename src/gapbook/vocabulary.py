@@ -22,8 +22,9 @@ __all__ = [
     "IMPUTATION_METHODS", "DEFAULT_METHOD", "ALLOWED_METHODS", "DELTA_METHODS", "METHOD_WORDS",
     "Family", "FAMILIES", "FAMILY_NAMES", "RATIO_NAMES", "ratio_name",
     "Strategy", "STRATEGIES", "STRATEGY_NAMES", "STRATEGY_TITLES", "STRATEGY_PHRASES", "strategy_rank",
-    "BLANK", "NOT_APPLICABLE", "IMPLAUSIBLE",
+    "BLANK", "NOT_APPLICABLE", "IMPLAUSIBLE", "NO_RECORD", "REASON_NOT_GIVEN",
     "MAR_CAUTION", "SENSITIVITY_POINTER", "PLAN_CAUTION", "REPORTING_CAUTION", "CAUTIONS", "cautions",
+    "COMPLETERS_CAUTION", "LAST_OBSERVATION_CAUTION", "REFERENCE_BASED_VARIANCE", "INFORMATION_ANCHORING",
 ]
 
 # ---------------------------------------------------------------------------
@@ -137,7 +138,17 @@ class Strategy:
 STRATEGIES: Tuple[Strategy, ...] = (
     Strategy("complete_case", "Complete cases", "complete cases"),
     Strategy("missing_category", "Missing category / indicator", "missing-category (indicator) analysis"),
+    # Follow-up (repeated-measures) studies: the mixed model first, as trial plans name it primary.
+    Strategy("mixed_model", "Mixed model for repeated measures", "the mixed model for repeated measures"),
     Strategy("multiple_imputation", "Multiple imputation", "multiple imputation"),
+    Strategy("jump_to_reference", "Jump to reference", "jump-to-reference imputation"),
+    Strategy("copy_reference", "Copy reference", "copy-reference imputation"),
+    Strategy("copy_increments_reference", "Copy increments in reference",
+             "copy-increments-in-reference imputation"),
+    Strategy("delta_adjusted", "Own arm with a delta", "own-arm imputation with a delta after leaving"),
+    Strategy("completers", "Completers only (not recommended)", "the completers-only analysis"),
+    Strategy("last_observation", "Last observation carried forward (not recommended)",
+             "last observation carried forward"),
 )
 STRATEGY_NAMES: Tuple[str, ...] = tuple(s.name for s in STRATEGIES)
 STRATEGY_TITLES: Dict[str, str] = {s.name: s.title for s in STRATEGIES}
@@ -155,6 +166,8 @@ def strategy_rank(name: str) -> int:
 BLANK = "blank"                    # an empty cell
 NOT_APPLICABLE = "not applicable"  # outside the variable's applies_if condition: not missing
 IMPLAUSIBLE = "implausible"        # outside its plausible range, set missing on request
+NO_RECORD = "no record of the visit"   # follow-up, long layout: no row for a planned visit
+REASON_NOT_GIVEN = "reason not given"  # follow-up: a participant left and no reason was recorded
 
 # ---------------------------------------------------------------------------
 # the cautions of the trade, carried by every report
@@ -168,6 +181,23 @@ PLAN_CAUTION = ("These results support, and do not replace, a pre-specified stat
 REPORTING_CAUTION = ("Follow the reporting guideline your journal asks for (e.g. CONSORT for trials, STROBE for "
                      "observational studies) and local data-protection rules before sharing any table from this "
                      "record.")
+# Follow-up studies: the comparison strategies and reference-based imputation.
+COMPLETERS_CAUTION = ("Completers only (participants who attended the last planned visit) is shown for comparison "
+                      "and is not recommended: it assumes those who left are like those who stayed (National "
+                      "Research Council 2010, The Prevention and Treatment of Missing Data in Clinical Trials; "
+                      "recalled from memory).")
+LAST_OBSERVATION_CAUTION = ("Last observation carried forward is shown for comparison and is not recommended: it "
+                            "assumes each participant's outcome froze at their last attended visit, which can bias "
+                            "the effect in either direction and understates uncertainty (National Research Council "
+                            "2010; recalled from memory).")
+REFERENCE_BASED_VARIANCE = ("Rubin's variance formula overstates the variance of a reference-based estimate: the "
+                            "imputed values follow the reference group's mean, which does not vary with the active "
+                            "group's data as the formula assumes, so intervals are wider than the estimate's "
+                            "repeated-sampling spread.")
+INFORMATION_ANCHORING = ("Whether that wider variance is a defect or the right answer is debated: it keeps the share "
+                         "of information lost to missing data about the same as under missing at random "
+                         "('information anchoring'; Cro, Carpenter & Kenward 2019, JRSS A 182:623-645, citation "
+                         "recalled from memory), while the repeated-sampling variance is smaller.")
 CAUTIONS: Tuple[str, ...] = (f"{MAR_CAUTION} {SENSITIVITY_POINTER}", PLAN_CAUTION, REPORTING_CAUTION)
 
 
