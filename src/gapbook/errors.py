@@ -8,9 +8,18 @@ from __future__ import annotations
 import difflib
 from typing import Iterable
 
+from .text import one_line
+
 
 class InputError(Exception):
-    """Bad params, data or paths: the message names the file, key, column or row and what to do."""
+    """Bad params, data or paths: the message names the file, key, column or row and what to do.
+
+    The message is kept to one printable line (control characters from a hostile column
+    name or value are shown escaped, never sent to the terminal) of at most 2,000 characters.
+    """
+
+    def __init__(self, message: object = "") -> None:
+        super().__init__(one_line(message, limit=2000))
 
 
 class AnalysisError(Exception):

@@ -1,0 +1,74 @@
+"""User text stays text: Markdown and HTML escaping checked by rendering with the renderers pages use.
+
+The Markdown renderer is mistune (the one nbconvert uses for Markdown cells and outputs);
+elements are counted with the standard library's html.parser.
+"""
+from __future__ import annotations
+
+from html.parser import HTMLParser
+
+import mistune
+import pytest
+
+from gapbook.errors import InputError
+from gapbook.text import html_escape, md_code, md_escape, one_line, plot_escape
+
+HOSTILE = [
+    "<script>alert(1)</script>",
+    "<img src=x onerror=alert(1)>",
+    "\"><svg onload=alert(1)>",
+    "[click](javascript:alert(1))",
+    "![x](http://example.invalid/x.png)",
+    "*bold* _it_ `code` ~~del~~ $x^2$",
+    "# heading\n- item\n\n<b>x</b>",
+    "&lt;b&gt;not an element&lt;/b&gt;",
+    "<!-- comment --> <style>body{}</style>",
+    "line\rbreak\x1b[31m\x00\u202e",
+    "http://example.invalid www.example.invalid",
+    "| a | b |\n|---|---|",
+]
+
+
+class _Elements(HTMLParser):
+    def __init__(self) -> None:
+        super().__init__()
+        self.tags: list = []
+
+    def handle_starttag(self, tag, attrs):
+        self.tags.append(tag)
+
+
+def _tags(markup: str) -> list:
+    parser = _Elements()
+    parser.feed(markup)
+    return parser.tags
+
+
+@pytest.mark.parametrize("text", HOSTILE)
+def test_markdown_escaped_text_renders_as_one_paragraph_of_text(text):
+    rendered = mistune.create_markdown(escape=False)(md_escape(text))
+    assert _tags(rendered) == ["p"], rendered  # no element came from the user's text
+
+
+@pytest.mark.parametrize("text", HOSTILE)
+def test_html_escaped_text_is_no_element(text):
+    assert _tags(f"<td>{html_escape(text)}</td>") == ["td"]
+    assert _tags(f'<a title="{html_escape(text)}">x</a>') == ["a"]
+
+
+def test_markdown_escaping_keeps_the_words_readable():
+    rendered = mistune.create_markdown(escape=False)(md_escape("HbA1c (%) < 7.0 & age_group"))
+    assert rendered.strip() == "<p>HbA1c (%) &lt; 7.0 &amp; age_group</p>"
+
+
+def test_code_spans_hold_formulas_literally():
+    rendered = mistune.create_markdown(escape=False)(md_code('y ~ C(site, Treatment("<b>"))'))
+    assert _tags(rendered) == ["p", "code"]
+    assert "&lt;b&gt;" in rendered
+
+
+def test_one_line_and_plot_text():
+    assert one_line("a\nb\x1b") == "a\\x0ab\\x1b"
+    assert one_line("x" * 50, limit=10) == "xxxxxxx..."
+    assert plot_escape("cost $5 to $10") == r"cost \$5 to \$10"
+    assert "\n" not in str(InputError("col\nname")) and "\x1b" not in str(InputError("\x1b[2J"))
