@@ -83,3 +83,95 @@ def test_an_unknown_data_encoding_is_named_before_any_file_is_read():
     assert Params.from_dict({"data": {"path": "x.csv", "encoding": "latin-1"}}).data.encoding == "latin-1"
     with pytest.raises(InputError, match=r"data.encoding: unknown text encoding.*'latin-9x'"):
         Params.from_dict({"data": {"path": "x.csv", "encoding": "latin-9x"}})
+
+
+# ---------------------------------------------------------------------------
+# bounds (issue 9 §6): checked when the params are read, one line, naming the key
+
+BOUNDS = [
+    ("imputation", "m", "MAX_M"), ("imputation", "iterations", "MAX_ITERATIONS"),
+    ("imputation", "donors", "MAX_DONORS"), ("imputation", "n_jobs", "MAX_JOBS"),
+    ("imputation", "seed", "MAX_SEED"), ("sensitivity", "m", "MAX_M"),
+    ("simulation", "replicates", "MAX_REPLICATES"), ("simulation", "m", "MAX_M"),
+    ("simulation", "n_jobs", "MAX_JOBS"), ("simulation", "seed", "MAX_SEED"),
+    ("audit", "top_patterns", "MAX_TOP_PATTERNS"), ("mechanism", "em_max_iterations", "MAX_EM_ITERATIONS"),
+]
+
+
+@pytest.mark.parametrize("section,key,bound", BOUNDS)
+def test_each_bound_holds_at_its_value_and_refuses_one_more(tmp_path, section, key, bound):
+    import gapbook.params as schema
+
+    limit = getattr(schema, bound)
+    params = load_params(write(tmp_path, f"data: {{path: x.csv}}\n{section}: {{{key}: {limit}}}\n"))
+    assert getattr(getattr(params, section), key) == limit
+    with pytest.raises(InputError) as info:
+        load_params(write(tmp_path, f"data: {{path: x.csv}}\n{section}: {{{key}: {limit + 1}}}\n"))
+    assert f"{section}.{key}: {limit + 1} is above the upper bound {limit}" in str(info.value)
+
+
+def test_a_billion_imputations_stop_up_front(tmp_path):
+    # measured: m: 1000000000 passed check and died with MemoryError a minute into the run
+    with pytest.raises(InputError, match="imputation.m: 1000000000 is above the upper bound 500"):
+        load_params(write(tmp_path, "data: {path: x.csv}\nimputation: {m: 1000000000}\n"))
+
+
+@pytest.mark.parametrize("text,needle", [
+    ("sensitivity: {delta: {y: []}}", "the delta grid of 'y' is empty"),
+    ("sensitivity: {delta: {y: {by: arm, groups: {control: [0], treatment: []}}}}",
+     "the delta grid of group 'treatment' is empty"),
+    ("sensitivity: {delta: {y: {values: []}}}", "the delta grid is empty"),
+    ("sensitivity: {delta: {y: {by: arm}}}", "give the delta grid as values"),
+    ("sensitivity: {delta: {y: [" + ", ".join(["0.1"] * 102) + "]}}", "has 102 values; at most 101"),
+    ("sensitivity: {delta: {y: [0, .nan]}}", "finite number"),
+    ("variables: {w: {range: [.nan, 3]}}", "finite number"),
+    ("variables: {w: {range: [0, .inf]}}", "finite number"),
+    ("study: {name: '" + "x" * 501 + "'}", "study.name: String should have at most 500 characters"),
+    ("missing: {reasons: {60: ''}}", "missing.reasons.60"),
+    ("missing: {markers: [" + ", ".join(str(i) for i in range(1001)) + "]}", "missing.markers"),
+    ("variables: {bmi: {applies_if: \"@np.load.__globals__['os']\"}}", "variables.bmi.applies_if: "),
+    ("variables: {bmi: {applies_if: \"__import__('os').system('x')\"}}",
+     "variables.bmi.applies_if: '__import__' is not allowed"),
+    ("imputation: {passive: {bmi: \"np.lib._npyio_impl.os.system('x')\"}}",
+     "imputation.passive.bmi: '_npyio_impl' is not allowed"),
+    ("analysis: {formula: \"y ~ I(0*np.lib._npyio_impl.os.system('x'))\"}",
+     "analysis.formula: '_npyio_impl' is not allowed"),
+    ("analysis: {formula: \"y ~ alk.phos\"}", "analysis.formula: 'alk.phos' is not allowed; a column name with dots "
+                                               "is written Q(\"alk.phos\")"),
+])
+def test_bad_values_and_expressions_stop_when_the_params_are_read(tmp_path, text, needle):
+    with pytest.raises(InputError) as info:
+        load_params(write(tmp_path, f"data: {{path: x.csv}}\n{text}\n"))
+    assert needle in str(info.value) and "\n" not in str(info.value)
+
+
+def test_deep_huge_and_odd_yaml_give_one_line(tmp_path):
+    with pytest.raises(InputError, match="nested too deeply"):  # measured: 3,000 levels gave a traceback
+        load_params(write(tmp_path, "data: {path: x.csv}\nx: " + "[" * 3000 + "]" * 3000 + "\n"))
+    with pytest.raises(InputError, match="nested more than 20 levels"):
+        load_params(write(tmp_path, "data: {path: x.csv}\nvariables: " + "{a: " * 30 + "1" + "}" * 30 + "\n"))
+    with pytest.raises(InputError, match="number thousands of digits"):
+        load_params(write(tmp_path, "data: {path: x.csv}\nimputation: {m: 1" + "0" * 5000 + "}\n"))
+    with pytest.raises(InputError, match="too many entries"):  # aliases: a small file, a huge structure
+        lines = ["a0: &a0 [x, x, x, x, x, x, x, x, x, x]"]
+        lines += [f"a{i}: &a{i} [" + ", ".join([f"*a{i - 1}"] * 10) + "]" for i in range(1, 8)]
+        load_params(write(tmp_path, "data: {path: x.csv}\nstudy:\n  " + "\n  ".join(lines) + "\n"))
+    big = tmp_path / "big.yaml"
+    big.write_text("data: {path: x.csv}\n" + "# padding\n" * 600_000)
+    with pytest.raises(InputError, match="at most 5,000,000 are allowed"):
+        load_params(big)
+
+
+def test_the_template_documents_the_bounds_and_has_one_twin():
+    from pathlib import Path
+
+    import gapbook.params as schema
+
+    root = Path(__file__).resolve().parents[1]
+    template = (root / "params" / "template.yaml").read_text()
+    assert template == (root / "src" / "gapbook" / "data" / "params_template.yaml").read_text()
+    for _, _, bound in BOUNDS:
+        if bound != "MAX_SEED":
+            assert f"at most {getattr(schema, bound)}" in template, bound
+    for bound in ("MAX_GRID", "MAX_DELTA_VARIABLES", "MAX_TEXT", "MAX_LIST", "MAX_PARAMS_DEPTH"):
+        assert f"{getattr(schema, bound):,}" in template or str(getattr(schema, bound)) in template, bound

@@ -92,7 +92,15 @@ _ARITHMETIC = (ast.Add, ast.Sub, ast.Mult, ast.Div, ast.Pow)
 
 
 class ExpressionError(InputError, ValueError):
-    """An expression that is not allowed; the message names the key and the part (also a ValueError for pydantic)."""
+    """An expression that is not allowed; the message names the key and the part (also a ValueError for pydantic).
+
+    ``where`` is the params key (may be empty when the caller names it), ``detail`` the rest.
+    """
+
+    def __init__(self, where: str, detail: str) -> None:
+        self.where = where
+        self.detail = detail
+        super().__init__(f"{where}: {detail}" if where else detail)
 
 
 def _shown(text: str, limit: int = 60) -> str:
@@ -146,20 +154,20 @@ def _rows(data: Mapping[str, Any], columns: Sequence[str]) -> int:
 
 def _parse_tree(text: str, where: str, limit: int, kind: str) -> ast.Expression:
     if not isinstance(text, str):
-        raise ExpressionError(f"{where}: must be text (got {type(text).__name__})")
+        raise ExpressionError(where, f"must be text (got {type(text).__name__})")
     if len(text) > limit:
-        raise ExpressionError(f"{where}: the expression is {len(text):,} characters long; at most {limit:,} "
+        raise ExpressionError(where, f"the expression is {len(text):,} characters long; at most {limit:,} "
                               "are allowed")
     if not text.strip():
-        raise ExpressionError(f"{where}: the expression is empty")
+        raise ExpressionError(where, f"the expression is empty")
     try:
         tree = ast.parse(text.strip(), mode="eval")
     except SyntaxError as exc:
         detail = f" ({exc.msg})" if exc.msg else ""
-        raise ExpressionError(f"{where}: '{_shown(text)}' is not a valid expression{detail}; "
+        raise ExpressionError(where, f"'{_shown(text)}' is not a valid expression{detail}; "
                               f"{_HELP[kind]}{_odd_name_hint(text)}") from None
     except (ValueError, RecursionError, MemoryError, OverflowError):
-        raise ExpressionError(f"{where}: '{_shown(text)}' cannot be read (too long, too deeply nested or a "
+        raise ExpressionError(where, f"'{_shown(text)}' cannot be read (too long, too deeply nested or a "
                               "number too large)") from None
     _check_depth(tree, where)
     return tree
@@ -178,7 +186,7 @@ def _check_depth(tree: ast.AST, where: str) -> None:
     while stack:
         node, depth = stack.pop()
         if depth > MAX_DEPTH:
-            raise ExpressionError(f"{where}: the expression is nested more than {MAX_DEPTH} levels deep; "
+            raise ExpressionError(where, f"the expression is nested more than {MAX_DEPTH} levels deep; "
                                   "write it more simply")
         stack.extend((child, depth + 1) for child in ast.iter_child_nodes(node))
 
@@ -205,7 +213,7 @@ def _backticks_to_q(text: str, where: str) -> str:
         elif ch == "`":
             end = text.find("`", i + 1)
             if end < 0:
-                raise ExpressionError(f"{where}: a backtick-quoted column name is not closed; write `name`")
+                raise ExpressionError(where, f"a backtick-quoted column name is not closed; write `name`")
             out.append(f"Q({text[i + 1:end]!r})")
             i = end
         else:
@@ -231,13 +239,13 @@ class _Checker:
         return _shown(segment if segment is not None else ast.unparse(node))
 
     def refuse(self, node: ast.AST, text: Optional[str] = None, help_text: Optional[str] = None) -> ExpressionError:
-        return ExpressionError(f"{self.where}: '{text or self.part(node)}' is not allowed; "
+        return ExpressionError(self.where, f"'{text or self.part(node)}' is not allowed; "
                                f"{help_text or _HELP[self.kind]}")
 
     # -- columns
     def column(self, name: str, node: ast.AST) -> None:
         if self.known is not None and name not in self.known:
-            raise ExpressionError(f"{self.where}: '{_shown(name)}' is not a column of the data"
+            raise ExpressionError(self.where, f"'{_shown(name)}' is not a column of the data"
                                   f"{did_you_mean(name, self.columns)}")
         if name not in self.used:
             self.used.append(name)
@@ -343,7 +351,7 @@ class _Checker:
                 return self.refuse(node, text=_shown(f"np.{chain[-1]}"),
                                    help_text="np. offers only " + ", ".join(FUNCTIONS))
             if self.known is not None and dotted in self.known:
-                return ExpressionError(f"{self.where}: '{_shown(dotted)}' is a column name with a dot; write it as "
+                return ExpressionError(self.where, f"'{_shown(dotted)}' is a column name with a dot; write it as "
                                        f"Q(\"{_shown(dotted)}\")")
             return self.refuse(node, text=_shown(dotted),
                                help_text=f"a column name with dots is written Q(\"{_shown(dotted)}\")")
@@ -450,7 +458,7 @@ def parse_expression(text: str, *, where: str, kind: str = CONDITION,
     checker = _Checker(source.strip(), where, kind, columns)
     checker.value(tree.body)
     if not checker.used:
-        raise ExpressionError(f"{where}: '{_shown(text)}' uses no column")
+        raise ExpressionError(where, f"'{_shown(text)}' uses no column")
     return Expression(text=text, kind=kind, where=where, tree=tree, columns=tuple(checker.used))
 
 
@@ -484,23 +492,23 @@ def parse_formula(text: str, *, where: str = "analysis.formula",
     Formula with the outcome and the right-hand side's columns in order of first appearance.
     """
     if not isinstance(text, str):
-        raise ExpressionError(f"{where}: must be text (got {type(text).__name__})")
+        raise ExpressionError(where, f"must be text (got {type(text).__name__})")
     if len(text) > MAX_FORMULA_LENGTH:
-        raise ExpressionError(f"{where}: the formula is {len(text):,} characters long; at most "
+        raise ExpressionError(where, f"the formula is {len(text):,} characters long; at most "
                               f"{MAX_FORMULA_LENGTH:,} are allowed")
     if "~" not in text:
-        raise ExpressionError(f"{where}: '{_shown(text)}' has no '~'; write it as 'outcome ~ exposure + covariates'")
+        raise ExpressionError(where, f"'{_shown(text)}' has no '~'; write it as 'outcome ~ exposure + covariates'")
     lhs_text = text.split("~", 1)[0]
     import patsy
 
     try:
         description = patsy.ModelDesc.from_formula(text)  # parses only; nothing is evaluated
     except RecursionError:
-        raise ExpressionError(f"{where}: the formula has more terms than statsmodels' formula parser handles "
+        raise ExpressionError(where, f"the formula has more terms than statsmodels' formula parser handles "
                               "(a few hundred); combine or drop covariates") from None
     except Exception as exc:  # patsy's syntax errors (unmatched brackets, dangling operators, odd names)
         first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
-        raise ExpressionError(f"{where}: '{_shown(text)}' is not a valid formula ({_shown(first, 80)})"
+        raise ExpressionError(where, f"'{_shown(text)}' is not a valid formula ({_shown(first, 80)})"
                               f"{_formula_name_hint(text, columns)}; check its brackets and operators") from None
     used: List[str] = []
     outcome: Optional[str] = None
@@ -509,14 +517,14 @@ def parse_formula(text: str, *, where: str = "analysis.formula",
             for factor in term.factors:
                 code = getattr(factor, "code", None)
                 if not isinstance(code, str):
-                    raise ExpressionError(f"{where}: a term of '{_shown(text)}' cannot be checked")
+                    raise ExpressionError(where, f"a term of '{_shown(text)}' cannot be checked")
                 names = _check_term(code, where, columns)
                 if side == "lhs":
                     outcome = _outcome(code, names, where)
                 else:
                     used.extend(n for n in names if n not in used)
     if outcome is None or len(description.lhs_termlist) != 1:
-        raise ExpressionError(f"{where}: '{_shown(lhs_text.strip())}' is not one outcome column; write "
+        raise ExpressionError(where, f"'{_shown(lhs_text.strip())}' is not one outcome column; write "
                               "'outcome ~ exposure + covariates'")
     return Formula(text=text, outcome=outcome, columns=tuple(used))
 
@@ -526,11 +534,11 @@ def _check_term(code: str, where: str, columns: Optional[Sequence[str]]) -> List
         tree = _parse_tree(code, where, MAX_FORMULA_LENGTH, TERM)
     except ExpressionError:
         if keyword.iskeyword(code.strip()) or code.strip() in ("True", "False", "None"):
-            raise ExpressionError(f"{where}: '{_shown(code)}' is a Python word; write the column as "
+            raise ExpressionError(where, f"'{_shown(code)}' is a Python word; write the column as "
                                   f"Q(\"{_shown(code.strip())}\")") from None
         hint = _odd_name_hint(code) or _formula_name_hint(code, columns)
         if hint:
-            raise ExpressionError(f"{where}: '{_shown(code)}' is not a valid term{hint}") from None
+            raise ExpressionError(where, f"'{_shown(code)}' is not a valid term{hint}") from None
         raise
     checker = _Checker(code.strip(), where, TERM, columns)
     checker.value(tree.body)
@@ -542,7 +550,7 @@ def _outcome(code: str, names: List[str], where: str) -> str:
     if isinstance(tree, ast.Name) or (isinstance(tree, ast.Call) and isinstance(tree.func, ast.Name)
                                       and tree.func.id == "Q"):
         return names[0]
-    raise ExpressionError(f"{where}: the outcome '{_shown(code)}' must be a column (transform it in the data, "
+    raise ExpressionError(where, f"the outcome '{_shown(code)}' must be a column (transform it in the data, "
                           "or write Q(\"name\") for an odd name)")
 
 

@@ -11,13 +11,14 @@ message that names the file and key and suggests the nearest valid word.
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Any, Dict, List, Literal, Optional, Tuple, Union
+from typing import Annotated, Any, Dict, List, Literal, Optional, Tuple, Union
 
 import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
 from .errors import InputError, did_you_mean
 from .vocabulary import FAMILY_NAMES, IMPUTATION_METHODS, VARIABLE_TYPES
+from .expressions import CONDITION, VALUE, ExpressionError, parse_expression, parse_formula
 
 DATA_FORMATS: Tuple[str, ...] = ("auto", "csv", "tsv", "xlsx", "parquet")
 # pydantic checks a value against a Literal; the Literals are built from the vocabulary's tuples.
@@ -29,13 +30,40 @@ STAGES: Tuple[str, ...] = ("audit", "mechanism", "cases", "indicator", "impute",
 
 Marker = Union[str, int, float]
 
+# Upper bounds, checked when the params are read (documented in params/template.yaml). Each
+# is far above what a real study uses (common practice, no source: m and iterations in the
+# tens, a few hundred replicates) and keeps memory and time within a workstation's reach.
+MAX_M = 500                  # imputations (imputation.m, sensitivity.m, simulation.m)
+MAX_ITERATIONS = 1_000       # chained-equations iterations
+MAX_DONORS = 100             # predictive-mean-matching donors
+MAX_JOBS = 256               # parallel workers
+MAX_REPLICATES = 10_000      # simulation replicates
+MAX_GRID = 101               # values in one delta grid (per variable, or per group)
+MAX_DELTA_VARIABLES = 20     # variables with a delta grid
+MAX_TOP_PATTERNS = 1_000     # missingness patterns listed
+MAX_EM_ITERATIONS = 100_000  # EM iterations for Little's test
+MAX_SEED = 2 ** 63 - 1
+MAX_LIST = 1_000             # markers, reasons, levels, predictors ... in one list
+MAX_TEXT = 500               # characters in a name, title or label
+MAX_PARAMS_BYTES = 5_000_000 # size of the params file
+MAX_PARAMS_DEPTH = 20        # nesting of the YAML (the schema itself needs 5)
+
 
 class _Section(BaseModel):
-    model_config = ConfigDict(extra="forbid", frozen=True)
+    # inf/nan in a range, a grid or a threshold would silently disable a check: refuse them
+    model_config = ConfigDict(extra="forbid", frozen=True, allow_inf_nan=False)
+
+
+Text = Annotated[str, Field(max_length=MAX_TEXT)]
+Name = Annotated[str, Field(min_length=1, max_length=MAX_TEXT)]
+
+
+def _bounded(kind: Any) -> Any:
+    return Annotated[List[kind], Field(max_length=MAX_LIST)]
 
 
 class StudySection(_Section):
-    name: str = "Unnamed study"
+    name: Text = "Unnamed study"
 
 
 class DataSection(_Section):
@@ -58,11 +86,18 @@ class DataSection(_Section):
 
 class VariableSpec(_Section):
     type: Optional[VariableType] = None
-    label: Optional[str] = None
-    levels: Optional[List[Union[str, int, float]]] = None
+    label: Optional[Text] = None
+    levels: Optional[_bounded(Union[str, int, float])] = None
     range: Optional[Tuple[Optional[float], Optional[float]]] = None
     out_of_range: Optional[Literal["flag", "missing"]] = None
     applies_if: Optional[str] = None
+
+    @field_validator("applies_if")
+    @classmethod
+    def _allowed_condition(cls, value: Optional[str]) -> Optional[str]:
+        if value is not None:
+            parse_expression(value, where="", kind=CONDITION)
+        return value
 
     @model_validator(mode="after")
     def _range_ordered(self) -> "VariableSpec":
@@ -73,14 +108,18 @@ class VariableSpec(_Section):
         return self
 
 
+ReasonLabel = Annotated[str, Field(min_length=1, max_length=200)]
+Reasons = Annotated[Dict[Marker, ReasonLabel], Field(max_length=MAX_LIST)]
+
+
 class ColumnMissing(_Section):
-    markers: List[Marker] = Field(default_factory=list)
-    reasons: Dict[Marker, str] = Field(default_factory=dict)
+    markers: _bounded(Marker) = Field(default_factory=list)
+    reasons: Reasons = Field(default_factory=dict)
 
 
 class MissingSection(_Section):
-    markers: List[Marker] = Field(default_factory=lambda: ["", "NA", "N/A", "NaN", "null", "."])
-    reasons: Dict[Marker, str] = Field(default_factory=dict)
+    markers: _bounded(Marker) = Field(default_factory=lambda: ["", "NA", "N/A", "NaN", "null", "."])
+    reasons: Reasons = Field(default_factory=dict)
     columns: Dict[str, ColumnMissing] = Field(default_factory=dict)
     out_of_range: Literal["flag", "missing"] = "flag"
     robust_z: float = Field(5.0, gt=0)
@@ -89,7 +128,7 @@ class MissingSection(_Section):
 class AuditSection(_Section):
     threshold: float = Field(0.20, ge=0, le=1)
     by: List[str] = Field(default_factory=list)
-    top_patterns: int = Field(15, ge=1)
+    top_patterns: int = Field(15, ge=1, le=MAX_TOP_PATTERNS)
 
     @field_validator("by", mode="before")
     @classmethod
@@ -102,7 +141,7 @@ class MechanismSection(_Section):
     alpha: float = Field(0.05, gt=0, lt=1)
     min_missing: int = Field(10, ge=1)
     em_tolerance: float = Field(1e-8, gt=0)
-    em_max_iterations: int = Field(1000, ge=1)
+    em_max_iterations: int = Field(1000, ge=1, le=MAX_EM_ITERATIONS)
 
 
 class AnalysisSection(_Section):
@@ -113,18 +152,40 @@ class AnalysisSection(_Section):
     robust: bool = False
     alpha: float = Field(0.05, gt=0, lt=1)
 
+    @field_validator("formula")
+    @classmethod
+    def _allowed_formula(cls, value: Optional[str]) -> Optional[str]:
+        if value is not None:
+            parse_formula(value, where="")
+        return value
+
 
 class ImputationSection(_Section):
-    m: int = Field(20, ge=1)
-    iterations: int = Field(10, ge=1)
-    seed: int = Field(20261202, ge=0)
-    donors: int = Field(5, ge=1)
-    n_jobs: int = Field(1, ge=1)
+    m: int = Field(20, ge=1, le=MAX_M)
+    iterations: int = Field(10, ge=1, le=MAX_ITERATIONS)
+    seed: int = Field(20261202, ge=0, le=MAX_SEED)
+    donors: int = Field(5, ge=1, le=MAX_DONORS)
+    n_jobs: int = Field(1, ge=1, le=MAX_JOBS)
     methods: Dict[str, ImputationMethod] = Field(default_factory=dict)
     passive: Dict[str, str] = Field(default_factory=dict)
     predictors: Dict[str, List[str]] = Field(default_factory=dict)
     exclude_predictors: Dict[str, List[str]] = Field(default_factory=dict)
     auxiliary: List[str] = Field(default_factory=list)
+
+    @field_validator("passive")
+    @classmethod
+    def _allowed_passive(cls, value: Dict[str, str]) -> Dict[str, str]:
+        for name, formula in value.items():
+            parse_expression(formula, where=str(name), kind=VALUE)
+        return value
+
+
+def _grid(values: List[float], what: str) -> List[float]:
+    if not values:
+        raise ValueError(f"the delta grid {what}is empty; give at least one value, e.g. [0, 0.5, 1.0]")
+    if len(values) > MAX_GRID:
+        raise ValueError(f"the delta grid {what}has {len(values)} values; at most {MAX_GRID} are allowed")
+    return values
 
 
 class DeltaGrid(_Section):
@@ -132,23 +193,45 @@ class DeltaGrid(_Section):
     by: Optional[str] = None
     groups: Dict[str, List[float]] = Field(default_factory=dict)
 
+    @model_validator(mode="after")
+    def _some_grid(self) -> "DeltaGrid":
+        if self.values is not None:
+            _grid(self.values, "")
+        for group, values in self.groups.items():
+            _grid(values, f"of group '{group}' ")
+        if self.values is None and not self.groups:
+            raise ValueError("give the delta grid as values: [...] or, with by:, as groups: {group: [...]}")
+        if len(self.groups) > MAX_GRID:
+            raise ValueError(f"{len(self.groups)} groups; at most {MAX_GRID} are allowed")
+        return self
+
 
 class SensitivitySection(_Section):
     variable: Optional[str] = None
     delta: Dict[str, Union[List[float], DeltaGrid]] = Field(default_factory=dict)
-    m: Optional[int] = Field(None, ge=1)
+    m: Optional[int] = Field(None, ge=1, le=MAX_M)
+
+    @field_validator("delta")
+    @classmethod
+    def _grids(cls, value: Dict[str, Any]) -> Dict[str, Any]:
+        if len(value) > MAX_DELTA_VARIABLES:
+            raise ValueError(f"{len(value)} variables have a delta grid; at most {MAX_DELTA_VARIABLES} are allowed")
+        for name, grid in value.items():
+            if isinstance(grid, list):
+                _grid(grid, f"of '{name}' ")
+        return value
 
 
 class SimulationSection(_Section):
-    replicates: int = Field(100, ge=2)  # fits the demo's 3-minute budget on 2 cores (benchmarks/README.md)
-    seed: int = Field(20261203, ge=0)
-    n_jobs: int = Field(2, ge=1)
-    m: int = Field(5, ge=1)
+    replicates: int = Field(100, ge=2, le=MAX_REPLICATES)  # fits the demo's 3-minute budget on 2 cores
+    seed: int = Field(20261203, ge=0, le=MAX_SEED)
+    n_jobs: int = Field(2, ge=1, le=MAX_JOBS)
+    m: int = Field(5, ge=1, le=MAX_M)
     mar_on: List[str] = Field(default_factory=list)
 
 
 class ReportSection(_Section):
-    title: Optional[str] = None
+    title: Optional[Text] = None
     min_cell: int = Field(5, ge=0)
     suppress_small: bool = False
     group: Optional[str] = None
@@ -213,6 +296,7 @@ class Params(_Section):
         label = source or raw.get("source") or "params"
         if not isinstance(raw, dict):
             raise InputError(f"{label}: the params file must be a mapping of sections ({', '.join(SECTIONS)})")
+        _check_depth(raw, label)
         body = dict(raw)
         if source is not None:
             body["source"] = str(source)
@@ -220,6 +304,8 @@ class Params(_Section):
             return cls.model_validate(body)
         except ValidationError as exc:
             raise InputError(_explain(exc, label)) from None
+        except RecursionError:
+            raise InputError(f"{label}: the params are nested too deeply") from None
 
 
 def load_params(path: Union[str, Path]) -> Params:
@@ -227,8 +313,17 @@ def load_params(path: Union[str, Path]) -> Params:
     path = Path(path)
     if not path.is_file():
         raise InputError(f"{path}: params file not found; give the path to a YAML file (see 'gapbook new DIR')")
+    size = path.stat().st_size
+    if size > MAX_PARAMS_BYTES:
+        raise InputError(f"{path}: the params file is {size:,} bytes; at most {MAX_PARAMS_BYTES:,} are allowed "
+                         "(is it the data file?)")
     try:
         raw = yaml.safe_load(path.read_text(encoding="utf-8"))
+    except RecursionError:
+        raise InputError(f"{path}: the YAML is nested too deeply; the params need at most {MAX_PARAMS_DEPTH} "
+                         "levels") from None
+    except ValueError:  # e.g. an integer of thousands of digits
+        raise InputError(f"{path}: holds a value YAML cannot read (a number thousands of digits long?)") from None
     except yaml.YAMLError as exc:
         mark = getattr(exc, "problem_mark", None)
         where = f" at line {mark.line + 1}" if mark is not None else ""
@@ -238,6 +333,27 @@ def load_params(path: Union[str, Path]) -> Params:
     if raw is None:
         raise InputError(f"{path}: the params file is empty; it needs at least a 'data' section with 'path'")
     return Params.from_dict(raw, source=str(path.resolve()))
+
+
+def _check_depth(raw: Any, label: str) -> None:
+    """Refuse params nested deeper than any valid params file (before anything walks them recursively)."""
+    stack = [(raw, 0)]
+    seen = 0
+    while stack:
+        node, depth = stack.pop()
+        if depth > MAX_PARAMS_DEPTH:
+            raise InputError(f"{label}: the params are nested more than {MAX_PARAMS_DEPTH} levels deep; "
+                             "see params/template.yaml for the layout")
+        if isinstance(node, dict):
+            children = list(node.keys()) + list(node.values())
+        elif isinstance(node, (list, tuple)):
+            children = list(node)
+        else:
+            continue
+        seen += len(children)
+        if seen > MAX_LIST * MAX_LIST:  # YAML aliases can make a small file a huge structure
+            raise InputError(f"{label}: the params hold too many entries; see params/template.yaml")
+        stack.extend((child, depth + 1) for child in children)
 
 
 # ---------------------------------------------------------------------------
@@ -289,7 +405,7 @@ def _explain(exc: ValidationError, label: str) -> str:
     """One line for the first validation error, naming file and key, with a suggestion."""
     # Several errors (or one per member of a Union) may be reported; name the most telling:
     # an unknown key before a missing one, and the deepest location first.
-    priority = {"extra_forbidden": 0, "literal_error": 1}
+    priority = {"extra_forbidden": 0, "literal_error": 1, "value_error": 1}
     error = min(exc.errors(), key=lambda e: (priority.get(e["type"], 2), -len(e["loc"])))
     loc = tuple(p for p in error["loc"] if not str(p).startswith(("function-", "tagged-union")))
     # Union members add their class name to the location; drop those.
@@ -297,6 +413,17 @@ def _explain(exc: ValidationError, label: str) -> str:
     loc = tuple(p for p in loc if p not in ("list[float]", "str", "int", "float", "list[union[str,int,float]]"))
     kind = error["type"]
     key = _dotted(loc)
+    cause = error.get("ctx", {}).get("error")
+    if isinstance(cause, ExpressionError):
+        return f"{label}: {key}{'.' + cause.where if cause.where else ''}: {cause.detail}"
+    if kind in ("less_than_equal", "too_long") and not isinstance(error.get("input"), (dict, list)):
+        bound = error.get("ctx", {}).get("le", error.get("ctx", {}).get("max_length"))
+        what = "characters" if isinstance(error.get("input"), str) else "items" if kind == "too_long" else ""
+        return (f"{label}: {key}: {_short(error.get('input'))} is above the upper bound {bound}{' ' + what if what else ''}"
+                " (bounds keep memory and time sane; see params/template.yaml)")
+    if kind == "too_long":
+        bound = error.get("ctx", {}).get("max_length")
+        return f"{label}: {key}: more than {bound} entries; see params/template.yaml"
     if kind == "extra_forbidden":
         word = str(loc[-1])
         valid = _parent_fields(loc[:-1])
@@ -313,5 +440,10 @@ def _explain(exc: ValidationError, label: str) -> str:
         return f"{label}: {key} is required; add it to the params file"
     message = error.get("msg", "invalid value").replace("Value error, ", "")
     given = error.get("input")
-    shown = "" if isinstance(given, (dict, list)) else f" (got {given!r})"
+    shown = "" if isinstance(given, (dict, list)) else f" (got {_short(given)})"
     return f"{label}: {key}: {message}{shown}"
+
+
+def _short(value: Any, limit: int = 80) -> str:
+    text = repr(value) if not isinstance(value, int) or isinstance(value, bool) else str(value)
+    return text if len(text) <= limit else text[: limit - 3] + "..."
