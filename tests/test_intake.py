@@ -196,7 +196,8 @@ def test_constant_and_many_level_columns_are_described_plainly(tmp_path):
     path = tmp_path / "c.csv"
     pd.DataFrame({"pid": range(30), "site": ["A"] * 30, "batch": [7] * 30,
                   "visit_date": [f"2026-01-{d:02d}" for d in range(1, 31)]}).to_csv(path, index=False)
-    study = load_study(make_params(path))
+    # declared nominal (an explicit choice), dates are categories whose long level list is cut
+    study = load_study(make_params(path, variables={"visit_date": {"type": "nominal"}}))
     assert study.types["site"] == "nominal" and study.types["batch"] == "continuous"
     assert "constant" in study.variables["site"].reason
     levels = study.variables_table().set_index("variable").loc["visit_date", "levels"]

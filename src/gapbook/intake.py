@@ -11,9 +11,11 @@ million-row file costs one pass per column plus a dictionary look-up per distinc
 """
 from __future__ import annotations
 
+import csv
 import hashlib
 import math
 import re
+import unicodedata
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Dict, List, Mapping, Optional, Tuple
@@ -22,10 +24,19 @@ import numpy as np
 import pandas as pd
 
 from .errors import InputError, did_you_mean
+from .expressions import CONDITION, parse_expression
 from .params import Params, VariableSpec
 from .vocabulary import BLANK, CATEGORICAL_TYPES, IMPLAUSIBLE, NOT_APPLICABLE, NUMERIC_TYPES, infer_type
+from .text import one_line
 
 MAD_TO_SD = 1.4826  # consistency constant of the MAD for the normal distribution (Hampel 1974)
+MAX_NAME_LENGTH = 256         # characters in a column name
+# An undeclared text column with at least this many distinct values, making up more than half
+# of its observed cells, is free text or an identifier (names, comments, codes): its values are
+# never shown or analysed, only counted (common practice, no source).
+FREE_TEXT_MIN_DISTINCT = 10
+FREE_TEXT_LONG_VALUE = 100    # a value this long is free text whatever the counts
+FREE_TEXT_LEVEL = "(text)"    # what such a column holds after intake where it was observed
 
 
 @dataclass(frozen=True)
@@ -40,6 +51,8 @@ class VariableInfo:
     label: Optional[str] = None
     range: Optional[Tuple[Optional[float], Optional[float]]] = None
     numeric_storage: bool = True
+    free_text: bool = False       # values replaced by FREE_TEXT_LEVEL; only counts are shown
+    n_distinct: Optional[int] = None
 
     @property
     def is_categorical(self) -> bool:
@@ -66,6 +79,7 @@ class Study:
     source: Optional[str] = None
     sha256: Optional[str] = None
     notes: Tuple[str, ...] = field(default_factory=tuple)
+    warnings: Tuple[str, ...] = field(default_factory=tuple)   # printed by check and run, shown in the audit
 
     @property
     def missing(self) -> pd.DataFrame:
@@ -92,7 +106,8 @@ class Study:
         """One row per variable: type, whether declared or inferred, and why."""
         rows = [
             {"variable": v.name, "type": v.type, "source": "declared" if v.declared else "inferred",
-             "levels": _levels_text(v.levels), "why": v.reason}
+             "levels": f"{v.n_distinct} distinct texts (not shown)" if v.free_text else _levels_text(v.levels),
+             "why": v.reason}
             for v in self.variables.values()
         ]
         return pd.DataFrame(rows, columns=["variable", "type", "source", "levels", "why"])
@@ -129,39 +144,157 @@ def _format_of(path: Path, declared: str) -> str:
     return known[suffix]
 
 
-def read_raw(path: Path, fmt: str = "auto", sheet: Any = None, encoding: str = "utf-8") -> pd.DataFrame:
-    """Read a data file with every cell as it was written (text files: all strings, no NA parsing)."""
+def read_raw(path: Path, fmt: str = "auto", sheet: Any = None, encoding: str = "utf-8", *,
+             delimiter: Optional[str] = None, ignore: Tuple[str, ...] = ()) -> pd.DataFrame:
+    """Read a data file with every cell as it was written (text files: all strings, no NA parsing).
+
+    The header is read as written (pandas would rename a repeated ``x`` to ``x.1``): a
+    repeated, empty or unsafe column name stops with exit 2 naming the column; see
+    :func:`check_header`. Columns in ``ignore`` are left out before any check.
+    """
+    raw, _ = read_table(path, fmt, sheet, encoding, delimiter=delimiter, ignore=ignore)
+    return raw
+
+
+def read_table(path: Path, fmt: str = "auto", sheet: Any = None, encoding: str = "utf-8", *,
+               delimiter: Optional[str] = None, ignore: Tuple[str, ...] = ()) -> Tuple[pd.DataFrame, List[str]]:
+    """:func:`read_raw` and the warnings it found (an unnamed empty column left out)."""
     if not path.is_file():
         raise InputError(f"{path}: data file not found; check data.path (it is relative to the params file)")
     fmt = _format_of(path, fmt)
+    named = encoding
+    if encoding.replace("_", "-").lower() in ("utf-8", "utf8"):
+        encoding = "utf-8-sig"  # a byte-order mark (spreadsheet "CSV UTF-8") is not part of the first name
     try:
         if fmt in ("csv", "tsv"):
             if path.stat().st_size == 0:
                 raise InputError(f"{path}: the data file is empty; it needs a header row and data rows")
-            raw = pd.read_csv(path, sep="," if fmt == "csv" else "\t", dtype=str, keep_default_na=False,
-                              na_filter=False, encoding=encoding, skipinitialspace=False)
+            sep = delimiter or ("," if fmt == "csv" else "\t")
+            header = _text_header(path, sep, encoding)
+            raw = pd.read_csv(path, sep=sep, dtype=str, keep_default_na=False, na_filter=False, encoding=encoding,
+                              skipinitialspace=False)
         elif fmt == "xlsx":
-            raw = pd.read_excel(path, sheet_name=0 if sheet is None else sheet, dtype=object, engine="openpyxl",
-                                keep_default_na=False, na_filter=False)
+            table = pd.read_excel(path, sheet_name=0 if sheet is None else sheet, dtype=object, engine="openpyxl",
+                                  keep_default_na=False, na_filter=False, header=None)
+            if table.shape[0] == 0:
+                raise InputError(f"{path}: the data file is empty; it needs a header row and data rows")
+            header = ["" if _is_empty(v) else str(v) for v in table.iloc[0].tolist()]
+            raw = table.iloc[1:].reset_index(drop=True)
         else:
+            _refuse_nested_parquet(path)
             raw = pd.read_parquet(path)
+            header = [str(c) for c in raw.columns]
     except InputError:
         raise
     except UnicodeDecodeError:
-        raise InputError(f"{path}: not readable as {encoding} text; set data.encoding (e.g. latin-1)") from None
+        raise InputError(f"{path}: not readable as {named} text; set data.encoding (e.g. latin-1)") from None
     except pd.errors.EmptyDataError:
         raise InputError(f"{path}: the data file is empty; it needs a header row and data rows") from None
     except pd.errors.ParserError as exc:
         raise InputError(f"{path}: cannot be parsed as {fmt}: {str(exc).splitlines()[0]}") from None
-    except (ValueError, OSError, KeyError) as exc:
-        raise InputError(f"{path}: cannot be read as {fmt}: {str(exc).splitlines()[0]}") from None
+    except RecursionError:
+        raise InputError(f"{path}: cannot be read as {fmt}: its structure is nested too deeply") from None
+    except Exception as exc:  # readers raise many kinds for a file that is not what its name says
+        first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        raise InputError(f"{path}: cannot be read as {fmt} ({first}); check data.format and the file") from None
+    if len(header) == raw.shape[1]:
+        raw.columns = header  # the names as written, not pandas' renamed duplicates
     if raw.shape[0] == 0 or raw.shape[1] == 0:
         raise InputError(f"{path}: the data file has no data rows; it needs a header row and data rows")
-    raw.columns = [str(c).strip() for c in raw.columns]
-    dupes = raw.columns[raw.columns.duplicated()].tolist()
-    if dupes:
-        raise InputError(f"{path}: column '{dupes[0]}' appears more than once in the header; rename one")
-    return raw.reset_index(drop=True)
+    raw, warnings = check_header(raw, str(path), ignore=ignore, fmt=fmt, delimiter=delimiter)
+    return raw.reset_index(drop=True), warnings
+
+
+def _text_header(path: Path, sep: str, encoding: str) -> List[str]:
+    """The first record of a delimited text file, as written."""
+    with open(path, newline="", encoding=encoding) as handle:
+        try:
+            return next(csv.reader(handle, delimiter=sep))
+        except StopIteration:
+            return []
+        except csv.Error as exc:
+            raise InputError(f"{path}: the header row cannot be read ({exc})") from None
+
+
+def _refuse_nested_parquet(path: Path) -> None:
+    import pyarrow.parquet as pq
+    import pyarrow.types as pat
+
+    schema = pq.read_schema(path)
+    for name, kind in zip(schema.names, schema.types):
+        if pat.is_nested(kind) or pat.is_dictionary(kind) and pat.is_nested(kind.value_type):
+            raise InputError(f"{path}: column '{one_line(name, 80)}' holds {kind} values (lists or records in one "
+                             "cell); gapbook reads one value per cell: flatten it or leave it out (data.ignore)")
+
+
+def check_header(raw: pd.DataFrame, label: str, *, ignore: Tuple[str, ...] = (), fmt: str = "csv",
+                 delimiter: Optional[str] = None) -> Tuple[pd.DataFrame, List[str]]:
+    """Refuse column names that are repeated, empty (with values), unsafe or too long; drop ``ignore``.
+
+    Column names reach formulas, tables and pages. A name with a quote, a backslash or a
+    control or format character (line breaks, escape sequences, bidirectional overrides)
+    is refused naming the column, never quietly renamed: the user renames it in the file or
+    leaves it out with ``data.ignore``. Returns the frame and warnings.
+    """
+    warnings: List[str] = []
+    names = [str(c).strip() for c in raw.columns]
+    raw = raw.copy()
+    raw.columns = names
+    for name in ignore:
+        if name not in names:
+            raise InputError(f"{label}: data.ignore names '{one_line(name, 80)}', which is not a column"
+                             f"{did_you_mean(name, names)}")
+    keep = [i for i, name in enumerate(names) if name not in set(ignore)]
+    if len(keep) < len(names):
+        raw = raw.iloc[:, keep]
+        names = [names[i] for i in keep]
+    if len(names) == 1 and fmt in ("csv", "tsv"):
+        _refuse_one_column(names[0], label, delimiter, fmt)
+    unnamed = []
+    for position, name in enumerate(names):
+        if name == "":
+            column = raw.iloc[:, position]
+            if column.map(_is_empty).all():
+                unnamed.append(position)
+                warnings.append(f"{label}: column {keep[position] + 1} has no name and no values; it was left out")
+                continue
+            raise InputError(f"{label}: column {keep[position] + 1} has values but no name in the header row; "
+                             "name it in the file or leave it out (data.ignore cannot name it, so remove it)")
+        _refuse_unsafe_name(name, label)
+    if unnamed:
+        raw = raw.drop(columns=raw.columns[unnamed])
+        names = [n for i, n in enumerate(names) if i not in set(unnamed)]
+    seen: Dict[str, int] = {}
+    for position, name in enumerate(names):
+        if name in seen:
+            raise InputError(f"{label}: columns {seen[name] + 1} and {position + 1} are both named '{one_line(name, 80)}'; "
+                             "rename one in the file (gapbook never guesses which is which)")
+        seen[name] = position
+    return raw, warnings
+
+
+def _refuse_unsafe_name(name: str, label: str) -> None:
+    bad = next((ch for ch in name if ch in "\"'`\\" or unicodedata.category(ch) in ("Cc", "Cf", "Zl", "Zp")), None)
+    if bad is not None:
+        what = {"\"": "a double quote", "'": "a single quote", "`": "a backtick", "\\": "a backslash"}.get(
+            bad, f"the control character U+{ord(bad):04X}")
+        raise InputError(f"{label}: column '{one_line(name, 80)}' has {what} in its name; rename the column in the "
+                         "file (letters, digits, spaces, dots, underscores and dashes are safe) or leave it out "
+                         "with data.ignore")
+    if len(name) > MAX_NAME_LENGTH:
+        raise InputError(f"{label}: column '{one_line(name, 60)}' has a name {len(name)} characters long; at most "
+                         f"{MAX_NAME_LENGTH} are allowed: rename it in the file or leave it out with data.ignore")
+
+
+def _refuse_one_column(header: str, label: str, delimiter: Optional[str], fmt: str) -> None:
+    """A delimited file read as one column whose name holds another delimiter was read with the wrong one."""
+    used = delimiter or ("\t" if fmt == "tsv" else ",")
+    for mark, name, spelling in ((";", "semicolon", "';'"), ("\t", "tab", '"\\t"'), ("|", "pipe", "'|'"),
+                                 (",", "comma", "','")):
+        if mark in header and mark != used:
+            hint = " (and data.decimal: ',' if numbers are written like 1,5)" if mark == ";" else ""
+            raise InputError(f"{label}: the file was read as one column named '{one_line(header, 60)}', which "
+                             f"looks {name}-delimited; set data.delimiter: {spelling} in the params{hint}")
 
 
 # ---------------------------------------------------------------------------
@@ -196,11 +329,40 @@ def _is_empty(value: Any) -> bool:
 
 
 @dataclass(frozen=True)
+class NumberFormat:
+    """How numbers are written in a text file: decimal mark and optional thousands separator."""
+
+    decimal: str = "."
+    thousands: Optional[str] = None
+
+    def parse(self, value: Any) -> Optional[float]:
+        if isinstance(value, str) and (self.decimal != "." or self.thousands):
+            text = value.strip()
+            if self.thousands and re.fullmatch(rf"[+-]?\d{{1,3}}({re.escape(self.thousands)}\d{{3}})+"
+                                               rf"({re.escape(self.decimal)}\d+)?", text):
+                text = text.replace(self.thousands, "")
+            if self.decimal != ".":
+                if "." in text:
+                    return None
+                text = text.replace(self.decimal, ".")
+            return _number(text)
+        return _number(value)
+
+
+@dataclass(frozen=True)
 class MarkerTable:
-    """Markers and reason codes for one column, keyed for fast case-insensitive look-up."""
+    """Markers and reason codes for one column, keyed for fast case-insensitive look-up.
+
+    ``origins_*`` say where each marker was declared (``missing.markers``,
+    ``missing.columns.<x>.reasons``, ...), for messages and for telling a code declared for
+    this very column from a global one.
+    """
 
     text: Dict[str, str]
     numbers: Dict[float, str]
+    origins_text: Dict[str, str] = field(default_factory=dict)
+    origins_numbers: Dict[float, str] = field(default_factory=dict)
+    number_format: NumberFormat = NumberFormat()
 
     def reason_for(self, value: Any) -> Optional[str]:
         if _is_empty(value):
@@ -209,26 +371,49 @@ class MarkerTable:
             hit = self.text.get(_text_key(value))
             if hit is not None:
                 return hit
-        number = _number(value)
+        number = self.number(value)
         if number is not None:
             return self.numbers.get(number)
         return None
 
+    def number(self, value: Any) -> Optional[float]:
+        return self.number_format.parse(value)
+
+    def origin_of(self, value: Any) -> str:
+        if isinstance(value, str) and _text_key(value) in self.origins_text:
+            return self.origins_text[_text_key(value)]
+        number = self.number(value)
+        return self.origins_numbers.get(number, "missing.markers") if number is not None else "missing.markers"
+
 
 def marker_table(params: Params, column: str) -> MarkerTable:
-    """Global markers and reasons, overridden by the column's own."""
+    """Global markers and reasons, overridden by the column's own (or replaced, with ``use_global: false``)."""
     text: Dict[str, str] = {}
     numbers: Dict[float, str] = {}
+    origins_text: Dict[str, str] = {}
+    origins_numbers: Dict[float, str] = {}
     per_column = params.missing.columns.get(column)
-    layers = [(params.missing.markers, params.missing.reasons)]
+    layers = []
+    if per_column is None or per_column.use_global:
+        layers.append((params.missing.markers, params.missing.reasons, "missing"))
     if per_column is not None:
-        layers.append((per_column.markers, per_column.reasons))
-    for markers, reasons in layers:
+        layers.append((per_column.markers, per_column.reasons, f"missing.columns.{column}"))
+    for markers, reasons, key in layers:
         for marker in markers:
             _add_marker(marker, None, text, numbers)
+            _add_origin(marker, f"{key}.markers", origins_text, origins_numbers)
         for code, label in reasons.items():
             _add_marker(code, str(label), text, numbers)
-    return MarkerTable(text, numbers)
+            _add_origin(code, f"{key}.reasons", origins_text, origins_numbers)
+    number_format = NumberFormat(params.data.decimal, params.data.thousands)
+    return MarkerTable(text, numbers, origins_text, origins_numbers, number_format)
+
+
+def _add_origin(marker: Any, key: str, origins_text: Dict[str, str], origins_numbers: Dict[float, str]) -> None:
+    origins_text[_text_key(marker)] = key
+    number = _number(marker)
+    if number is not None:
+        origins_numbers[number] = key
 
 
 def _add_marker(marker: Any, label: Optional[str], text: Dict[str, str], numbers: Dict[float, str]) -> None:
@@ -268,10 +453,14 @@ def load_study(params: Params, raw: Optional[pd.DataFrame] = None) -> Study:
     Study with values, reasons, variable types, range issues and extreme values.
     """
     source = sha = None
+    warnings: List[str] = []
     if raw is None:
         path = params.data_path
-        raw = read_raw(path, params.data.format, params.data.sheet, params.data.encoding)
+        raw, warnings = read_table(path, params.data.format, params.data.sheet, params.data.encoding,
+                                   delimiter=params.data.delimiter, ignore=tuple(params.data.ignore))
         source, sha = str(path), sha256_of(path)
+    else:
+        raw, warnings = check_header(raw, "data", ignore=tuple(params.data.ignore), fmt="frame")
     label = source or "data"
     ids, id_column, raw = _split_ids(raw, params, label)
     for name in params.variables:
@@ -282,23 +471,63 @@ def load_study(params: Params, raw: Optional[pd.DataFrame] = None) -> Study:
         if name not in raw.columns:
             raise InputError(f"{params.label}: missing.columns.{name} is not a column of {label}"
                              f"{did_you_mean(name, raw.columns)}")
+    conditions = check_expression_columns(params, list(raw.columns))
+    _refuse_markers_that_are_levels(params)
 
     values: Dict[str, pd.Series] = {}
     reasons: Dict[str, pd.Series] = {}
     infos: Dict[str, VariableInfo] = {}
     for column in raw.columns:
         spec = params.variables.get(column, VariableSpec())
-        value, reason, info = _normalise_column(raw[column], column, spec, marker_table(params, column), ids, label)
+        value, reason, info = _normalise_column(raw[column], column, spec, marker_table(params, column), ids, label,
+                                                warnings)
         values[column], reasons[column], infos[column] = value, reason, info
 
     data = pd.DataFrame(values, index=raw.index)
     reason_frame = pd.DataFrame(reasons, index=raw.index)
-    data, reason_frame = _apply_applicability(data, reason_frame, params, label)
+    data, reason_frame = _apply_applicability(data, reason_frame, params, label, conditions, ids, warnings)
     data, reason_frame, issues = _check_ranges(data, reason_frame, infos, params, ids)
     extremes = robust_screen(data, infos, ids, params.missing.robust_z)
     notes = tuple(f"{v.name}: type inferred as {v.type} ({v.reason})" for v in infos.values() if not v.declared)
     return Study(data=data, reasons=reason_frame, variables=infos, ids=ids, id_column=id_column,
-                 range_issues=issues, extreme_values=extremes, source=source, sha256=sha, notes=notes)
+                 range_issues=issues, extreme_values=extremes, source=source, sha256=sha, notes=notes,
+                 warnings=tuple(warnings))
+
+
+def check_expression_columns(params: Params, columns: List[str]) -> Dict[str, Any]:
+    """Every column an ``applies_if`` or ``passive`` expression names exists; returns the parsed conditions.
+
+    (The expressions' grammar was checked when the params were read; this is the part that
+    needs the data's columns, so ``check`` finds what ``run`` would refuse.)
+    """
+    conditions = {}
+    for name, spec in params.variables.items():
+        if spec.applies_if:
+            conditions[name] = parse_expression(spec.applies_if, where=f"{params.label}: variables.{name}.applies_if",
+                                                kind=CONDITION, columns=columns)
+    for name, formula in params.imputation.passive.items():
+        where = f"{params.label}: imputation.passive.{name}"
+        if name not in columns:
+            raise InputError(f"{where}: '{one_line(name, 80)}' is not a column of the data{did_you_mean(name, columns)}")
+        parsed = parse_expression(formula, where=where, kind="value", columns=columns)
+        if name in parsed.columns:
+            raise InputError(f"{where}: the formula uses '{one_line(name, 80)}' itself")
+    return conditions
+
+
+def _refuse_markers_that_are_levels(params: Params) -> None:
+    """A missing marker that is also a declared level would blank real answers (e.g. marker 'no', levels yes/no)."""
+    for name, spec in params.variables.items():
+        if not spec.levels:
+            continue
+        table = marker_table(params, name)
+        for level in spec.levels:
+            if table.reason_for(level) is not None and not _is_empty(level):
+                origin = table.origin_of(level)
+                raise InputError(f"{params.label}: '{one_line(level, 60)}' is both a missing marker ({origin}) and a "
+                                 f"declared level of '{one_line(name, 60)}' (variables.{name}.levels); remove it from one "
+                                 f"of them (missing.columns.{name}.use_global: false keeps global markers away "
+                                 "from this column)")
 
 
 def _split_ids(raw: pd.DataFrame, params: Params, label: str) -> Tuple[pd.Series, Optional[str], pd.DataFrame]:
@@ -323,7 +552,9 @@ def _split_ids(raw: pd.DataFrame, params: Params, label: str) -> Tuple[pd.Series
 
 
 def _normalise_column(raw: pd.Series, column: str, spec: VariableSpec, markers: MarkerTable,
-                      ids: pd.Series, label: str) -> Tuple[pd.Series, pd.Series, VariableInfo]:
+                      ids: pd.Series, label: str,
+                      warnings: Optional[List[str]] = None) -> Tuple[pd.Series, pd.Series, VariableInfo]:
+    warnings = [] if warnings is None else warnings
     codes, uniques = pd.factorize(raw, use_na_sentinel=True)
     uniques = list(uniques)
     # factorize's NA sentinel (-1) covers None/NaN cells of typed files: treat them as blank.
@@ -331,9 +562,16 @@ def _normalise_column(raw: pd.Series, column: str, spec: VariableSpec, markers: 
     na_reason = markers.text.get("", BLANK)
     kept = [i for i, r in enumerate(unique_reason) if r is None]
 
-    numbers = {i: _number(uniques[i]) for i in kept}
+    numbers = {i: markers.number(uniques[i]) for i in kept}
     all_numeric = all(n is not None for n in numbers.values())
     declared_type = spec.type
+    if not all_numeric and declared_type not in CATEGORICAL_TYPES:
+        _refuse_formatted_numbers(codes, kept, numbers, uniques, column, ids, label, markers.number_format)
+    if all_numeric and kept:
+        _refuse_codes_among_values(codes, kept, numbers, uniques, unique_reason, markers, column, label)
+    _warn_dominant_markers(codes, kept, unique_reason, uniques, markers, column, label, warnings)
+    if declared_type is None and not all_numeric:
+        _refuse_dates(codes, kept, numbers, uniques, column, ids, label)
     if declared_type in NUMERIC_TYPES and not all_numeric:
         bad = next(i for i in kept if numbers[i] is None)
         rows = np.flatnonzero(codes == bad)
@@ -380,6 +618,9 @@ def _normalise_column(raw: pd.Series, column: str, spec: VariableSpec, markers: 
             categories = [str(x) for x in levels]
         else:
             categories = sorted({t for t in text_lookup if t is not None})
+            if declared_type is None and _looks_like_free_text(codes, text_lookup, categories):
+                return _free_text_column(raw, column, codes, text_lookup, categories, unique_reason, reason_codes,
+                                         lookup, reason_cat)
         cat_index = {c: k for k, c in enumerate(categories)}
         code_lookup = np.array([-1 if t is None else cat_index[t] for t in text_lookup] + [-1], dtype=np.int64)
         ordered = declared_type == "ordinal"
@@ -438,42 +679,211 @@ def _with_reason(reasons: pd.Series, where: np.ndarray, reason: str) -> pd.Serie
     return cat
 
 
-def _apply_applicability(data: pd.DataFrame, reasons: pd.DataFrame, params: Params,
-                         label: str) -> Tuple[pd.DataFrame, pd.DataFrame]:
-    """Mark cells whose ``applies_if`` condition is false as not applicable (not missing)."""
-    conditions = {name: spec.applies_if for name, spec in params.variables.items() if spec.applies_if}
+def _apply_applicability(data: pd.DataFrame, reasons: pd.DataFrame, params: Params, label: str,
+                         conditions: Optional[Mapping[str, Any]] = None, ids: Optional[pd.Series] = None,
+                         warnings: Optional[List[str]] = None) -> Tuple[pd.DataFrame, pd.DataFrame]:
+    """Mark cells whose ``applies_if`` condition is false as not applicable (not missing).
+
+    Conditions are computed by :mod:`gapbook.expressions` on the values as read (before any
+    cell is marked not applicable, so their order does not matter). Where a condition is
+    unknown (an input is missing and the rest does not decide it) the cell stays as it is.
+    A condition true for no row or for every row, and values recorded where the condition is
+    false, are reported as warnings.
+    """
+    if conditions is None:
+        conditions = check_expression_columns(params, list(data.columns))
     if not conditions:
         return data, reasons
+    warnings = [] if warnings is None else warnings
+    ids = pd.Series(np.arange(1, len(data) + 1)) if ids is None else ids
+    as_read = data
     data, reasons = data.copy(), reasons.copy()
     for name, expression in conditions.items():
-        try:
-            result = data.eval(expression, engine="python")
-        except Exception as exc:  # pandas raises many kinds for a bad expression
-            raise InputError(f"{params.label}: variables.{name}.applies_if '{expression}' cannot be evaluated: "
-                             f"{str(exc).splitlines()[0]}; use column names (backticks for odd names) and "
-                             "comparisons such as on_insulin == 'yes'") from None
-        if not isinstance(result, pd.Series) or len(result) != len(data):
-            raise InputError(f"{params.label}: variables.{name}.applies_if '{expression}' must give true/false "
-                             "for each row")
-        known = result.notna().to_numpy()
-        not_applicable = known & ~result.fillna(True).astype(bool).to_numpy()
-        # The condition is unknown where the variables it uses are missing: such cells stay as they are.
-        not_applicable &= _condition_inputs_observed(data, expression)
+        result = expression.evaluate(as_read)
+        not_applicable = result == 0
+        key = f"variables.{name}.applies_if"
+        shown = one_line(expression.text, 80)
+        known = ~np.isnan(result)
+        if known.any() and not (result == 1).any():
+            warnings.append(f"{params.label}: {key} '{shown}' is true for no row: every value of '{name}' is "
+                            f"treated as not applicable ({int(as_read[name].notna().sum())} recorded values set "
+                            "aside); check the condition's names and levels")
+        elif known.all() and not not_applicable.any():
+            warnings.append(f"{params.label}: {key} '{shown}' is true for every row: no value of '{name}' is "
+                            "marked not applicable")
+        recorded = not_applicable & as_read[name].notna().to_numpy()
+        if recorded.any() and (result == 1).any():
+            rows = np.flatnonzero(recorded)
+            warnings.append(f"{params.label}: {key} '{shown}' is false for {len(rows)} rows that hold a value of "
+                            f"'{name}' ({_rows_note(rows, ids)}); those values are treated as not applicable")
         if not_applicable.any():
             reasons[name] = _with_reason(reasons[name], not_applicable, NOT_APPLICABLE)
             data[name] = data[name].mask(not_applicable)
     return data, reasons
 
 
-def _condition_inputs_observed(data: pd.DataFrame, expression: str) -> np.ndarray:
-    used = [c for c in data.columns if f"`{c}`" in expression or _mentions(expression, c)]
-    if not used:
-        return np.ones(len(data), dtype=bool)
-    return data[used].notna().all(axis=1).to_numpy()
+# ---------------------------------------------------------------------------
+# values that would lose their meaning (issue: a code among real values, numbers written
+# with other marks, dates, free text)
+
+_NA_WORDS = {"", "na", "n/a", "nan", "null", "none", ".", "?", "-", "unknown", "missing", "not known", "nk", "nd",
+             "n.d.", "not done", "not available", "dk", "don't know", "refused", "prefer not to say"}
 
 
-def _mentions(expression: str, column: str) -> bool:
-    return re.search(rf"(?<![\w.]){re.escape(column)}(?![\w])", expression) is not None
+def _refuse_codes_among_values(codes: np.ndarray, kept: List[int], numbers: Dict[int, Optional[float]],
+                               uniques: List[Any], unique_reason: List[Optional[str]], markers: MarkerTable,
+                               column: str, label: str) -> None:
+    """A numeric missing code that lies among a column's real values could be a real value.
+
+    E.g. a global ``60: refused`` would blank every real age of 60. A code declared for the
+    column itself (``missing.columns.<x>``) is trusted; a global one inside the range of
+    the column's other values stops with the two ways to say what is meant.
+    """
+    real = np.array([numbers[i] for i in kept], dtype=float)
+    if real.size < 2:
+        return
+    lo, hi = float(real.min()), float(real.max())
+    own = f"missing.columns.{column}."
+    for i, reason in enumerate(unique_reason):
+        if reason is None or _is_empty(uniques[i]):
+            continue
+        number = markers.number(uniques[i])
+        if number is None or not lo <= number <= hi:
+            continue
+        origin = markers.origin_of(uniques[i])
+        if origin.startswith(own):
+            continue
+        n = int((codes == i).sum())
+        raise InputError(f"{label}: the missing code {number:g} ('{reason}', {origin}) lies among the real values "
+                         f"of '{column}' ({lo:g} to {hi:g}), so its {n} cells could be real values; if {number:g} is "
+                         f"a code in '{column}', declare it there (missing.columns.{column}.reasons), otherwise keep the "
+                         f"global codes away from it (missing.columns.{column}.use_global: false)")
+
+
+def _warn_dominant_markers(codes: np.ndarray, kept: List[int], unique_reason: List[Optional[str]], uniques: List[Any],
+                           markers: MarkerTable, column: str, label: str, warnings: List[str]) -> None:
+    """A text marker that blanks most of a text column may be one of its answers (e.g. 'no')."""
+    counts = np.bincount(codes[codes >= 0], minlength=len(uniques))
+    filled = sum(int(counts[i]) for i, u in enumerate(uniques) if not _is_empty(u))
+    if filled == 0 or not any(markers.number(uniques[i]) is None for i in kept):
+        return
+    for i, reason in enumerate(unique_reason):
+        if reason is None or not isinstance(uniques[i], str) or _text_key(uniques[i]) in _NA_WORDS:
+            continue
+        if markers.number(uniques[i]) is None and counts[i] > filled / 2:
+            warnings.append(f"{label}: the missing marker '{one_line(uniques[i], 40)}' ({markers.origin_of(uniques[i])}) "
+                            f"makes {100 * counts[i] / filled:.0f}% of '{column}' missing ({int(counts[i])} cells); if "
+                            f"it is an answer, remove it (or set missing.columns.{column}.use_global: false)")
+
+
+_NUMBER_PATTERNS = {
+    "decimal comma": re.compile(r"[+-]?\d*,\d+"),
+    "comma thousands": re.compile(r"[+-]?\d{1,3}(,\d{3})+(\.\d+)?"),
+    "dot thousands": re.compile(r"[+-]?\d{1,3}(\.\d{3})+(,\d+)?"),
+    "space thousands": re.compile(r"[+-]?\d{1,3}( \d{3})+([.,]\d+)?"),
+    "apostrophe thousands": re.compile(r"[+-]?\d{1,3}('\d{3})+(\.\d+)?"),
+    "decimal point": re.compile(r"[+-]?\d*\.\d+"),
+}
+
+
+def _refuse_formatted_numbers(codes: np.ndarray, kept: List[int], numbers: Dict[int, Optional[float]],
+                              uniques: List[Any], column: str, ids: pd.Series, label: str,
+                              number_format: NumberFormat) -> None:
+    """Numbers written with a decimal comma or thousands separators are numbers, not categories: say what to set."""
+    text = [str(uniques[i]).strip() for i in kept if numbers[i] is None]
+    if not text:
+        return
+    kinds = []
+    for value in text:
+        matched = [k for k, pattern in _NUMBER_PATTERNS.items() if pattern.fullmatch(value)]
+        if matched:
+            kinds.append(matched)
+    if not kinds or len(kinds) < len(text) / 2:
+        return  # mostly real text: the stray-text and type rules decide
+    text = [v for v in text if any(p.fullmatch(v) for p in _NUMBER_PATTERNS.values())]
+    example = text[0]
+    if number_format.decimal == "," and all("decimal point" in k for k in kinds):
+        advice = "data.decimal is ',' but they use a decimal point; remove data.decimal (or fix the file)"
+    elif any(k == ["decimal comma"] or ("decimal comma" in k and "comma thousands" not in k) for k in kinds):
+        dots = any("dot thousands" in k for k in kinds)
+        advice = "set data.decimal: ','" + (" and data.thousands: '.'" if dots else "") + \
+                 " (a comma-decimal CSV is usually ';'-delimited: data.delimiter: ';')"
+    elif all("comma thousands" in k for k in kinds):
+        advice = ("set data.thousands: ',' if the comma separates thousands, or data.decimal: ',' if it is the "
+                  "decimal mark")
+    elif all("space thousands" in k for k in kinds):
+        advice = "set data.thousands: ' '"
+    elif all("apostrophe thousands" in k for k in kinds):
+        advice = "set data.thousands: \"'\""
+    elif all("dot thousands" in k for k in kinds):
+        advice = "set data.thousands: '.' (and data.decimal: ',')"
+    else:
+        return
+    rows = np.flatnonzero(codes == next(i for i in kept if str(uniques[i]).strip() == example))
+    raise InputError(f"{label}: column '{column}' holds numbers written like '{one_line(example, 40)}' "
+                     f"({_rows_note(rows, ids)}), which would be read as text; {advice}")
+
+
+_TIME = r"([ T]\d{1,2}:\d{2}(:\d{2}(\.\d+)?)?\s*(Z|[+-]\d{2}:?\d{2}|[AaPp][Mm])?)?"
+_MONTH = r"(jan|feb|mar|apr|may|jun|jul|aug|sep|sept|oct|nov|dec)[a-z]*"
+_DATE_PATTERNS = [re.compile(p + _TIME, re.IGNORECASE) for p in (
+    r"\d{4}-\d{1,2}-\d{1,2}",                    # 2024-03-01 (ISO 8601)
+    r"\d{4}/\d{1,2}/\d{1,2}",                    # 2024/03/01
+    r"\d{1,2}[/.-]\d{1,2}[/.-](\d{4}|\d{2})",     # 01/03/2024, 03-01-2024, 01.03.24
+    r"\d{1,2}[-/ ]?" + _MONTH + r"[-/ ]?\d{2,4}",  # 01JAN2024, 1-Jan-2024, 01 Jan 2024
+    _MONTH + r"\.? \d{1,2},? \d{4}",              # Jan 1, 2024
+    r"\d{8}T\d{4,6}",                           # 20240301T0830 (ISO basic)
+)]
+
+
+def _is_date(value: Any) -> bool:
+    import datetime as _dt
+
+    if isinstance(value, (_dt.date, _dt.datetime, pd.Timestamp, np.datetime64)):
+        return True
+    text = str(value).strip()
+    return any(pattern.fullmatch(text) for pattern in _DATE_PATTERNS)
+
+
+def _refuse_dates(codes: np.ndarray, kept: List[int], numbers: Dict[int, Optional[float]], uniques: List[Any],
+                  column: str, ids: pd.Series, label: str) -> None:
+    """An undeclared column of dates is refused with what to do, never read as a many-level category.
+
+    gapbook analyses numbers and categories; read as categories, dates would be compared
+    level by level and written into the record as levels (common practice, no source).
+    """
+    text = [i for i in kept if numbers[i] is None]
+    if not text or not all(_is_date(uniques[i]) for i in text):
+        return
+    example = str(uniques[text[0]]).strip()
+    raise InputError(f"{label}: column '{column}' holds dates (e.g. '{one_line(example, 40)}', {len(text)} distinct); "
+                     "gapbook analyses numbers and categories, not dates: leave it out with data.ignore: "
+                     f"['{column}'], or add a derived number to the data file (e.g. days since randomisation)")
+
+
+def _looks_like_free_text(codes: np.ndarray, text_lookup: List[Optional[str]], categories: List[str]) -> bool:
+    """Many distinct texts making up most of the observed cells, or long texts: names, comments, identifiers."""
+    if any(len(c) > FREE_TEXT_LONG_VALUE for c in categories):
+        return True
+    if len(categories) < FREE_TEXT_MIN_DISTINCT:
+        return False
+    observed_codes = np.array([t is not None for t in text_lookup] + [False], dtype=bool)
+    observed = int(observed_codes[np.where(codes < 0, len(text_lookup), codes)].sum())
+    return len(categories) > observed / 2
+
+
+def _free_text_column(raw: pd.Series, column: str, codes: np.ndarray, text_lookup: List[Optional[str]],
+                      categories: List[str], unique_reason: List[Optional[str]], reason_codes: np.ndarray,
+                      lookup: np.ndarray, reason_cat: Any) -> Tuple[pd.Series, pd.Series, VariableInfo]:
+    """A free-text column keeps only whether each cell was answered; its texts go no further than intake."""
+    answered = np.array([0 if t is not None else -1 for t in text_lookup] + [-1], dtype=np.int64)
+    value = pd.Series(pd.Categorical.from_codes(answered[reason_codes], categories=[FREE_TEXT_LEVEL]),
+                      index=raw.index, name=column)
+    why = (f"free text or identifiers ({len(categories)} distinct texts): values are not shown or analysed, only "
+           "whether each is missing; declare its type and levels to use it")
+    info = VariableInfo(name=column, type="nominal", declared=False, reason=why, levels=(FREE_TEXT_LEVEL,),
+                        numeric_storage=False, free_text=True, n_distinct=len(categories))
+    return value, pd.Series(reason_cat, index=raw.index, name=column), info
 
 
 def _check_ranges(data: pd.DataFrame, reasons: pd.DataFrame, infos: Mapping[str, VariableInfo], params: Params,

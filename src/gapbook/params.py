@@ -72,6 +72,20 @@ class DataSection(_Section):
     format: DataFormat = "auto"
     sheet: Optional[Union[str, int]] = None
     encoding: str = "utf-8"
+    delimiter: Optional[Literal[",", ";", "\t", "|"]] = None
+    decimal: Literal[".", ","] = "."
+    thousands: Optional[Literal[",", ".", " ", "'"]] = None
+    ignore: _bounded(str) = Field(default_factory=list)
+
+    @model_validator(mode="after")
+    def _distinct_marks(self) -> "DataSection":
+        delimiter = self.delimiter or ("\t" if self.format == "tsv" else ",")
+        if self.decimal == delimiter and self.format in ("auto", "csv", "tsv"):
+            raise ValueError(f"decimal '{self.decimal}' is also the delimiter; a file with comma decimals is "
+                             "usually semicolon-delimited: set delimiter: ';'")
+        if self.thousands is not None and self.thousands == self.decimal:
+            raise ValueError(f"thousands '{self.thousands}' is also the decimal mark")
+        return self
 
     @field_validator("encoding")
     @classmethod
@@ -115,6 +129,7 @@ Reasons = Annotated[Dict[Marker, ReasonLabel], Field(max_length=MAX_LIST)]
 class ColumnMissing(_Section):
     markers: _bounded(Marker) = Field(default_factory=list)
     reasons: Reasons = Field(default_factory=dict)
+    use_global: bool = True     # false: only this column's own markers and reasons apply to it
 
 
 class MissingSection(_Section):

@@ -197,6 +197,9 @@ def preflight(params: Params, *, only: Optional[Sequence[str]] = None, log: Opti
     found = stage_notebooks(params, notebooks, notebook_origin)
     stages = resolve_stages(only, params, log, available=list(found))
     study = load_study(params)  # data errors stop here, exit 2
+    if log is not None:
+        for warning in study.warnings:  # legitimate but worth a look (also shown on the audit page)
+            log(f"warning: {warning}")
     for column in params.audit.by:
         if column not in study.data.columns:
             raise InputError(f"{params.label}: audit.by '{column}' is not a column{did_you_mean(column, study.data.columns)}")
