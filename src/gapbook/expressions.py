@@ -355,7 +355,7 @@ class _Checker:
                                        f"Q(\"{_shown(dotted)}\")")
             return self.refuse(node, text=_shown(dotted),
                                help_text=f"a column name with dots is written Q(\"{_shown(dotted)}\")")
-        if isinstance(inner, ast.Call) and isinstance(inner.func, ast.Name):
+        if not isinstance(inner, ast.Name):
             try:
                 self.value(inner)  # name the inner call when it is the one not allowed
             except ExpressionError as inner_error:
