@@ -214,3 +214,19 @@ def test_a_failing_stage_keeps_what_finished_and_verify_refuses_it(tmp_path, cap
     assert len(user.stderr.strip().splitlines()) == 1 and "planted user error" in user.stderr
     assert "finished stages (none) kept in" in user.stderr
     assert len([p for p in (study / "records").iterdir() if p.name.endswith(("-incomplete", "-incomplete-2"))]) == 2
+
+
+def test_a_forger_who_also_fixes_the_digests_is_caught_by_the_rerun(audit_record, tmp_path):
+    """Digests only prove the files are the ones the manifest lists; the re-run proves what they say."""
+    record = copy_record(audit_record, tmp_path)
+    table = record / "tables" / "audit_variables.csv"
+    table.write_text(table.read_text().replace("continuous", "nominal", 1))
+    figure = record / "figures" / "audit_map.png"
+    figure.write_bytes(figure.read_bytes()[:-12] + b"forged-bytes")
+    for name in ("tables/audit_variables.csv", "figures/audit_map.png"):
+        rehash(record, name)
+    result = run_gapbook("verify", record)
+    assert result.returncode == 1, result.stdout + result.stderr
+    assert "every file matches the manifest" in result.stdout  # the forgery passed the digest check ...
+    assert "FAIL audit_variables.csv: different" in result.stdout  # ... not the re-run
+    assert "FAIL figures/audit_map.png: different" in result.stdout
