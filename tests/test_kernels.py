@@ -119,13 +119,18 @@ def test_after_sigkill_the_next_run_removes_what_the_dead_run_left(tmp_path):
         pass
     partial = [p for p in (study / "records").iterdir() if ".partial-" in p.name]
     assert len(partial) == 1 and folder.exists()
+    dead = subprocess.Popen(["true"])
+    dead.wait()
+    scratch = private_tmp / f"gapbook-verify-{dead.pid}-x"  # a verify re-run folder whose process died
+    scratch.mkdir()
+    (scratch / ".gapbook-owner").write_text(f"{dead.pid}\n")
     alive = study / "records" / ".someone.partial-alive"
     alive.mkdir()
     (alive / ".gapbook-owner").write_text(f"{os.getpid()}\n")
 
     record = record_path(run_gapbook("run", study / "params.yaml", "--only", "audit", "--out", study / "records",
                                      env=env))
-    assert not partial[0].exists() and not folder.exists()
+    assert not partial[0].exists() and not folder.exists() and not scratch.exists()
     assert alive.exists()  # its owner is still running
     # only the planted folder (no owner file: not ours to remove) is left
     assert [p.name for p in private_tmp.iterdir() if p.name.startswith("gapbook-kernels-")] == [planted.parents[2].name]

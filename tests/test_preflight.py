@@ -1,8 +1,6 @@
 """`check` means `run` will start: both go through one pre-flight function (issue 10), in process."""
 from __future__ import annotations
 
-from pathlib import Path
-
 import pytest
 from conftest import make_demo_study
 

@@ -112,6 +112,20 @@ def test_params_from_a_record_are_validated_like_a_params_file(audit_record, tmp
     one_line_error(capsys, 2, ["verify", record], "params.yaml", "famly")
 
 
+def test_forged_record_params_cannot_run_code(audit_record, tmp_path, capsys):
+    """The measured attack: params edited consistently in params.yaml, its digest and the manifest."""
+    record = copy_record(audit_record, tmp_path)
+    canary = tmp_path / "CANARY"
+    params = record / "params.yaml"
+    body = yaml.safe_load(params.read_text())
+    body["analysis"]["formula"] = f"hba1c_12m ~ arm + I(__import__('os').system('touch {canary}'))"
+    params.write_text(yaml.safe_dump(body, sort_keys=False))
+    rehash(record, "params.yaml")
+    edit_manifest(record, lambda m: m.__setitem__("params", body))
+    one_line_error(capsys, 2, ["verify", record], "params.yaml", "analysis.formula")
+    assert not canary.exists()
+
+
 def test_verify_refuses_a_missing_folder_and_a_plain_folder(tmp_path, capsys):
     one_line_error(capsys, 2, ["verify", tmp_path / "nowhere"], "not a gapbook record")
     one_line_error(capsys, 2, ["verify", tmp_path], "not a gapbook record")

@@ -23,13 +23,14 @@ import sys
 import tempfile
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, List, Optional
+from typing import Any, List
 
 from .errors import AnalysisError
 from .record import OWNER_FILE, owned_by_dead_process
 
 KERNEL_NAME = "gapbook-python"
 FOLDER_PREFIX = "gapbook-kernels-"
+SCRATCH_PREFIX = "gapbook-verify-"  # verify's re-run folder, cleaned up the same way
 # A Unix socket path is limited to about 107 bytes; ours are <folder>/ipc-<n>-<port>.
 SOCKET_PATH_BUDGET = 100
 
@@ -48,12 +49,13 @@ def _parents() -> List[Path]:
 
 
 def remove_stale_folders() -> List[Path]:
-    """Remove private kernel folders left by this user's processes that died (e.g. SIGKILL)."""
+    """Remove private kernel folders (and verify's scratch folders) left by this user's processes that
+    died (e.g. SIGKILL)."""
     removed = []
     candidates = []
     for parent in _parents():
         try:
-            candidates += [p for p in parent.iterdir() if p.name.startswith(FOLDER_PREFIX)]
+            candidates += [p for p in parent.iterdir() if p.name.startswith((FOLDER_PREFIX, SCRATCH_PREFIX))]
         except OSError:
             continue
     for folder in candidates:
@@ -61,6 +63,13 @@ def remove_stale_folders() -> List[Path]:
             shutil.rmtree(folder, ignore_errors=True)
             removed.append(folder)
     return removed
+
+
+def scratch_folder() -> Path:
+    """A private scratch folder that records its owner, so a later run removes it if this process dies."""
+    folder = Path(tempfile.mkdtemp(prefix=f"{SCRATCH_PREFIX}{os.getpid()}-"))
+    (folder / OWNER_FILE).write_text(f"{os.getpid()}\n")
+    return folder
 
 
 def _private_folder() -> Path:

@@ -13,23 +13,21 @@ record's own.
 from __future__ import annotations
 
 import shutil
-import tempfile
 import threading
 import time
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
-from typing import Any, Callable, Dict, List, Optional, Sequence, Tuple
+from typing import Any, Callable, Dict, List, Optional, Tuple
 
 import yaml
 
 from . import pages
 from . import record as rec
 from .errors import AnalysisError, InputError
-from .kernels import KERNEL_NAME, PrivateKernels
+from .kernels import KERNEL_NAME, PrivateKernels, scratch_folder
 from .params import Params
-from .pipeline import (KIT, MODEL_STAGES, RECORD, STAGE_TITLES, STAGES, Plan, StageNotebook,  # noqa: F401 (re-exported)
-                       check_model_up_front, kit_notebooks_dir, preflight, resolve_stages, sha256_file)
+from .pipeline import RECORD, STAGE_TITLES, Plan, StageNotebook, kit_notebooks_dir, preflight, sha256_file
 
 Log = Callable[[str], None]
 
@@ -265,7 +263,7 @@ def verify_record(record: Path, log: Log = print, *, data: Optional[Path] = None
     params = Params.from_dict(body, source=str(record / "params.yaml"))
     notebooks = _notebooks_to_run(record, manifest, trust_record_notebooks)
     plan = preflight(params, only=manifest.stage_names(), notebooks=notebooks, notebook_origin=RECORD)
-    scratch = Path(tempfile.mkdtemp(prefix="gapbook-verify-"))
+    scratch = scratch_folder()
     try:
         rerun = run_study(plan, scratch, log=lambda line: log(f"rerun {line}"), name="rerun", with_pages=False)
         strict = rec.same_environment(manifest)
