@@ -18,7 +18,7 @@ import re
 import unicodedata
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Dict, List, Mapping, Optional, Tuple
+from typing import Any, Callable, Dict, List, Mapping, Optional, Sequence, Tuple
 
 import numpy as np
 import pandas as pd
@@ -431,8 +431,13 @@ def _add_marker(marker: Any, label: Optional[str], text: Dict[str, str], numbers
 
 def _rows_note(rows: np.ndarray, ids: pd.Series, limit: int = 3) -> str:
     shown = rows[:limit]
-    text = ", ".join(str(int(r) + 1) for r in shown)
-    id_text = ", ".join(str(ids.iloc[r]) for r in shown)
+    return rows_note(shown, [ids.iloc[r] for r in shown])
+
+
+def rows_note(rows: Sequence[int], ids: Sequence[Any]) -> str:
+    """'data rows 3, 7 (ids P3, P7)' for 0-based rows and their ids (error messages)."""
+    text = ", ".join(str(int(r) + 1) for r in rows)
+    id_text = ", ".join(str(i) for i in ids)
     return f"data rows {text} (ids {id_text})"
 
 
@@ -551,14 +556,91 @@ def _split_ids(raw: pd.DataFrame, params: Params, label: str) -> Tuple[pd.Series
     return ids.rename(id_column).reset_index(drop=True), id_column, raw.drop(columns=[id_column])
 
 
-def _normalise_column(raw: pd.Series, column: str, spec: VariableSpec, markers: MarkerTable,
-                      ids: pd.Series, label: str,
-                      warnings: Optional[List[str]] = None) -> Tuple[pd.Series, pd.Series, VariableInfo]:
+@dataclass(frozen=True)
+class PlainNumbers:
+    """Cells of a column that hold plain numbers and no marker, summarised rather than listed.
+
+    An engine that reads a file in SQL (``data.engine: duckdb``) lists only the cells that
+    need the marker logic and counts the plain numbers apart (``1.5``, ``-3e2``: digits,
+    sign, point and exponent only, which read the same in any engine). ``values`` are their
+    distinct values in increasing order: all of them when ``complete``, otherwise a sample
+    that includes the smallest and the largest.
+    """
+
+    n_cells: int = 0
+    values: Tuple[float, ...] = ()
+    complete: bool = True
+
+
+@dataclass(frozen=True)
+class DistinctCells:
+    """One column's distinct raw cells and how many cells hold each.
+
+    ``uniques`` are the raw values as read (NA cells of typed files left out); ``plain``
+    summarises further cells not listed in ``uniques`` (the pandas path lists every cell's
+    value and leaves it empty).
+    """
+
+    uniques: List[Any]
+    counts: np.ndarray
+    plain: PlainNumbers = PlainNumbers()
+
+
+@dataclass(frozen=True)
+class ColumnDecision:
+    """What intake makes of each distinct raw value of one column.
+
+    ``reasons[i]`` is the missing reason of ``uniques[i]`` (None: the cell holds a value);
+    ``na_reason`` that of NA cells. Numeric columns: ``numbers[i]`` is the value (NaN where
+    missing); text columns: ``codes[i]`` indexes ``categories`` (-1 where missing).
+    """
+
+    reasons: Tuple[Optional[str], ...]
+    na_reason: str
+    numbers: Optional[np.ndarray]
+    codes: Optional[np.ndarray]
+    categories: Tuple[str, ...]
+    info: VariableInfo
+
+    @property
+    def reason_labels(self) -> List[str]:
+        """The reasons that occur among the listed values, sorted."""
+        return sorted({r for r in self.reasons if r is not None})
+
+
+class EveryValueNeeded(Exception):
+    """A column summarised as plain numbers turned out to be text: list every distinct cell and decide again."""
+
+
+# locate(indices) -> (the index among them whose value occurs first in the file, a note naming the
+# first rows that hold it): error messages name rows, which only the caller can find.
+Locate = Callable[[Sequence[int]], Tuple[int, str]]
+
+
+def decide_column(cells: DistinctCells, column: str, spec: VariableSpec, markers: MarkerTable, locate: Locate,
+                  label: str, warnings: Optional[List[str]] = None) -> ColumnDecision:
+    """Classify each distinct raw value of a column: missing (with its reason) or a value, and the column's type.
+
+    The decision depends only on the distinct values and their counts, so every engine
+    (pandas over rows, SQL over a file) makes the same one.
+
+    Parameters
+    ----------
+    cells : the column's distinct raw values with their counts.
+    column, spec : the column's name and its params entry.
+    markers : its markers and reason codes (:func:`marker_table`).
+    locate : finds the first rows holding given values (for error messages).
+    label : the data file's name (for error messages).
+    warnings : list that warnings are appended to.
+
+    Returns
+    -------
+    ColumnDecision
+    """
     warnings = [] if warnings is None else warnings
-    codes, uniques = pd.factorize(raw, use_na_sentinel=True)
-    uniques = list(uniques)
-    # factorize's NA sentinel (-1) covers None/NaN cells of typed files: treat them as blank.
+    uniques = list(cells.uniques)
     unique_reason = [markers.reason_for(u) for u in uniques]
+    # NA cells of typed files (None/NaN) are blank.
     na_reason = markers.text.get("", BLANK)
     kept = [i for i, r in enumerate(unique_reason) if r is None]
 
@@ -566,110 +648,147 @@ def _normalise_column(raw: pd.Series, column: str, spec: VariableSpec, markers: 
     all_numeric = all(n is not None for n in numbers.values())
     declared_type = spec.type
     if not all_numeric and declared_type not in CATEGORICAL_TYPES:
-        _refuse_formatted_numbers(codes, kept, numbers, uniques, column, ids, label, markers.number_format)
-    if all_numeric and kept:
-        _refuse_codes_among_values(codes, kept, numbers, uniques, unique_reason, markers, column, label)
-    _warn_dominant_markers(codes, kept, unique_reason, uniques, markers, column, label, warnings)
+        _refuse_formatted_numbers(cells, kept, numbers, column, locate, label, markers.number_format)
+    if all_numeric and (kept or cells.plain.n_cells):
+        _refuse_codes_among_values(cells, kept, numbers, unique_reason, markers, column, label)
+    _warn_dominant_markers(cells, kept, unique_reason, markers, column, label, warnings)
     if declared_type is None and not all_numeric:
-        _refuse_dates(codes, kept, numbers, uniques, column, ids, label)
+        _refuse_dates(cells, kept, numbers, column, label)
     if declared_type in NUMERIC_TYPES and not all_numeric:
-        bad = next(i for i in kept if numbers[i] is None)
-        rows = np.flatnonzero(codes == bad)
+        bad, note = locate([i for i in kept if numbers[i] is None])
         raise InputError(f"{label}: column '{column}' is declared {declared_type} but holds the text "
-                         f"'{uniques[bad]}' at {_rows_note(rows, ids)}; declare it as a missing marker "
+                         f"'{uniques[bad]}' at {note}; declare it as a missing marker "
                          f"(missing.markers or missing.columns.{column}.markers) or correct the data")
     if declared_type is None and not all_numeric:
-        _refuse_stray_text(codes, kept, numbers, uniques, column, ids, label)
-
-    reason_codes = np.where(codes < 0, len(uniques), codes)  # the extra last entry stands for NA cells
-    reason_labels = sorted({r for r in unique_reason if r is not None} | ({na_reason} if (codes < 0).any() else set()))
-    label_index = {r: k for k, r in enumerate(reason_labels)}
-    lookup = np.array([-1 if r is None else label_index[r] for r in unique_reason] + [label_index.get(na_reason, -1)],
-                      dtype=np.int64)
-    reason_cat = pd.Categorical.from_codes(lookup[reason_codes], categories=reason_labels) if reason_labels \
-        else pd.Categorical.from_codes(np.full(len(raw), -1), categories=[])
+        _refuse_stray_text(cells, kept, numbers, column, locate, label)
+    if not all_numeric and cells.plain.n_cells:
+        raise EveryValueNeeded(column)  # a text column's numbers become categories as written
 
     levels = tuple(spec.levels) if spec.levels is not None else None
+    free_text = False
     if all_numeric:
-        value_lookup = np.array([numbers.get(i, np.nan) if unique_reason[i] is None else np.nan
-                                 for i in range(len(uniques))] + [np.nan], dtype=float)
-        value = pd.Series(value_lookup[reason_codes], index=raw.index, name=column)
+        value_of = np.array([numbers[i] if unique_reason[i] is None else np.nan for i in range(len(uniques))],
+                            dtype=float)
+        observed = pd.Series(np.unique(np.concatenate([value_of[~np.isnan(value_of)],
+                                                       np.asarray(cells.plain.values, dtype=float)])),
+                             dtype=float, name=column)
         numeric_storage = True
+        codes, categories = None, ()
         if levels is not None:
             allowed = {_number(x) for x in levels}
             if None in allowed:
                 raise InputError(f"variables.{column}.levels: column '{column}' holds numbers, so its levels "
                                  f"must be numbers (got {list(levels)})")
-            _check_levels(value, allowed, column, ids, label)
+            outside = [i for i in kept if value_of[i] not in allowed]
+            if outside:
+                first, note = locate(outside)
+                raise InputError(f"{label}: column '{column}' holds {value_of[first]:g} at {note}, not "
+                                 f"among variables.{column}.levels; add it to levels or declare it a missing marker")
+            if not set(cells.plain.values) <= allowed:
+                raise EveryValueNeeded(column)  # the caller lists every value where levels are declared
     else:
+        value_of = None
         text_lookup = [str(uniques[i]).strip() if unique_reason[i] is None else None for i in range(len(uniques))]
         if levels is not None:
             canonical = {_text_key(x): str(x) for x in levels}
-            for i, text in enumerate(text_lookup):
-                if text is None:
-                    continue
-                if _text_key(text) not in canonical:
-                    rows = np.flatnonzero(codes == i)
-                    raise InputError(f"{label}: column '{column}' holds '{text}' at {_rows_note(rows, ids)}, which is "
-                                     f"not among variables.{column}.levels ({', '.join(map(str, levels))})"
-                                     f"{did_you_mean(text, canonical.values())}; add it to levels or declare it a "
-                                     "missing marker")
-                text_lookup[i] = canonical[_text_key(text)]
-            categories = [str(x) for x in levels]
+            outside = [i for i, text in enumerate(text_lookup) if text is not None and _text_key(text) not in canonical]
+            if outside:
+                first, note = locate(outside)
+                text = text_lookup[first]
+                raise InputError(f"{label}: column '{column}' holds '{text}' at {note}, which is "
+                                 f"not among variables.{column}.levels ({', '.join(map(str, levels))})"
+                                 f"{did_you_mean(text, canonical.values())}; add it to levels or declare it a "
+                                 "missing marker")
+            text_lookup = [None if t is None else canonical[_text_key(t)] for t in text_lookup]
+            categories = tuple(str(x) for x in levels)
         else:
-            categories = sorted({t for t in text_lookup if t is not None})
-            if declared_type is None and _looks_like_free_text(codes, text_lookup, categories):
-                return _free_text_column(raw, column, codes, text_lookup, categories, unique_reason, reason_codes,
-                                         lookup, reason_cat)
+            categories = tuple(sorted({t for t in text_lookup if t is not None}))
+            if declared_type is None and _looks_like_free_text(cells, text_lookup, categories):
+                # A free-text column keeps only whether each cell was answered; its texts go no further.
+                free_text = True
+                n_distinct = len(categories)
+                text_lookup = [None if t is None else FREE_TEXT_LEVEL for t in text_lookup]
+                categories = (FREE_TEXT_LEVEL,)
         cat_index = {c: k for k, c in enumerate(categories)}
-        code_lookup = np.array([-1 if t is None else cat_index[t] for t in text_lookup] + [-1], dtype=np.int64)
-        ordered = declared_type == "ordinal"
-        value = pd.Series(pd.Categorical.from_codes(code_lookup[reason_codes], categories=categories, ordered=ordered),
-                          index=raw.index, name=column)
+        codes = np.array([-1 if t is None else cat_index[t] for t in text_lookup], dtype=np.int64)
+        present = sorted({int(c) for c in codes if c >= 0})
+        observed = pd.Series(pd.Categorical.from_codes(present, categories=list(categories),
+                                                       ordered=declared_type == "ordinal"), name=column)
         numeric_storage = False
 
+    if free_text:
+        why = (f"free text or identifiers ({n_distinct} distinct texts): values are not shown or analysed, only "
+               "whether each is missing; declare its type and levels to use it")
+        info = VariableInfo(name=column, type="nominal", declared=False, reason=why, levels=(FREE_TEXT_LEVEL,),
+                            numeric_storage=False, free_text=True, n_distinct=n_distinct)
+        return ColumnDecision(reasons=tuple(unique_reason), na_reason=na_reason, numbers=None, codes=codes,
+                              categories=categories, info=info)
     if declared_type is None:
-        vtype, why = infer_type(value)
+        # infer_type looks only at the distinct observed values, which is what ``observed`` holds.
+        vtype, why = infer_type(observed)
         declared = False
     else:
         vtype, why, declared = declared_type, "declared in params", True
     if vtype == "binary":
-        n_levels = len(levels) if levels is not None else value.dropna().nunique()
+        n_levels = len(levels) if levels is not None else len(observed)
         if n_levels > 2:
             raise InputError(f"{label}: column '{column}' is declared binary but has {n_levels} distinct values; "
                              "declare it nominal or ordinal, or mark the extra values as missing")
     if levels is None and vtype in CATEGORICAL_TYPES:
-        levels = tuple(value.cat.categories) if not numeric_storage else tuple(sorted(value.dropna().unique()))
+        levels = categories if not numeric_storage else tuple(observed.to_numpy())
     info = VariableInfo(name=column, type=vtype, declared=declared, reason=why, levels=levels, label=spec.label,
                         range=spec.range, numeric_storage=numeric_storage)
-    return value, pd.Series(reason_cat, index=raw.index, name=column), info
+    return ColumnDecision(reasons=tuple(unique_reason), na_reason=na_reason, numbers=value_of, codes=codes,
+                          categories=categories, info=info)
 
 
-def _refuse_stray_text(codes: np.ndarray, kept: List[int], numbers: Dict[int, Optional[float]], uniques: List[Any],
-                       column: str, ids: pd.Series, label: str) -> None:
+def _normalise_column(raw: pd.Series, column: str, spec: VariableSpec, markers: MarkerTable,
+                      ids: pd.Series, label: str,
+                      warnings: Optional[List[str]] = None) -> Tuple[pd.Series, pd.Series, VariableInfo]:
+    codes, uniques = pd.factorize(raw, use_na_sentinel=True)
+    counts = np.bincount(codes[codes >= 0], minlength=len(uniques))
+
+    def locate(indices: Sequence[int]) -> Tuple[int, str]:
+        # factorize numbers values in order of first appearance: the smallest index occurs first.
+        first = min(indices)
+        return first, _rows_note(np.flatnonzero(codes == first), ids)
+
+    decision = decide_column(DistinctCells(list(uniques), counts), column, spec, markers, locate, label, warnings)
+    # factorize's NA sentinel (-1) covers None/NaN cells of typed files: the extra last entry stands for them.
+    reason_codes = np.where(codes < 0, len(uniques), codes)
+    na_reason = decision.na_reason
+    reason_labels = sorted(set(decision.reason_labels) | ({na_reason} if (codes < 0).any() else set()))
+    label_index = {r: k for k, r in enumerate(reason_labels)}
+    lookup = np.array([-1 if r is None else label_index[r] for r in decision.reasons]
+                      + [label_index.get(na_reason, -1)], dtype=np.int64)
+    reason_cat = pd.Categorical.from_codes(lookup[reason_codes], categories=reason_labels) if reason_labels \
+        else pd.Categorical.from_codes(np.full(len(raw), -1), categories=[])
+    if decision.numbers is not None:
+        value = pd.Series(np.append(decision.numbers, np.nan)[reason_codes], index=raw.index, name=column)
+    else:
+        value = pd.Series(pd.Categorical.from_codes(np.append(decision.codes, -1)[reason_codes],
+                                                    categories=list(decision.categories),
+                                                    ordered=spec.type == "ordinal"), index=raw.index, name=column)
+    return value, pd.Series(reason_cat, index=raw.index, name=column), decision.info
+
+
+def _refuse_stray_text(cells: DistinctCells, kept: List[int], numbers: Dict[int, Optional[float]], column: str,
+                       locate: Locate, label: str) -> None:
     """An undeclared column that is mostly numbers but holds some text is an undeclared marker, not a category.
 
     Treating such a column as nominal would silently turn a measurement into hundreds of
     levels; the user must say whether the text is a missing marker (common practice, no source).
     """
-    counts = np.bincount(codes[codes >= 0], minlength=len(uniques))
-    numeric_cells = sum(int(counts[i]) for i in kept if numbers[i] is not None)
+    counts = cells.counts
+    numeric_cells = sum(int(counts[i]) for i in kept if numbers[i] is not None) + cells.plain.n_cells
     text = [i for i in kept if numbers[i] is None]
     text_cells = sum(int(counts[i]) for i in text)
     if numeric_cells > text_cells:
-        worst = max(text, key=lambda i: counts[i])
-        rows = np.flatnonzero(codes == worst)
-        raise InputError(f"{label}: column '{column}' holds numbers and the text '{uniques[worst]}' at "
-                         f"{_rows_note(rows, ids)}; declare the text a missing marker (missing.markers or "
+        most = max(int(counts[i]) for i in text)
+        worst, note = locate([i for i in text if counts[i] == most])
+        raise InputError(f"{label}: column '{column}' holds numbers and the text '{cells.uniques[worst]}' at "
+                         f"{note}; declare the text a missing marker (missing.markers or "
                          f"missing.columns.{column}.markers) or declare variables.{column}.type")
-
-
-def _check_levels(value: pd.Series, allowed: set, column: str, ids: pd.Series, label: str) -> None:
-    outside = value.notna().to_numpy() & ~value.isin(list(allowed)).to_numpy()
-    if outside.any():
-        rows = np.flatnonzero(outside)
-        raise InputError(f"{label}: column '{column}' holds {value.iloc[rows[0]]:g} at {_rows_note(rows, ids)}, not "
-                         f"among variables.{column}.levels; add it to levels or declare it a missing marker")
 
 
 def _with_reason(reasons: pd.Series, where: np.ndarray, reason: str) -> pd.Series:
@@ -730,16 +849,17 @@ _NA_WORDS = {"", "na", "n/a", "nan", "null", "none", ".", "?", "-", "unknown", "
              "n.d.", "not done", "not available", "dk", "don't know", "refused", "prefer not to say"}
 
 
-def _refuse_codes_among_values(codes: np.ndarray, kept: List[int], numbers: Dict[int, Optional[float]],
-                               uniques: List[Any], unique_reason: List[Optional[str]], markers: MarkerTable,
-                               column: str, label: str) -> None:
+def _refuse_codes_among_values(cells: DistinctCells, kept: List[int], numbers: Dict[int, Optional[float]],
+                               unique_reason: List[Optional[str]], markers: MarkerTable, column: str,
+                               label: str) -> None:
     """A numeric missing code that lies among a column's real values could be a real value.
 
     E.g. a global ``60: refused`` would blank every real age of 60. A code declared for the
     column itself (``missing.columns.<x>``) is trusted; a global one inside the range of
     the column's other values stops with the two ways to say what is meant.
     """
-    real = np.array([numbers[i] for i in kept], dtype=float)
+    uniques = cells.uniques
+    real = np.array([numbers[i] for i in kept] + list(cells.plain.values), dtype=float)
     if real.size < 2:
         return
     lo, hi = float(real.min()), float(real.max())
@@ -753,18 +873,18 @@ def _refuse_codes_among_values(codes: np.ndarray, kept: List[int], numbers: Dict
         origin = markers.origin_of(uniques[i])
         if origin.startswith(own):
             continue
-        n = int((codes == i).sum())
+        n = int(cells.counts[i])
         raise InputError(f"{label}: the missing code {number:g} ('{reason}', {origin}) lies among the real values "
                          f"of '{column}' ({lo:g} to {hi:g}), so its {n} cells could be real values; if {number:g} is "
                          f"a code in '{column}', declare it there (missing.columns.{column}.reasons), otherwise keep the "
                          f"global codes away from it (missing.columns.{column}.use_global: false)")
 
 
-def _warn_dominant_markers(codes: np.ndarray, kept: List[int], unique_reason: List[Optional[str]], uniques: List[Any],
+def _warn_dominant_markers(cells: DistinctCells, kept: List[int], unique_reason: List[Optional[str]],
                            markers: MarkerTable, column: str, label: str, warnings: List[str]) -> None:
     """A text marker that blanks most of a text column may be one of its answers (e.g. 'no')."""
-    counts = np.bincount(codes[codes >= 0], minlength=len(uniques))
-    filled = sum(int(counts[i]) for i, u in enumerate(uniques) if not _is_empty(u))
+    uniques, counts = cells.uniques, cells.counts
+    filled = sum(int(counts[i]) for i, u in enumerate(uniques) if not _is_empty(u)) + cells.plain.n_cells
     if filled == 0 or not any(markers.number(uniques[i]) is None for i in kept):
         return
     for i, reason in enumerate(unique_reason):
@@ -786,10 +906,10 @@ _NUMBER_PATTERNS = {
 }
 
 
-def _refuse_formatted_numbers(codes: np.ndarray, kept: List[int], numbers: Dict[int, Optional[float]],
-                              uniques: List[Any], column: str, ids: pd.Series, label: str,
-                              number_format: NumberFormat) -> None:
+def _refuse_formatted_numbers(cells: DistinctCells, kept: List[int], numbers: Dict[int, Optional[float]],
+                              column: str, locate: Locate, label: str, number_format: NumberFormat) -> None:
     """Numbers written with a decimal comma or thousands separators are numbers, not categories: say what to set."""
+    uniques = cells.uniques
     text = [str(uniques[i]).strip() for i in kept if numbers[i] is None]
     if not text:
         return
@@ -819,9 +939,9 @@ def _refuse_formatted_numbers(codes: np.ndarray, kept: List[int], numbers: Dict[
         advice = "set data.thousands: '.' (and data.decimal: ',')"
     else:
         return
-    rows = np.flatnonzero(codes == next(i for i in kept if str(uniques[i]).strip() == example))
+    _, note = locate([next(i for i in kept if str(uniques[i]).strip() == example)])
     raise InputError(f"{label}: column '{column}' holds numbers written like '{one_line(example, 40)}' "
-                     f"({_rows_note(rows, ids)}), which would be read as text; {advice}")
+                     f"({note}), which would be read as text; {advice}")
 
 
 _TIME = r"([ T]\d{1,2}:\d{2}(:\d{2}(\.\d+)?)?\s*(Z|[+-]\d{2}:?\d{2}|[AaPp][Mm])?)?"
@@ -845,13 +965,14 @@ def _is_date(value: Any) -> bool:
     return any(pattern.fullmatch(text) for pattern in _DATE_PATTERNS)
 
 
-def _refuse_dates(codes: np.ndarray, kept: List[int], numbers: Dict[int, Optional[float]], uniques: List[Any],
-                  column: str, ids: pd.Series, label: str) -> None:
+def _refuse_dates(cells: DistinctCells, kept: List[int], numbers: Dict[int, Optional[float]], column: str,
+                  label: str) -> None:
     """An undeclared column of dates is refused with what to do, never read as a many-level category.
 
     gapbook analyses numbers and categories; read as categories, dates would be compared
     level by level and written into the record as levels (common practice, no source).
     """
+    uniques = cells.uniques
     text = [i for i in kept if numbers[i] is None]
     if not text or not all(_is_date(uniques[i]) for i in text):
         return
@@ -861,29 +982,14 @@ def _refuse_dates(codes: np.ndarray, kept: List[int], numbers: Dict[int, Optiona
                      f"['{column}'], or add a derived number to the data file (e.g. days since randomisation)")
 
 
-def _looks_like_free_text(codes: np.ndarray, text_lookup: List[Optional[str]], categories: List[str]) -> bool:
+def _looks_like_free_text(cells: DistinctCells, text_lookup: List[Optional[str]], categories: Sequence[str]) -> bool:
     """Many distinct texts making up most of the observed cells, or long texts: names, comments, identifiers."""
     if any(len(c) > FREE_TEXT_LONG_VALUE for c in categories):
         return True
     if len(categories) < FREE_TEXT_MIN_DISTINCT:
         return False
-    observed_codes = np.array([t is not None for t in text_lookup] + [False], dtype=bool)
-    observed = int(observed_codes[np.where(codes < 0, len(text_lookup), codes)].sum())
+    observed = sum(int(n) for t, n in zip(text_lookup, cells.counts) if t is not None)
     return len(categories) > observed / 2
-
-
-def _free_text_column(raw: pd.Series, column: str, codes: np.ndarray, text_lookup: List[Optional[str]],
-                      categories: List[str], unique_reason: List[Optional[str]], reason_codes: np.ndarray,
-                      lookup: np.ndarray, reason_cat: Any) -> Tuple[pd.Series, pd.Series, VariableInfo]:
-    """A free-text column keeps only whether each cell was answered; its texts go no further than intake."""
-    answered = np.array([0 if t is not None else -1 for t in text_lookup] + [-1], dtype=np.int64)
-    value = pd.Series(pd.Categorical.from_codes(answered[reason_codes], categories=[FREE_TEXT_LEVEL]),
-                      index=raw.index, name=column)
-    why = (f"free text or identifiers ({len(categories)} distinct texts): values are not shown or analysed, only "
-           "whether each is missing; declare its type and levels to use it")
-    info = VariableInfo(name=column, type="nominal", declared=False, reason=why, levels=(FREE_TEXT_LEVEL,),
-                        numeric_storage=False, free_text=True, n_distinct=len(categories))
-    return value, pd.Series(reason_cat, index=raw.index, name=column), info
 
 
 def _check_ranges(data: pd.DataFrame, reasons: pd.DataFrame, infos: Mapping[str, VariableInfo], params: Params,
