@@ -74,6 +74,37 @@ class PatternCounts:
 
 
 @dataclass(frozen=True)
+class GroupCounts:
+    """Missingness per level of one grouping variable: what its by-group rows are built from.
+
+    ``size[k]`` rows fall in level k; ``missing[k, j]`` and ``not_applicable[k, j]`` count
+    the cells of variable j in those rows.
+    """
+
+    group: str
+    labels: Tuple[str, ...]
+    size: np.ndarray
+    missing: np.ndarray
+    not_applicable: np.ndarray
+
+
+@dataclass(frozen=True)
+class MissingnessCounts:
+    """The counts every audit table is built from, whichever engine counted them.
+
+    ``reasons[j]`` maps each reason label of variable j (``"not applicable"`` included) to
+    its number of cells; ``patterns`` are the distinct missingness patterns with their rows;
+    ``groups`` one :class:`GroupCounts` per grouping variable.
+    """
+
+    names: Tuple[str, ...]
+    n_rows: int
+    reasons: Tuple[Dict[str, int], ...]
+    patterns: PatternCounts
+    groups: Tuple[GroupCounts, ...] = ()
+
+
+@dataclass(frozen=True)
 class AuditResult:
     """Everything the audit found; each table is written as ``audit_<field>.csv`` by the notebook.
 
@@ -88,7 +119,6 @@ class AuditResult:
     summary : one-row overview (rows, complete rows, patterns, monotone, threshold, ...).
     reasons : each missing reason, its column in ``variables`` and how many cells carry it.
     range_issues, extremes, types : the intake's review lists and variable types.
-    missing_per_row : number of missing variables per row (kept in memory, never written).
     monotone : whether the patterns are monotone (a dropout design), 1 = yes, 0 = no.
     dropout_order : variables from least to most missing (the order used for monotonicity).
     """
@@ -104,7 +134,6 @@ class AuditResult:
     range_issues: pd.DataFrame
     extremes: pd.DataFrame
     types: pd.DataFrame
-    missing_per_row: np.ndarray
     n_rows: int
     n_variables: int
     n_complete_rows: int
@@ -195,12 +224,33 @@ def reason_slug(label: str) -> str:
 # ---------------------------------------------------------------------------
 # per variable
 
-def variable_table(cells: MissingCells, types: Mapping[str, str], threshold: float) -> Tuple[pd.DataFrame, pd.DataFrame]:
-    """Per-variable counts of missing values by reason, with not-applicable cells kept apart.
+def reason_counts(cells: MissingCells) -> Tuple[Dict[str, int], ...]:
+    """Cells per reason label, per variable (``"not applicable"`` included).
 
     Parameters
     ----------
     cells : from :func:`missing_cells`.
+
+    Returns
+    -------
+    tuple of dicts, one per variable, reason label -> number of cells.
+    """
+    out = []
+    for codes, categories in zip(cells.codes, cells.categories):
+        counts = np.bincount(codes.astype(np.intp) + 1, minlength=len(categories) + 1)[1:]
+        out.append({label: int(c) for label, c in zip(categories, counts)})
+    return tuple(out)
+
+
+def variable_table(per_variable: Sequence[Mapping[str, int]], names: Sequence[str], n_rows: int,
+                   types: Mapping[str, str], threshold: float) -> Tuple[pd.DataFrame, pd.DataFrame]:
+    """Per-variable counts of missing values by reason, with not-applicable cells kept apart.
+
+    Parameters
+    ----------
+    per_variable : from :func:`reason_counts` (reason label -> cells, per variable).
+    names : the variable names, in column order.
+    n_rows : rows of the table.
     types : variable name -> type (continuous, binary, nominal, ordinal, count).
     threshold : missing fraction above which ``over_threshold`` is True.
 
@@ -208,13 +258,8 @@ def variable_table(cells: MissingCells, types: Mapping[str, str], threshold: flo
     -------
     (variables, reasons): the ``audit_variables`` table and the reason -> column table.
     """
-    n_rows = cells.n_rows
-    per_variable: List[Dict[str, int]] = []
     totals: Dict[str, int] = {}
-    for codes, categories in zip(cells.codes, cells.categories):
-        counts = np.bincount(codes.astype(np.intp) + 1, minlength=len(categories) + 1)[1:]
-        by_reason = {label: int(c) for label, c in zip(categories, counts)}
-        per_variable.append(by_reason)
+    for by_reason in per_variable:
         for label, c in by_reason.items():
             if label != NOT_APPLICABLE and c > 0:
                 totals[label] = totals.get(label, 0) + c
@@ -223,7 +268,7 @@ def variable_table(cells: MissingCells, types: Mapping[str, str], threshold: flo
     columns = _unique_slugs(labels)
 
     rows = []
-    for name, by_reason in zip(cells.names, per_variable):
+    for name, by_reason in zip(names, per_variable):
         n_na = by_reason.get(NOT_APPLICABLE, 0)
         n_missing = sum(c for label, c in by_reason.items() if label != NOT_APPLICABLE)
         n = n_rows - n_na
@@ -256,18 +301,20 @@ def _unique_slugs(labels: Sequence[str]) -> List[str]:
 # ---------------------------------------------------------------------------
 # per participant
 
-def participant_table(missing_per_row: np.ndarray) -> pd.DataFrame:
+def participant_table(patterns: PatternCounts) -> pd.DataFrame:
     """Distribution of how many variables each row is missing (no ids, no rows).
 
     Parameters
     ----------
-    missing_per_row : number of missing variables in each row.
+    patterns : from :func:`count_patterns`; a row misses as many variables as its pattern.
 
     Returns
     -------
     DataFrame: n_missing_variables (0 to the largest seen), n_rows, pct_rows.
     """
-    counts = np.bincount(missing_per_row.astype(np.int64), minlength=1)
+    n_missing = patterns.missing_bits.sum(axis=1, dtype=np.int64)
+    counts = np.zeros(int(n_missing.max()) + 1 if len(n_missing) else 1, dtype=np.int64)
+    np.add.at(counts, n_missing, patterns.n_rows)
     total = int(counts.sum())
     return pd.DataFrame({
         "n_missing_variables": np.arange(len(counts), dtype=np.int64),
@@ -307,8 +354,27 @@ def count_patterns(missing: np.ndarray) -> PatternCounts:
         unique = unique[:, None]
     else:
         unique, counts = np.unique(words, axis=0, return_counts=True)
-    bits = np.unpackbits(unique.astype(">u8").view(np.uint8).reshape(len(unique), -1), axis=1, bitorder="big")[:, :p]
-    return PatternCounts(bits, counts.astype(np.int64))
+    return patterns_from_words(unique, counts, p)
+
+
+def patterns_from_words(words: np.ndarray, counts: np.ndarray, n_variables: int) -> PatternCounts:
+    """Pattern counts from distinct packed codes: 64 variables per word, the first in the highest bit.
+
+    Parameters
+    ----------
+    words : k x w unsigned 64-bit codes, one row per distinct pattern, sorted (as ``numpy.unique``
+        sorts them: lexicographic order of the missing bits).
+    counts : rows with each pattern.
+    n_variables : number of variables (the bits beyond it are zero).
+
+    Returns
+    -------
+    PatternCounts
+    """
+    words = np.ascontiguousarray(words, dtype=np.uint64)
+    bits = np.unpackbits(words.astype(">u8").view(np.uint8).reshape(len(words), -1), axis=1,
+                         bitorder="big")[:, :n_variables]
+    return PatternCounts(bits, np.asarray(counts, dtype=np.int64))
 
 
 def pattern_table(patterns: PatternCounts, names: Sequence[str]) -> pd.DataFrame:
@@ -508,6 +574,32 @@ def _level_label(value) -> str:
     return str(value)
 
 
+def group_counts(cells: MissingCells, group: str, codes: np.ndarray, labels: Sequence[str]) -> GroupCounts:
+    """Rows, missing and not-applicable cells per level of one grouping variable and per variable.
+
+    Parameters
+    ----------
+    cells : from :func:`missing_cells`.
+    group : the grouping variable's name.
+    codes, labels : from :func:`group_codes`.
+
+    Returns
+    -------
+    GroupCounts
+    """
+    k = len(labels)
+    size = np.bincount(codes, minlength=k)
+    missing = np.zeros((k, len(cells.names)), dtype=np.int64)
+    not_applicable = np.zeros((k, len(cells.names)), dtype=np.int64)
+    for j in range(len(cells.names)):
+        # One pass per variable: each row lands in cell (group, state) with state 0 observed,
+        # 1 missing, 2 not applicable.
+        state = cells.missing_columns[j].view(np.int8) + 2 * cells.not_applicable_columns[j].view(np.int8)
+        by_state = np.bincount(codes * 3 + state, minlength=3 * k).reshape(k, 3)
+        missing[:, j], not_applicable[:, j] = by_state[:, 1], by_state[:, 2]
+    return GroupCounts(group, tuple(labels), size, missing, not_applicable)
+
+
 def missing_by_group(cells: MissingCells, group: str, codes: np.ndarray, labels: Sequence[str]) -> pd.DataFrame:
     """Per level of one grouping variable and per other variable: n, n_missing, pct_missing.
 
@@ -521,18 +613,29 @@ def missing_by_group(cells: MissingCells, group: str, codes: np.ndarray, labels:
     -------
     DataFrame with columns group_variable, group, variable, n, n_missing, pct_missing.
     """
+    return by_group_table(group_counts(cells, group, codes, labels), cells.names)
+
+
+def by_group_table(counts: GroupCounts, names: Sequence[str]) -> pd.DataFrame:
+    """The by-group rows of one grouping variable from its counts (see :func:`missing_by_group`).
+
+    Parameters
+    ----------
+    counts : from :func:`group_counts`.
+    names : the variable names, in column order.
+
+    Returns
+    -------
+    DataFrame with columns group_variable, group, variable, n, n_missing, pct_missing.
+    """
+    group, labels, size = counts.group, list(counts.labels), counts.size
     k = len(labels)
-    size = np.bincount(codes, minlength=k)
     frames = []
-    for j, name in enumerate(cells.names):
+    for j, name in enumerate(names):
         if name == group:
             continue
-        # One pass per variable: each row lands in cell (group, state) with state 0 observed,
-        # 1 missing, 2 not applicable.
-        state = cells.missing_columns[j].view(np.int8) + 2 * cells.not_applicable_columns[j].view(np.int8)
-        by_state = np.bincount(codes * 3 + state, minlength=3 * k).reshape(k, 3)
-        n_missing = by_state[:, 1]
-        n = size - by_state[:, 2]
+        n_missing = counts.missing[:, j]
+        n = size - counts.not_applicable[:, j]
         with np.errstate(divide="ignore", invalid="ignore"):
             pct = np.where(n > 0, n_missing / np.maximum(n, 1) * 100, np.nan)
         frames.append(pd.DataFrame({"group_variable": group, "group": list(labels), "variable": name,
@@ -620,15 +723,58 @@ def audit_study(study: Study, threshold: float = DEFAULT_THRESHOLD, by: Sequence
                   study.variables_table())
 
 
+def count_missingness(data: pd.DataFrame, reasons: pd.DataFrame, by: Sequence[str] = ()) -> MissingnessCounts:
+    """Count reasons, patterns and by-group missingness of a study held in memory.
+
+    Parameters
+    ----------
+    data : one column per variable (the grouping variables' values are read from it).
+    reasons : same shape; NaN where observed, otherwise the reason label.
+    by : grouping variables.
+
+    Returns
+    -------
+    MissingnessCounts
+    """
+    cells = missing_cells(reasons)
+    names = cells.names
+    groups = []
+    for group in by:
+        j = names.index(group)
+        codes, labels = group_codes(data[group], cells.missing_columns[j], cells.not_applicable_columns[j], group)
+        groups.append(group_counts(cells, group, codes, labels))
+    return MissingnessCounts(names=names, n_rows=cells.n_rows, reasons=reason_counts(cells),
+                             patterns=count_patterns(cells.missing), groups=tuple(groups))
+
+
 def _audit(data: pd.DataFrame, reasons: pd.DataFrame, types: Mapping[str, str], threshold: float,
            by: Tuple[str, ...], top_patterns: int, range_issues: pd.DataFrame, extremes: pd.DataFrame,
            types_table: pd.DataFrame) -> AuditResult:
-    cells = missing_cells(reasons)
-    names = cells.names
-    variables, reason_table = variable_table(cells, types, threshold)
-    missing_per_row = cells.missing.sum(axis=1, dtype=np.int64)
-    participants = participant_table(missing_per_row)
-    patterns = count_patterns(cells.missing)
+    return audit_from_counts(count_missingness(data, reasons, by), types=types, threshold=threshold,
+                             top_patterns=top_patterns, range_issues=range_issues, extremes=extremes,
+                             types_table=types_table)
+
+
+def audit_from_counts(counts: MissingnessCounts, *, types: Mapping[str, str], threshold: float, top_patterns: int,
+                      range_issues: pd.DataFrame, extremes: pd.DataFrame, types_table: pd.DataFrame) -> AuditResult:
+    """Build every audit table from the counts (the one table builder for every engine).
+
+    Parameters
+    ----------
+    counts : from :func:`count_missingness` or an engine that counts in SQL.
+    types : variable -> type.
+    threshold : missing fraction above which a variable is flagged.
+    top_patterns : how many of the most common patterns the figures show.
+    range_issues, extremes, types_table : the intake's review lists and types table.
+
+    Returns
+    -------
+    AuditResult
+    """
+    names = counts.names
+    patterns = counts.patterns
+    variables, reason_table = variable_table(counts.reasons, names, counts.n_rows, types, threshold)
+    participants = participant_table(patterns)
     pattern_frame = pattern_table(patterns, names)
     missing_counts = variables["n_missing"].to_numpy()
     order = dropout_order(missing_counts, names)
@@ -636,17 +782,13 @@ def _audit(data: pd.DataFrame, reasons: pd.DataFrame, types: Mapping[str, str], 
     monotone = int(is_monotone(patterns.missing_bits))
     in_order = rows_in_dropout_order(patterns, order_index)
     comissing_long, comissing_matrix = comissingness(patterns, names)
-
-    group_tables = []
-    for group in by:
-        j = names.index(group)
-        codes, labels = group_codes(data[group], cells.missing_columns[j], cells.not_applicable_columns[j], group)
-        group_tables.append(missing_by_group(cells, group, codes, labels))
+    by = tuple(g.group for g in counts.groups)
+    group_tables = [by_group_table(g, names) for g in counts.groups]
     by_group = (pd.concat(group_tables, ignore_index=True) if group_tables
                 else pd.DataFrame(columns=list(BY_GROUP_COLUMNS)))
 
-    n_rows, n_vars = cells.n_rows, len(names)
-    complete = int((missing_per_row == 0).sum())
+    n_rows, n_vars = counts.n_rows, len(names)
+    complete = int(patterns.n_rows[patterns.missing_bits.sum(axis=1) == 0].sum()) if len(patterns.n_rows) else 0
     applicable_cells = int(variables["n"].sum())
     missing_cells_total = int(variables["n_missing"].sum())
     summary = pd.DataFrame([{
@@ -663,7 +805,7 @@ def _audit(data: pd.DataFrame, reasons: pd.DataFrame, types: Mapping[str, str], 
     return AuditResult(
         variables=variables, participants=participants, patterns=pattern_frame, comissingness=comissing_long,
         comissingness_matrix=comissing_matrix, by_group=by_group, summary=summary, reasons=reason_table,
-        range_issues=range_issues, extremes=extremes, types=types_table, missing_per_row=missing_per_row,
+        range_issues=range_issues, extremes=extremes, types=types_table,
         n_rows=n_rows, n_variables=n_vars, n_complete_rows=complete, n_patterns=int(len(patterns.n_rows)),
         monotone=monotone, pct_rows_in_dropout_order=in_order, dropout_order=order, threshold=threshold,
         top_patterns=top_patterns, by=by,
