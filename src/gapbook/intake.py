@@ -104,13 +104,23 @@ class Study:
 
     def variables_table(self) -> pd.DataFrame:
         """One row per variable: type, whether declared or inferred, and why."""
-        rows = [
-            {"variable": v.name, "type": v.type, "source": "declared" if v.declared else "inferred",
-             "levels": f"{v.n_distinct} distinct texts (not shown)" if v.free_text else _levels_text(v.levels),
-             "why": v.reason}
-            for v in self.variables.values()
-        ]
-        return pd.DataFrame(rows, columns=["variable", "type", "source", "levels", "why"])
+        return variables_table(self.variables)
+
+
+def variables_table(infos: Mapping[str, VariableInfo]) -> pd.DataFrame:
+    """One row per variable: type, whether declared or inferred, and why."""
+    rows = [
+        {"variable": v.name, "type": v.type, "source": "declared" if v.declared else "inferred",
+         "levels": f"{v.n_distinct} distinct texts (not shown)" if v.free_text else _levels_text(v.levels),
+         "why": v.reason}
+        for v in infos.values()
+    ]
+    return pd.DataFrame(rows, columns=["variable", "type", "source", "levels", "why"])
+
+
+def inferred_notes(infos: Mapping[str, VariableInfo]) -> Tuple[str, ...]:
+    """One line per variable whose type was inferred, for the user to check."""
+    return tuple(f"{v.name}: type inferred as {v.type} ({v.reason})" for v in infos.values() if not v.declared)
 
 
 def _levels_text(levels: Optional[Tuple[Any, ...]], shown: int = 12) -> str:
@@ -157,8 +167,12 @@ def read_raw(path: Path, fmt: str = "auto", sheet: Any = None, encoding: str = "
 
 
 def read_table(path: Path, fmt: str = "auto", sheet: Any = None, encoding: str = "utf-8", *,
-               delimiter: Optional[str] = None, ignore: Tuple[str, ...] = ()) -> Tuple[pd.DataFrame, List[str]]:
-    """:func:`read_raw` and the warnings it found (an unnamed empty column left out)."""
+               delimiter: Optional[str] = None, ignore: Tuple[str, ...] = (),
+               nrows: Optional[int] = None) -> Tuple[pd.DataFrame, List[str]]:
+    """:func:`read_raw` and the warnings it found (an unnamed empty column left out).
+
+    ``nrows`` reads only the first rows of a text or Parquet file (e.g. to learn its header).
+    """
     if not path.is_file():
         raise InputError(f"{path}: data file not found; check data.path (it is relative to the params file)")
     fmt = _format_of(path, fmt)
@@ -172,7 +186,7 @@ def read_table(path: Path, fmt: str = "auto", sheet: Any = None, encoding: str =
             sep = delimiter or ("," if fmt == "csv" else "\t")
             header = _text_header(path, sep, encoding)
             raw = pd.read_csv(path, sep=sep, dtype=str, keep_default_na=False, na_filter=False, encoding=encoding,
-                              skipinitialspace=False)
+                              skipinitialspace=False, nrows=nrows)
         elif fmt == "xlsx":
             table = pd.read_excel(path, sheet_name=0 if sheet is None else sheet, dtype=object, engine="openpyxl",
                                   keep_default_na=False, na_filter=False, header=None)
@@ -182,7 +196,12 @@ def read_table(path: Path, fmt: str = "auto", sheet: Any = None, encoding: str =
             raw = table.iloc[1:].reset_index(drop=True)
         else:
             _refuse_nested_parquet(path)
-            raw = pd.read_parquet(path)
+            if nrows is None:
+                raw = pd.read_parquet(path)
+            else:
+                import pyarrow.parquet as pq
+                batch = next(pq.ParquetFile(path).iter_batches(batch_size=max(nrows, 1)), None)
+                raw = pd.read_parquet(path) if batch is None else batch.to_pandas()
             header = [str(c) for c in raw.columns]
     except InputError:
         raise
@@ -467,15 +486,8 @@ def load_study(params: Params, raw: Optional[pd.DataFrame] = None) -> Study:
     else:
         raw, warnings = check_header(raw, "data", ignore=tuple(params.data.ignore), fmt="frame")
     label = source or "data"
+    check_declared_columns(params, list(raw.columns), label)
     ids, id_column, raw = _split_ids(raw, params, label)
-    for name in params.variables:
-        if name not in raw.columns:
-            raise InputError(f"{params.label}: variables.{name} is not a column of {label}"
-                             f"{did_you_mean(name, raw.columns)}")
-    for name in params.missing.columns:
-        if name not in raw.columns:
-            raise InputError(f"{params.label}: missing.columns.{name} is not a column of {label}"
-                             f"{did_you_mean(name, raw.columns)}")
     conditions = check_expression_columns(params, list(raw.columns))
     _refuse_markers_that_are_levels(params)
 
@@ -493,7 +505,7 @@ def load_study(params: Params, raw: Optional[pd.DataFrame] = None) -> Study:
     data, reason_frame = _apply_applicability(data, reason_frame, params, label, conditions, ids, warnings)
     data, reason_frame, issues = _check_ranges(data, reason_frame, infos, params, ids)
     extremes = robust_screen(data, infos, ids, params.missing.robust_z)
-    notes = tuple(f"{v.name}: type inferred as {v.type} ({v.reason})" for v in infos.values() if not v.declared)
+    notes = inferred_notes(infos)
     return Study(data=data, reasons=reason_frame, variables=infos, ids=ids, id_column=id_column,
                  range_issues=issues, extreme_values=extremes, source=source, sha256=sha, notes=notes,
                  warnings=tuple(warnings))
@@ -535,24 +547,51 @@ def _refuse_markers_that_are_levels(params: Params) -> None:
                                  "from this column)")
 
 
+def check_declared_columns(params: Params, columns: Sequence[str], label: str) -> None:
+    """Every column the params name (data.id, variables, missing.columns) must be in the file."""
+    id_column = params.data.id
+    if id_column is not None and id_column not in columns:
+        raise InputError(f"{params.label}: data.id '{id_column}' is not a column of {label}"
+                         f"{did_you_mean(id_column, columns)}")
+    columns = [c for c in columns if c != id_column]  # the id is not a variable
+    for name in params.variables:
+        if name not in columns:
+            raise InputError(f"{params.label}: variables.{name} is not a column of {label}"
+                             f"{did_you_mean(name, columns)}")
+    for name in params.missing.columns:
+        if name not in columns:
+            raise InputError(f"{params.label}: missing.columns.{name} is not a column of {label}"
+                             f"{did_you_mean(name, columns)}")
+
+
+def clean_id(value: Any) -> Any:
+    """An id cell as intake keeps it: None when empty, text stripped, numbers as they are."""
+    return None if _is_empty(value) else (str(value).strip() if isinstance(value, str) else value)
+
+
+def blank_id_error(label: str, id_column: str, row: int) -> InputError:
+    return InputError(f"{label}: id column '{id_column}' is empty at data row {row + 1}; every row needs an id")
+
+
+def duplicate_id_error(label: str, id_column: str, first: Any, rows: Sequence[int]) -> InputError:
+    where = ", ".join(str(int(r) + 1) for r in rows[:3])
+    return InputError(f"{label}: duplicate id '{first}' in column '{id_column}' (data rows {where}); "
+                      "ids must be unique")
+
+
 def _split_ids(raw: pd.DataFrame, params: Params, label: str) -> Tuple[pd.Series, Optional[str], pd.DataFrame]:
     id_column = params.data.id
     if id_column is None:
         return pd.Series(np.arange(1, len(raw) + 1), name="row"), None, raw
-    if id_column not in raw.columns:
-        raise InputError(f"{params.label}: data.id '{id_column}' is not a column of {label}"
-                         f"{did_you_mean(id_column, raw.columns)}")
-    ids = raw[id_column].map(lambda v: None if _is_empty(v) else (str(v).strip() if isinstance(v, str) else v))
+    ids = raw[id_column].map(clean_id)
     blank = np.flatnonzero(ids.isna().to_numpy())
     if len(blank):
-        raise InputError(f"{label}: id column '{id_column}' is empty at data row {blank[0] + 1}; every row needs an id")
+        raise blank_id_error(label, id_column, int(blank[0]))
     dup = ids.duplicated(keep=False).to_numpy()
     if dup.any():
         rows = np.flatnonzero(dup)
         first = ids.iloc[rows[0]]
-        where = ", ".join(str(r + 1) for r in np.flatnonzero((ids == first).to_numpy())[:3])
-        raise InputError(f"{label}: duplicate id '{first}' in column '{id_column}' (data rows {where}); "
-                         "ids must be unique")
+        raise duplicate_id_error(label, id_column, first, np.flatnonzero((ids == first).to_numpy()))
     return ids.rename(id_column).reset_index(drop=True), id_column, raw.drop(columns=[id_column])
 
 
@@ -992,6 +1031,21 @@ def _looks_like_free_text(cells: DistinctCells, text_lookup: List[Optional[str]]
     return len(categories) > observed / 2
 
 
+RANGE_COLUMNS = ("variable", "id", "value", "rule", "action")
+EXTREME_COLUMNS = ("variable", "id", "value", "median", "robust_z")
+RANGE_ACTIONS = {"missing": "set missing (implausible)", "flag": "flagged, kept"}
+
+
+def range_action(params: Params, name: str) -> str:
+    """What intake does with a value outside the plausible range: 'missing' or 'flag'."""
+    spec = params.variables.get(name)
+    return spec.out_of_range if spec and spec.out_of_range else params.missing.out_of_range
+
+
+def range_rule(lo: Optional[float], hi: Optional[float]) -> str:
+    return f"outside [{'' if lo is None else f'{lo:g}'}, {'' if hi is None else f'{hi:g}'}]"
+
+
 def _check_ranges(data: pd.DataFrame, reasons: pd.DataFrame, infos: Mapping[str, VariableInfo], params: Params,
                   ids: pd.Series) -> Tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
     """List values outside their plausible range; set them missing ('implausible') when asked."""
@@ -1010,18 +1064,17 @@ def _check_ranges(data: pd.DataFrame, reasons: pd.DataFrame, infos: Mapping[str,
                 outside |= column > hi
         if not outside.any():
             continue
-        spec = params.variables.get(name)
-        action = (spec.out_of_range if spec and spec.out_of_range else params.missing.out_of_range)
-        rule = f"outside [{'' if lo is None else f'{lo:g}'}, {'' if hi is None else f'{hi:g}'}]"
+        action = range_action(params, name)
+        rule = range_rule(lo, hi)
         for r in np.flatnonzero(outside):
             rows.append({"variable": name, "id": ids.iloc[r], "value": column[r], "rule": rule,
-                         "action": "set missing (implausible)" if action == "missing" else "flagged, kept"})
+                         "action": RANGE_ACTIONS[action]})
         if action == "missing":
             if not changed:
                 data, reasons, changed = data.copy(), reasons.copy(), True
             data[name] = data[name].mask(outside)
             reasons[name] = _with_reason(reasons[name], outside, IMPLAUSIBLE)
-    table = pd.DataFrame(rows, columns=["variable", "id", "value", "rule", "action"])
+    table = pd.DataFrame(rows, columns=list(RANGE_COLUMNS))
     return data, reasons, table
 
 
@@ -1053,4 +1106,4 @@ def robust_screen(data: pd.DataFrame, infos: Mapping[str, VariableInfo], ids: pd
         for r in np.flatnonzero(flagged):
             rows.append({"variable": name, "id": ids.iloc[r], "value": column[r], "median": median,
                          "robust_z": float(z[r])})
-    return pd.DataFrame(rows, columns=["variable", "id", "value", "median", "robust_z"])
+    return pd.DataFrame(rows, columns=list(EXTREME_COLUMNS))
