@@ -57,19 +57,18 @@ def cmd_check(args: argparse.Namespace) -> int:
 
     params = load_params(args.params)
     plan = preflight(params, only=_stages(args.only), log=_print)
-    study = plan.study
+    data = plan.data
     _print(f"params: {params.source}")
-    _print(f"data:   {study.source} ({len(study.data)} rows, {study.data.shape[1]} variables, sha256 {study.sha256[:12]})")
-    missing = study.missing
-    incomplete = [c for c in missing.columns if missing[c].any()]
-    _print(f"missing: {int(missing.to_numpy().sum())} cells in {len(incomplete)} variables; "
-           f"{int((~missing.any(axis=1)).sum())} rows complete")
-    for note in study.notes:
+    _print(f"data:   {data.source} ({data.n_rows} rows, {len(data.columns)} variables, sha256 {data.sha256[:12]}; "
+           f"read with {data.engine})")
+    _print(f"missing: {data.missing_cells} cells in {data.incomplete_variables} variables; "
+           f"{data.complete_rows} rows complete")
+    for note in data.notes:
         _print(f"note: {note}")
     for note in plan.notes:
         _print(f"note: {note}")
-    if len(study.range_issues):
-        _print(f"range: {len(study.range_issues)} values outside their plausible range (listed by the audit stage)")
+    if data.range_issues:
+        _print(f"range: {data.range_issues} values outside their plausible range (listed by the audit stage)")
     if plan.model is not None:
         outcome, used = plan.model
         _print(f"model: {params.analysis.family} model of {outcome} on {', '.join(used)}")

@@ -76,6 +76,7 @@ class DataSection(_Section):
     decimal: Literal[".", ","] = "."
     thousands: Optional[Literal[",", ".", " ", "'"]] = None
     ignore: _bounded(str) = Field(default_factory=list)
+    engine: Literal["auto", "pandas", "duckdb"] = "auto"
 
     @model_validator(mode="after")
     def _distinct_marks(self) -> "DataSection":

@@ -173,11 +173,61 @@ def check_model_up_front(params: Params, study: Any) -> Tuple[str, List[str]]:
 
 
 @dataclass(frozen=True)
+class DataCheck:
+    """What the up-front check learnt about the data file, whichever engine read it (``data.engine``)."""
+
+    source: str
+    sha256: str
+    n_rows: int
+    columns: Tuple[str, ...]
+    missing_cells: int
+    incomplete_variables: int
+    complete_rows: int
+    notes: Tuple[str, ...]
+    warnings: Tuple[str, ...]
+    range_issues: int
+    engine: str
+    why: str
+
+
+def check_data(params: Params, need_frame: bool) -> Tuple[DataCheck, Any]:
+    """Read the data file once with the engine ``data.engine`` picks: (what check reports, the Study or None).
+
+    With DuckDB (a large file) the file is never loaded into pandas unless ``need_frame``
+    (a model stage will run and its model is checked up front on the data in memory).
+    """
+    from .intake import load_study
+    from .intake_duckdb import choose_engine
+
+    engine, why = choose_engine(params)
+    if engine == "duckdb" and not need_frame:
+        from .audit_duckdb import audit_scanned
+        from .intake_duckdb import scan_study
+
+        with scan_study(params) as scanned:  # data errors stop here, exit 2
+            summary = audit_scanned(scanned).summary.iloc[0]
+            return DataCheck(source=scanned.source, sha256=scanned.sha256, n_rows=scanned.n_rows,
+                             columns=tuple(scanned.columns), missing_cells=int(summary["missing_cells"]),
+                             incomplete_variables=int(summary["incomplete_variables"]),
+                             complete_rows=int(summary["complete_rows"]), notes=scanned.notes,
+                             warnings=scanned.warnings, range_issues=len(scanned.range_issues), engine=engine,
+                             why=why), None
+    study = load_study(params)  # data errors stop here, exit 2
+    missing = study.missing
+    return DataCheck(source=study.source or "", sha256=study.sha256 or "", n_rows=len(study.data),
+                     columns=tuple(study.data.columns), missing_cells=int(missing.to_numpy().sum()),
+                     incomplete_variables=int(missing.any(axis=0).sum()),
+                     complete_rows=int((~missing.any(axis=1)).sum()), notes=study.notes, warnings=study.warnings,
+                     range_issues=len(study.range_issues), engine="pandas", why=why), study
+
+
+@dataclass(frozen=True)
 class Plan:
     """What a run will do, after every up-front check passed."""
 
     params: Params
-    study: Any  # gapbook.intake.Study
+    data: DataCheck
+    study: Any  # gapbook.intake.Study, or None when DuckDB checked a large file and no model stage runs
     stages: Tuple[str, ...]
     notebooks: Tuple[StageNotebook, ...]
     model: Optional[Tuple[str, List[str]]] = None  # outcome and right-hand-side columns, when checked
@@ -192,21 +242,21 @@ def preflight(params: Params, *, only: Optional[Sequence[str]] = None, log: Opti
     can fix. ``notebooks`` maps stage names to the notebooks to run instead of the study
     folder's or the kit's (``verify`` uses it for the kit's or a trusted record's copies).
     """
-    from .intake import load_study
-
     found = stage_notebooks(params, notebooks, notebook_origin)
     stages = resolve_stages(only, params, log, available=list(found))
-    study = load_study(params)  # data errors stop here, exit 2
+    model_stages = bool(params.analysis.formula) and any(s in MODEL_STAGES or s == "report" for s in stages)
+    data, study = check_data(params, need_frame=model_stages)
     if log is not None:
-        for warning in study.warnings:  # legitimate but worth a look (also shown on the audit page)
+        for warning in data.warnings:  # legitimate but worth a look (also shown on the audit page)
             log(f"warning: {warning}")
     for column in params.audit.by:
-        if column not in study.data.columns:
-            raise InputError(f"{params.label}: audit.by '{column}' is not a column{did_you_mean(column, study.data.columns)}")
+        if column not in data.columns:
+            raise InputError(f"{params.label}: audit.by '{column}' is not a column{did_you_mean(column, data.columns)}")
     model = None
-    if params.analysis.formula and any(stage in MODEL_STAGES or stage == "report" for stage in stages):
+    if model_stages:
         model = check_model_up_front(params, study)
     chosen = tuple(found[s] for s in stages)
     notes = tuple(f"notebook {nb.file}: the study folder's copy, which differs from the kit's"
                   for nb in chosen if nb.origin == STUDY and nb.differs_from_kit)
-    return Plan(params=params, study=study, stages=tuple(stages), notebooks=chosen, model=model, notes=notes)
+    return Plan(params=params, data=data, study=study, stages=tuple(stages), notebooks=chosen, model=model,
+                notes=notes)

@@ -164,10 +164,10 @@ def run_study(plan: Plan, out_root: Path, log: Log = print, name: Optional[str] 
             error = {"kind": kind, "stage": failure.stage, "message": str(failure.error)}
         if with_pages:
             pages.write_index(folder.temp, params=params, pages=stage_pages, error=error,
-                              started=started.strftime("%Y-%m-%d %H:%M UTC"), data_sha256=plan.study.sha256 or "")
+                              started=started.strftime("%Y-%m-%d %H:%M UTC"), data_sha256=plan.data.sha256)
         manifest = rec.build_manifest(
             status="incomplete" if failure else "complete", params_body=yaml.safe_load(params_text),
-            data_path=params.data_path, data_sha256=plan.study.sha256 or "", record_final=folder.final,
+            data_path=params.data_path, data_sha256=plan.data.sha256, record_final=folder.final,
             stages=[r.manifest_entry() for r in runs], folder=folder.temp, started=started,
             ended=datetime.now(timezone.utc), kernel=kernel, error=error)
         rec.write_json(folder.temp / rec.MANIFEST, manifest)

@@ -11,7 +11,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 from functools import cached_property
 from pathlib import Path
-from typing import Any, Dict, Optional, Union
+from typing import Any, Dict, Optional, Tuple, Union
 
 import pandas as pd
 
@@ -31,6 +31,16 @@ def write_csv(frame: pd.DataFrame, path: Path) -> Path:
     return path
 
 
+@dataclass(frozen=True)
+class AuditRun:
+    """The audit stage's result with the intake notes and which engine counted it, and why."""
+
+    result: Any  # gapbook.audit.AuditResult
+    notes: Tuple[str, ...]
+    engine: str
+    why: str
+
+
 @dataclass
 class StageContext:
     """The params, the study and the record folder of one stage run."""
@@ -41,6 +51,20 @@ class StageContext:
     @cached_property
     def study(self) -> Study:
         return load_study(self.params)
+
+    def audit(self) -> AuditRun:
+        """Audit the study with the engine ``data.engine`` picks: pandas in memory, or DuckDB over the file."""
+        from .audit import audit_study
+        from .audit_duckdb import audit_scanned
+        from .intake_duckdb import choose_engine, scan_study
+
+        engine, why = choose_engine(self.params)
+        settings = self.params.audit
+        options = dict(threshold=settings.threshold, by=settings.by, top_patterns=settings.top_patterns)
+        if engine == "duckdb":
+            with scan_study(self.params) as scanned:
+                return AuditRun(audit_scanned(scanned, **options), scanned.notes, engine, why)
+        return AuditRun(audit_study(self.study, **options), self.study.notes, engine, why)
 
     @property
     def tables_dir(self) -> Path:

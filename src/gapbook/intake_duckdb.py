@@ -1,0 +1,734 @@
+"""Intake over a data file with DuckDB, without loading the file into pandas (``data.engine: duckdb``).
+
+A registry extract of tens of millions of rows does not fit in memory as a pandas frame.
+DuckDB (embedded, in this process, no server) reads the CSV or Parquet file in SQL, and
+the audit's counts are computed there (:mod:`gapbook.audit_duckdb`). The results are the
+same tables, byte for byte, as the pandas path gives on a file both can hold, because:
+
+- every decision about a cell (value, marker, reason code, blank, not a number) is made by
+  intake's own :func:`gapbook.intake.decide_column` on each column's *distinct* raw values;
+  SQL only maps raw values to the decided reasons and counts them;
+- cells that are plain numbers (``[+-]?(d+.?d*|.d+)([eE][+-]?d+)?``, nothing else) read
+  the same in DuckDB and in Python (both round correctly), so they are not listed one by
+  one unless they equal a marker; every other cell is listed as a distinct value;
+- range checks, medians and robust z-values are computed in SQL with the same floating
+  point operations as intake (medians exactly: DuckDB finds a window of values around
+  the middle, and the middle values are read from it).
+
+CSV and TSV files are first copied into a private temporary DuckDB database (in file
+order, so row numbers are file rows); Parquet files are read in place.
+"""
+from __future__ import annotations
+
+import codecs
+import os
+import shutil
+import tempfile
+import weakref
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Dict, List, Optional, Sequence, Tuple
+
+import numpy as np
+import pandas as pd
+
+from .errors import InputError
+from .intake import (EXTREME_COLUMNS, IMPLAUSIBLE, MAD_TO_SD, RANGE_ACTIONS, RANGE_COLUMNS, ColumnDecision,
+                     DistinctCells, EveryValueNeeded, PlainNumbers, VariableInfo, _format_of, _refuse_markers_that_are_levels,
+                     _text_header, blank_id_error, check_declared_columns, check_expression_columns, clean_id,
+                     decide_column, duplicate_id_error, inferred_notes, marker_table, range_action, range_rule,
+                     read_table, rows_note, sha256_of, variables_table)
+from .params import Params, VariableSpec
+from .vocabulary import CATEGORICAL_TYPES, NUMERIC_TYPES
+
+AUTO_DUCKDB_BYTES = 100 * 2**20  # data.engine auto: files larger than 100 MiB are read with DuckDB
+MEMORY_LIMIT = "1GB"  # DuckDB spills to its private temporary folder beyond this
+PLAIN_NUMBER = r"[+-]?([0-9]+[.]?[0-9]*|[.][0-9]+)([eE][+-]?[0-9]+)?"
+DISTINCT_LISTED = 1000  # an undeclared numeric column lists its distinct values up to this many
+_APPROX_DISTINCT = 4 * DISTINCT_LISTED  # HyperLogLog estimates above this surely exceed DISTINCT_LISTED
+ROW = '"__gapbook_row"'  # the file row (0-based) beside the file's own columns
+_RESERVOIR = 100_000  # sample size of the median guesses
+_WINDOW = 0.01  # the median window spans the sample's quantiles 0.49 to 0.51
+# What Python's str.strip() removes (every character whose isspace() is true); DuckDB's trim() is given the same.
+WHITESPACE = ("\t\n\x0b\x0c\r\x1c\x1d\x1e\x1f \x85\xa0\u1680\u2000\u2001\u2002\u2003\u2004\u2005\u2006"
+              "\u2007\u2008\u2009\u200a\u2028\u2029\u202f\u205f\u3000")
+_NUMERIC_TYPES = ("BOOLEAN", "TINYINT", "SMALLINT", "INTEGER", "BIGINT", "UTINYINT", "USMALLINT", "UINTEGER",
+                  "UBIGINT", "FLOAT", "DOUBLE")
+_ENCODINGS = {"utf-8": "utf-8", "latin-1": "latin-1", "iso8859-1": "latin-1", "utf-16": "utf-16"}
+
+
+def choose_engine(params: Params) -> Tuple[str, str]:
+    """The engine that reads the params' data file, and why (one sentence for the page).
+
+    ``data.engine: auto`` picks DuckDB for CSV, TSV and Parquet files larger than
+    ``AUTO_DUCKDB_BYTES`` and pandas otherwise; ``applies_if`` conditions keep a file on
+    pandas (the expression language is evaluated there).
+
+    Parameters
+    ----------
+    params : the validated study params.
+
+    Returns
+    -------
+    (engine, why): engine is ``"pandas"`` or ``"duckdb"``.
+    """
+    declared = params.data.engine
+    path = params.data_path
+    conditions = sorted(name for name, spec in params.variables.items() if spec.applies_if)
+    if declared == "pandas":
+        return "pandas", "data.engine is pandas"
+    if declared == "duckdb":
+        if conditions:
+            raise InputError(f"{params.label}: data.engine duckdb cannot evaluate variables.{conditions[0]}.applies_if "
+                             "yet; set data.engine to pandas or auto")
+        _duckdb_format(params)
+        return "duckdb", "data.engine is duckdb"
+    size = path.stat().st_size if path.is_file() else 0
+    if size <= AUTO_DUCKDB_BYTES:
+        return "pandas", f"data.engine auto: the file ({size / 2**20:.1f} MiB) is not above {_mib(AUTO_DUCKDB_BYTES)}"
+    try:
+        _duckdb_format(params)
+    except InputError:
+        return "pandas", "data.engine auto: DuckDB does not read this file's format or text encoding"
+    if conditions:
+        return "pandas", (f"data.engine auto: the file is above {_mib(AUTO_DUCKDB_BYTES)}, but applies_if conditions "
+                          "are evaluated with pandas")
+    return "duckdb", f"data.engine auto: the file ({size / 2**20:.0f} MiB) is above {_mib(AUTO_DUCKDB_BYTES)}"
+
+
+def _mib(size: int) -> str:
+    return f"{size / 2**20:g} MiB"
+
+
+def _duckdb_format(params: Params) -> str:
+    fmt = _format_of(params.data_path, params.data.format)
+    if fmt not in ("csv", "tsv", "parquet"):
+        raise InputError(f"{params.label}: data.engine duckdb reads CSV, TSV and Parquet files, not {fmt}; "
+                         "set data.engine to pandas")
+    if fmt != "parquet" and _duckdb_encoding(params.data.encoding) is None:
+        raise InputError(f"{params.label}: data.engine duckdb reads utf-8, utf-16 and latin-1 text, not "
+                         f"{params.data.encoding}; set data.engine to pandas")
+    if params.data.decimal != "." or params.data.thousands:
+        raise InputError(f"{params.label}: data.engine duckdb reads numbers written with a decimal point and no "
+                         "thousands separator; set data.engine to pandas")
+    return fmt
+
+
+def _duckdb_encoding(encoding: str) -> Optional[str]:
+    return _ENCODINGS.get(codecs.lookup(encoding).name)
+
+
+# ---------------------------------------------------------------------------
+# SQL text: every value and name from a file or params enters SQL as a quoted literal
+
+def quote_name(name: str) -> str:
+    """A SQL identifier for any column name."""
+    return '"' + str(name).replace('"', '""') + '"'
+
+
+def literal(value: Any) -> str:
+    """A SQL literal for a Python string or number (strings quoted, floats exact)."""
+    if isinstance(value, str):
+        if "\x00" in value:
+            raise InputError("data.engine duckdb: a value holds a NUL character; set data.engine to pandas")
+        return "'" + value.replace("'", "''") + "'"
+    number = float(value)
+    if np.isnan(number):
+        return "'nan'::DOUBLE"
+    if np.isinf(number):
+        return "'inf'::DOUBLE" if number > 0 else "'-inf'::DOUBLE"
+    return f"{number!r}::DOUBLE"
+
+
+def _in_list(column: str, values: Sequence[Any]) -> str:
+    if not values:
+        return "false"
+    return f"{column} IN ({', '.join(literal(v) for v in values)})"
+
+
+# ---------------------------------------------------------------------------
+# the scanned study
+
+@dataclass(frozen=True)
+class ScannedColumn:
+    """One variable as SQL sees it: where its reasons and values come from, and what intake decided.
+
+    ``reason_sql`` gives a reason code per row (-1 observed, otherwise an index into
+    ``reason_labels``); ``value_sql`` the value of a numeric column (NULL where missing);
+    ``code_sql`` the category code of a text column (NULL where missing).
+    """
+
+    name: str
+    alias: str
+    info: VariableInfo
+    decision: ColumnDecision
+    reason_labels: Tuple[str, ...]
+    reason_sql: str
+    value_sql: Optional[str]
+    code_sql: Optional[str]
+
+    def label_code(self, label: str) -> int:
+        return self.reason_labels.index(label) if label in self.reason_labels else -2
+
+
+@dataclass
+class ScannedStudy:
+    """A study file read by DuckDB: intake's decisions and review lists, and SQL over its rows.
+
+    ``relation`` is a view with one row per data row: ``rn`` (0-based file row), ``id``,
+    and per variable ``r_<alias>`` (reason code) and, where needed, ``v_<alias>`` (value) and
+    ``k_<alias>`` (category code). Close it (or use it in a ``with`` block) to drop the
+    temporary database.
+    """
+
+    connection: Any
+    relation: str
+    n_rows: int
+    columns: Dict[str, ScannedColumn]
+    id_column: Optional[str]
+    range_issues: pd.DataFrame
+    extreme_values: pd.DataFrame
+    source: str
+    sha256: str
+    notes: Tuple[str, ...]
+    warnings: Tuple[str, ...] = ()
+    _cleanup: Any = field(default=None, repr=False)
+
+    @property
+    def variables(self) -> Dict[str, VariableInfo]:
+        return {name: column.info for name, column in self.columns.items()}
+
+    @property
+    def types(self) -> Dict[str, str]:
+        return {name: column.info.type for name, column in self.columns.items()}
+
+    def variables_table(self) -> pd.DataFrame:
+        return variables_table(self.variables)
+
+    def close(self) -> None:
+        if self._cleanup is not None:
+            self._cleanup()
+
+    def __enter__(self) -> "ScannedStudy":
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
+
+
+def _connect(workdir: str):
+    import duckdb
+
+    connection = duckdb.connect(os.path.join(workdir, "scan.duckdb"))
+    connection.execute(f"SET memory_limit = {literal(MEMORY_LIMIT)}")
+    connection.execute(f"SET temp_directory = {literal(os.path.join(workdir, 'spill'))}")
+    connection.execute("SET preserve_insertion_order = true")
+    return connection
+
+
+def _close(connection, workdir: str) -> None:
+    try:
+        connection.close()
+    finally:
+        shutil.rmtree(workdir, ignore_errors=True)
+
+
+def scan_study(params: Params) -> ScannedStudy:
+    """Read the params' data file with DuckDB and make intake's decisions, without a pandas frame of it.
+
+    Parameters
+    ----------
+    params : the validated study params (``data.engine`` is not consulted here).
+
+    Returns
+    -------
+    ScannedStudy with the same variable types, range issues, extreme values and notes as
+    :func:`gapbook.intake.load_study` gives for that file.
+    """
+    import duckdb
+
+    path = params.data_path
+    fmt = _duckdb_format(params)
+    # The header as the pandas path reads and checks it (names, ignore, unsafe names, duplicates).
+    header, warnings = read_table(path, fmt, params.data.sheet, params.data.encoding,
+                                  delimiter=params.data.delimiter, ignore=tuple(params.data.ignore), nrows=1)
+    label = str(path)
+    if warnings or "" in header.columns:
+        raise InputError(f"{label}: a column has no name in the header row; data.engine duckdb needs every column "
+                         "named: name it in the file, or set data.engine to pandas")
+    check_declared_columns(params, list(header.columns), label)
+    check_expression_columns(params, [c for c in header.columns if c != params.data.id])
+    _refuse_markers_that_are_levels(params)
+    workdir = tempfile.mkdtemp(prefix="gapbook-duckdb-")  # private (0700) folder for the database and spills
+    connection = _connect(workdir)
+    cleanup = weakref.finalize(connection, _close, connection, workdir)
+    try:
+        scanner = _Scanner(connection, params, path, fmt, list(header.columns), label)
+        study = scanner.scan()
+    except duckdb.Error as exc:
+        cleanup()
+        raise InputError(f"{label}: cannot be read as {fmt}: {str(exc).splitlines()[0]}") from None
+    except BaseException:
+        cleanup()
+        raise
+    study._cleanup = cleanup
+    return study
+
+
+class _Scanner:
+    """The steps of :func:`scan_study`; holds the connection and the names of the SQL relations."""
+
+    def __init__(self, connection, params: Params, path: Path, fmt: str, names: List[str], label: str):
+        self.con = connection
+        self.params = params
+        self.path = path
+        self.fmt = fmt
+        self.names = names  # stripped, as intake names them (columns in data.ignore left out)
+        self.warnings: List[str] = []
+        self.label = label
+        self.id_column = params.data.id
+        self.variables = [n for n in names if n != self.id_column]
+        self.alias = {name: f"c{j}" for j, name in enumerate(self.variables)}
+        self.kinds: Dict[str, str] = {}
+        self.id_kind = "text"
+
+    # -- reading -------------------------------------------------------------------------
+
+    def _source_sql(self, serial: bool = False) -> str:
+        if self.fmt == "parquet":
+            return f"read_parquet({literal(str(self.path))}, file_row_number = true)"
+        columns = ", ".join(f"{literal(f'f{j}')}: 'VARCHAR'" for j in range(len(self.file_names)))
+        delim = self.params.data.delimiter or ("," if self.fmt == "csv" else "\t")
+        return (f"read_csv({literal(str(self.path))}, header = true, auto_detect = false, columns = {{{columns}}}, "
+                f"delim = {literal(delim)}, quote = '\"', escape = '\"', null_padding = true, strict_mode = true, "
+                f"encoding = {literal(_duckdb_encoding(self.params.data.encoding))}"
+                + (", parallel = false)" if serial else ")"))
+
+    def _raw_columns(self) -> Dict[str, str]:
+        """SQL for each column's raw cells in the ``raw`` relation; sets each column's kind (number or text)."""
+        if self.fmt == "parquet":
+            described = self.con.execute(f"DESCRIBE SELECT * FROM read_parquet({literal(str(self.path))})").fetchall()
+            types = {row[0]: str(row[1]) for row in described}
+            out = {}
+            for raw_name in [row[0] for row in described]:
+                name = str(raw_name).strip()
+                if name not in self.names:
+                    continue  # data.ignore
+                kind = types[raw_name]
+                if kind in _NUMERIC_TYPES:
+                    self._set_kind(name, "number")
+                elif kind == "VARCHAR":
+                    self._set_kind(name, "text")
+                else:
+                    raise InputError(f"{self.label}: column '{name}' is stored as {kind}; data.engine duckdb reads "
+                                     "numbers and text: store it as text or set data.engine to pandas")
+                out[name] = quote_name(raw_name)
+            return out
+        for name in self.names:
+            self._set_kind(name, "text")
+        return {name: f"f{j}" for j, name in enumerate(self.file_names) if name in self.names}
+
+    def _set_kind(self, name: str, kind: str) -> None:
+        if name == self.id_column:
+            self.id_kind = kind
+        else:
+            self.kinds[name] = kind
+
+    def _cells_sql(self) -> str:
+        """One row per file row: rn, id, and per variable its plain number p_ and its other cell s_."""
+        parts = [f"{ROW} AS rn"]
+        for name in self.variables:
+            a, c = self.alias[name], self.raw[name]
+            markers = marker_table(self.params, name)
+            spec = self.params.variables.get(name, VariableSpec())
+            every_value = spec.levels is not None or spec.type in CATEGORICAL_TYPES or name in self.every_value
+            numbers = sorted(markers.numbers)
+            if self.kinds[name] == "number":
+                number = f"CAST({c} AS DOUBLE)"
+                if every_value:
+                    parts += [f"NULL::DOUBLE AS p_{a}", f"{number} AS s_{a}"]
+                else:
+                    plain = f"coalesce(isfinite({number}) AND NOT {_in_list(number, numbers)}, false)"
+                    parts += [f"CASE WHEN {plain} THEN {number} END AS p_{a}",
+                              f"CASE WHEN NOT {plain} THEN {number} END AS s_{a}"]
+            else:
+                number = f"TRY_CAST({c} AS DOUBLE)"
+                if every_value:
+                    parts += [f"NULL::DOUBLE AS p_{a}", f"{c} AS s_{a}"]
+                else:
+                    plain = (f"coalesce(regexp_full_match({c}, {literal(PLAIN_NUMBER)}) AND isfinite({number}) "
+                             f"AND NOT {_in_list(f'lower({c})', sorted(markers.text))} "
+                             f"AND NOT {_in_list(number, numbers)}, false)")
+                    parts += [f"CASE WHEN {plain} THEN {number} END AS p_{a}",
+                              f"CASE WHEN NOT {plain} THEN {c} END AS s_{a}"]
+        if self.id_column is not None:
+            parts.append(f"{self.raw[self.id_column]} AS id")
+        return ", ".join(parts)
+
+    def _load(self) -> None:
+        """The ``raw`` relation (file rows in file order, ``rn`` from 0) and the ``cells`` view over it."""
+        if self.fmt == "parquet":
+            self.con.execute(f"CREATE VIEW raw AS SELECT file_row_number AS {ROW}, * EXCLUDE (file_row_number) "
+                             f"FROM {self._source_sql()}")
+        else:
+            # A copy in DuckDB's own storage, in file order, so rowid is the file row and the text is parsed once.
+            try:
+                self.con.execute(f"CREATE TABLE raw_table AS SELECT * FROM {self._source_sql()}")
+            except Exception as exc:  # quoted line breaks in padded rows need the serial reader
+                if "parallel" not in str(exc):
+                    raise
+                self.con.execute(f"CREATE TABLE raw_table AS SELECT * FROM {self._source_sql(serial=True)}")
+            self.con.execute(f"CREATE VIEW raw AS SELECT rowid AS {ROW}, * FROM raw_table")
+        self.raw = self._raw_columns()
+        self._create_cells()
+
+    def _create_cells(self) -> None:
+        self.con.execute(f"CREATE OR REPLACE VIEW cells AS SELECT {self._cells_sql()} FROM raw")
+
+    # -- ids -----------------------------------------------------------------------------
+
+    def _clean_id_sql(self) -> str:
+        if self.id_kind == "number":
+            return "CASE WHEN NOT isnan(CAST(id AS DOUBLE)) THEN id END"
+        return f"nullif(trim(id, {literal(WHITESPACE)}), '')"
+
+    def _check_ids(self) -> None:
+        if self.id_column is None:
+            return
+        cid = self._clean_id_sql()
+        blank = self.con.execute(f"SELECT min(rn) FROM cells WHERE ({cid}) IS NULL").fetchone()[0]
+        if blank is not None:
+            raise blank_id_error(self.label, self.id_column, int(blank))
+        # Strictly increasing ids (the usual case) are unique; otherwise look for duplicates.
+        unordered = self.con.execute(f"SELECT count(*) FROM (SELECT {cid} AS cid, lag({cid}) OVER (ORDER BY rn) AS prev "
+                                     "FROM cells) WHERE prev >= cid").fetchone()[0]
+        if not unordered:
+            return
+        first = self.con.execute(
+            f"WITH c AS (SELECT rn, {cid} AS cid FROM cells), d AS (SELECT cid FROM c GROUP BY cid HAVING count(*) > 1) "
+            "SELECT cid FROM c WHERE cid IN (SELECT cid FROM d) ORDER BY rn LIMIT 1").fetchone()
+        if first is not None:
+            rows = [r[0] for r in self.con.execute(f"SELECT rn FROM cells WHERE {cid} = ? ORDER BY rn LIMIT 3",
+                                                   [first[0]]).fetchall()]
+            shown = self.con.execute("SELECT id FROM cells WHERE rn = ?", [rows[0]]).fetchone()[0]
+            raise duplicate_id_error(self.label, self.id_column, clean_id(shown), rows)
+
+    def _ids_of(self, rows: Sequence[int]) -> List[Any]:
+        if self.id_column is None:
+            return [int(r) + 1 for r in rows]
+        found = dict(self.con.execute("SELECT rn, id FROM cells WHERE list_contains(?, rn)",
+                                      [[int(r) for r in rows]]).fetchall())
+        return [clean_id(found[int(r)]) for r in rows]
+
+    def _rows_note(self, rows: Sequence[int]) -> str:
+        rows = list(rows)[:3]
+        return rows_note(rows, self._ids_of(rows))
+
+    # -- distinct values and decisions ----------------------------------------------------
+
+    def _summaries(self) -> Dict[str, Dict[str, Any]]:
+        """Per column: plain-number cells, and for undeclared columns their range and distinct count."""
+        parts = ["count(*) AS n_rows"]
+        for name in self.variables:
+            a = self.alias[name]
+            parts.append(f"count(p_{a}) AS np_{a}")
+            if name not in self.params.variables or self.params.variables[name].type is None:
+                parts += [f"min(p_{a}) AS lo_{a}", f"max(p_{a}) AS hi_{a}", f"approx_count_distinct(p_{a}) AS nd_{a}"]
+        row = self.con.execute(f"SELECT {', '.join(parts)} FROM cells").fetchone()
+        values = dict(zip([d[0] for d in self.con.description], row))
+        self.n_rows = int(values["n_rows"])
+        return {name: {key: values.get(f"{key}_{self.alias[name]}") for key in ("np", "lo", "hi", "nd")}
+                for name in self.variables}
+
+    def _specials(self, name: str) -> Tuple[List[Any], np.ndarray]:
+        """The column's listed cells with their counts, NA left out."""
+        a = self.alias[name]
+        rows = self.con.execute(f"SELECT s_{a} AS s, count(*) FROM cells WHERE s_{a} IS NOT NULL GROUP BY s").fetchall()
+        uniques = [r[0] for r in rows]
+        if self.kinds[name] == "number":
+            # Typed NaN cells are NA in pandas; their reason is the blank one either way.
+            keep = [i for i, u in enumerate(uniques) if not (isinstance(u, float) and np.isnan(u))]
+            rows = [rows[i] for i in keep]
+            uniques = [r[0] for r in rows]
+        return uniques, np.array([int(r[1]) for r in rows], dtype=np.int64)
+
+    def _plain_values(self, name: str, summary: Dict[str, Any]) -> PlainNumbers:
+        a = self.alias[name]
+        n = int(summary["np"])
+        spec = self.params.variables.get(name, VariableSpec())
+        if n == 0 or spec.type is not None:
+            # A declared numeric type needs no distinct values (categorical ones list every cell).
+            return PlainNumbers(n_cells=n, values=(), complete=spec.type is None)
+        if summary["nd"] <= _APPROX_DISTINCT:
+            values = self.con.execute(f"SELECT DISTINCT p_{a} FROM cells WHERE p_{a} IS NOT NULL").fetchall()
+            return PlainNumbers(n_cells=n, values=tuple(sorted(v[0] for v in values)), complete=True)
+        # More distinct values than any rule of infer_type looks at: a sample of them, with the extremes.
+        values = self.con.execute(f"SELECT DISTINCT p_{a} FROM cells WHERE p_{a} IS NOT NULL "
+                                  f"LIMIT {DISTINCT_LISTED + 1}").fetchall()
+        sample = {v[0] for v in values} | {summary["lo"], summary["hi"]}
+        return PlainNumbers(n_cells=n, values=tuple(sorted(sample)), complete=False)
+
+    def _locate(self, name: str, uniques: List[Any]):
+        a = self.alias[name]
+
+        def locate(indices: Sequence[int]) -> Tuple[int, str]:
+            wanted = [uniques[i] for i in indices]
+            first = self.con.execute(f"SELECT s_{a} FROM cells WHERE list_contains(?, s_{a}) ORDER BY rn LIMIT 1",
+                                     [wanted]).fetchone()
+            index = next(i for i in indices if uniques[i] == first[0])
+            rows = [r[0] for r in self.con.execute(f"SELECT rn FROM cells WHERE s_{a} = ? ORDER BY rn LIMIT 3",
+                                                   [first[0]]).fetchall()]
+            return index, self._rows_note(rows)
+        return locate
+
+    def _decide(self, name: str, summary: Dict[str, Any]) -> Tuple[ColumnDecision, List[Any]]:
+        spec = self.params.variables.get(name, VariableSpec())
+        markers = marker_table(self.params, name)
+        uniques, counts = self._specials(name)
+        cells = DistinctCells(uniques, counts, plain=self._plain_values(name, summary))
+        found: List[str] = []
+        try:
+            decision = decide_column(cells, name, spec, markers, self._locate(name, uniques), self.label, found)
+        except EveryValueNeeded:
+            # Text after all: its numbers become categories as written, so list every cell and decide again.
+            self.every_value.add(name)
+            self._create_cells()
+            uniques, counts = self._specials(name)
+            found = []
+            decision = decide_column(DistinctCells(uniques, counts), name, spec, markers,
+                                     self._locate(name, uniques), self.label, found)
+        self.warnings.extend(found)
+        return decision, uniques
+
+    # -- SQL of reasons and values ----------------------------------------------------------
+
+    def _column_sql(self, name: str, decision: ColumnDecision, uniques: List[Any]) -> ScannedColumn:
+        a = self.alias[name]
+        info = decision.info
+        labels = list(decision.reason_labels)
+        if decision.na_reason not in labels:
+            labels.append(decision.na_reason)
+        lo, hi = info.range if (info.range is not None and info.numeric_storage) else (None, None)
+        implausible = (lo is not None or hi is not None) and range_action(self.params, name) == "missing"
+        if implausible and IMPLAUSIBLE not in labels:
+            labels.append(IMPLAUSIBLE)
+        by_reason: Dict[int, List[Any]] = {}
+        kept: List[int] = []
+        for i, reason in enumerate(decision.reasons):
+            if reason is None:
+                kept.append(i)
+            else:
+                by_reason.setdefault(labels.index(reason), []).append(uniques[i])
+        arms = [f"WHEN p_{a} IS NOT NULL THEN -1", f"WHEN s_{a} IS NULL THEN {labels.index(decision.na_reason)}"]
+        if self.kinds[name] == "number":
+            arms.append(f"WHEN isnan(s_{a}) THEN {labels.index(decision.na_reason)}")
+        arms += [f"WHEN {_in_list(f's_{a}', values)} THEN {code}" for code, values in sorted(by_reason.items())]
+        base = f"(CASE {' '.join(arms)} ELSE -1 END)"
+        value_sql = code_sql = None
+        if decision.numbers is not None:
+            kept_numbers = [(uniques[i], decision.numbers[i]) for i in kept]
+            value_arms = [f"WHEN p_{a} IS NOT NULL THEN p_{a}"]
+            if kept_numbers:
+                if self.kinds[name] == "number":
+                    value_arms.append(f"WHEN {_in_list(f's_{a}', [u for u, _ in kept_numbers])} THEN s_{a}")
+                else:
+                    value_arms.append(f"WHEN s_{a} IS NOT NULL THEN CASE s_{a} " + " ".join(
+                        f"WHEN {literal(u)} THEN {literal(v)}" for u, v in kept_numbers) + " END")
+            value = f"(CASE {' '.join(value_arms)} END)"
+            outside = " OR ".join(([f"{value} < {literal(lo)}"] if lo is not None else [])
+                                  + ([f"{value} > {literal(hi)}"] if hi is not None else []))
+            reason_sql = (f"(CASE WHEN {base} = -1 AND ({outside}) THEN {labels.index(IMPLAUSIBLE)} ELSE {base} END)"
+                          if implausible else base)
+            value_sql = value
+        else:
+            kept_codes = [(uniques[i], int(decision.codes[i])) for i in kept]
+            reason_sql = base
+            code_sql = ("(CASE s_" + a + " " + " ".join(f"WHEN {literal(u)} THEN {c}" for u, c in kept_codes)
+                        + " END)") if kept_codes else "NULL::INTEGER"
+        return ScannedColumn(name=name, alias=a, info=info, decision=decision, reason_labels=tuple(labels),
+                             reason_sql=reason_sql, value_sql=value_sql, code_sql=code_sql)
+
+    def _create_relation(self, columns: Dict[str, ScannedColumn]) -> None:
+        parts = ["rn", "id" if self.id_column is not None else "rn + 1 AS id"]
+        for column in columns.values():
+            a = column.alias
+            parts.append(f"{column.reason_sql}::SMALLINT AS r0_{a}")
+            if column.value_sql is not None:
+                parts.append(f"{column.value_sql} AS v0_{a}")
+            if column.code_sql is not None:
+                parts.append(f"{column.code_sql} AS k0_{a}")
+        self.con.execute(f"CREATE VIEW decided AS SELECT {', '.join(parts)} FROM cells")
+        final = ["rn", "id"]
+        for column in columns.values():
+            a = column.alias
+            final.append(f"r0_{a} AS r_{a}")
+            if column.value_sql is not None:
+                final += [f"v0_{a}", f"CASE WHEN r0_{a} = -1 THEN v0_{a} END AS v_{a}"]
+            if column.code_sql is not None:
+                final.append(f"CASE WHEN r0_{a} = -1 THEN k0_{a} END AS k_{a}")
+        # A copy of the decided rows when the file is text (parsed once) or small (queries then plan fast);
+        # a large Parquet file is read in place by every pass.
+        materialise = self.fmt != "parquet" or self.path.stat().st_size <= AUTO_DUCKDB_BYTES
+        kind = "TABLE" if materialise else "VIEW"
+        self.con.execute(f"CREATE {kind} study AS SELECT {', '.join(final)} FROM decided")
+        if materialise and self.fmt != "parquet":
+            self.con.execute("DROP VIEW IF EXISTS cells")
+            self.con.execute("DROP VIEW raw")
+            self.con.execute("DROP TABLE raw_table")
+
+    # -- review lists ------------------------------------------------------------------------
+
+    def _range_issues(self, columns: Dict[str, ScannedColumn]) -> pd.DataFrame:
+        checked = []
+        for name, column in columns.items():
+            info = column.info
+            if info.range is None or not info.numeric_storage:
+                continue
+            lo, hi = info.range
+            a = column.alias
+            tests = ([f"v0_{a} < {literal(lo)}"] if lo is not None else []) + \
+                    ([f"v0_{a} > {literal(hi)}"] if hi is not None else [])
+            if tests:
+                # Intake checks ranges on values that are neither missing nor not applicable.
+                checked.append((name, column, f"(r_{a} = -1 OR r_{a} = {column.label_code(IMPLAUSIBLE)}) "
+                                              f"AND ({' OR '.join(tests)})"))
+        if not checked:
+            return pd.DataFrame(columns=list(RANGE_COLUMNS))
+        found = self.con.execute(" UNION ALL ".join(
+            f"SELECT {j} AS j, rn, id, v0_{column.alias} AS v FROM study WHERE {test}"
+            for j, (_, column, test) in enumerate(checked)) + " ORDER BY j, rn").fetchall()
+        rows: List[Dict[str, Any]] = []
+        for j, rn, ident, value in found:
+            name, column, _ = checked[j]
+            lo, hi = column.info.range
+            rows.append({"variable": name, "id": self._id_value(rn, ident), "value": float(value),
+                         "rule": range_rule(lo, hi), "action": RANGE_ACTIONS[range_action(self.params, name)]})
+        return pd.DataFrame(rows, columns=list(RANGE_COLUMNS))
+
+    def _id_value(self, rn: int, ident: Any) -> Any:
+        return int(ident) if self.id_column is None else clean_id(ident)
+
+    def _extremes(self, columns: Dict[str, ScannedColumn]) -> pd.DataFrame:
+        screened = [c for c in columns.values()
+                    if c.info.type in NUMERIC_TYPES and c.info.numeric_storage and c.value_sql is not None]
+        centres = _robust_centres(self.con, "study", [f"v_{c.alias}" for c in screened])
+        cutoff = float(self.params.missing.robust_z)
+        wanted = [(column, centre) for column, centre in zip(screened, centres) if centre is not None]
+        if not wanted:
+            return pd.DataFrame(columns=list(EXTREME_COLUMNS))
+        # A slightly wider band in SQL; the cut itself is made below with intake's arithmetic.
+        found = self.con.execute(" UNION ALL ".join(
+            f"SELECT {j} AS j, rn, id, v_{column.alias} AS v FROM study WHERE abs(v_{column.alias} - {literal(m)}) > "
+            f"{literal(cutoff * scale * (1 - 1e-9))}" for j, (column, (m, scale)) in enumerate(wanted))
+            + " ORDER BY j, rn").fetchall()
+        rows: List[Dict[str, Any]] = []
+        for j, rn, ident, value in found:
+            column, (median, scale) = wanted[j]
+            with np.errstate(invalid="ignore"):
+                z = (np.float64(value) - median) / scale
+            if np.abs(z) > cutoff:
+                rows.append({"variable": column.name, "id": self._id_value(rn, ident), "value": float(value),
+                             "median": median, "robust_z": float(z)})
+        return pd.DataFrame(rows, columns=list(EXTREME_COLUMNS))
+
+    # -- all steps ---------------------------------------------------------------------------
+
+    def scan(self) -> ScannedStudy:
+        self.every_value: set = set()
+        if self.fmt != "parquet":
+            encoding = self.params.data.encoding
+            if encoding.replace("_", "-").lower() in ("utf-8", "utf8"):
+                encoding = "utf-8-sig"
+            sep = self.params.data.delimiter or ("," if self.fmt == "csv" else "\t")
+            self.file_names = [str(n).strip() for n in _text_header(self.path, sep, encoding)]
+        self._load()
+        summaries = self._summaries()
+        if self.n_rows == 0:
+            raise InputError(f"{self.path}: the data file has no data rows; it needs a header row and data rows")
+        self._check_ids()
+        columns: Dict[str, ScannedColumn] = {}
+        for name in self.variables:
+            decision, uniques = self._decide(name, summaries[name])
+            columns[name] = self._column_sql(name, decision, uniques)
+        self._create_relation(columns)
+        issues = self._range_issues(columns)
+        extremes = self._extremes(columns)
+        infos = {name: c.info for name, c in columns.items()}
+        return ScannedStudy(connection=self.con, relation="study", n_rows=self.n_rows, columns=columns,
+                            id_column=self.id_column, range_issues=issues, extreme_values=extremes,
+                            source=str(self.path), sha256=sha256_of(self.path), notes=inferred_notes(infos),
+                            warnings=tuple(self.warnings))
+
+
+# ---------------------------------------------------------------------------
+# exact medians in SQL
+
+def _numpy_median(low: float, high: float) -> float:
+    """The median from the two middle order statistics, with numpy's arithmetic (equal for odd counts)."""
+    return float(np.mean(np.array([low, high], dtype=float))) if low != high else float(low)
+
+
+def _middle(counts_below: int, window: Sequence[float], n: int) -> Optional[float]:
+    """numpy's median of n values, given the sorted values of a window and how many lie below it; None if outside."""
+    k1, k2 = (n - 1) // 2, n // 2
+    values = sorted(window)
+    if not (counts_below <= k1 and k2 < counts_below + len(values)):
+        return None
+    return _numpy_median(values[k1 - counts_below], values[k2 - counts_below])
+
+
+def _robust_centres(con, relation: str, expressions: Sequence[str]) -> List[Optional[Tuple[float, float]]]:
+    """Median and MAD scale (``MAD_TO_SD`` x median absolute deviation) of each expression's non-NULL values.
+
+    Exactly as :func:`gapbook.intake.robust_screen` computes them with numpy, in four passes
+    over the rows whatever the number of columns: a reservoir sample guesses each median,
+    a window of values around the guess gives the exact middle values, and the same for
+    the absolute deviations. None where there are fewer than 3 values or the scale is 0.
+    """
+    if not expressions:
+        return []
+    guesses = con.execute("SELECT " + ", ".join(
+        f"count({e}), reservoir_quantile({e}, [{0.5 - _WINDOW}, 0.5, {0.5 + _WINDOW}], {_RESERVOIR})"
+        for e in expressions) + f" FROM {relation}").fetchone()
+    counts = [int(guesses[2 * j]) for j in range(len(expressions))]
+    windows = [guesses[2 * j + 1] for j in range(len(expressions))]
+    medians = _exact_middles(con, relation, expressions, counts, windows)
+    spreads = [f"abs({e} - {literal(m)})" if m is not None else "NULL::DOUBLE" for e, m in zip(expressions, medians)]
+    guesses = con.execute("SELECT " + ", ".join(
+        f"reservoir_quantile({s}, [{0.5 - _WINDOW}, 0.5, {0.5 + _WINDOW}], {_RESERVOIR})" for s in spreads)
+        + f" FROM {relation}").fetchone()
+    mads = _exact_middles(con, relation, spreads, counts, list(guesses))
+    out: List[Optional[Tuple[float, float]]] = []
+    for n, median, mad in zip(counts, medians, mads):
+        if n < 3 or median is None or mad is None:
+            out.append(None)
+            continue
+        scale = MAD_TO_SD * float(mad)
+        out.append((median, scale) if scale > 0 else None)
+    return out
+
+
+def _exact_middles(con, relation: str, expressions: Sequence[str], counts: Sequence[int],
+                   windows: Sequence[Optional[Sequence[float]]]) -> List[Optional[float]]:
+    parts, wanted = [], []
+    for j, (e, n, w) in enumerate(zip(expressions, counts, windows)):
+        if n < 3 or w is None or any(x is None for x in w):
+            continue
+        lo, hi = float(w[0]), float(w[2])
+        parts += [f"count(*) FILTER (WHERE {e} < {literal(lo)})",
+                  f"list({e}) FILTER (WHERE {e} BETWEEN {literal(lo)} AND {literal(hi)})"]
+        wanted.append(j)
+    out: List[Optional[float]] = [None] * len(expressions)
+    if not parts:
+        return out
+    row = con.execute(f"SELECT {', '.join(parts)} FROM {relation}").fetchone()
+    for k, j in enumerate(wanted):
+        below, window = int(row[2 * k]), row[2 * k + 1] or []
+        middle = _middle(below, window, counts[j])
+        if middle is None:  # the guess missed the middle (rare): take every value of that column
+            values = con.execute(f"SELECT {expressions[j]} FROM {relation} WHERE {expressions[j]} IS NOT NULL"
+                                 ).fetchnumpy()
+            column = np.asarray(next(iter(values.values())), dtype=float)
+            middle = float(np.median(column))
+        out[j] = middle
+    return out
