@@ -78,7 +78,7 @@ def test_every_file_is_checked_before_anything_runs(audit_record, tmp_path, caps
     (record / "report" / "index.html").write_text("<p>forged</p>")
     (record / "tables" / "planted.csv").write_text("a\n1\n")
     source = record / "notebooks" / "source" / "01_audit.ipynb"
-    source.write_text(source.read_text().replace("audit_study", "audit_study "))
+    source.write_text(source.read_text().replace("open_stage", "open_stage "))
     assert main(["verify", str(record)]) == 1
     out, err = capsys.readouterr()
     assert f"FAIL figures/{figure.name}: differs from its sha256" in out
