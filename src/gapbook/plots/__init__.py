@@ -1,6 +1,7 @@
 """Figures, one module per stage; every function takes a stage's result object, never a path.
 
-Shared look: a muted palette of our own. Outside a Jupyter kernel the Agg backend is
+Shared look: one palette of our own (:mod:`gapbook.plots.palette`), whose roles are
+re-exported here for the plot modules. Outside a Jupyter kernel the Agg backend is
 chosen, so figures render the same on a machine without a screen; inside one the
 kernel's inline backend is left alone so figures show in the executed notebook.
 """
@@ -15,12 +16,12 @@ if "ipykernel" not in sys.modules:
 
 import matplotlib.pyplot as plt  # noqa: E402
 
-# Our palette: observed values, missing values, emphasis, reference lines.
-OBSERVED = "#4C6A92"
-MISSING = "#D9822B"
-EMPHASIS = "#8E3B46"
-NEUTRAL = "#9AA5B1"
-REFERENCE = "#2F3E46"
+from .palette import (  # noqa: E402  (the roles every plot module draws with)
+    BACKGROUND, EMPHASIS, GRID, IMPUTED, MISSING, NEUTRAL, NOT_APPLICABLE, OBSERVED, REFERENCE, UNTESTED,
+)
+
+__all__ = ["BACKGROUND", "EMPHASIS", "GRID", "IMPUTED", "MISSING", "NEUTRAL", "NOT_APPLICABLE", "OBSERVED",
+           "REFERENCE", "UNTESTED", "new_figure"]
 
 
 def new_figure(width: float = 7.0, height: float = 4.0):

@@ -7,31 +7,15 @@
 """
 from __future__ import annotations
 
-from typing import List, Sequence
+from typing import Sequence
 
 import numpy as np
-from matplotlib.colors import LinearSegmentedColormap, to_rgb
 from matplotlib.patches import Patch
 
-from . import EMPHASIS, MISSING, NEUTRAL, OBSERVED, REFERENCE, new_figure
+from . import EMPHASIS, MISSING, OBSERVED, REFERENCE, new_figure
+from .palette import reason_shades, scale, text_on
 
 MAP_SLICES = 400  # vertical resolution of the map: beyond this many rows, rows are shown in slices
-
-
-def _blend(colour_a: str, colour_b: str, weight: float):
-    a, b = np.array(to_rgb(colour_a)), np.array(to_rgb(colour_b))
-    return tuple((1 - weight) * a + weight * b)
-
-
-def _reason_colours(k: int) -> List[tuple]:
-    """k distinguishable shades for missing reasons, all on the missing side of the palette."""
-    anchors = [MISSING, EMPHASIS, REFERENCE, NEUTRAL]
-    colours = []
-    for i in range(k):
-        base = anchors[i % len(anchors)]
-        lighten = 0.45 * (i // len(anchors)) / max(1, (k - 1) // len(anchors))  # later rounds are lighter tints
-        colours.append(_blend(base, "#FFFFFF", lighten))
-    return colours
 
 
 def _sorted_patterns(result):
@@ -92,8 +76,7 @@ def missingness_map(result, max_slices: int = MAP_SLICES):
         return figure
     slices = int(min(total, max_slices))
     shares = _slice_shares(bits.astype(np.float64), counts, slices)
-    colours = LinearSegmentedColormap.from_list("observed_to_missing", [OBSERVED, MISSING])
-    image = axes.imshow(shares, aspect="auto", interpolation="nearest", cmap=colours, vmin=0, vmax=1,
+    image = axes.imshow(shares, aspect="auto", interpolation="nearest", cmap=scale("observed_to_missing"), vmin=0, vmax=1,
                         extent=(-0.5, len(order) - 0.5, 100, 0))
     axes.set_xticks(range(len(order)))
     axes.set_xticklabels(order, rotation=60, ha="right")
@@ -125,7 +108,7 @@ def missing_share(result):
     table = result.variables.sort_values(["pct_missing", "variable"], ascending=[True, False], kind="stable")
     reason_columns = list(result.reasons["column"])
     reason_labels = list(result.reasons["reason"])
-    colours = _reason_colours(len(reason_columns))
+    colours = reason_shades(len(reason_columns))
     figure, axes = new_figure(7.5, max(2.5, 0.32 * len(table) + 1.4))
     positions = np.arange(len(table))
     left = np.zeros(len(table))
@@ -180,8 +163,7 @@ def comissingness_matrix(result, annotate_up_to: int = 15):
     values[np.triu_indices(k)] = np.nan  # each pair once; the diagonal is 1 by definition
     # Lower triangle without the diagonal: rows from the second variable, columns up to the last but one.
     values = values[1:, :-1]
-    colours = LinearSegmentedColormap.from_list("comissing", [OBSERVED, "#F4F4F4", MISSING]).with_extremes(bad="white")
-    image = axes.imshow(np.ma.masked_invalid(values), cmap=colours, vmin=-1, vmax=1, interpolation="nearest")
+    image = axes.imshow(np.ma.masked_invalid(values), cmap=scale("ratio"), vmin=-1, vmax=1, interpolation="nearest")
     axes.set_xticks(range(k - 1))
     axes.set_xticklabels(matrix.columns[:-1], rotation=60, ha="right", fontsize=8)
     axes.set_yticks(range(k - 1))
@@ -191,7 +173,7 @@ def comissingness_matrix(result, annotate_up_to: int = 15):
             for j in range(i + 1):
                 if np.isfinite(values[i, j]):
                     axes.text(j, i, f"{values[i, j]:.2f}", ha="center", va="center", fontsize=7,
-                              color="white" if abs(values[i, j]) > 0.6 else REFERENCE)
+                              color=text_on(abs(values[i, j])))
     for side in ("top", "right"):
         axes.spines[side].set_visible(False)
     bar = figure.colorbar(image, ax=axes, fraction=0.045)

@@ -7,10 +7,9 @@ from typing import Optional
 import numpy as np
 from matplotlib import pyplot as plt
 
-from . import EMPHASIS, MISSING, NEUTRAL, OBSERVED, REFERENCE, new_figure
+from . import BACKGROUND, EMPHASIS, MISSING, NEUTRAL, OBSERVED, REFERENCE, new_figure
+from .palette import strategy_colour, strategy_marker
 from ..cases import CompleteCaseFlow, CompletenessBaseline, StrategyComparison
-
-STRATEGY_COLOURS = {"complete_case": OBSERVED, "missing_category": MISSING, "multiple_imputation": EMPHASIS}
 
 
 def plot_flow(flow: CompleteCaseFlow):
@@ -116,9 +115,10 @@ def plot_strategy_comparison(comparison: StrategyComparison, reference_value: Op
                                              gridspec_kw={"width_ratios": [3, 2]}, sharey=True)
     y = np.arange(rows)[::-1].astype(float)
     for yi, (_, row), e, l, h in zip(y, table.iterrows(), est, lo, hi):
-        colour = STRATEGY_COLOURS.get(row["strategy"], NEUTRAL)
+        colour = strategy_colour(row["strategy"])
         axes.plot([l, h], [yi, yi], color=colour, linewidth=2.2, solid_capstyle="butt")
-        axes.plot([e], [yi], marker="D", markersize=7, color=colour, markeredgecolor="white")
+        axes.plot([e], [yi], marker=strategy_marker(row["strategy"]), markersize=7, color=colour,
+                  markeredgecolor=BACKGROUND)
         text_axes.text(0.0, yi, _interval_text(e, l, h, row["n_used"]), va="center", fontsize=9)
     axes.axvline(null, color=REFERENCE, linewidth=0.8)
     if reference_value is not None:

@@ -10,7 +10,7 @@ import numpy as np
 from ..impute import ChainedImputation
 from ..pool import PooledResult
 from ..vocabulary import CATEGORICAL_TYPES
-from . import EMPHASIS, MISSING, NEUTRAL, OBSERVED, REFERENCE
+from . import BACKGROUND, EMPHASIS, IMPUTED, NEUTRAL, OBSERVED, REFERENCE
 
 
 def plot_convergence(imputation: ChainedImputation):
@@ -24,13 +24,12 @@ def plot_convergence(imputation: ChainedImputation):
     names = list(dict.fromkeys(trace["variable"]))
     figure, axes = plt.subplots(len(names), 2, figsize=(8.0, 1.7 * len(names) + 0.8), layout="constrained",
                                 squeeze=False, sharex=True)
-    colours = plt.get_cmap("viridis")(np.linspace(0.1, 0.9, max(imputation.m, 1)))
     for row, name in enumerate(names):
         part = trace[trace["variable"] == name]
         for column, statistic in enumerate(("mean", "sd")):
             ax = axes[row, column]
             for chain, lines in part.groupby("chain"):
-                ax.plot(lines["iteration"], lines[statistic], color=colours[int(chain) % len(colours)],
+                ax.plot(lines["iteration"], lines[statistic], color=IMPUTED,
                         linewidth=0.9, alpha=0.8)
             ax.set_ylabel(f"{name}\n{statistic}" if column == 0 else statistic, fontsize=8)
             ax.tick_params(labelsize=7)
@@ -66,9 +65,9 @@ def plot_observed_vs_imputed(imputation: ChainedImputation, bins: int = 30):
             per_imputation = np.array([np.bincount(v, minlength=len(levels)) / max(len(v), 1) for v in values])
             x = np.arange(len(levels))
             ax.bar(x - 0.2, share_observed, width=0.4, color=OBSERVED, label="observed")
-            ax.bar(x + 0.2, per_imputation.mean(0), width=0.4, color="white", edgecolor=MISSING, linewidth=1.5,
+            ax.bar(x + 0.2, per_imputation.mean(0), width=0.4, color=BACKGROUND, edgecolor=IMPUTED, linewidth=1.5,
                    label="imputed")
-            ax.vlines(x + 0.2, per_imputation.min(0), per_imputation.max(0), color=MISSING, linewidth=1.2)
+            ax.vlines(x + 0.2, per_imputation.min(0), per_imputation.max(0), color=IMPUTED, linewidth=1.2)
             ax.set_xticks(x, [str(v) for v in levels], fontsize=7, rotation=30 if len(levels) > 3 else 0)
             ax.set_ylabel("share", fontsize=8)
         else:
@@ -76,7 +75,7 @@ def plot_observed_vs_imputed(imputation: ChainedImputation, bins: int = 30):
             imputed = values.ravel()
             edges = np.histogram_bin_edges(np.concatenate([observed, imputed]), bins=bins)
             ax.hist(observed, bins=edges, density=True, color=OBSERVED, alpha=0.55, label="observed")
-            ax.hist(imputed, bins=edges, density=True, histtype="step", color=MISSING, linewidth=1.6,
+            ax.hist(imputed, bins=edges, density=True, histtype="step", color=IMPUTED, linewidth=1.6,
                     label="imputed")
             ax.set_ylabel("density", fontsize=8)
         ax.set_title(f"{name}: {len(observed)} observed, {values.shape[1]} imputed", fontsize=9)

@@ -15,16 +15,15 @@ from typing import List, Optional
 
 import numpy as np
 import pandas as pd
-from matplotlib.colors import LinearSegmentedColormap
 from matplotlib.lines import Line2D
 
-from . import EMPHASIS, MISSING, NEUTRAL, OBSERVED, REFERENCE, new_figure
+from . import BACKGROUND, EMPHASIS, GRID, MISSING, NEUTRAL, OBSERVED, REFERENCE, UNTESTED, new_figure
+from .palette import scale, text_on
 from ..inference import format_p
 from ..little import LittleTest
 from ..mechanism import GroupComparison, MissingnessModels
 
 SMD_CAP = 0.5          # colour saturates here; |SMD| >= 0.1 is often read as a meaningful imbalance (Austin 2009)
-SMD_COLOURS = LinearSegmentedColormap.from_list("gapbook_smd", ["#FFFFFF", "#E8C2A0", MISSING, EMPHASIS])
 
 
 def relation_overview(groups: GroupComparison, annotate: Optional[bool] = None):
@@ -57,22 +56,21 @@ def relation_overview(groups: GroupComparison, annotate: Optional[bool] = None):
     height = max(2.6, 0.45 * len(rows) + 1.8)
     figure, axes = new_figure(width, height)
     shown = np.ma.masked_invalid(np.clip(grid, 0, SMD_CAP))
-    image = axes.imshow(shown, cmap=SMD_COLOURS, vmin=0, vmax=SMD_CAP, aspect="auto")
+    image = axes.imshow(shown, cmap=scale("magnitude"), vmin=0, vmax=SMD_CAP, aspect="auto")
     for i in range(len(rows)):
         for j in range(len(columns)):
             if rows[i] == columns[j]:
-                axes.add_patch(_cell(i, j, "#FFFFFF", hatch="////"))
+                axes.add_patch(_cell(i, j, BACKGROUND, hatch="////"))
             elif untested[i, j]:
-                axes.add_patch(_cell(i, j, "#E6E9ED"))
+                axes.add_patch(_cell(i, j, UNTESTED))
     if annotate is None:
         annotate = len(rows) * len(columns) <= 300
     if annotate:
         for i in range(len(rows)):
             for j in range(len(columns)):
                 if np.isfinite(grid[i, j]) and rows[i] != columns[j]:
-                    dark = grid[i, j] > 0.6 * SMD_CAP
                     axes.text(j, i + (0.18 if evidence[i, j] else 0), f"{grid[i, j]:.2f}", ha="center", va="center",
-                              fontsize=7, color="white" if dark else REFERENCE)
+                              fontsize=7, color=text_on(grid[i, j] / SMD_CAP))
     yy, xx = np.nonzero(evidence)
     axes.scatter(xx, yy - (0.18 if annotate else 0), s=22, color=REFERENCE, marker="o", zorder=3)
     axes.set_xticks(range(len(columns)), columns, rotation=45, ha="right")
@@ -85,7 +83,7 @@ def relation_overview(groups: GroupComparison, annotate: Optional[bool] = None):
     bar.set_label("|standardised difference|\nmissing vs observed rows")
     legend = [Line2D([], [], marker="o", linestyle="", color=REFERENCE,
                      label=f"Holm-adjusted p < {groups.alpha:g}"),
-              Line2D([], [], marker="s", linestyle="", color="#E6E9ED", markersize=9, label="not tested")]
+              Line2D([], [], marker="s", linestyle="", color=UNTESTED, markersize=9, label="not tested")]
     axes.legend(handles=legend, loc="upper left", bbox_to_anchor=(0, -0.32 if len(columns) > 6 else -0.2),
                 ncol=2, frameon=False, fontsize=8)
     axes.set_title("Do rows lacking a value differ from rows that have it?", loc="left")
@@ -94,7 +92,7 @@ def relation_overview(groups: GroupComparison, annotate: Optional[bool] = None):
 
 def _cell(i: int, j: int, colour: str, hatch: Optional[str] = None):
     from matplotlib.patches import Rectangle
-    return Rectangle((j - 0.5, i - 0.5), 1, 1, facecolor=colour, edgecolor="#CCCCCC" if hatch else "none",
+    return Rectangle((j - 0.5, i - 0.5), 1, 1, facecolor=colour, edgecolor=GRID if hatch else "none",
                      hatch=hatch, linewidth=0)
 
 

@@ -12,7 +12,8 @@ from typing import Optional
 import matplotlib.pyplot as plt
 import numpy as np
 
-from . import EMPHASIS, MISSING, NEUTRAL, OBSERVED, REFERENCE
+from . import BACKGROUND, EMPHASIS, NEUTRAL, OBSERVED, REFERENCE
+from .palette import strategy_colour, strategy_marker
 from ..sensitivity import ALL_GROUPS, DeltaResult, StrategyAndDelta
 
 
@@ -37,7 +38,7 @@ def delta_curve(result: DeltaResult, term: Optional[str] = None):
         ax.plot(grid["delta"], grid["estimate"], "o", color=OBSERVED, ms=4)
         searched = part[part["evaluated_by"] == "root_search"] if "evaluated_by" in part.columns else part.iloc[0:0]
         if len(searched):
-            ax.plot(searched["delta"], searched["estimate"], "o", mfc="white", mec=OBSERVED, ms=4,
+            ax.plot(searched["delta"], searched["estimate"], "o", mfc=BACKGROUND, mec=OBSERVED, ms=4,
                     label="root search")
         ax.axhline(result.null, color=REFERENCE, lw=1, ls="--", label="null")
         ax.axvline(0.0, color=NEUTRAL, lw=0.8, ls=":")
@@ -70,15 +71,14 @@ def analyses_side_by_side(comparison: StrategyAndDelta, term: Optional[str] = No
     figure, ax = plt.subplots(figsize=(7.0, height), layout="constrained")
     y = np.arange(len(part))[::-1]
     for yi, row in zip(y, part.itertuples()):
-        delta_row = str(row.analysis).startswith("delta_adjusted")
-        colour = MISSING if delta_row else OBSERVED
         changed = row.conclusion != part["conclusion"].iloc[0]
-        ax.plot([row.ci_lower, row.ci_upper], [yi, yi], color=EMPHASIS if changed else colour, lw=2)
-        ax.plot(row.estimate, yi, "o", color=EMPHASIS if changed else colour, ms=5)
+        colour = EMPHASIS if changed else strategy_colour(str(row.analysis))
+        ax.plot([row.ci_lower, row.ci_upper], [yi, yi], color=colour, lw=2)
+        ax.plot(row.estimate, yi, strategy_marker(str(row.analysis)), color=colour, ms=5)
     ax.axvline(0.0, color=REFERENCE, lw=1, ls="--")
     ax.set_yticks(y)
     ax.set_yticklabels([str(a).replace("delta_adjusted", "delta-adjusted") if str(a).startswith("delta_adjusted")
                         else str(a).replace("_", " ") for a in part["analysis"]], fontsize=8)
-    ax.set_xlabel(f"{term} estimate and interval (red: conclusion differs from the first row)")
+    ax.set_xlabel(f"{term} estimate and interval (violet: conclusion differs from the first row)")
     ax.set_title("The exposure effect under each analysis", fontsize=11)
     return figure

@@ -11,10 +11,9 @@ from typing import Optional
 import matplotlib.pyplot as plt
 import numpy as np
 
-from . import EMPHASIS, MISSING, NEUTRAL, OBSERVED, REFERENCE
+from . import REFERENCE
+from .palette import strategy_colour, strategy_marker
 from ..simulate import SimulationResult
-
-STRATEGY_COLOURS = (OBSERVED, MISSING, EMPHASIS, NEUTRAL, REFERENCE)
 
 
 def performance_panels(result: SimulationResult, term: Optional[str] = None, alpha: float = 0.05):
@@ -24,7 +23,6 @@ def performance_panels(result: SimulationResult, term: Optional[str] = None, alp
     perf = perf[perf["term"] == term]
     mechanisms = list(dict.fromkeys(perf["mechanism"]))
     strategies = list(dict.fromkeys(perf["strategy"]))
-    colours = {s: STRATEGY_COLOURS[i % len(STRATEGY_COLOURS)] for i, s in enumerate(strategies)}
     figure, axes = plt.subplots(2, len(mechanisms), figsize=(3.2 * len(mechanisms) + 1.0, 5.2), squeeze=False,
                                 sharey="row", layout="constrained")
     x = np.arange(len(strategies))
@@ -33,9 +31,10 @@ def performance_panels(result: SimulationResult, term: Optional[str] = None, alp
         top, bottom = axes[0][j], axes[1][j]
         for i, strategy in enumerate(strategies):
             row = part.loc[strategy]
-            top.errorbar(i, row["bias"], yerr=2 * row["bias_mcse"], fmt="o", color=colours[strategy], capsize=3)
-            bottom.errorbar(i, 100 * row["coverage"], yerr=200 * row["coverage_mcse"], fmt="o",
-                            color=colours[strategy], capsize=3)
+            top.errorbar(i, row["bias"], yerr=2 * row["bias_mcse"], fmt=strategy_marker(strategy),
+                         color=strategy_colour(strategy), capsize=3)
+            bottom.errorbar(i, 100 * row["coverage"], yerr=200 * row["coverage_mcse"],
+                            fmt=strategy_marker(strategy), color=strategy_colour(strategy), capsize=3)
         top.axhline(0.0, color=REFERENCE, lw=1, ls="--")
         bottom.axhline(100 * (1 - alpha), color=REFERENCE, lw=1, ls="--")
         top.set_title(mechanism, fontsize=10)
