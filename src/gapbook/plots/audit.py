@@ -76,7 +76,8 @@ def missingness_map(result, max_slices: int = MAP_SLICES):
         return figure
     slices = int(min(total, max_slices))
     shares = _slice_shares(bits.astype(np.float64), counts, slices)
-    image = axes.imshow(shares, aspect="auto", interpolation="nearest", cmap=scale("observed_to_missing"), vmin=0, vmax=1,
+    image = axes.imshow(shares, aspect="auto", interpolation="nearest", cmap=scale("observed_to_missing"),
+                        vmin=0, vmax=1,
                         extent=(-0.5, len(order) - 0.5, 100, 0))
     axes.set_xticks(range(len(order)))
     axes.set_xticklabels(order, rotation=60, ha="right")
