@@ -150,22 +150,51 @@ def test_monotone_matches_definition_on_random_patterns():
     assert seen == {True, False}
 
 
-def test_comissingness_against_numpy_corrcoef(hand, demo_study, demo_audit):
+def test_comissingness_phi_against_numpy_corrcoef(hand, demo_study, demo_audit):
     for result, missing in ((hand, None), (demo_audit, demo_study.missing)):
         matrix = result.comissingness_matrix
         if missing is None:
             missing = pd.DataFrame({"b": [0, 0, 0, 1, 0, 0], "c": [0, 0, 1, 1, 0, 1], "d": [0, 1, 1, 1, 0, 1]})
         indicators = missing[list(matrix.columns)].to_numpy(dtype=float)
-        # Reference: numpy.corrcoef of the 0/1 indicator columns.
+        # Reference: numpy.corrcoef of the 0/1 indicator columns (phi is their Pearson correlation).
         assert np.allclose(matrix.to_numpy(), np.corrcoef(indicators, rowvar=False), atol=1e-12)
         long = result.comissingness.set_index(["variable_a", "variable_b"])
         for (a, b), row in long.iterrows():
             i, j = list(matrix.columns).index(a), list(matrix.columns).index(b)
-            assert row["correlation"] == pytest.approx(np.corrcoef(indicators[:, i], indicators[:, j])[0, 1])
+            assert row["phi"] == pytest.approx(np.corrcoef(indicators[:, i], indicators[:, j])[0, 1])
             assert row["n_both_missing"] == int((indicators[:, i] * indicators[:, j]).sum())
         k = len(matrix)
-        assert len(long) == k * (k - 1) // 2
+        assert len(long) == k * (k - 1)  # every ordered pair: the conditional probabilities are asymmetric
     assert list(hand.comissingness_matrix.columns) == ["b", "c", "d"]  # only incomplete variables
+
+
+def test_comissingness_lift_and_conditional_probabilities_by_hand(hand):
+    # Hand count on the six rows: b is missing in row 4; c in rows 3, 4, 6; d in rows 2, 3, 4, 6.
+    table = hand.comissingness.set_index(["variable_a", "variable_b"])
+    expected = {  # (A, B): rows missing both, P(B missing), P(B missing | A missing), lift = P(B | A) / P(B)
+        ("b", "c"): (1, 3 / 6, 1 / 1, 2.0), ("c", "b"): (1, 1 / 6, 1 / 3, 2.0),
+        ("c", "d"): (3, 4 / 6, 3 / 3, 1.5), ("d", "c"): (3, 3 / 6, 3 / 4, 1.5),
+        ("b", "d"): (1, 4 / 6, 1 / 1, 1.5), ("d", "b"): (1, 1 / 6, 1 / 4, 1.5),
+    }
+    assert set(table.index) == set(expected)
+    for pair, (both, p_b, p_b_given_a, lift) in expected.items():
+        row = table.loc[pair]
+        assert row["n_both_missing"] == both
+        assert row[["p_missing_b", "p_missing_b_given_a", "lift"]].tolist() == pytest.approx([p_b, p_b_given_a, lift])
+    # P(B | A) P(A) = P(A and B) = P(A | B) P(B) (Bayes' rule)
+    assert table.loc[("b", "c"), "p_missing_b_given_a"] * 1 / 6 == pytest.approx(
+        table.loc[("c", "b"), "p_missing_b_given_a"] * 3 / 6)
+
+
+def test_comissingness_lift_against_pandas_crosstab(demo_study, demo_audit):
+    # Reference: pandas.crosstab of two missingness indicators gives the joint and marginal counts.
+    table = demo_audit.comissingness.set_index(["variable_a", "variable_b"])
+    for (a, b), row in table.iloc[::7].iterrows():
+        cross = pd.crosstab(demo_study.missing[a], demo_study.missing[b])
+        n = cross.to_numpy().sum()
+        p_b_given_a = cross.loc[True, True] / cross.loc[True].sum()  # both variables are incomplete
+        assert row["p_missing_b_given_a"] == pytest.approx(p_b_given_a)
+        assert row["lift"] == pytest.approx(p_b_given_a / (cross[True].sum() / n))
 
 
 def test_by_group_by_hand_and_against_pandas(hand, demo_study, demo_audit):

@@ -40,7 +40,8 @@ MAX_GROUP_LEVELS = 50  # beyond this a by-group table is unreadable; group on a 
 VARIABLE_COLUMNS = ("variable", "type", "n", "n_missing", "pct_missing", "over_threshold", "n_not_applicable")
 PATTERN_COLUMNS = ("n_rows", "pct_rows", "n_missing_variables")
 BY_GROUP_COLUMNS = ("group_variable", "group", "variable", "n", "n_missing", "pct_missing")
-COMISSING_COLUMNS = ("variable_a", "variable_b", "correlation", "n_both_missing")
+COMISSING_COLUMNS = ("variable_a", "variable_b", "n_missing_a", "n_missing_b", "n_both_missing", "phi",
+                     "p_missing_b", "p_missing_b_given_a", "lift")
 _CHUNK_ROWS = 131072
 
 
@@ -113,8 +114,9 @@ class AuditResult:
     variables : per variable counts (see module docstring for n and pct_missing).
     participants : distribution of the number of variables a row is missing.
     patterns : one row per missingness pattern, most common first (1 = observed).
-    comissingness : correlations of missingness indicators, long form.
-    comissingness_matrix : the same as a square matrix (incomplete variables only).
+    comissingness : for each ordered pair of incomplete variables, the rows missing each and
+        both, phi, P(B missing), P(B missing | A missing) and lift (:func:`comissingness`).
+    comissingness_matrix : phi as a square matrix (incomplete variables only).
     by_group : missingness per level of each grouping variable.
     summary : one-row overview (rows, complete rows, patterns, monotone, threshold, ...).
     reasons : each missing reason, its column in ``variables`` and how many cells carry it.
@@ -476,12 +478,20 @@ def rows_in_dropout_order(patterns: PatternCounts, order_index: Sequence[int]) -
 # co-missingness
 
 def comissingness(patterns: PatternCounts, names: Sequence[str]) -> Tuple[pd.DataFrame, pd.DataFrame]:
-    """Pearson correlations of missingness indicators among incomplete variables.
+    """Which incomplete variables go missing together: counts, phi, conditional probabilities and lift.
 
-    Computed from the pattern counts: with a and b the numbers of rows missing each
-    variable, ab the number missing both and n rows, r = (n ab - a b) /
-    sqrt(a (n - a) b (n - b)) (the phi coefficient). A variable missing in every row has
-    no variance; its correlations are NaN. Not-applicable cells count as observed.
+    Computed from the pattern counts alone (so every engine that counts patterns gives the
+    same table): with n rows, a and b the rows missing A and B, and ab the rows missing both,
+
+    * phi = (n ab - a b) / sqrt(a (n - a) b (n - b)), the Pearson correlation of the two
+      missingness indicators (NaN for a variable missing in every row: no variance);
+    * P(B missing) = b / n and P(B missing | A missing) = ab / a (asymmetric);
+    * lift = P(B missing | A missing) / P(B missing) = n ab / (a b): how many times more
+      often B is missing in rows lacking A than in all rows (1: as often as by chance,
+      0: never together). Lift itself is symmetric (it equals P(A | B) / P(A)); the
+      conditional probabilities carry the direction.
+
+    Not-applicable cells count as observed.
 
     Parameters
     ----------
@@ -490,13 +500,17 @@ def comissingness(patterns: PatternCounts, names: Sequence[str]) -> Tuple[pd.Dat
 
     Returns
     -------
-    (long, matrix): long form (variable_a, variable_b, correlation, n_both_missing) for
-    each pair once, and the square correlation matrix.
+    (long, matrix): long form with one row per ordered pair (A, B) of distinct incomplete
+    variables (variable_a, variable_b, n_missing_a, n_missing_b, n_both_missing, phi,
+    p_missing_b, p_missing_b_given_a, lift), A then B in column order; and the square phi
+    matrix of the incomplete variables.
 
     References
     ----------
     Yule GU (1912). On the methods of measuring association between two attributes.
     J R Stat Soc 75:579-652 (the phi coefficient).
+    Brin S, Motwani R, Ullman JD, Tsur S (1997). Dynamic itemset counting and implication
+    rules for market basket data. SIGMOD Record 26(2):255-264 (lift, there called interest).
     """
     counts = patterns.n_rows.astype(np.float64)
     n = float(counts.sum())
@@ -512,13 +526,18 @@ def comissingness(patterns: PatternCounts, names: Sequence[str]) -> Tuple[pd.Dat
     single = np.diag(both).copy()
     with np.errstate(divide="ignore", invalid="ignore"):
         spread = np.sqrt(single * (n - single))
-        correlation = (n * both - np.outer(single, single)) / np.outer(spread, spread)
-    correlation[~np.isfinite(correlation)] = np.nan
-    matrix = pd.DataFrame(correlation, index=labels, columns=labels)
-    upper_a, upper_b = np.triu_indices(len(labels), k=1)
+        phi = (n * both - np.outer(single, single)) / np.outer(spread, spread)
+        given = both / single[:, None]                   # row A, column B: P(B missing | A missing)
+        lift = n * both / np.outer(single, single)
+    phi[~np.isfinite(phi)] = np.nan
+    matrix = pd.DataFrame(phi, index=labels, columns=labels)
+    first, second = np.nonzero(~np.eye(len(labels), dtype=bool))  # ordered pairs, row-major
     long = pd.DataFrame({
-        "variable_a": [labels[i] for i in upper_a], "variable_b": [labels[i] for i in upper_b],
-        "correlation": correlation[upper_a, upper_b], "n_both_missing": both[upper_a, upper_b].astype(np.int64),
+        "variable_a": [labels[i] for i in first], "variable_b": [labels[j] for j in second],
+        "n_missing_a": single[first].astype(np.int64), "n_missing_b": single[second].astype(np.int64),
+        "n_both_missing": both[first, second].astype(np.int64), "phi": phi[first, second],
+        "p_missing_b": single[second] / n if n else np.full(len(first), np.nan),
+        "p_missing_b_given_a": given[first, second], "lift": lift[first, second],
     }, columns=list(COMISSING_COLUMNS))
     return long, matrix
 
