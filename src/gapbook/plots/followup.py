@@ -16,14 +16,15 @@ from typing import Any, List, Sequence
 import numpy as np
 from matplotlib import pyplot as plt
 
-from . import EMPHASIS, MISSING, NEUTRAL, OBSERVED, REFERENCE, new_figure
-from ..followup import REFERENCE_BASED, FollowupAnalysis
+from . import BACKGROUND, NEUTRAL, REFERENCE, new_figure
+from .palette import GROUPS, strategy_colour, strategy_marker
+from ..followup import FollowupAnalysis
 from ..followup_audit import FollowupAudit
 from ..followup_comparisons import COMPLETERS, LAST_OBSERVATION
 from ..repeated import label
 
 # One colour per exposure group, in level order: the reference group in the dark neutral tone.
-GROUP_COLOURS = (REFERENCE, EMPHASIS, MISSING, OBSERVED, NEUTRAL)
+GROUP_COLOURS = GROUPS
 STRATEGY_TITLES = {"mixed_model": "mixed model (MAR)", "multiple_imputation": "imputation (MAR)",
                    "jump_to_reference": "jump to reference", "copy_reference": "copy reference",
                    "copy_increments_reference": "copy increments in reference",
@@ -150,7 +151,7 @@ def plot_means(audit: FollowupAudit, analysis: FollowupAnalysis):
         axes.fill_between(positions, rows["ci_lower"], rows["ci_upper"], color=colour, alpha=0.15, linewidth=0)
         seen = observed[observed["group"] == group]
         if "mean_observed" in seen.columns and len(seen) == len(positions):
-            axes.scatter(positions, seen["mean_observed"], color=colour, marker="o", facecolors="white",
+            axes.scatter(positions, seen["mean_observed"], color=colour, marker="o", facecolors=BACKGROUND,
                          zorder=3, s=22, label=f"{group}: mean of attenders")
     axes.set_xlabel("visit")
     axes.set_ylabel("outcome")
@@ -173,9 +174,9 @@ def plot_last_visit_effects(analysis: FollowupAnalysis):
         for _, row in part.iterrows():
             strategy = row["strategy"]
             comparison = strategy in (COMPLETERS, LAST_OBSERVATION)
-            colour = NEUTRAL if comparison else (EMPHASIS if strategy in REFERENCE_BASED else REFERENCE)
+            colour = strategy_colour(strategy)
             axes.hlines(y, row["ci_lower"], row["ci_upper"], color=colour, linewidth=2)
-            axes.plot(row["estimate"], y, "o", color=colour, markersize=5)
+            axes.plot(row["estimate"], y, strategy_marker(strategy), color=colour, markersize=5)
             name = STRATEGY_TITLES.get(strategy, strategy)
             if comparison:
                 name += " (not recommended)"
