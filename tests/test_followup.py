@@ -77,7 +77,7 @@ def test_figures_draw_the_tables(trial):
         rows = analysis.means[analysis.means["group"] == group]
         np.testing.assert_allclose(line.get_ydata(), rows["estimate"])
     figure = plots.plot_last_visit_effects(analysis)
-    points = [line.get_xdata()[0] for line in figure.axes[0].get_lines() if line.get_marker() == "o"]
+    points = [line.get_xdata()[0] for line in figure.axes[0].get_lines() if len(line.get_xdata()) == 1]
     np.testing.assert_allclose(points, analysis.headline()["estimate"])
     figure = plots.plot_retention(audit)
     for group, line in zip(outcome.levels, figure.axes[0].get_lines()):
