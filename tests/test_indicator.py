@@ -125,7 +125,9 @@ def test_not_applicable_cells_are_not_given_a_category(demo):
     prepared = result.prepared.data
     na = study.not_applicable["insulin_dose"].to_numpy()
     assert prepared.loc[na, "insulin_dose"].isna().all()
-    assert prepared.loc[na, "insulin_dose_missing"].eq(0).all()
+    indicator = result.prepared.aliases.alias("insulin_dose_missing")  # the column goes by an internal alias
+    assert prepared.loc[na, indicator].eq(0).all()
+    assert "insulin_dose_missing" in result.fit.terms  # and is named as before in the table
     # Rows kept: outcome observed and insulin dose applicable (pandas count).
     kept = int((study.data["hba1c_12m"].notna() & ~study.not_applicable["insulin_dose"]).sum())
     assert result.fit.nobs == kept
@@ -185,3 +187,25 @@ def test_missing_indicator_unbiased_for_baseline_covariate_in_randomised_trial()
     indicator, _ = _indicator_and_complete_slopes(randomised=True)
     mcse = indicator.std(ddof=1) / np.sqrt(len(indicator))
     assert abs(indicator.mean() - 1.0) < 4 * mcse
+
+
+def test_formulas_gapbook_builds_never_contain_column_names_from_the_data():
+    # issue 9 §1: a header is never pasted into formula text; terms still read as a user's formula would
+    rng = np.random.default_rng(11)
+    n = 80
+    data = pd.DataFrame({"y": rng.normal(size=n), "arm": rng.integers(0, 2, n).astype(float),
+                         "dose mg.day": rng.normal(10, 2, n)})
+    data.loc[rng.choice(n, 12, replace=False), "dose mg.day"] = np.nan
+    model = AnalysisModel('y ~ arm + Q("dose mg.day")', exposure="arm")
+    result = missing_category_analysis(data, model, indicator_for_continuous=True)
+    assert "dose mg.day_missing" not in result.prepared.formula
+    assert result.prepared.formula.endswith("+ gapbook_indicator_0")
+    assert 'Q("dose mg.day_missing")' in result.fit.terms and 'Q("dose mg.day")' in result.fit.terms
+    # the same fit by hand with statsmodels (the reference) on a plainly named copy
+    import statsmodels.formula.api as smf
+
+    plain = data.rename(columns={"dose mg.day": "dose"})
+    plain["dose_missing"] = plain["dose"].isna().astype(float)
+    plain["dose"] = plain["dose"].fillna(plain["dose"].mean())
+    reference = smf.ols("y ~ arm + dose + dose_missing", plain).fit()
+    np.testing.assert_allclose(result.fit.params, reference.params.to_numpy(), rtol=1e-10)

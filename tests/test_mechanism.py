@@ -414,3 +414,24 @@ def test_figures_draw_from_result_objects(demo):
     assert odds.axes[0].get_xscale() == "log"
     for figure in (overview, strongest, parts, odds):
         plt.close(figure)
+
+
+def test_missingness_model_refers_to_columns_by_alias_and_names_terms_as_statsmodels():
+    # issue 9 §1: the model formula is built from aliases, never from header text; the terms
+    # are named as a plain statsmodels logit (the reference) names them for the same columns.
+    import statsmodels.formula.api as smf
+
+    from gapbook.mechanism import fit_missingness_model
+
+    rng = np.random.default_rng(2)
+    n = 300
+    data = pd.DataFrame({"alk.phos": rng.normal(100, 20, n),
+                         "sex": pd.Categorical(rng.choice(["female", "male"], n))})
+    indicator = rng.random(n) < 1 / (1 + np.exp(-(data["alk.phos"] - 100) / 20))
+    terms, summary = fit_missingness_model(data, "bili", ["alk.phos", "sex"], indicator)
+    assert list(terms["term"]) == ["Intercept", "sex[T.male]", 'Q("alk.phos")']
+    frame = data.assign(miss=indicator.astype(float))
+    reference = smf.logit('miss ~ Q("alk.phos") + sex', frame).fit(disp=0)
+    by_name = terms.set_index("term")["coefficient"]
+    for name, value in reference.params.items():
+        assert by_name[name] == pytest.approx(value, rel=1e-6)

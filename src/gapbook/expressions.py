@@ -38,6 +38,7 @@ value is *unknown*; ``and``/``or``/``not`` follow three-valued (Kleene) logic, s
 from __future__ import annotations
 
 import ast
+import functools
 import keyword
 import math
 import types
@@ -232,6 +233,7 @@ class _Checker:
         self.columns = None if columns is None else list(columns)
         self.known = None if columns is None else set(self.columns)
         self.used: List[str] = []
+        self.coded: List[str] = []   # columns given categorical coding by C()
 
     # -- messages
     def part(self, node: ast.AST) -> str:
@@ -398,6 +400,12 @@ class _Checker:
                 raise self.refuse(node, help_text="C() takes the variable and optionally a contrast, "
                                   "e.g. C(site, Treatment('B'))")
             self.value(node.args[0])
+            for inner in ast.walk(node.args[0]):
+                if isinstance(inner, ast.Name) and inner.id in self.used:
+                    self.coded.append(inner.id)
+                elif (isinstance(inner, ast.Call) and isinstance(inner.func, ast.Name) and inner.func.id == "Q"
+                      and inner.args and isinstance(inner.args[0], ast.Constant)):
+                    self.coded.append(str(inner.args[0].value))
             contrasts = ([node.args[1]] if len(node.args) == 2 else []) + [
                 k.value for k in node.keywords if k.arg == "contrast"]
             for contrast in contrasts:
@@ -467,11 +475,15 @@ def parse_expression(text: str, *, where: str, kind: str = CONDITION,
 
 @dataclass(frozen=True)
 class Formula:
-    """A checked ``outcome ~ terms`` formula: the outcome column and the columns the terms use."""
+    """A checked ``outcome ~ terms`` formula: the outcome column and the columns the terms use.
+
+    ``coded`` lists the columns the formula gives categorical coding with ``C()``.
+    """
 
     text: str
     outcome: str
     columns: Tuple[str, ...]
+    coded: Tuple[str, ...] = ()
 
 
 def parse_formula(text: str, *, where: str = "analysis.formula",
@@ -491,6 +503,17 @@ def parse_formula(text: str, *, where: str = "analysis.formula",
     -------
     Formula with the outcome and the right-hand side's columns in order of first appearance.
     """
+    if isinstance(text, str) and len(text) <= MAX_FORMULA_LENGTH:  # the same formula is checked once per fit
+        return _parse_formula_cached(text, where, None if columns is None else tuple(map(str, columns)))
+    return _parse_formula(text, where, columns)
+
+
+@functools.lru_cache(maxsize=64)
+def _parse_formula_cached(text: str, where: str, columns: Optional[Tuple[str, ...]]) -> Formula:
+    return _parse_formula(text, where, columns)
+
+
+def _parse_formula(text: str, where: str, columns: Optional[Sequence[str]]) -> Formula:
     if not isinstance(text, str):
         raise ExpressionError(where, f"must be text (got {type(text).__name__})")
     if len(text) > MAX_FORMULA_LENGTH:
@@ -511,6 +534,7 @@ def parse_formula(text: str, *, where: str = "analysis.formula",
         raise ExpressionError(where, f"'{_shown(text)}' is not a valid formula ({_shown(first, 80)})"
                               f"{_formula_name_hint(text, columns)}; check its brackets and operators") from None
     used: List[str] = []
+    coded: List[str] = []
     outcome: Optional[str] = None
     for side, terms in (("lhs", description.lhs_termlist), ("rhs", description.rhs_termlist)):
         for term in terms:
@@ -518,18 +542,19 @@ def parse_formula(text: str, *, where: str = "analysis.formula",
                 code = getattr(factor, "code", None)
                 if not isinstance(code, str):
                     raise ExpressionError(where, f"a term of '{_shown(text)}' cannot be checked")
-                names = _check_term(code, where, columns)
+                checker = _check_term(code, where, columns)
                 if side == "lhs":
-                    outcome = _outcome(code, names, where)
+                    outcome = _outcome(code, checker.used, where)
                 else:
-                    used.extend(n for n in names if n not in used)
+                    used.extend(n for n in checker.used if n not in used)
+                    coded.extend(n for n in checker.coded if n not in coded)
     if outcome is None or len(description.lhs_termlist) != 1:
         raise ExpressionError(where, f"'{_shown(lhs_text.strip())}' is not one outcome column; write "
                               "'outcome ~ exposure + covariates'")
-    return Formula(text=text, outcome=outcome, columns=tuple(used))
+    return Formula(text=text, outcome=outcome, columns=tuple(used), coded=tuple(coded))
 
 
-def _check_term(code: str, where: str, columns: Optional[Sequence[str]]) -> List[str]:
+def _check_term(code: str, where: str, columns: Optional[Sequence[str]]) -> "_Checker":
     try:
         tree = _parse_tree(code, where, MAX_FORMULA_LENGTH, TERM)
     except ExpressionError:
@@ -542,7 +567,7 @@ def _check_term(code: str, where: str, columns: Optional[Sequence[str]]) -> List
         raise
     checker = _Checker(code.strip(), where, TERM, columns)
     checker.value(tree.body)
-    return checker.used
+    return checker
 
 
 def _outcome(code: str, names: List[str], where: str) -> str:
@@ -564,6 +589,86 @@ def _formula_name_hint(text: str, columns: Optional[Sequence[str]]) -> str:
     if columns is None:
         return "; a column name with dots or spaces is written Q(\"name\")"
     return ""
+
+
+def formula_environment() -> Any:
+    """The namespace patsy evaluates a checked formula in: ``np`` with only the listed functions.
+
+    Pass it as ``eval_env`` to statsmodels' formula functions (which accept the mapping
+    :data:`FORMULA_NAMESPACE` too) and to patsy's ``dmatrices``/``dmatrix``, so that a
+    formula never sees the caller's variables.
+    """
+    import patsy
+
+    return patsy.EvalEnvironment([dict(FORMULA_NAMESPACE)])
+
+
+def written(name: str) -> str:
+    """How a column is written in a formula term name: bare when a plain name, else ``Q("name")``."""
+    import re
+
+    plain = re.fullmatch(r"[A-Za-z_][A-Za-z0-9_]*", name) is not None and not keyword.iskeyword(name)
+    return name if plain else f'Q("{name}")'
+
+
+@dataclass(frozen=True)
+class ColumnAliases:
+    """Safe internal names for columns in formulas the package writes itself.
+
+    A formula gapbook builds (a missingness model, added indicator terms) never contains a
+    column's own name: the frame's columns are renamed to ``gapbook_v0, gapbook_v1, ...``
+    and the formula refers to those. :meth:`display` maps the fitted term names back to
+    how a user's formula would write each column (``age``, ``sex[T.male]``,
+    ``Q("dose.mg")``), so tables read as statsmodels would name them.
+    """
+
+    names: Tuple[str, ...]
+    aliases: Tuple[str, ...]
+
+    @classmethod
+    def for_columns(cls, names: Sequence[str], *, taken: Sequence[str] = (), prefix: str = "gapbook_v") -> "ColumnAliases":
+        used = set(map(str, taken)) | set(map(str, names))
+        aliases: List[str] = []
+        index = 0
+        for _ in names:
+            while f"{prefix}{index}" in used:
+                index += 1
+            aliases.append(f"{prefix}{index}")
+            used.add(aliases[-1])
+        return cls(tuple(names), tuple(aliases))
+
+    def alias(self, name: str) -> str:
+        return self.aliases[self.names.index(name)]
+
+    def frame(self, data: pd.DataFrame) -> pd.DataFrame:
+        """The named columns of ``data`` under their aliases."""
+        return data[list(self.names)].set_axis(list(self.aliases), axis=1)
+
+    def display(self, term: str) -> str:
+        """A design column or term name with each alias replaced by the column as a formula writes it."""
+        lookup = dict(zip(self.aliases, self.names))
+        parts = []
+        for part in _split_interaction(term):
+            head, bracket, rest = part.partition("[")
+            parts.append(written(lookup[head]) + bracket + rest if head in lookup else part)
+        return ":".join(parts)
+
+
+def _split_interaction(term: str) -> List[str]:
+    """``a[T.x]:b`` -> ``['a[T.x]', 'b']``; a ':' inside brackets (a level's text) does not split."""
+    parts, depth, current = [], 0, []
+    for ch in term:
+        if ch == "[":
+            depth += 1
+        elif ch == "]":
+            depth = max(depth - 1, 0)
+        if ch == ":" and depth == 0:
+            parts.append("".join(current))
+            current = []
+        else:
+            current.append(ch)
+    parts.append("".join(current))
+    return parts
 
 
 # ---------------------------------------------------------------------------

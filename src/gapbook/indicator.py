@@ -22,9 +22,8 @@ by the fit and counted in the flow table).
 from __future__ import annotations
 
 import dataclasses
-import re
 from dataclasses import dataclass
-from typing import Dict, List, Mapping, Optional, Tuple, Union
+from typing import Dict, List, Mapping, Optional, Sequence, Tuple, Union
 
 import numpy as np
 import pandas as pd
@@ -32,6 +31,7 @@ import pandas as pd
 from .cases import (CompleteCaseFlow, check_model_data, complete_case_flow, exposure_column, is_categorical,
                     require_rows)
 from .errors import InputError
+from .expressions import ColumnAliases, parse_formula
 from .models import AnalysisModel, ModelFit, exposure_terms
 
 MISSING_LEVEL = "(missing)"
@@ -55,6 +55,10 @@ class MissingCategoryData:
 
     ``handling`` says, per model variable: role, type, n_missing, n_not_applicable, what was
     done (handling), the indicator column (if any) and the constant put in place of missing values.
+    ``indicators`` are the indicators' names as tables show them (``bmi_missing``); in
+    ``data`` and ``formula`` they go by internal aliases (``aliases``), so the formula gapbook
+    adds to never contains text from the data file. :meth:`display_terms` maps fitted term
+    names back.
     """
 
     data: pd.DataFrame
@@ -62,11 +66,15 @@ class MissingCategoryData:
     handling: pd.DataFrame
     indicators: Tuple[str, ...]
     label: str
+    aliases: ColumnAliases = ColumnAliases((), ())
 
+    @property
+    def indicator_columns(self) -> Tuple[str, ...]:
+        """The indicators' columns in ``data`` (their aliases)."""
+        return self.aliases.aliases
 
-def _term(column: str) -> str:
-    """How a column is written in a formula: bare when it is a plain name, otherwise quoted with Q()."""
-    return column if re.fullmatch(r"[A-Za-z_]\w*", column) else f"Q('{column}')"
+    def display_terms(self, terms: Sequence[str]) -> Tuple[str, ...]:
+        return tuple(self.aliases.display(term) for term in terms)
 
 
 def _indicator_name(variable: str, taken: List[str]) -> str:
@@ -78,9 +86,7 @@ def _indicator_name(variable: str, taken: List[str]) -> str:
 
 def _wrapped_in_c(formula: str, column: str) -> bool:
     """Whether the formula uses the column as ``C(column ...)`` (categorical coding of a numeric column)."""
-    rhs = formula.split("~", 1)[1]
-    inner = rf"(?:{re.escape(column)}|Q\(\s*['\"]{re.escape(column)}['\"]\s*\))"
-    return re.search(rf"\bC\(\s*{inner}\s*[,)]", rhs) is not None
+    return column in parse_formula(formula).coded
 
 
 def _with_level(column: pd.Series, missing: np.ndarray, label: str, name: str) -> pd.Series:
@@ -138,6 +144,7 @@ def prepare_missing_category(data: pd.DataFrame, model: AnalysisModel, types: Op
     frame = data.copy()
     formula = model.formula
     indicators: List[str] = []
+    indicator_values: List[np.ndarray] = []
     rows: List[Dict[str, object]] = []
     for name in [outcome] + covariates:
         cells = is_missing[name].to_numpy(dtype=bool) & data[name].isna().to_numpy()
@@ -160,29 +167,33 @@ def prepare_missing_category(data: pd.DataFrame, model: AnalysisModel, types: Op
             # A 0/1 (or numeric-coded) column entered as a number: the reference value plus an
             # indicator gives the same fit as a separate "missing" level, and keeps the term name.
             reference = float(np.nanmin(data[name].to_numpy(dtype=float)))
-            indicator = _indicator_name(name, list(frame.columns))
+            indicator = _indicator_name(name, list(frame.columns) + indicators)
             frame[name] = data[name].where(~cells, reference)
-            frame[indicator] = cells.astype(float)
-            formula += f" + {_term(indicator)}"
             indicators.append(indicator)
+            indicator_values.append(cells.astype(float))
             row.update(handling=f"missing category (as reference value {reference:g} plus indicator)",
                        indicator=indicator, constant=reference)
         elif indicator_for_continuous:
             observed = data[name].to_numpy(dtype=float)
             value = float(np.nanmean(observed)) if constant == "mean" else float(constant)
-            indicator = _indicator_name(name, list(frame.columns))
+            indicator = _indicator_name(name, list(frame.columns) + indicators)
             frame[name] = data[name].where(~cells, value)
-            frame[indicator] = cells.astype(float)
-            formula += f" + {_term(indicator)}"
             indicators.append(indicator)
+            indicator_values.append(cells.astype(float))
             row.update(handling="missing indicator (constant in place of missing values)", indicator=indicator,
                        constant=value)
         else:
             row["handling"] = "rows dropped: missing-indicator method not requested for a continuous covariate"
         rows.append(row)
     handling = pd.DataFrame(rows, columns=list(HANDLING_COLUMNS))
+    # The indicators enter the data and the formula under internal aliases, never under a name
+    # made from a data file's column name.
+    aliases = ColumnAliases.for_columns(indicators, taken=list(frame.columns), prefix="gapbook_indicator_")
+    for alias, values in zip(aliases.aliases, indicator_values):
+        frame[alias] = values
+        formula += f" + {alias}"
     return MissingCategoryData(data=frame, formula=formula, handling=handling, indicators=tuple(indicators),
-                               label=label)
+                               label=label, aliases=aliases)
 
 
 @dataclass(frozen=True)
@@ -234,10 +245,11 @@ def missing_category_analysis(data: pd.DataFrame, model: AnalysisModel, types: O
     recoded = dataclasses.replace(model, formula=prepared.formula)
     flow = complete_case_flow(prepared.data, recoded, reasons, not_applicable)
     # The indicator columns are never missing; listing them in the flow would only add noise.
-    flow = dataclasses.replace(flow, table=flow.table[~flow.table["variable"].isin(prepared.indicators)]
+    flow = dataclasses.replace(flow, table=flow.table[~flow.table["variable"].isin(prepared.indicator_columns)]
                                .reset_index(drop=True))
     require_rows(flow)
     fit = recoded.fit(prepared.data.loc[flow.complete.to_numpy()])
+    fit = dataclasses.replace(fit, terms=prepared.display_terms(fit.terms))
     terms = tuple(exposure_terms(fit.terms, model.exposure))
     return MissingCategoryResult(prepared=prepared, flow=flow, fit=fit, estimates=fit.table("missing_category"),
                                  exposure_terms=terms)

@@ -22,7 +22,6 @@ missing nor observed: they are left out of every comparison.
 """
 from __future__ import annotations
 
-import re
 import warnings
 from dataclasses import dataclass
 from typing import Any, Dict, List, Mapping, Optional, Sequence, Tuple
@@ -32,6 +31,7 @@ import pandas as pd
 from scipy import stats
 
 from .errors import InputError, did_you_mean
+from .expressions import FORMULA_NAMESPACE, ColumnAliases
 from .inference import format_p, standardised_difference, standardised_difference_of_shares, wald_inference
 from .little import LittleTest, little_mcar_test
 from .vocabulary import MAR_CAUTION, NUMBER_CODED_TYPES, NUMERIC_TYPES, PLAN_CAUTION, SENSITIVITY_POINTER, infer_type
@@ -383,10 +383,6 @@ def roc_auc(indicator: np.ndarray, score: np.ndarray) -> float:
     return float((ranks[indicator].sum() - n1 * (n1 + 1) / 2) / (n1 * n0))
 
 
-def _term(name: str) -> str:
-    return name if re.fullmatch(r"[A-Za-z_][A-Za-z0-9_]*", name) else f'Q("{name}")'
-
-
 def _separated_terms(indicator: np.ndarray, design: pd.DataFrame) -> List[str]:
     """Design columns that alone predict the indicator exactly somewhere (a level always or never missing)."""
     found = []
@@ -426,18 +422,19 @@ def fit_missingness_model(data: pd.DataFrame, variable: str, predictors: Sequenc
     import statsmodels.formula.api as smf
     from statsmodels.tools.sm_exceptions import PerfectSeparationError, PerfectSeparationWarning
 
-    frame = data[list(predictors)].copy()
+    # The formula names columns only through internal aliases (never the columns' own names,
+    # which come from the data file); term names are mapped back for the table.
+    aliases = ColumnAliases.for_columns(list(predictors), taken=["gapbook_is_missing"])
+    frame = aliases.frame(data)
     target = "gapbook_is_missing"
-    while target in frame.columns:
-        target += "_"
     frame[target] = indicator.astype(float)
-    formula = f"{target} ~ " + " + ".join(_term(p) for p in predictors)
+    formula = f"{target} ~ " + " + ".join(aliases.aliases)
     n_missing = int(indicator.sum())
     summary = {"incomplete_variable": variable, "n_used": len(frame), "n_missing": n_missing,
                "predictors": ",".join(predictors), "auc": np.nan, "lr_statistic": np.nan, "lr_df": np.nan,
                "lr_p_value": np.nan, "separation": False, "note": ""}
-    model = smf.logit(formula, data=frame)
-    design = pd.DataFrame(model.exog, columns=model.exog_names)
+    model = smf.logit(formula, data=frame, eval_env=FORMULA_NAMESPACE)
+    design = pd.DataFrame(model.exog, columns=[aliases.display(name) for name in model.exog_names])
     separated = _separated_terms(indicator, design)
     perfect = False
     with warnings.catch_warnings(record=True) as caught:
@@ -461,7 +458,8 @@ def fit_missingness_model(data: pd.DataFrame, variable: str, predictors: Sequenc
         terms = pd.DataFrame([{"incomplete_variable": variable, "term": "", "n_used": len(frame),
                                "n_missing": n_missing, "note": note}], columns=list(MODEL_COLUMNS))
         return terms, summary
-    coef, se = result.params, result.bse
+    names = [aliases.display(name) for name in result.params.index]
+    coef, se = result.params.set_axis(names), result.bse.set_axis(names)
     auc = roc_auc(indicator, np.asarray(result.predict()))
     note = ""
     per_term = min(n_missing, len(frame) - n_missing) / max(len(coef) - 1, 1)

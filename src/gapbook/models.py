@@ -18,6 +18,7 @@ import statsmodels.api as sm
 import statsmodels.formula.api as smf
 
 from .errors import AnalysisError, InputError, did_you_mean
+from .expressions import FORMULA_NAMESPACE, parse_formula
 from .inference import wald_inference
 from .vocabulary import FAMILY_NAMES, ratio_name
 
@@ -66,7 +67,11 @@ def add_ratio_columns(frame: pd.DataFrame, family: str) -> pd.DataFrame:
 
 
 def formula_columns(formula: str, columns: Sequence[str]) -> List[str]:
-    """The data columns a formula uses, in the order they first appear (outcome first)."""
+    """The columns named in a piece of formula text (e.g. a term name ``arm[T.sms]``), in order of appearance.
+
+    A text search only (nothing is parsed or evaluated); the analysis formula itself is
+    checked by :func:`check_formula`.
+    """
     found: List[Tuple[int, str]] = []
     for column in columns:
         quoted = re.search(r"Q\(\s*['\"]" + re.escape(column) + r"['\"]\s*\)", formula)
@@ -78,36 +83,14 @@ def formula_columns(formula: str, columns: Sequence[str]) -> List[str]:
 
 
 def check_formula(formula: str, columns: Sequence[str], where: str = "analysis.formula") -> Tuple[str, List[str]]:
-    """The outcome and the right-hand-side columns; exits 2 when a name is not a column."""
-    if "~" not in formula:
-        raise InputError(f"{where}: '{formula}' has no '~'; write it as 'outcome ~ exposure + covariates'")
-    try:
-        import patsy
-        patsy.ModelDesc.from_formula(formula)  # parses only; nothing is evaluated
-    except Exception as exc:  # patsy's own syntax errors (unmatched brackets, dangling operators)
-        first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
-        raise InputError(f"{where}: '{formula}' is not a valid formula ({first}); check its brackets and "
-                         "operators") from None
-    lhs, rhs = formula.split("~", 1)
-    outcome = lhs.strip()
-    outcome_col = re.fullmatch(r"Q\(\s*['\"](.+)['\"]\s*\)", outcome)
-    outcome = outcome_col.group(1) if outcome_col else outcome
-    if outcome not in columns:
-        raise InputError(f"{where}: outcome '{outcome}' is not a column of the data{did_you_mean(outcome, columns)}")
-    used = formula_columns(rhs, columns)
-    # Quoted text outside Q() (e.g. a reference level in Treatment('C2')) is a value, not a column.
-    names = re.findall(r"Q\(\s*['\"]([^'\"]+)['\"]\s*\)|'[^']*'|\"[^\"]*\"|([A-Za-z_][\w.]*)", rhs)
-    known_functions = {"C", "Q", "I", "np", "log", "exp", "sqrt", "center", "standardize", "scale", "bs", "cr",
-                       "poly", "Treatment", "Sum", "Diff", "Poly", "Helmert", "levels", "reference", "contr",
-                       "treatment", "Intercept", "T", "lower", "upper"}
-    for quoted, bare in names:
-        name = quoted or bare
-        if not name or name in columns or name in known_functions or name.split(".")[0] in {"np", "contr"}:
-            continue
-        if re.fullmatch(r"\d+(\.\d+)?", name):
-            continue
-        raise InputError(f"{where}: '{name}' is not a column of the data{did_you_mean(name, columns)}")
-    return outcome, used
+    """The outcome and the right-hand-side columns; exits 2 when a term is not allowed or a name is not a column.
+
+    The check is :func:`gapbook.expressions.parse_formula`: the formula is split by patsy's
+    parser and every term checked against the expression language's allow-list before any
+    of it is evaluated.
+    """
+    parsed = parse_formula(formula, where=where, columns=list(columns))
+    return parsed.outcome, list(parsed.columns)
 
 
 def _outcome_as_number(data: pd.DataFrame, outcome: str, family: str) -> pd.DataFrame:
@@ -162,7 +145,7 @@ def fit_model(data: pd.DataFrame, formula: str, family: str = "gaussian", robust
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
             if family == "gaussian":
-                result = smf.ols(formula, data=data).fit(cov_type=cov_type)
+                result = smf.ols(formula, data=data, eval_env=FORMULA_NAMESPACE).fit(cov_type=cov_type)
                 df_resid: Optional[float] = float(result.df_resid)
             else:
                 fam = sm.families.Binomial() if family == "binomial" else sm.families.Poisson()
@@ -175,7 +158,8 @@ def fit_model(data: pd.DataFrame, formula: str, family: str = "gaussian", robust
                                          "itself (gapbook takes its log), not its log")
                     kwargs["offset"] = np.log(data[offset])
                     kwargs["missing"] = "drop"
-                result = smf.glm(formula, data=data, family=fam, **kwargs).fit(cov_type=cov_type)
+                result = smf.glm(formula, data=data, family=fam, eval_env=FORMULA_NAMESPACE,
+                                 **kwargs).fit(cov_type=cov_type)
                 df_resid = None
     except InputError:
         raise

@@ -23,6 +23,7 @@ import numpy as np
 import pandas as pd
 
 from .errors import AnalysisError, InputError, did_you_mean
+from .expressions import formula_environment
 from .models import check_formula, exposure_terms
 
 MAX_SHOWN = 3   # subjects named in one error message
@@ -362,8 +363,8 @@ def _design(formula: str, grid: pd.DataFrame) -> Tuple[Any, np.ndarray]:
 
     rhs = formula.split("~", 1)[1]
     try:
-        # Only numpy is visible to the formula: nothing of the caller's namespace.
-        matrix = patsy.dmatrix(rhs, grid, eval_env=patsy.EvalEnvironment([{"np": np}]), NA_action="raise")
+        # Only the expression language's functions are visible to the (checked) formula.
+        matrix = patsy.dmatrix(rhs, grid, eval_env=formula_environment(), NA_action="raise")
     except Exception as exc:
         first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
         raise InputError(f"analysis.formula: '{formula}' could not be built on the visit grid ({first})") from None

@@ -33,6 +33,7 @@ import pandas as pd
 from scipy import optimize, special
 
 from .errors import AnalysisError, InputError, did_you_mean
+from .expressions import FORMULA_NAMESPACE, formula_environment
 from .models import AnalysisModel, exposure_terms
 
 MECHANISMS: Tuple[str, ...] = ("MCAR", "MAR", "MNAR")
@@ -244,10 +245,10 @@ def _fit_generating_model(frame: pd.DataFrame, model: AnalysisModel, outcome: st
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
             if model.family == "gaussian":
-                return smf.ols(model.formula, data=frame).fit()
+                return smf.ols(model.formula, data=frame, eval_env=FORMULA_NAMESPACE).fit()
             family = sm.families.Binomial() if model.family == "binomial" else sm.families.Poisson()
             offset = np.log(frame[model.offset].to_numpy(dtype=float)) if model.offset is not None else None
-            return smf.glm(model.formula, data=frame, family=family, offset=offset).fit()
+            return smf.glm(model.formula, data=frame, family=family, offset=offset, eval_env=FORMULA_NAMESPACE).fit()
     except Exception as exc:  # the analysis model itself fails on the complete cases
         raise AnalysisError(f"the simulation's generating model could not be fitted: {exc}") from None
 
@@ -380,7 +381,8 @@ class LeastSquares:
         import patsy
         info = self.__dict__.get("_design_info")
         if info is None:
-            _, x = patsy.dmatrices(self.formula, self.template, return_type="dataframe")
+            _, x = patsy.dmatrices(self.formula, self.template, return_type="dataframe",
+                                   eval_env=formula_environment())
             info = x.design_info
             self.__dict__["_design_info"] = info  # a per-process cache, not part of the value
         return np.asarray(patsy.build_design_matrices([info], frame, NA_action="raise")[0], dtype=float)
@@ -408,7 +410,7 @@ def least_squares_for(design: "SimulationDesign") -> Optional[LeastSquares]:
     template = design.pool.assign(**{design.outcome: 0.0})
     try:
         import patsy
-        _, x = patsy.dmatrices(model.formula, template, return_type="dataframe")
+        _, x = patsy.dmatrices(model.formula, template, return_type="dataframe", eval_env=formula_environment())
     except Exception:
         return None
     terms = tuple(x.columns)
@@ -459,8 +461,10 @@ class MissingCategoryStrategy:
         import patsy
         prepared = indicator.prepare_missing_category(replicate.data, self.model, types, None,
                                                       self.indicator_for_continuous)
-        y, x = patsy.dmatrices(prepared.formula, prepared.data, return_type="dataframe")
-        solver = LeastSquares(prepared.formula, self.fast.outcome, tuple(x.columns), None, self.fast.alpha)
+        y, x = patsy.dmatrices(prepared.formula, prepared.data, return_type="dataframe",
+                               eval_env=formula_environment())
+        solver = LeastSquares(prepared.formula, self.fast.outcome, prepared.display_terms(x.columns), None,
+                              self.fast.alpha)
         fit = solver.fit(x.to_numpy(dtype=float), y.to_numpy(dtype=float).ravel())
         return fit.table(self.name)[list(ESTIMATE_FIELDS)]
 

@@ -2,12 +2,13 @@
 variables with their methods and predictors, passive formulas and delta shifts.
 
 The problem is built once and shared read-only by every chain (:mod:`.engine`).
-Passive formulas are parsed here; :func:`evaluate_passive` is the one place a formula is
-evaluated.
+Passive formulas are checked and computed by the expression language
+(:mod:`gapbook.expressions`); :func:`evaluate_passive` is the one place a formula is
+evaluated, by that language's own evaluator.
 """
 from __future__ import annotations
 
-import ast
+import functools
 from dataclasses import dataclass
 from typing import Any, Dict, List, Mapping, Optional, Sequence, Tuple
 
@@ -15,13 +16,11 @@ import numpy as np
 import pandas as pd
 
 from ..errors import InputError, did_you_mean
+from ..expressions import VALUE, Expression, parse_expression
 from ..vocabulary import ALLOWED_METHODS, CATEGORICAL_TYPES, DEFAULT_METHOD, DELTA_METHODS
 
 __all__ = ["Variable", "Problem", "levels_of", "check_names", "passive_inputs", "evaluate_passive", "prepare",
-           "delta_shifts", "PASSIVE_FUNCTIONS"]
-
-PASSIVE_FUNCTIONS = {"log": np.log, "exp": np.exp, "sqrt": np.sqrt, "abs": np.abs, "log10": np.log10,
-                     "log2": np.log2, "minimum": np.minimum, "maximum": np.maximum, "np": np}
+           "delta_shifts"]
 
 
 # ---------------------------------------------------------------------------
@@ -87,40 +86,29 @@ def check_names(mapping: Optional[Mapping[str, Any]], columns: Sequence[str], ke
 
 
 def passive_inputs(formula: str, columns: Sequence[str], variable: str) -> Tuple[str, ...]:
-    """The columns a passive formula uses; exits 2 when it cannot be parsed or names an unknown column."""
-    try:
-        tree = ast.parse(formula, mode="eval")
-    except SyntaxError:
-        raise InputError(f"imputation.passive.{variable}: '{formula}' is not a valid formula; write it like "
-                         "'weight_kg / (height_cm / 100) ** 2'") from None
-    names = [node.id for node in ast.walk(tree) if isinstance(node, ast.Name)]
-    inputs = []
-    for name in names:
-        if name in PASSIVE_FUNCTIONS:
-            continue
-        if name not in columns:
-            raise InputError(f"imputation.passive.{variable}: '{name}' is not a column of the imputation data"
-                             f"{did_you_mean(name, columns)}")
-        if name == variable:
-            raise InputError(f"imputation.passive.{variable}: the formula uses '{variable}' itself")
-        if name not in inputs:
-            inputs.append(name)
-    if not inputs:
-        raise InputError(f"imputation.passive.{variable}: '{formula}' uses no column")
-    return tuple(inputs)
+    """The columns a passive formula uses; exits 2 when it is not allowed or names an unknown column.
+
+    The formula is checked by the expression language (:mod:`gapbook.expressions`): column
+    names, numbers, arithmetic, comparisons and the listed functions only.
+    """
+    parsed = _passive(formula, f"imputation.passive.{variable}", tuple(columns))
+    if variable in parsed.columns:
+        raise InputError(f"imputation.passive.{variable}: the formula uses '{variable}' itself")
+    return parsed.columns
 
 
 def evaluate_passive(formula: str, values: Dict[str, np.ndarray]) -> np.ndarray:
     """The values of a passive formula for the imputed rows, from its inputs' current values.
 
-    The seam for the expression language (``gapbook.expressions``): parsing
-    (:func:`passive_inputs`) and evaluation of passive formulas happen only in these two
-    functions, so replacing them replaces the passive language everywhere.
+    Computed by the expression language's own evaluator over the checked tree (numpy,
+    NaN where an input is missing); nothing is given to Python's ``eval``.
     """
-    namespace = dict(PASSIVE_FUNCTIONS)
-    namespace.update(values)
-    with np.errstate(all="ignore"):
-        return np.asarray(eval(compile(formula, "<passive>", "eval"), {"__builtins__": {}}, namespace), dtype=float)
+    return _passive(formula, "imputation.passive", None).evaluate(values)
+
+
+@functools.lru_cache(maxsize=256)
+def _passive(formula: str, where: str, columns: Optional[Tuple[str, ...]]) -> Expression:
+    return parse_expression(formula, where=where, kind=VALUE, columns=columns)
 
 
 # ---------------------------------------------------------------------------
