@@ -12,7 +12,7 @@ from typing import Sequence
 import numpy as np
 from matplotlib.patches import Patch
 
-from . import EMPHASIS, MISSING, OBSERVED, REFERENCE, new_figure
+from . import EMPHASIS, MAX_VARIABLES_SHOWN, MISSING, OBSERVED, REFERENCE, new_figure, shown_of
 from .palette import reason_shades, scale, text_on
 
 MAP_SLICES = 400  # vertical resolution of the map: beyond this many rows, rows are shown in slices
@@ -68,6 +68,9 @@ def missingness_map(result, max_slices: int = MAP_SLICES):
     """
     order, bits, counts = _sorted_patterns(result)
     total = int(counts.sum())
+    n_variables = len(order)
+    if n_variables > MAX_VARIABLES_SHOWN:  # the most missing variables (the right end of the order)
+        order, bits = order[-MAX_VARIABLES_SHOWN:], bits[:, -MAX_VARIABLES_SHOWN:]
     width = min(11.0, max(5.0, 0.3 * len(order) + 3.0))
     figure, axes = new_figure(width, 5.0)
     if total == 0 or not order:
@@ -84,7 +87,8 @@ def missingness_map(result, max_slices: int = MAP_SLICES):
     axes.set_ylabel("rows, sorted by missingness pattern (% of rows)")
     axes.set_xlabel("variables, from least to most missing")
     shape = "monotone (dropout)" if result.monotone else "not monotone"
-    axes.set_title(f"Where the gaps are: {total:,} rows in {result.n_patterns:,} patterns, {shape}", fontsize=10)
+    axes.set_title(f"Where the gaps are: {total:,} rows in {result.n_patterns:,} patterns, {shape}"
+                   f"{shown_of(len(order), n_variables)}", fontsize=10)
     if slices < total:
         bar = figure.colorbar(image, ax=axes, fraction=0.04)
         bar.set_label(f"share missing within each slice of {total / slices:,.0f} rows")
@@ -107,6 +111,8 @@ def missing_share(result):
     matplotlib Figure.
     """
     table = result.variables.sort_values(["pct_missing", "variable"], ascending=[True, False], kind="stable")
+    n_variables = len(table)
+    table = table.tail(MAX_VARIABLES_SHOWN)  # sorted ascending: the most missing are last
     reason_columns = list(result.reasons["column"])
     reason_labels = list(result.reasons["reason"])
     colours = reason_shades(len(reason_columns))
@@ -133,7 +139,7 @@ def missing_share(result):
     axes.set_xlim(0, limit)
     axes.set_ylim(-0.6, len(table) + 0.2)
     axes.set_xlabel("% of rows to which the variable applies")
-    axes.set_title("How much each variable lacks, and why", fontsize=10)
+    axes.set_title(f"How much each variable lacks, and why{shown_of(len(table), n_variables)}", fontsize=10)
     if reason_columns:
         axes.legend(title="missing reason", loc="lower right", frameon=False, fontsize=7, title_fontsize=8)
     return figure
@@ -152,6 +158,12 @@ def comissingness_matrix(result, annotate_up_to: int = 15):
     matplotlib Figure.
     """
     matrix = result.comissingness_matrix
+    n_variables = len(matrix)
+    if n_variables > MAX_VARIABLES_SHOWN:
+        share = result.variables.set_index("variable")["pct_missing"].reindex(matrix.index).fillna(0)
+        keep = [v for v in matrix.index if v in set(share.sort_values(ascending=False, kind="stable")
+                                                      .index[:MAX_VARIABLES_SHOWN])]
+        matrix = matrix.loc[keep, keep]
     k = len(matrix)
     size = max(3.5, 0.45 * k + 2.5)
     figure, axes = new_figure(size + 1.0, size)
@@ -179,7 +191,8 @@ def comissingness_matrix(result, annotate_up_to: int = 15):
         axes.spines[side].set_visible(False)
     bar = figure.colorbar(image, ax=axes, fraction=0.045)
     bar.set_label("correlation of missingness (phi)")
-    axes.set_title("Which variables go missing together", fontsize=10)
+    axes.set_title(f"Which variables go missing together{shown_of(k, n_variables, 'incomplete variables')}",
+                   fontsize=10)
     return figure
 
 
@@ -203,7 +216,7 @@ def common_patterns(result, top: int = None):
     -------
     matplotlib Figure.
     """
-    top = int(top or result.top_patterns)
+    top = min(int(top or result.top_patterns), MAX_VARIABLES_SHOWN)  # the table lists them all
     table = result.patterns.head(top)
     # Name the gaps in dropout order so the same variables always appear in the same order.
     order = list(result.dropout_order)

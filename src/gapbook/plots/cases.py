@@ -7,7 +7,7 @@ from typing import Optional
 import numpy as np
 from matplotlib import pyplot as plt
 
-from . import BACKGROUND, EMPHASIS, MISSING, NEUTRAL, OBSERVED, REFERENCE, new_figure
+from . import BACKGROUND, EMPHASIS, MAX_VARIABLES_SHOWN, MISSING, NEUTRAL, OBSERVED, REFERENCE, new_figure, shown_of
 from .palette import strategy_colour, strategy_marker
 from ..cases import CompleteCaseFlow, CompletenessBaseline, StrategyComparison
 
@@ -44,6 +44,10 @@ def plot_completeness_differences(baseline: CompletenessBaseline, threshold: flo
     see Austin 2009, Stat Med 28:3083, for the statistic itself).
     """
     table = baseline.table
+    n_rows = len(table)
+    if n_rows > MAX_VARIABLES_SHOWN:  # the largest differences; the table keeps every row
+        keep = table["smd"].abs().fillna(0).sort_values(ascending=False, kind="stable").index[:MAX_VARIABLES_SHOWN]
+        table = table.loc[sorted(keep)]
     labels = [v if not lvl else f"{v}: {lvl}" for v, lvl in zip(table["variable"], table["level"])][::-1]
     smd = table["smd"].to_numpy(dtype=float)[::-1]
     figure, axes = new_figure(6.0, 0.3 * len(labels) + 1.6)
@@ -62,7 +66,8 @@ def plot_completeness_differences(baseline: CompletenessBaseline, threshold: flo
         axes.axvline(edge, color=NEUTRAL, linestyle=":", linewidth=0.8)
     axes.set_yticks(y, labels)
     axes.set_xlabel("standardised difference (complete minus incomplete rows)")
-    axes.set_title(f"Complete ({baseline.n_complete}) vs incomplete ({baseline.n_incomplete}) rows")
+    axes.set_title(f"Complete ({baseline.n_complete}) vs incomplete ({baseline.n_incomplete}) rows"
+                   + shown_of(len(table), n_rows, "variables and levels", "with the largest differences"))
     axes.legend(loc="best", frameon=False, fontsize=8)
     axes.spines[["top", "right"]].set_visible(False)
     return figure

@@ -17,7 +17,8 @@ import numpy as np
 import pandas as pd
 from matplotlib.lines import Line2D
 
-from . import BACKGROUND, EMPHASIS, GRID, MISSING, NEUTRAL, OBSERVED, REFERENCE, UNTESTED, new_figure
+from . import (BACKGROUND, EMPHASIS, GRID, MAX_VARIABLES_SHOWN, MISSING, NEUTRAL, OBSERVED, REFERENCE, UNTESTED,
+               new_figure, shown_of)
 from .palette import scale, text_on
 from ..inference import format_p
 from ..little import LittleTest
@@ -37,6 +38,16 @@ def relation_overview(groups: GroupComparison, annotate: Optional[bool] = None):
     rows = list(dict.fromkeys(table["incomplete_variable"]))
     columns = list(dict.fromkeys(list(rows) + list(table["compared_variable"])))
     columns = [c for c in columns if c in set(table["compared_variable"]) or c in rows]
+    n_rows, n_columns = len(rows), len(columns)
+    if n_rows > MAX_VARIABLES_SHOWN or n_columns > MAX_VARIABLES_SHOWN:
+        # the pairs with the largest differences decide which variables are shown
+        strength = table.assign(size=table["smd"].abs().fillna(0))
+        rows = [v for v in rows if v in set(strength.groupby("incomplete_variable")["size"].max()
+                                            .sort_values(ascending=False, kind="stable").index[:MAX_VARIABLES_SHOWN])]
+        columns = [c for c in columns if c in set(strength.groupby("compared_variable")["size"].max()
+                                                  .sort_values(ascending=False, kind="stable")
+                                                  .index[:MAX_VARIABLES_SHOWN])]
+        table = table[table["incomplete_variable"].isin(rows) & table["compared_variable"].isin(columns)]
     if not rows:
         figure, axes = new_figure(6, 2)
         axes.text(0.5, 0.5, "No variable has missing values: nothing to compare.", ha="center", va="center")
@@ -86,7 +97,9 @@ def relation_overview(groups: GroupComparison, annotate: Optional[bool] = None):
               Line2D([], [], marker="s", linestyle="", color=UNTESTED, markersize=9, label="not tested")]
     axes.legend(handles=legend, loc="upper left", bbox_to_anchor=(0, -0.32 if len(columns) > 6 else -0.2),
                 ncol=2, frameon=False, fontsize=8)
-    axes.set_title("Do rows lacking a value differ from rows that have it?", loc="left")
+    cut = (shown_of(len(rows), n_rows, "variables with missing values", "with the largest differences")
+           + shown_of(len(columns), n_columns, "compared variables", "with the largest differences"))
+    axes.set_title("Do rows lacking a value differ from rows that have it?" + cut, loc="left")
     return figure
 
 
