@@ -12,11 +12,10 @@ from gapbook.cases import (available_case_summary, compare_strategies, complete_
                            complete_case_flow, completeness_baseline, pairwise_correlations)
 from gapbook.errors import InputError
 from gapbook.inference import standardised_difference
-from gapbook.models import AnalysisModel, analysis_model
+from gapbook.models import AnalysisModel
+from gapbook.stage import analysis_model
 
 TOL = 1e-8
-
-
 
 
 def _assert_matches(ours: pd.DataFrame, reference, n: int) -> None:
@@ -41,25 +40,25 @@ def test_gaussian_complete_case_equals_statsmodels_on_penguins(penguins, robust)
     # Source: statsmodels OLS (HC1 sandwich when robust) on palmerpenguins rows complete for the model.
     formula = "body_mass_g ~ flipper_length_mm + C(species) + sex"
     model = AnalysisModel(formula, "gaussian", exposure="flipper_length_mm", robust=robust)
-    result = complete_case_analysis(penguins, model)
+    result = complete_case_analysis(penguins, model=model)
     by_hand = penguins.dropna(subset=["body_mass_g", "flipper_length_mm", "species", "sex"])
     # gapbook keeps t intervals (df = n - p) for OLS with sandwich errors; statsmodels does so with use_t=True.
     reference = smf.ols(formula, data=by_hand).fit(cov_type="HC1" if robust else "nonrobust", use_t=True)
     assert len(by_hand) == 333  # palmerpenguins documents 333 rows with sex recorded (11 of 344 lack it)
-    _assert_matches(result.estimates, reference, len(by_hand))
+    _assert_matches(result.estimates(), reference, len(by_hand))
     assert result.exposure_terms == ("flipper_length_mm",)
 
 
 def test_binomial_complete_case_equals_statsmodels_with_odds_ratios(penguins):
     # Source: statsmodels GLM binomial (logit) fitted to a 0/1 outcome made by hand (male = 1).
     formula = "sex ~ body_mass_g + bill_depth_mm + C(species)"
-    result = complete_case_analysis(penguins, AnalysisModel(formula, "binomial", exposure="body_mass_g"))
+    result = complete_case_analysis(penguins, model=AnalysisModel(formula, "binomial", exposure="body_mass_g"))
     by_hand = penguins.dropna(subset=["sex", "body_mass_g", "bill_depth_mm"]).assign(
         male=lambda d: (d["sex"] == "male").astype(float))
     reference = smf.glm("male ~ body_mass_g + bill_depth_mm + C(species)", data=by_hand,
                         family=sm.families.Binomial()).fit()
-    _assert_matches(result.estimates, reference, len(by_hand))
-    row = result.estimates.set_index("term").loc["body_mass_g"]
+    _assert_matches(result.estimates(), reference, len(by_hand))
+    row = result.estimates().set_index("term").loc["body_mass_g"]
     assert row["odds_ratio"] == pytest.approx(np.exp(reference.params["body_mass_g"]), rel=TOL)
     assert row["odds_ratio_ci_upper"] == pytest.approx(np.exp(reference.conf_int().loc["body_mass_g", 1]), rel=TOL)
 
@@ -77,13 +76,13 @@ def test_poisson_with_offset_equals_statsmodels():
     data.loc[rng.random(n) < 0.15, "x"] = np.nan
     data.loc[rng.random(n) < 0.05, "time"] = np.nan
     model = AnalysisModel("events ~ x + C(group)", "poisson", exposure="x", offset="time")
-    result = complete_case_analysis(data, model)
+    result = complete_case_analysis(data, model=model)
     by_hand = data.dropna()
     reference = smf.glm("events ~ x + C(group)", data=by_hand, family=sm.families.Poisson(),
                         offset=np.log(by_hand["time"])).fit()
-    _assert_matches(result.estimates, reference, len(by_hand))
-    assert "rate_ratio" in result.estimates.columns
-    flow = result.flow.table.set_index("variable")
+    _assert_matches(result.estimates(), reference, len(by_hand))
+    assert "rate_ratio" in result.estimates().columns
+    flow = result.flow.steps.set_index("variable")
     assert flow.loc["time", "role"] == "offset"
 
 
@@ -92,8 +91,9 @@ def test_poisson_with_offset_equals_statsmodels():
 def test_demo_flow_table_adds_up(demo):
     params, study = demo
     model = analysis_model(params)
-    result = complete_case_analysis(study.data, model, study.reasons, study.not_applicable)
-    table = result.flow.table
+    result = complete_case_analysis(study.data, model=model, reasons=study.reasons,
+                                    not_applicable=study.not_applicable)
+    table = result.flow.steps
     steps = table[table["step"] == "excluded"].set_index("variable")
     # The formula's order as a reader sees it: outcome, then the right-hand side left to right.
     order = ["hba1c_12m", "arm", "hba1c_0", "age", "sex", "bmi", "clinic"]
@@ -109,15 +109,15 @@ def test_demo_flow_table_adds_up(demo):
     assert len(study.data) - steps["n_excluded"].sum() == result.flow.n_used == table["n_remaining"].iloc[-1]
     # Source: statsmodels' own listwise deletion of the same formula on the whole frame.
     assert result.flow.n_used == int(smf.ols(params.analysis.formula, data=study.data).fit().nobs)
-    assert result.fit.nobs == result.flow.n_used
+    assert result.model_fit.nobs == result.flow.n_used
     assert steps.loc["hba1c_12m", "reasons"].startswith("lost to follow-up")
 
 
 def test_demo_descriptives_equal_pandas(demo):
     params, study = demo
     model = analysis_model(params)
-    complete = complete_case_flow(study.data, model).complete
-    summary = available_case_summary(study.data, complete, study.types)
+    complete = complete_case_flow(study.data, model=model).complete
+    summary = available_case_summary(study.data, complete=complete, types=study.types)
     table = summary.descriptives.set_index(["variable", "statistic"])
     subset = study.data[complete.to_numpy()]
     # Source: pandas Series.mean / std (ddof 1) / median / quantile (linear), value_counts.
@@ -163,7 +163,7 @@ def test_standardised_differences_follow_austin_2009():
     # groups [1, 2, 3, 4] and [3, 4, 5]: means 2.5 and 4, variances 5/3 and 1 -> d = -1.5 / sqrt(4/3).
     data = pd.DataFrame({"v": [1.0, 2, 3, 4, 3, 4, 5], "b": ["y", "n", "y", "n", "y", "n", "n"]})
     complete = pd.Series([True] * 4 + [False] * 3)
-    table = completeness_baseline(data, complete).table.set_index(["variable", "level"])
+    table = completeness_baseline(data, complete=complete).differences.set_index(["variable", "level"])
     assert table.loc[("v", ""), "smd"] == pytest.approx(-1.5 / np.sqrt(4 / 3), rel=1e-12)
     # Proportions: p1 = 0.5, p0 = 1/3 -> d = (1/6) / sqrt((0.25 + 2/9) / 2).
     assert table.loc[("b", "y"), "smd"] == pytest.approx((1 / 6) / np.sqrt((0.25 + 2 / 9) / 2), rel=1e-12)
@@ -172,11 +172,11 @@ def test_standardised_differences_follow_austin_2009():
 
 def test_demo_completeness_baseline_uses_fully_observed_variables(demo):
     params, study = demo
-    complete = complete_case_flow(study.data, analysis_model(params)).complete
-    baseline = completeness_baseline(study.data, complete, study.types)
+    complete = complete_case_flow(study.data, model=analysis_model(params)).complete
+    baseline = completeness_baseline(study.data, complete=complete, types=study.types)
     assert set(baseline.variables) == {c for c in study.data.columns if study.data[c].notna().all()}
     assert baseline.n_complete + baseline.n_incomplete == len(study.data)
-    row = baseline.table.set_index(["variable", "level"]).loc[("on_insulin", "yes")]
+    row = baseline.differences.set_index(["variable", "level"]).loc[("on_insulin", "yes")]
     # Source: pandas group means of the indicator in each subset.
     on = (study.data["on_insulin"] == "yes")
     assert row["complete"] == pytest.approx(on[complete].mean())
@@ -200,7 +200,7 @@ def _complete_case_slopes(depends_on: str, replicates: int = 200, n: int = 500, 
         y = 1 + x + z + rng.normal(size=n)
         driver = x if depends_on == "covariate" else y - 1
         z_seen = np.where(rng.random(n) < _expit(-0.5 + 1.5 * driver), np.nan, z)
-        slopes[r] = complete_case_analysis(pd.DataFrame({"y": y, "x": x, "z": z_seen}), model).fit.params[1]
+        slopes[r] = complete_case_analysis(pd.DataFrame({"y": y, "x": x, "z": z_seen}), model=model).model_fit.coefficients[1]
     return slopes
 
 
@@ -225,18 +225,18 @@ def test_complete_cases_biased_when_missingness_depends_on_outcome():
 
 def test_unknown_column_names_it(penguins):
     with pytest.raises(InputError, match="'flipper_mm' is not a column.*did you mean 'flipper_length_mm'"):
-        complete_case_analysis(penguins, AnalysisModel("body_mass_g ~ flipper_mm + species"))
+        complete_case_analysis(penguins, model=AnalysisModel("body_mass_g ~ flipper_mm + species"))
 
 
 def test_unsupported_family_names_it(penguins):
-    with pytest.raises(InputError, match="analysis.family: 'gamma'"):
-        complete_case_analysis(penguins, AnalysisModel("body_mass_g ~ species", family="gamma"))
+    with pytest.raises(InputError, match="^family: 'gamma'"):
+        complete_case_analysis(penguins, model=AnalysisModel("body_mass_g ~ species", family="gamma"))
 
 
 def test_outcome_without_observed_values(penguins):
     data = penguins.assign(body_mass_g=np.nan)
     with pytest.raises(InputError, match="outcome 'body_mass_g' has no observed values"):
-        complete_case_analysis(data, AnalysisModel("body_mass_g ~ species"))
+        complete_case_analysis(data, model=AnalysisModel("body_mass_g ~ species"))
 
 
 def test_model_without_complete_case(penguins):
@@ -244,7 +244,7 @@ def test_model_without_complete_case(penguins):
     data.loc[data.index[::2], "bill_depth_mm"] = np.nan
     data.loc[data.index[1::2], "flipper_length_mm"] = np.nan
     with pytest.raises(InputError, match="no row has every model variable observed"):
-        complete_case_analysis(data, AnalysisModel("body_mass_g ~ bill_depth_mm + flipper_length_mm"))
+        complete_case_analysis(data, model=AnalysisModel("body_mass_g ~ bill_depth_mm + flipper_length_mm"))
 
 
 def test_missing_params_formula_is_an_input_error(demo):
@@ -258,12 +258,12 @@ def test_missing_params_formula_is_an_input_error(demo):
 
 def test_comparison_on_ratio_scale_and_forest_plot(penguins):
     formula = "sex ~ body_mass_g + C(species)"
-    cc = complete_case_analysis(penguins, AnalysisModel(formula, "binomial", exposure="C(species)"))
-    other = cc.estimates.assign(strategy="multiple_imputation", std_error=cc.estimates["std_error"] * 0.9)
-    estimates = pd.concat([cc.estimates, other], ignore_index=True)
-    comparison = compare_strategies(estimates, "species", "binomial")
+    cc = complete_case_analysis(penguins, model=AnalysisModel(formula, "binomial", exposure="C(species)"))
+    other = cc.estimates().assign(strategy="multiple_imputation", std_error=cc.estimates()["std_error"] * 0.9)
+    estimates = pd.concat([cc.estimates(), other], ignore_index=True)
+    comparison = compare_strategies(estimates, exposure="species", family="binomial")
     assert comparison.terms == ("C(species)[T.Chinstrap]", "C(species)[T.Gentoo]")
-    table = comparison.table
+    table = comparison.comparison
     assert list(table["strategy"]) == ["complete_case", "multiple_imputation"] * 2
     # Source: the odds ratio is exp(log-odds coefficient) (logistic model definition).
     assert np.allclose(table["odds_ratio"], np.exp(table["estimate"]), rtol=1e-12)
@@ -279,17 +279,17 @@ def test_comparison_on_ratio_scale_and_forest_plot(penguins):
 
 def test_comparison_of_gaussian_keeps_coefficient_scale(demo):
     params, study = demo
-    cc = complete_case_analysis(study.data, analysis_model(params))
-    comparison = compare_strategies(cc.estimates, list(cc.exposure_terms), "gaussian")
-    assert "odds_ratio" not in comparison.table.columns
-    assert comparison.table["term"].tolist() == ["arm[T.sms]"]
+    cc = complete_case_analysis(study.data, model=analysis_model(params))
+    comparison = compare_strategies(cc.estimates(), exposure=list(cc.exposure_terms), family="gaussian")
+    assert "odds_ratio" not in comparison.comparison.columns
+    assert comparison.comparison["term"].tolist() == ["arm[T.sms]"]
     # The demo's true effect is -0.40 (gapbook.demo docstring); the complete-case interval should hold it
     # since dropout depends on baseline HbA1c, a model covariate (MAR given covariates).
-    row = comparison.table.iloc[0]
+    row = comparison.comparison.iloc[0]
     assert row["ci_lower"] < -0.40 < row["ci_upper"]
 
 
 def test_binomial_family_with_a_measured_outcome_is_an_input_error(penguins):
     # A logistic model needs a 0/1 (or two-level) outcome; body mass in grams is neither.
     with pytest.raises(InputError, match="binomial needs a 0/1 or two-level outcome"):
-        complete_case_analysis(penguins, AnalysisModel("body_mass_g ~ species", family="binomial"))
+        complete_case_analysis(penguins, model=AnalysisModel("body_mass_g ~ species", family="binomial"))

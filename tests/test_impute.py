@@ -15,10 +15,12 @@ from statsmodels.miscmodels.ordinal_model import OrderedModel
 from gapbook.impute import numerics
 from gapbook.demo import TRUE_ARM_EFFECT, demo_params
 from gapbook.errors import InputError
-from gapbook.impute import impute_chained, plan_imputation
+from gapbook.impute import impute_chained
 from gapbook.intake import load_study
+from gapbook.models import AnalysisModel
 from gapbook.params import Params
 from gapbook.pool import rubin_pool
+from gapbook.stage import open_stage
 
 
 def _slope(x: np.ndarray, y: np.ndarray):
@@ -46,7 +48,7 @@ def test_mar_coverage_and_bias_where_complete_cases_are_biased():
         data = pd.DataFrame({"y": y, "x": np.where(missing, np.nan, x), "z": z})
         result = impute_chained(data, m=m, iterations=5, seed=r, progress=False)
         fits = [_slope(result.completed(i)["x"].to_numpy(), y) for i in range(m)]
-        rubin = rubin_pool(np.array([[f[0]] for f in fits]), np.array([[f[1]] for f in fits]), fits[0][2])
+        rubin = rubin_pool(np.array([[f[0]] for f in fits]), np.array([[f[1]] for f in fits]), df_complete=fits[0][2])
         se = float(np.sqrt(rubin.total[0]))
         covered += abs(rubin.estimate[0] - truth) <= stats.t.ppf(0.975, rubin.df[0]) * se
         pooled.append(rubin.estimate[0])
@@ -140,11 +142,9 @@ def test_ordinal_and_multinomial_fits_equal_statsmodels():
     assert np.allclose(ours_mn.reshape(2, 3).T, mn.params, atol=1e-6)
 
 
-def test_passive_variable_equals_its_formula_in_every_completed_dataset():
-    params = demo_params()
-    study = load_study(params)
-    plan = plan_imputation(params, study)
-    result = plan.run(m=3, iterations=3, progress=False)
+def test_passive_variable_equals_its_formula_in_every_completed_dataset(tmp_path):
+    plan = open_stage(None, tmp_path).imputation_plan()      # the demo params' plan, as the impute stage makes it
+    result = plan.run(m=3, iterations=3)
     for frame in result.completed_all():
         formula = frame["weight_kg"] / (frame["height_cm"] / 100) ** 2
         imputed = plan.impute_mask["bmi"].to_numpy()
@@ -184,7 +184,7 @@ def test_penguins_sex_missing_in_few_rows():
     result = impute_chained(data, m=10, iterations=5, seed=2026, progress=False)
     assert result.methods["sex"] == "logistic"
     formula = "body_mass_g ~ flipper_length_mm + sex + species"
-    pooled = result.fit(formula).table.set_index("term")
+    pooled = result.analyse(AnalysisModel(formula)).estimates().set_index("term")
     complete = smf.ols(formula, penguins).fit()
     slope = pooled.loc["flipper_length_mm"]
     assert abs(slope["estimate"] - complete.params["flipper_length_mm"]) < 0.25 * complete.bse["flipper_length_mm"]
@@ -194,10 +194,10 @@ def test_penguins_sex_missing_in_few_rows():
     assert set(imputed_sex) <= {"female", "male"}
 
 
-def test_demo_recovers_the_arm_effect_and_keeps_term_names():
-    params = demo_params()
-    study = load_study(params)
-    plan = plan_imputation(params, study)
+def test_demo_recovers_the_arm_effect_and_keeps_term_names(tmp_path):
+    ctx = open_stage(None, tmp_path)
+    params, study = ctx.params, ctx.study
+    plan = ctx.imputation_plan()
     assert plan.methods["bmi"] == "passive" and plan.methods["education"] == "ordinal"
     assert "insulin_dose" not in plan.data.columns
     result = plan.run(m=5, iterations=5, progress=False)
@@ -205,7 +205,7 @@ def test_demo_recovers_the_arm_effect_and_keeps_term_names():
     for column in plan.data.columns:
         assert completed[column].dtype == plan.data[column].dtype
     assert completed.isna().sum().sum() == 0
-    table = plan.fit(result).table.set_index("term")
+    table = result.analyse(plan.model).estimates().set_index("term")
     complete_case = smf.ols(params.analysis.formula, study.data).fit()
     assert list(table.index) == list(complete_case.params.index)     # terms join with a plain statsmodels fit
     arm = table.loc["arm[T.sms]"]
@@ -268,30 +268,29 @@ def test_convergence_table_and_summary():
     assert len(trace) == 3 * 4 * 2 and set(trace["chain"]) == {0, 1, 2}
     last = trace[(trace.chain == 1) & (trace.iteration == 4) & (trace.variable == "score")]["mean"].iloc[0]
     assert last == pytest.approx(result.completed(1).loc[data["score"].isna(), "score"].mean())
-    summary = result.summary()
+    summary = result.observed_and_imputed()
     assert list(summary["variable"]) == ["score", "nominal"]
     assert summary.loc[0, "n_imputed"] == int(data["score"].isna().sum())
 
 
-def test_bad_input_exits_with_clear_message():
+def test_bad_input_exits_with_clear_message(tmp_path):
     data = pd.DataFrame({"x": [1.0, np.nan, 3.0, 4.0], "y": [1.0, 2.0, np.nan, 5.0],
                          "sex": pd.Categorical(["a", "b", None, "a"]), "empty": [np.nan] * 4})
-    with pytest.raises(InputError, match="imputation.m"):
+    with pytest.raises(InputError, match="^m: "):
         impute_chained(data[["x", "y"]], m=0)
-    with pytest.raises(InputError, match="imputation.iterations"):
+    with pytest.raises(InputError, match="^iterations: "):
         impute_chained(data[["x", "y"]], iterations=0)
     with pytest.raises(InputError, match="'empty'.*no observed values|empty: the column has no observed values"):
         impute_chained(data, m=1, progress=False)
-    with pytest.raises(InputError, match="imputation.methods.sex: 'pmm' does not suit a binary"):
+    with pytest.raises(InputError, match="^methods.sex: 'pmm' does not suit the binary"):
         impute_chained(data[["x", "y", "sex"]], methods={"sex": "pmm"}, m=1, progress=False)
-    with pytest.raises(InputError, match="imputation.methods.wieght"):
+    with pytest.raises(InputError, match="^methods.wieght: 'wieght' is not a column"):
         impute_chained(data[["x", "y"]], methods={"wieght": "pmm"}, m=1, progress=False)
-    # from params: the message names the params key
+    # through the notebook-facing layer: the message names the params file and key
     raw = demo_params().to_dict()
     raw["imputation"]["methods"] = {"sex": "normal"}
-    params = Params.from_dict(raw)
-    with pytest.raises(InputError, match="imputation.methods.sex"):
-        plan_imputation(params, load_study(params))
+    with pytest.raises(InputError, match=r"demo_params.yaml: imputation.methods.sex: 'normal' does not suit the binary"):
+        open_stage(raw, tmp_path).imputation_plan()
 
 
 # ---------------------------------------------------------------------------
@@ -325,7 +324,7 @@ def _pooled_slope(x: np.ndarray, y: np.ndarray, missing: np.ndarray, fills) -> t
         completed = y.copy()
         completed[missing] = fill
         fits.append(_slope(x, completed))
-    rubin = rubin_pool(np.array([[f[0]] for f in fits]), np.array([[f[1]] for f in fits]), fits[0][2])
+    rubin = rubin_pool(np.array([[f[0]] for f in fits]), np.array([[f[1]] for f in fits]), df_complete=fits[0][2])
     return float(rubin.estimate[0]), float(np.sqrt(rubin.total[0])), float(rubin.df[0])
 
 

@@ -7,7 +7,6 @@ import numpy as np
 import pandas as pd
 import pytest
 import statsmodels.api as sm
-from palmerpenguins import load_penguins
 from scipy import optimize, stats
 from statsmodels.stats.multitest import multipletests
 
@@ -24,8 +23,9 @@ from gapbook.intake import load_study
 # fixtures
 
 @pytest.fixture(scope="module")
-def penguins() -> pd.DataFrame:
-    frame = load_penguins()
+def typed_penguins(penguins) -> pd.DataFrame:
+    """The shared penguins with categories as Categoricals, year as a number and a small 0/1 group."""
+    frame = penguins.copy()
     frame["species"] = pd.Categorical(frame["species"])
     frame["island"] = pd.Categorical(frame["island"])
     frame["sex"] = pd.Categorical(frame["sex"], categories=["female", "male"])
@@ -44,7 +44,8 @@ PENGUIN_TYPES = {"species": "nominal", "island": "nominal", "bill_length_mm": "c
 def demo():
     params = demo_params()
     study = load_study(params)
-    return study, mech.assess_study(study, params.mechanism)
+    return study, mech.assess_study(study, variables=params.mechanism.variables, alpha=params.mechanism.alpha,
+                                        min_missing=params.mechanism.min_missing)
 
 
 def monotone_bivariate(seed: int, n: int = 400, r: int = 260) -> pd.DataFrame:
@@ -86,8 +87,8 @@ def test_em_equals_closed_form_for_monotone_bivariate_normal(seed):
     np.testing.assert_allclose(em.covariance.to_numpy(), covariance, atol=1e-6, rtol=0)
 
 
-def test_em_with_no_missing_values_gives_sample_moments(penguins):
-    frame = penguins[["bill_length_mm", "bill_depth_mm", "flipper_length_mm", "body_mass_g"]].dropna()
+def test_em_with_no_missing_values_gives_sample_moments(typed_penguins):
+    frame = typed_penguins[["bill_length_mm", "bill_depth_mm", "flipper_length_mm", "body_mass_g"]].dropna()
     em = little.em_multivariate_normal(frame)
     # Complete data: the ML estimates are the sample mean and the covariance with divisor n (numpy).
     np.testing.assert_allclose(em.mean.to_numpy(), frame.mean().to_numpy(), rtol=1e-10)
@@ -188,8 +189,8 @@ def test_little_rejects_under_mar():
     assert rejected / 200 >= 0.9
 
 
-def test_little_with_one_pattern_is_zero_with_zero_df(penguins):
-    frame = penguins[["bill_length_mm", "bill_depth_mm", "body_mass_g"]].dropna()
+def test_little_with_one_pattern_is_zero_with_zero_df(typed_penguins):
+    frame = typed_penguins[["bill_length_mm", "bill_depth_mm", "body_mass_g"]].dropna()
     test = little.little_mcar_test(frame)
     assert test.statistic == 0.0 and test.df == 0 and test.n_patterns == 1
     assert np.isnan(test.p_value)
@@ -214,32 +215,34 @@ def test_little_singular_covariance_is_explained_not_raised():
     assert np.isnan(test.statistic) and np.isnan(test.p_value)
     note = " ".join(test.notes)
     assert "singular" in note and "total" in note and "mechanism.variables" in note
-    assert test.table().shape[0] == 1
+    assert test.as_row().shape[0] == 1
 
 
 def test_mcar_variables_binary_codes_and_not_applicable(demo):
     study, result = demo
-    frame, notes = mech.mcar_test_data(study.data, study.types, study.not_applicable)
+    frame, notes = mech.mcar_test_data(study.data, types=study.types, not_applicable=study.not_applicable)
     # Binary text enters as 0/1 with the second declared level as 1 (arm: control, sms).
     assert set(frame["arm"].unique()) == {0.0, 1.0}
     assert (frame["arm"] == 1).sum() == (study.data["arm"] == "sms").sum()
     assert "clinic" not in frame.columns and "insulin_dose" not in frame.columns
     assert any("insulin_dose" in note for note in notes)
-    with pytest.raises(InputError, match="mechanism.variables: 'hba1c_O'.*did you mean 'hba1c_0'"):
-        mech.mcar_test_data(study.data, study.types, study.not_applicable, ["hba1c_O"])
+    with pytest.raises(InputError, match="^variables: 'hba1c_O'.*did you mean 'hba1c_0'"):
+        mech.mcar_test_data(study.data, types=study.types, not_applicable=study.not_applicable, variables=["hba1c_O"])
     with pytest.raises(InputError, match="'clinic' is nominal"):
-        mech.mcar_test_data(study.data, study.types, study.not_applicable, ["clinic", "age"])
-    chosen, notes = mech.mcar_test_data(study.data, study.types, study.not_applicable, ["insulin_dose", "age"])
+        mech.mcar_test_data(study.data, types=study.types, not_applicable=study.not_applicable,
+                            variables=["clinic", "age"])
+    chosen, notes = mech.mcar_test_data(study.data, types=study.types, not_applicable=study.not_applicable,
+                                         variables=["insulin_dose", "age"])
     assert len(chosen) == int((~study.not_applicable["insulin_dose"]).sum())
 
 
 # ---------------------------------------------------------------------------
 # group comparisons
 
-def test_group_tests_equal_scipy(penguins):
-    frame = penguins.drop(columns=["species"])
-    groups = mech.compare_groups(frame, PENGUIN_TYPES)
-    table = groups.table.set_index(["incomplete_variable", "compared_variable"])
+def test_group_tests_equal_scipy(typed_penguins):
+    frame = typed_penguins.drop(columns=["species"])
+    groups = mech.compare_groups(frame, types=PENGUIN_TYPES)
+    table = groups.comparisons.set_index(["incomplete_variable", "compared_variable"])
     sex_missing = frame["sex"].isna()
 
     # Welch t-test: scipy.stats.ttest_ind(equal_var=False).
@@ -273,23 +276,23 @@ def test_group_tests_equal_scipy(penguins):
     assert row["p_value"] == pytest.approx(fisher.pvalue, rel=1e-12)
 
     # Holm adjustment over the whole table: statsmodels multipletests(method="holm").
-    tested = groups.table["p_value"].notna()
-    holm = multipletests(groups.table.loc[tested, "p_value"], method="holm")[1]
-    np.testing.assert_allclose(groups.table.loc[tested, "p_adjusted"], holm, rtol=1e-12)
+    tested = groups.comparisons["p_value"].notna()
+    holm = multipletests(groups.comparisons.loc[tested, "p_value"], method="holm")[1]
+    np.testing.assert_allclose(groups.comparisons.loc[tested, "p_adjusted"], holm, rtol=1e-12)
 
 
-def test_binary_smd_uses_the_proportions_formula(penguins):
-    groups = mech.compare_groups(penguins.drop(columns=["species"]), PENGUIN_TYPES)
-    row = groups.table.set_index(["incomplete_variable", "compared_variable"]).loc[("sex", "torgersen")]
-    missing = penguins["sex"].isna()
-    p1, p0 = penguins.loc[missing, "torgersen"].mean(), penguins.loc[~missing, "torgersen"].mean()
+def test_binary_smd_uses_the_proportions_formula(typed_penguins):
+    groups = mech.compare_groups(typed_penguins.drop(columns=["species"]), types=PENGUIN_TYPES)
+    row = groups.comparisons.set_index(["incomplete_variable", "compared_variable"]).loc[("sex", "torgersen")]
+    missing = typed_penguins["sex"].isna()
+    p1, p0 = typed_penguins.loc[missing, "torgersen"].mean(), typed_penguins.loc[~missing, "torgersen"].mean()
     # Austin (2009, Stat Med 28:3083), binary variables: (p1 - p0) / sqrt((p1(1-p1) + p0(1-p0)) / 2).
     assert row["smd"] == pytest.approx((p1 - p0) / np.sqrt((p1 * (1 - p1) + p0 * (1 - p0)) / 2), rel=1e-12)
 
 
 def test_not_applicable_rows_are_in_neither_group(demo):
     study, result = demo
-    table = result.groups.table.set_index(["incomplete_variable", "compared_variable"])
+    table = result.groups.comparisons.set_index(["incomplete_variable", "compared_variable"])
     applies = int((~study.not_applicable["insulin_dose"]).sum())
     row = table.loc[("insulin_dose", "arm")]
     assert row["n_missing_group"] == int(study.missing["insulin_dose"].sum())
@@ -301,16 +304,16 @@ def test_not_applicable_rows_are_in_neither_group(demo):
 # ---------------------------------------------------------------------------
 # missingness models
 
-def test_missingness_model_equals_statsmodels_logit(penguins):
-    frame = penguins.drop(columns=["species", "torgersen"])
-    models = mech.missingness_models(frame, PENGUIN_TYPES, min_missing=5)
-    fit = models.fits.set_index("incomplete_variable").loc["sex"]
+def test_missingness_model_equals_statsmodels_logit(typed_penguins):
+    frame = typed_penguins.drop(columns=["species", "torgersen"])
+    models = mech.missingness_models(frame, types=PENGUIN_TYPES, min_missing=5)
+    fit = models.model_fit.set_index("incomplete_variable").loc["sex"]
     # Fully observed predictors: island and year (the measurements miss 2 rows).
     assert fit["predictors"] == "island,year"
     indicator = frame["sex"].isna().astype(float)
     design = sm.add_constant(pd.get_dummies(frame["island"], drop_first=True, dtype=float).join(frame["year"]))
     reference = sm.Logit(indicator, design).fit(disp=0)
-    terms = models.table[models.table["incomplete_variable"] == "sex"]
+    terms = models.terms[models.terms["incomplete_variable"] == "sex"]
     # statsmodels Logit on the same rows and design: same coefficients, SEs and Wald CIs.
     np.testing.assert_allclose(terms["coefficient"], reference.params.to_numpy(), rtol=1e-5)
     np.testing.assert_allclose(terms["std_error"], reference.bse.to_numpy(), rtol=1e-5)
@@ -325,20 +328,20 @@ def test_missingness_model_equals_statsmodels_logit(penguins):
     assert fit["auc"] == pytest.approx(u / (positive.sum() * (~positive).sum()), rel=1e-9)
 
 
-def test_perfect_separation_is_reported_in_words(penguins):
+def test_perfect_separation_is_reported_in_words(typed_penguins):
     # No Chinstrap penguin lacks sex (palmerpenguins): species separates the indicator.
-    frame = penguins[["species", "year", "sex"]]
-    models = mech.missingness_models(frame, PENGUIN_TYPES, min_missing=5)
-    fit = models.fits.set_index("incomplete_variable").loc["sex"]
+    frame = typed_penguins[["species", "year", "sex"]]
+    models = mech.missingness_models(frame, types=PENGUIN_TYPES, min_missing=5)
+    fit = models.model_fit.set_index("incomplete_variable").loc["sex"]
     assert bool(fit["separation"])
     assert "perfect separation" in fit["note"] and "species[T.Chinstrap]" in fit["note"]
-    assert models.table["odds_ratio"].isna().all()
+    assert models.terms["odds_ratio"].isna().all()
     assert any("perfect separation" in s for s in mech.model_sentences(models))
 
 
-def test_too_few_missing_values_are_not_modelled(penguins):
-    models = mech.missingness_models(penguins, PENGUIN_TYPES, min_missing=10)
-    fits = models.fits.set_index("incomplete_variable")
+def test_too_few_missing_values_are_not_modelled(typed_penguins):
+    models = mech.missingness_models(typed_penguins, types=PENGUIN_TYPES, min_missing=10)
+    fits = models.model_fit.set_index("incomplete_variable")
     assert fits.loc["bill_length_mm", "note"].startswith("not modelled: 2 missing")
     assert np.isnan(fits.loc["bill_length_mm", "auc"])
 
@@ -352,7 +355,7 @@ FORBIDDEN = re.compile(r"\b(data|values|they) (are|is) (MCAR|MAR|missing complet
 
 def test_demo_outcome_missingness_relates_to_baseline_hba1c(demo):
     study, result = demo
-    row = result.groups.table.set_index(["incomplete_variable", "compared_variable"]).loc[("hba1c_12m", "hba1c_0")]
+    row = result.groups.comparisons.set_index(["incomplete_variable", "compared_variable"]).loc[("hba1c_12m", "hba1c_0")]
     # By construction of the demo (gapbook.demo): logit P(dropout) = -2.3 + 0.55 (baseline HbA1c - 8).
     assert row["test"] == "Welch t-test"
     assert bool(row["evidence"]) and row["p_adjusted"] < 0.001
@@ -374,7 +377,7 @@ def test_wording_when_there_is_no_evidence():
     values = rng.normal(size=(300, 3))
     values[rng.random(values.shape) < 0.1] = np.nan
     frame = pd.DataFrame(values, columns=["a", "b", "c"])
-    result = mech.assess_mechanism(frame, {c: "continuous" for c in frame})
+    result = mech.assess_mechanism(frame, types={c: "continuous" for c in frame})
     first = result.sentences[0]
     assert result.mcar.p_value >= 0.05          # MCAR by construction; with this seed the test does not reject
     assert first.startswith("Little's test gives no evidence against MCAR (") and "p = " in first
@@ -389,8 +392,8 @@ def test_wording_when_there_is_no_evidence():
 def test_complete_data_runs_without_tests():
     rng = np.random.default_rng(4)
     frame = pd.DataFrame({"a": rng.normal(size=40), "g": pd.Categorical(rng.choice(["x", "y"], 40))})
-    result = mech.assess_mechanism(frame, {"a": "continuous", "g": "binary"})
-    assert result.groups.table.empty and result.models.fits.empty
+    result = mech.assess_mechanism(frame, types={"a": "continuous", "g": "binary"})
+    assert result.groups.comparisons.empty and result.models.model_fit.empty
     assert result.mcar.df == 0 and result.mcar.statistic == 0.0
     assert result.sentences[-2].startswith(MAR_CAUTION)
 
@@ -403,7 +406,7 @@ def test_figures_draw_from_result_objects(demo):
     overview = plots.relation_overview(result.groups)
     # One dot per relation with Holm-adjusted p < alpha.
     dots = sum(len(c.get_offsets()) for c in overview.axes[0].collections if hasattr(c, "get_offsets"))
-    assert dots == int(result.groups.table["evidence"].sum())
+    assert dots == int(result.groups.comparisons["evidence"].sum())
     strongest = plots.strongest_relations(result.groups, top=4)
     titles = [ax.get_title(loc="left") for ax in strongest.axes if ax.get_title(loc="left")]
     assert titles[0].startswith("hba1c_0 by whether hba1c_12m is missing")

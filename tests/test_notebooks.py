@@ -20,10 +20,14 @@ def test_notebook_is_thin_and_parameterised(path):
     assert len(tagged) == 1
     source = "".join(tagged[0]["source"])
     assert "params = None" in source and "out_dir" in source
-    assert "open_stage(params, out_dir)" in "".join("".join(c["source"]) for c in code)
+    text = "".join("".join(c["source"]) for c in code)
+    assert "open_stage(params, out_dir)" in text
+    # thin: calls, display and prose; the logic lives in the package (issue 12), and a page shows no
+    # timings or printed lines (issue 10)
+    for word in ("def ", "class ", "print(", "perf_counter", "import time", "tqdm"):
+        assert word not in text, word
 
 
-def test_every_notebook_is_a_registered_stage():
-    assert sorted(p.name for p in NOTEBOOKS.glob("*.ipynb")) == sorted(
-        f for f in STAGES.values() if (NOTEBOOKS / f).is_file())
-    assert (NOTEBOOKS / STAGES["audit"]).is_file()
+def test_every_stage_has_its_notebook_and_every_notebook_is_a_stage():
+    # A registered stage without its notebook must fail here, not be filtered out.
+    assert sorted(p.name for p in NOTEBOOKS.glob("*.ipynb")) == sorted(STAGES.values())

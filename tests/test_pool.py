@@ -20,7 +20,7 @@ VARIANCES = np.array([[0.040, 0.010], [0.050, 0.012], [0.045, 0.011], [0.042, 0.
 
 
 def test_rubin_rules_by_hand():
-    pooled = rubin_pool(ESTIMATES, VARIANCES)
+    rubin = rubin_pool(ESTIMATES, VARIANCES)
     m = 4
     for j in range(2):
         q = ESTIMATES[:, j]
@@ -32,17 +32,17 @@ def test_rubin_rules_by_hand():
         r = (1 + 1 / m) * b / ubar                                 # relative increase in variance, eq. 3.1.7
         nu = (m - 1) * (1 + 1 / r) ** 2                            # eq. 3.1.6
         fmi = (r + 2 / (nu + 3)) / (r + 1)                         # Rubin (1987) eq. 3.1.10
-        assert pooled.estimate[j] == pytest.approx(qbar, rel=1e-12)
-        assert pooled.within[j] == pytest.approx(ubar, rel=1e-12)
-        assert pooled.between[j] == pytest.approx(b, rel=1e-12)
-        assert pooled.total[j] == pytest.approx(t, rel=1e-12)
-        assert pooled.riv[j] == pytest.approx(r, rel=1e-12)
-        assert pooled.df[j] == pytest.approx(nu, rel=1e-12)       # no complete-data df: large-sample value
-        assert pooled.fmi[j] == pytest.approx(fmi, rel=1e-12)
+        assert rubin.estimate[j] == pytest.approx(qbar, rel=1e-12)
+        assert rubin.within[j] == pytest.approx(ubar, rel=1e-12)
+        assert rubin.between[j] == pytest.approx(b, rel=1e-12)
+        assert rubin.total[j] == pytest.approx(t, rel=1e-12)
+        assert rubin.riv[j] == pytest.approx(r, rel=1e-12)
+        assert rubin.df[j] == pytest.approx(nu, rel=1e-12)       # no complete-data df: large-sample value
+        assert rubin.fmi[j] == pytest.approx(fmi, rel=1e-12)
     # worked numbers for parameter 1, computed by hand: qbar = 1.075, B = 0.0291667, W = 0.04425
-    assert pooled.estimate[0] == pytest.approx(1.075)
-    assert pooled.between[0] == pytest.approx(0.0875 / 3)
-    assert pooled.total[0] == pytest.approx(0.04425 + 1.25 * 0.0875 / 3)
+    assert rubin.estimate[0] == pytest.approx(1.075)
+    assert rubin.between[0] == pytest.approx(0.0875 / 3)
+    assert rubin.total[0] == pytest.approx(0.04425 + 1.25 * 0.0875 / 3)
 
 
 def test_barnard_rubin_df_published_formula():
@@ -54,25 +54,25 @@ def test_barnard_rubin_df_published_formula():
     nu_m = (m - 1) / gamma ** 2
     nu_obs = (nu_com + 1) / (nu_com + 3) * nu_com * (1 - gamma)
     expected = 1 / (1 / nu_m + 1 / nu_obs)
-    got = barnard_rubin_df(m, np.array([b]), np.array([t]), nu_com)[0]
+    got = barnard_rubin_df(m, np.array([b]), np.array([t]), df_complete=nu_com)[0]
     assert got == pytest.approx(expected, rel=1e-12)
     # worked numbers: gamma = 0.024 / 0.074, nu_m = 38.03, nu_obs = 19.04, nu_BR = 12.69 (by hand)
     assert gamma == pytest.approx(0.324324, rel=1e-5)
     assert got == pytest.approx(12.69, abs=0.01)
     # properties stated in the paper: nu_BR never exceeds nu_com, and tends to Rubin's nu_m as nu_com grows
     assert got < nu_com
-    assert barnard_rubin_df(m, np.array([b]), np.array([t]), 1e9)[0] == pytest.approx(nu_m, rel=1e-6)
+    assert barnard_rubin_df(m, np.array([b]), np.array([t]), df_complete=1e9)[0] == pytest.approx(nu_m, rel=1e-6)
 
 
 def test_t_intervals_use_barnard_rubin_df():
     fits = _penguin_fits(m=5)
     pooled = pool_fits(fits)
-    table = pooled.table.set_index("term")
-    df = pooled.pooled.df
-    se = np.sqrt(pooled.pooled.total)
+    table = pooled.estimates().set_index("term")
+    df = pooled.rubin.df
+    se = np.sqrt(pooled.rubin.total)
     crit = stats.t.ppf(0.975, df)   # scipy reference quantiles
     assert np.allclose(table["ci_upper"] - table["estimate"], crit * se, rtol=1e-10)
-    assert np.allclose(table["p_value"], 2 * stats.t.sf(np.abs(pooled.estimate / se), df), rtol=1e-10)
+    assert np.allclose(table["p_value"], 2 * stats.t.sf(np.abs(pooled.estimate() / se), df), rtol=1e-10)
     assert np.all(df < fits[0].df_resid)
 
 
@@ -88,7 +88,7 @@ def _penguin_fits(m: int, family: str = "gaussian"):
         frame["heavy"] = (frame["body_mass_g"] > 4200).astype(float)
         formula = ("body_mass_g ~ flipper_length_mm + sex + species" if family == "gaussian"
                    else "heavy ~ flipper_length_mm + sex")
-        fits.append(fit_model(frame, formula, family))
+        fits.append(fit_model(frame, formula=formula, family=family))
     return fits
 
 
@@ -102,27 +102,27 @@ def test_pooling_equals_statsmodels_combine():
         missing = frame["sex"].isna()
         frame.loc[missing, "sex"] = rng.choice(["female", "male"], size=int(missing.sum()))
         formula = "body_mass_g ~ flipper_length_mm + sex"
-        ours.append(fit_model(frame, formula))
+        ours.append(fit_model(frame, formula=formula))
         theirs.append(smf.ols(formula, frame).fit())
     combiner = MICE.__new__(MICE)
     combiner.results_list = theirs
     combiner.exog_names, combiner.endog_names, combiner.model_class = list(theirs[0].params.index), "y", sm.OLS
     reference = MICE.combine(combiner)
     pooled = pool_fits(ours)
-    assert np.allclose(pooled.estimate, reference.params, rtol=1e-10)
-    assert np.allclose(pooled.pooled.total, np.diag(reference.cov_params()), rtol=1e-10)
+    assert np.allclose(pooled.estimate(), reference.params, rtol=1e-10)
+    assert np.allclose(pooled.rubin.total, np.diag(reference.cov_params()), rtol=1e-10)
     # statsmodels' 'fraction of missing information' is (1 + 1/m) B / T, our lambda
-    assert np.allclose(pooled.pooled.lambda_, reference.frac_miss_info, rtol=1e-10)
+    assert np.allclose(pooled.rubin.lambda_, reference.frac_miss_info, rtol=1e-10)
 
 
 def test_odds_ratios_pooled_on_log_scale():
     fits = _penguin_fits(m=5, family="binomial")
     pooled = pool_fits(fits)
-    table = pooled.table
-    log_mean = np.mean([f.params for f in fits], axis=0)
+    table = pooled.estimates()
+    log_mean = np.mean([f.coefficients for f in fits], axis=0)
     assert np.allclose(table["estimate"], log_mean)
     assert np.allclose(table["odds_ratio"], np.exp(log_mean))      # exp of the pooled log odds ratio
-    assert not np.allclose(table["odds_ratio"], np.mean([np.exp(f.params) for f in fits], axis=0), rtol=1e-6)
+    assert not np.allclose(table["odds_ratio"], np.mean([np.exp(f.coefficients) for f in fits], axis=0), rtol=1e-6)
     assert np.allclose(table["odds_ratio_ci_lower"], np.exp(table["ci_lower"]))
     # GLMs have no complete-data df: Rubin's large-sample df apply
     assert np.all(np.isfinite(table["df"])) and set(table.columns) >= {"df", "fmi", "riv", "n_used"}
@@ -132,8 +132,8 @@ def test_d1_reduces_to_squared_t_for_one_parameter():
     # Li, Raghunathan & Rubin (1991) JASA 86:1065: with k = 1, D1 = qbar^2 / T, the square of Rubin's t
     cov = VARIANCES[:, :, None] * np.eye(2)[None]
     test = wald_d1(ESTIMATES, cov, [0])
-    pooled = rubin_pool(ESTIMATES, VARIANCES)
-    assert test.statistic == pytest.approx(pooled.estimate[0] ** 2 / pooled.total[0], rel=1e-12)
+    rubin = rubin_pool(ESTIMATES, VARIANCES)
+    assert test.statistic == pytest.approx(rubin.estimate[0] ** 2 / rubin.total[0], rel=1e-12)
 
 
 def test_d1_by_hand_two_parameters():
@@ -169,6 +169,6 @@ def test_bad_pooling_input():
     with pytest.raises(AnalysisError):
         wald_d1(ESTIMATES[:1], np.eye(2)[None], [0, 1])
     fits = _penguin_fits(m=2)
-    other = fit_model(load_penguins(), "body_mass_g ~ flipper_length_mm")
+    other = fit_model(load_penguins(), formula="body_mass_g ~ flipper_length_mm")
     with pytest.raises(AnalysisError):
         pool_fits([fits[0], other])

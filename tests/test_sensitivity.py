@@ -4,22 +4,21 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 import pytest
-from palmerpenguins import load_penguins
 from scipy import stats
 
 from gapbook import sensitivity
 from gapbook.errors import InputError
 from gapbook.impute import impute_chained
 from gapbook.models import AnalysisModel
-from gapbook.params import DeltaGrid, SensitivitySection
+from gapbook.sensitivity import DeltaSpec
 
 FORMULA = "body_mass_g ~ flipper_length_mm + species"
 
 
 @pytest.fixture(scope="module")
-def penguins() -> pd.DataFrame:
+def masked_penguins(penguins) -> pd.DataFrame:
     # Open dataset shipped by the palmerpenguins package; 30% of body masses removed at random.
-    frame = load_penguins()[["body_mass_g", "flipper_length_mm", "species"]].dropna().reset_index(drop=True)
+    frame = penguins[["body_mass_g", "flipper_length_mm", "species"]].dropna().reset_index(drop=True)
     frame["species"] = pd.Categorical(frame["species"])
     rng = np.random.default_rng(7)
     frame.loc[rng.random(len(frame)) < 0.3, "body_mass_g"] = np.nan
@@ -30,35 +29,35 @@ OPTIONS = dict(m=4, iterations=3, seed=99, types={"body_mass_g": "continuous", "
                                                   "species": "nominal"}, progress=False)
 
 
-def test_delta_zero_reproduces_the_mar_imputation_exactly(penguins):
+def test_delta_zero_reproduces_the_mar_imputation_exactly(masked_penguins):
     # Carpenter & Kenward (2013), ch. 10: delta = 0 is the missing-at-random imputation itself.
     model = AnalysisModel(FORMULA, exposure="flipper_length_mm")
-    evaluate = sensitivity.imputation_evaluator(penguins, model, OPTIONS)
+    evaluate = sensitivity.imputation_evaluator(masked_penguins, model=model, impute_options=OPTIONS)
     series = sensitivity.DeltaSeries("body_mass_g", sensitivity.ALL_GROUPS, None, (0.0,))
     shifted = evaluate(series, 0.0)
-    mar = impute_chained(penguins, **OPTIONS).fit(FORMULA)
-    pd.testing.assert_frame_equal(shifted.reset_index(drop=True), mar.table.reset_index(drop=True))
+    mar = impute_chained(masked_penguins, **OPTIONS).analyse(model)
+    pd.testing.assert_frame_equal(shifted.reset_index(drop=True), mar.estimates().reset_index(drop=True))
 
 
-def test_imputed_mean_moves_by_exactly_delta(penguins):
+def test_imputed_mean_moves_by_exactly_delta(masked_penguins):
     # Carpenter & Kenward (2013), ch. 10: each imputed value is the MAR draw plus delta. The outcome is the
     # only incomplete variable, so with the same seed every imputed value moves by delta.
     series = sensitivity.DeltaSeries("body_mass_g", sensitivity.ALL_GROUPS, None, (0.0, 250.0))
-    base = impute_chained(penguins, **OPTIONS).imputed_long("body_mass_g")
+    base = impute_chained(masked_penguins, **OPTIONS).imputed_long("body_mass_g")
     delta, delta_by = series.engine_arguments(250.0)
-    moved = impute_chained(penguins, delta=delta, delta_by=delta_by, **OPTIONS).imputed_long("body_mass_g")
+    moved = impute_chained(masked_penguins, delta=delta, delta_by=delta_by, **OPTIONS).imputed_long("body_mass_g")
     assert moved["value"].mean() - base["value"].mean() == pytest.approx(250.0, abs=1e-8)
     np.testing.assert_allclose(moved["value"] - base["value"], 250.0, atol=1e-8)
 
 
-def test_per_group_delta_moves_only_that_group(penguins):
-    section = SensitivitySection(delta={"body_mass_g": DeltaGrid(by="species", groups={"Gentoo": [300.0]})})
-    (series,) = sensitivity.delta_series(section, penguins, "body_mass_g")
+def test_per_group_delta_moves_only_that_group(masked_penguins):
+    grids = {"body_mass_g": DeltaSpec(by="species", groups={"Gentoo": [300.0]})}
+    (series,) = sensitivity.delta_series(masked_penguins, outcome="body_mass_g", grids=grids)
     assert series.group == "Gentoo" and series.deltas == (0.0, 300.0)
-    base = impute_chained(penguins, **OPTIONS).imputed_long("body_mass_g")
+    base = impute_chained(masked_penguins, **OPTIONS).imputed_long("body_mass_g")
     delta, delta_by = series.engine_arguments(300.0)
-    moved = impute_chained(penguins, delta=delta, delta_by=delta_by, **OPTIONS).imputed_long("body_mass_g")
-    gentoo = (penguins["species"] == "Gentoo").to_numpy()[base["row"].to_numpy()]
+    moved = impute_chained(masked_penguins, delta=delta, delta_by=delta_by, **OPTIONS).imputed_long("body_mass_g")
+    gentoo = (masked_penguins["species"] == "Gentoo").to_numpy()[base["row"].to_numpy()]
     difference = (moved["value"] - base["value"]).to_numpy()
     np.testing.assert_allclose(difference[gentoo], 300.0, atol=1e-8)
     np.testing.assert_allclose(difference[~gentoo], 0.0, atol=1e-8)
@@ -80,21 +79,22 @@ def test_tipping_point_matches_the_closed_form():
     interpolated = sensitivity.find_tipping_point(grid, "x", None)
     assert abs(interpolated.delta - truth) <= 0.25  # within the grid step without extra runs
     short = sensitivity.find_tipping_point(grid[grid["delta"] <= 0.25], "x", bounds)
-    assert not short.found and "whole grid" in sensitivity.tipping_statement(short, "y", "all", None, "", "x")
+    assert not short.found and "whole grid" in sensitivity.tipping_statement(short, variable="y", group="all", by=None,
+                                                                                    variable_type="", exposure_label="x")
 
 
-def test_tipping_point_found_within_tolerance_on_the_imputation(penguins):
+def test_tipping_point_found_within_tolerance_on_the_imputation(masked_penguins):
     # Constructed example: lowering the imputed body masses of Gentoo penguins only moves the Gentoo-Adelie
     # contrast (given flipper length) until its interval no longer agrees with the MAR conclusion. The answer is
     # located by brute force on a fine grid (step 10 g), judged directly on the interval; the grid-plus-root
     # search (grid step 200 g, tolerance 10 g) must land within one fine step of it.
     model = AnalysisModel(FORMULA, exposure="species")
-    evaluate = sensitivity.imputation_evaluator(penguins, model, OPTIONS)
+    evaluate = sensitivity.imputation_evaluator(masked_penguins, model=model, impute_options=OPTIONS)
     term = "species[T.Gentoo]"
     grid = tuple(float(d) for d in np.arange(0.0, -4001.0, -200.0))
     series = (sensitivity.DeltaSeries("body_mass_g", "Gentoo", "species", grid),)
-    result = sensitivity.delta_analysis(evaluate, series, [term], tolerance=10.0, max_evaluations=12)
-    tip = result.tipping.set_index("side").loc["negative"]
+    result = sensitivity.delta_analysis(evaluate, series=series, terms=[term], tolerance=10.0, max_evaluations=12)
+    tip = result.tipping_points.set_index("side").loc["negative"]
     assert bool(tip["found"])
     def excludes_null(delta):
         row = sensitivity.interval(evaluate(series[0], float(delta)), 0.05).set_index("term").loc[term]
@@ -107,17 +107,15 @@ def test_tipping_point_found_within_tolerance_on_the_imputation(penguins):
     assert abs(tip["tipping_delta"] - crossing) <= 10.0 + 1e-9
 
 
-def test_grid_parsing_and_input_errors(penguins):
-    plain = SensitivitySection(delta={"body_mass_g": [0.5, 0.1]})
-    (series,) = sensitivity.delta_series(plain, penguins, "body_mass_g")
+def test_grid_parsing_and_input_errors(masked_penguins):
+    (series,) = sensitivity.delta_series(masked_penguins, outcome="body_mass_g", grids={"body_mass_g": [0.5, 0.1]})
     assert series.deltas == (0.0, 0.1, 0.5) and series.by is None
-    with pytest.raises(InputError, match="sensitivity.delta.body_mas"):
-        sensitivity.delta_series(SensitivitySection(delta={"body_mas": [1.0]}), penguins, "body_mass_g")
-    with pytest.raises(InputError, match="Gentu"):
-        sensitivity.delta_series(SensitivitySection(delta={"body_mass_g": DeltaGrid(by="species",
-                                                                                     groups={"Gentu": [1.0]})}),
-                                 penguins, "body_mass_g")
-    default = sensitivity.delta_series(SensitivitySection(), penguins, "body_mass_g")
+    with pytest.raises(InputError, match="^delta.body_mas: 'body_mas' is not a column"):
+        sensitivity.delta_series(masked_penguins, outcome="body_mass_g", grids={"body_mas": [1.0]})
+    with pytest.raises(InputError, match="^delta.body_mass_g.groups: 'Gentu' is not a level"):
+        sensitivity.delta_series(masked_penguins, outcome="body_mass_g",
+                                 grids={"body_mass_g": DeltaSpec(by="species", groups={"Gentu": [1.0]})})
+    default = sensitivity.delta_series(masked_penguins, outcome="body_mass_g")
     assert default[0].deltas[0] == 0.0 and len(default[0].deltas) > 3
 
 
@@ -128,10 +126,11 @@ def test_comparison_sentence_says_when_the_conclusion_changes():
     table = pd.DataFrame({"variable": "y", "group": "all", "delta": [0.0, 1.0], "term": "x",
                           "estimate": [-0.42, -0.05], "ci_lower": [-0.52, -0.15], "ci_upper": [-0.32, 0.05],
                           "p_value": [0.001, 0.3], "evaluated_by": "grid"})
-    result = sensitivity.DeltaResult(table=table, tipping=pd.DataFrame(), series=(), terms=("x",), alpha=0.05)
+    result = sensitivity.DeltaResult(curves=table, tipping_points=pd.DataFrame(), series=(), terms=("x",),
+                                     alpha=0.05)
     comparison = sensitivity.compare_with_deltas(estimates, result)
-    assert comparison.changes and "changes" in comparison.sentence
-    assert list(comparison.table["conclusion"]) == ["below", "below", "below", "includes"]
+    assert comparison.changes and "changes" in comparison.sentences[0]
+    assert list(comparison.comparison["conclusion"]) == ["below", "below", "below", "includes"]
     steady = sensitivity.compare_with_deltas(estimates, sensitivity.DeltaResult(
-        table=table.iloc[:1], tipping=pd.DataFrame(), series=(), terms=("x",), alpha=0.05))
-    assert not steady.changes and "same under every analysis" in steady.sentence
+        curves=table.iloc[:1], tipping_points=pd.DataFrame(), series=(), terms=("x",), alpha=0.05))
+    assert not steady.changes and "same under every analysis" in steady.sentences[0]

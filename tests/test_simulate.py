@@ -6,7 +6,6 @@ import dataclasses
 import numpy as np
 import pandas as pd
 import pytest
-from palmerpenguins import load_penguins
 from scipy import stats
 
 from gapbook import simulate
@@ -15,18 +14,18 @@ from gapbook.models import AnalysisModel, fit_model
 
 
 @pytest.fixture(scope="module")
-def penguins() -> pd.DataFrame:
-    # Open dataset shipped by the palmerpenguins package (Gorman, Williams & Fraser 2014).
-    frame = load_penguins()[["body_mass_g", "flipper_length_mm", "bill_length_mm", "sex", "species"]]
+def complete_penguins(penguins) -> pd.DataFrame:
+    # Open dataset shipped by the palmerpenguins package (Gorman, Williams & Fraser 2014), complete rows.
+    frame = penguins[["body_mass_g", "flipper_length_mm", "bill_length_mm", "sex", "species"]]
     frame = frame.dropna().reset_index(drop=True)
     frame["sex"] = pd.Categorical(frame["sex"])
     frame["species"] = pd.Categorical(frame["species"])
     return frame
 
 
-def penguin_design(penguins, fractions, mar_on=("bill_length_mm",), formula="body_mass_g ~ flipper_length_mm + sex"):
+def penguin_design(frame, fractions, mar_on=("bill_length_mm",), formula="body_mass_g ~ flipper_length_mm + sex"):
     model = AnalysisModel(formula=formula, exposure="flipper_length_mm")
-    design = simulate.design_from_data(penguins, model, mar_on=list(mar_on),
+    design = simulate.design_from_data(frame, model=model, mar_on=list(mar_on),
                                        types={"body_mass_g": "continuous", "flipper_length_mm": "continuous",
                                               "bill_length_mm": "continuous", "sex": "binary"})
     # penguins has (almost) no missing values of its own: set the fractions the test needs.
@@ -80,8 +79,8 @@ def test_performance_drops_failed_replicates():
 # ---------------------------------------------------------------------------
 # mechanisms
 
-def test_mechanisms_hit_the_missing_fraction_and_depend_on_the_right_variable(penguins):
-    design = penguin_design(penguins, {"body_mass_g": 0.3})
+def test_mechanisms_hit_the_missing_fraction_and_depend_on_the_right_variable(complete_penguins):
+    design = penguin_design(complete_penguins, {"body_mass_g": 0.3})
     rng = np.random.default_rng(5)
     complete = simulate.simulate_complete(dataclasses.replace(design, n=20000), rng)
     shares = {}
@@ -99,20 +98,20 @@ def test_mechanisms_hit_the_missing_fraction_and_depend_on_the_right_variable(pe
     assert shares["MNAR_own"] > 0.25
 
 
-def test_unknown_mechanism_and_bad_mar_driver_are_input_errors(penguins):
-    design = penguin_design(penguins, {"body_mass_g": 0.3})
+def test_unknown_mechanism_and_bad_mar_driver_are_input_errors(complete_penguins):
+    design = penguin_design(complete_penguins, {"body_mass_g": 0.3})
     with pytest.raises(InputError, match="MNRA"):
         simulate.impose_missing(simulate.simulate_complete(design, np.random.default_rng(1)), design, "MNRA",
                                 np.random.default_rng(1))
-    with pytest.raises(InputError, match="simulation.mar_on"):
-        simulate.design_from_data(penguins, AnalysisModel("body_mass_g ~ flipper_length_mm"), mar_on=["bil_length"])
+    with pytest.raises(InputError, match="^mar_on: 'bil_length' is not a column"):
+        simulate.design_from_data(complete_penguins, model=AnalysisModel("body_mass_g ~ flipper_length_mm"), mar_on=["bil_length"])
 
 
 # ---------------------------------------------------------------------------
 # strategies
 
-def test_fast_least_squares_equals_statsmodels(penguins):
-    design = penguin_design(penguins, {"body_mass_g": 0.3, "flipper_length_mm": 0.1})
+def test_fast_least_squares_equals_statsmodels(complete_penguins):
+    design = penguin_design(complete_penguins, {"body_mass_g": 0.3, "flipper_length_mm": 0.1})
     fast = simulate.least_squares_for(design)
     assert fast is not None
     complete = simulate.simulate_complete(design, np.random.default_rng(2))
@@ -120,16 +119,16 @@ def test_fast_least_squares_equals_statsmodels(penguins):
     strategy = simulate.CompleteCaseStrategy(design.model, (design.outcome, *design.covariates), fast)
     ours = strategy(simulate.Replicate(incomplete, fast.design(complete)), np.random.default_rng(0))
     # Reference library: statsmodels OLS through gapbook.models.fit_model (drops incomplete rows).
-    reference = fit_model(incomplete, design.model.formula).table("complete_case")
+    reference = fit_model(incomplete, formula=design.model.formula).estimates("complete_case")
     np.testing.assert_allclose(ours[["estimate", "std_error", "ci_lower", "ci_upper"]].to_numpy(),
                                reference[["estimate", "std_error", "ci_lower", "ci_upper"]].to_numpy(), rtol=1e-9)
 
 
-def test_complete_case_unbiased_under_mcar_and_biased_under_outcome_mnar(penguins):
+def test_complete_case_unbiased_under_mcar_and_biased_under_outcome_mnar(complete_penguins):
     # Complete-case regression is unbiased when missingness does not depend on the outcome
     # (Little 1992, JASA 87:1227; White & Carlin 2010, Stat Med 29:2920) and attenuates the slope
     # when it selects on the outcome itself (truncation on y; Hausman & Wise 1977, Econometrica 45:919).
-    design = penguin_design(penguins, {"body_mass_g": 0.4})
+    design = penguin_design(complete_penguins, {"body_mass_g": 0.4})
     strategies = simulate.default_strategies(design, include=("complete_case",))
     result = simulate.run_simulation(design, strategies, replicates=300, seed=11, mechanisms=("MCAR", "MNAR"),
                                      strength=1.5, progress=False)
@@ -142,13 +141,13 @@ def test_complete_case_unbiased_under_mcar_and_biased_under_outcome_mnar(penguin
     assert result.n_failed == 0
 
 
-def test_imputation_coverage_near_nominal_under_mar(penguins):
+def test_imputation_coverage_near_nominal_under_mar(complete_penguins):
     # Rubin (1987): proper multiple imputation gives intervals with nominal coverage under MAR when
     # the imputation model holds the MAR driver. Missingness of the outcome depends on bill length, which
     # the analysis model omits, so complete cases are biased while imputation (which uses it) is not.
     # A moderate MAR selection (odds ratio e per SD of bill length, 30% missing): with much stronger
     # selection predictive mean matching runs short of donors in the tail and under-covers.
-    design = penguin_design(penguins, {"body_mass_g": 0.3},
+    design = penguin_design(complete_penguins, {"body_mass_g": 0.3},
                             formula="body_mass_g ~ flipper_length_mm")
     strategies = simulate.default_strategies(design, m=5, iterations=5,
                                              include=("complete_case", "multiple_imputation"))
@@ -164,22 +163,22 @@ def test_imputation_coverage_near_nominal_under_mar(penguins):
     assert mi["model_se"] == pytest.approx(mi["emp_se"], rel=0.15)
 
 
-def test_results_do_not_depend_on_the_number_of_workers(penguins):
-    design = penguin_design(penguins, {"body_mass_g": 0.3})
+def test_results_do_not_depend_on_the_number_of_workers(complete_penguins):
+    design = penguin_design(complete_penguins, {"body_mass_g": 0.3})
     strategies = simulate.default_strategies(design, include=("complete_case",))
     one = simulate.run_simulation(design, strategies, replicates=6, seed=3, n_jobs=1, progress=False)
     two = simulate.run_simulation(design, strategies, replicates=6, seed=3, n_jobs=2, progress=False)
     pd.testing.assert_frame_equal(one.performance, two.performance)
 
 
-def test_rows_where_a_covariate_does_not_apply_are_left_out_of_the_simulated_population(penguins):
+def test_rows_where_a_covariate_does_not_apply_are_left_out_of_the_simulated_population(complete_penguins):
     # A covariate that applies to one species only (not applicable elsewhere: NaN, but not missing).
-    frame = penguins.copy()
+    frame = complete_penguins.copy()
     gentoo = (frame["species"] == "Gentoo").to_numpy()
     frame["gentoo_bill"] = frame["bill_length_mm"].where(gentoo)
     missing = pd.DataFrame(False, index=frame.index, columns=frame.columns)  # nothing missing, only not applicable
     model = AnalysisModel(formula="body_mass_g ~ flipper_length_mm + gentoo_bill", exposure="flipper_length_mm")
-    design = simulate.design_from_data(frame, model, mar_on=["bill_length_mm"], missing=missing)
+    design = simulate.design_from_data(frame, model=model, mar_on=["bill_length_mm"], missing=missing)
     assert len(design.pool) == gentoo.sum()
     # the truth is statsmodels' fit on the rows where the covariate applies (statsmodels drops NaN rows itself)
     import statsmodels.formula.api as smf
@@ -201,7 +200,7 @@ def test_poisson_model_with_an_offset_is_simulated_with_its_person_time():
     frame["events"] = rng.poisson(frame["years"] * np.exp(-0.5 + 0.4 * (frame["arm"] == "b") + 0.3 * frame["x"]))
     frame["events"] = frame["events"].astype(float)
     model = AnalysisModel(formula="events ~ arm + x", family="poisson", exposure="arm", offset="years")
-    design = simulate.design_from_data(frame, model, mar_on=["x"])
+    design = simulate.design_from_data(frame, model=model, mar_on=["x"])
     # the truth is statsmodels' poisson fit with log(years) as the offset
     reference = smf.glm("events ~ arm + x", data=frame, family=sm.families.Poisson(),
                         offset=np.log(frame["years"])).fit()
@@ -216,11 +215,11 @@ def test_poisson_model_with_an_offset_is_simulated_with_its_person_time():
     assert abs(row["bias"]) < 4 * row["bias_mcse"] + 1e-9
 
 
-def test_a_study_too_small_to_simulate_from_is_an_input_error_saying_what_to_do(penguins):
-    # 15 penguins: fewer complete rows than the 20 the generating fit needs (common practice, no source).
-    small = penguins.iloc[:15].reset_index(drop=True)
+def test_a_study_too_small_to_simulate_from_is_an_input_error_saying_what_to_do(complete_penguins):
+    # 15 complete_penguins: fewer complete rows than the 20 the generating fit needs (common practice, no source).
+    small = complete_penguins.iloc[:15].reset_index(drop=True)
     model = AnalysisModel(formula="body_mass_g ~ flipper_length_mm + sex", exposure="flipper_length_mm")
     with pytest.raises(InputError, match=r"^simulation: only 15 rows .* leave the simulate stage out"):
-        simulate.design_from_data(small, model, mar_on=["bill_length_mm"])
+        simulate.design_from_data(small, model=model, mar_on=["bill_length_mm"])
     # 40 penguins are enough
-    assert len(simulate.design_from_data(penguins.iloc[:40], model, mar_on=["bill_length_mm"]).pool) == 40
+    assert len(simulate.design_from_data(complete_penguins.iloc[:40], model=model, mar_on=["bill_length_mm"]).pool) == 40

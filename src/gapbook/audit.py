@@ -21,6 +21,7 @@ categorical codes with ``numpy.bincount``; nothing loops over rows in Python.
 """
 from __future__ import annotations
 
+import dataclasses
 import re
 from dataclasses import dataclass
 from typing import Dict, List, Mapping, Optional, Sequence, Tuple
@@ -123,6 +124,8 @@ class AuditResult:
     range_issues, extremes, types : the intake's review lists and variable types.
     monotone : whether the patterns are monotone (a dropout design), 1 = yes, 0 = no.
     dropout_order : variables from least to most missing (the order used for monotonicity).
+    notes : the intake's notes (types inferred, and why), to show with the types table.
+    engine : what counted the cells: "pandas" (in memory) or "duckdb" (over the file).
     """
 
     variables: pd.DataFrame
@@ -146,6 +149,9 @@ class AuditResult:
     threshold: float
     top_patterns: int
     by: Tuple[str, ...]
+    sentences: Tuple[str, ...] = ()
+    notes: Tuple[str, ...] = ()
+    engine: str = "pandas"
 
     def tables(self) -> Dict[str, pd.DataFrame]:
         """The tables to write, keyed by file name without ``.csv``."""
@@ -573,8 +579,8 @@ def group_codes(values: pd.Series, missing: np.ndarray, not_applicable: np.ndarr
         levels = [_level_label(u) for u in uniques]
         codes[usable] = inverse
     if len(levels) > MAX_GROUP_LEVELS:
-        raise InputError(f"audit.by: '{name}' has {len(levels)} distinct values (more than {MAX_GROUP_LEVELS}); "
-                         "group by a categorical variable such as arm or clinic")
+        raise InputError(f"'{name}' has {len(levels)} distinct values (more than {MAX_GROUP_LEVELS}); "
+                         "group by a categorical variable such as arm or clinic", option="by")
     labels = list(levels)
     outside = (codes < 0) & not_applicable
     if outside.any():
@@ -671,7 +677,7 @@ def by_group_table(counts: GroupCounts, names: Sequence[str]) -> pd.DataFrame:
 # ---------------------------------------------------------------------------
 # the whole audit
 
-def audit_frame(data: pd.DataFrame, reasons: Optional[pd.DataFrame] = None,
+def audit_frame(data: pd.DataFrame, *, reasons: Optional[pd.DataFrame] = None,
                 types: Optional[Mapping[str, str]] = None, threshold: float = DEFAULT_THRESHOLD,
                 by: Sequence[str] = (), top_patterns: int = 15) -> AuditResult:
     """Audit the missingness of a plain DataFrame (values, optionally with a frame of reasons).
@@ -696,31 +702,27 @@ def audit_frame(data: pd.DataFrame, reasons: Optional[pd.DataFrame] = None,
     if reasons is None:
         reasons = reasons_from_values(data)
     if list(reasons.columns) != list(data.columns) or len(reasons) != len(data):
-        raise InputError("reasons: must have the same columns and rows as the data")
+        raise InputError("must have the same columns and rows as the data", option="reasons")
     if types is None:
         types = {name: infer_type(data[name])[0] for name in data.columns}
-    by = tuple(_as_list(by))
-    for name in by:
-        if name not in data.columns:
-            raise InputError(f"audit.by: '{name}' is not a variable of the study{did_you_mean(name, data.columns)}; "
-                             "list grouping variables by their column names")
+    by = _grouping_variables(by, data.columns)
     types_table = pd.DataFrame({"variable": list(data.columns), "type": [types.get(c, "") for c in data.columns]})
     return _audit(data, reasons, dict(types), float(threshold), by, int(top_patterns),
                   _empty_review(["variable", "id", "value", "rule", "action"]),
                   _empty_review(["variable", "id", "value", "median", "robust_z"]), types_table)
 
 
-def audit_study(study: Study, threshold: float = DEFAULT_THRESHOLD, by: Sequence[str] = (),
+def audit_study(study: Study, *, threshold: float = DEFAULT_THRESHOLD, by: Sequence[str] = (),
                 top_patterns: int = 15) -> AuditResult:
     """Audit a study after intake: missing counts by reason, patterns, co-missingness, groups.
 
     Parameters
     ----------
     study : from :func:`gapbook.intake.load_study`.
-    threshold : missing fraction above which a variable is flagged (params ``audit.threshold``;
-        0.20 is common practice, no source).
-    by : grouping variables (params ``audit.by``), e.g. arm, clinic.
-    top_patterns : how many of the most common patterns the figures show (``audit.top_patterns``).
+    threshold : missing fraction above which a variable is flagged (0.20 is common practice,
+        no source).
+    by : grouping variables, e.g. arm, clinic.
+    top_patterns : how many of the most common patterns the figures show.
 
     Returns
     -------
@@ -732,14 +734,11 @@ def audit_study(study: Study, threshold: float = DEFAULT_THRESHOLD, by: Sequence
     (missingness patterns, monotone patterns).
     """
     _check_options(threshold, top_patterns)
-    by = tuple(_as_list(by))
-    for name in by:
-        if name not in study.data.columns:
-            raise InputError(f"audit.by: '{name}' is not a variable of the study"
-                             f"{did_you_mean(name, study.data.columns)}; list grouping variables by their column names")
-    return _audit(study.data, study.reasons, study.types, float(threshold), by, int(top_patterns),
-                  study.range_issues.reset_index(drop=True), study.extreme_values.reset_index(drop=True),
-                  study.variables_table())
+    by = _grouping_variables(by, study.data.columns)
+    result = _audit(study.data, study.reasons, study.types, float(threshold), by, int(top_patterns),
+                    study.range_issues.reset_index(drop=True), study.extreme_values.reset_index(drop=True),
+                    study.variables_table())
+    return dataclasses.replace(result, notes=tuple(study.notes))
 
 
 def count_missingness(data: pd.DataFrame, reasons: pd.DataFrame, by: Sequence[str] = ()) -> MissingnessCounts:
@@ -821,7 +820,7 @@ def audit_from_counts(counts: MissingnessCounts, *, types: Mapping[str, str], th
         "pct_missing_cells": missing_cells_total / applicable_cells * 100 if applicable_cells else float("nan"),
         "not_applicable_cells": int(variables["n_not_applicable"].sum()),
     }])
-    return AuditResult(
+    result = AuditResult(
         variables=variables, participants=participants, patterns=pattern_frame, comissingness=comissing_long,
         comissingness_matrix=comissing_matrix, by_group=by_group, summary=summary, reasons=reason_table,
         range_issues=range_issues, extremes=extremes, types=types_table,
@@ -829,24 +828,44 @@ def audit_from_counts(counts: MissingnessCounts, *, types: Mapping[str, str], th
         monotone=monotone, pct_rows_in_dropout_order=in_order, dropout_order=order, threshold=threshold,
         top_patterns=top_patterns, by=by,
     )
+    return dataclasses.replace(result, sentences=audit_sentences(result))
+
+
+def audit_sentences(result: AuditResult) -> Tuple[str, ...]:
+    """The study at a glance: rows, complete rows, incomplete and flagged variables, cells, patterns."""
+    summary = result.summary.iloc[0]
+    pattern_words = ("monotone (a dropout design)" if result.monotone else
+                     f"not monotone; {result.pct_rows_in_dropout_order:.1f} % of rows fit the dropout order")
+    return (
+        f"{result.n_rows:,} rows and {result.n_variables} variables.",
+        f"{result.n_complete_rows:,} rows ({summary['pct_complete_rows']:.1f} %) have nothing missing; "
+        f"{int(summary['incomplete_variables'])} variables have at least one missing value, and "
+        f"{int(summary['over_threshold_variables'])} lack more than {result.threshold:.0%} of their values.",
+        f"Of all cells that apply, {summary['pct_missing_cells']:.1f} % are missing.",
+        f"The rows fall into {result.n_patterns:,} missingness patterns, which are {pattern_words}.",
+    )
 
 
 def _check_options(threshold: float, top_patterns: int) -> None:
     try:
         value = float(threshold)
     except (TypeError, ValueError):
-        raise InputError(f"audit.threshold: '{threshold}' is not a number; give a fraction from 0 to 1, "
-                         "e.g. 0.20") from None
+        raise InputError(f"'{threshold}' is not a number; give a fraction from 0 to 1, "
+                         "e.g. 0.20", option="threshold") from None
     if not 0 <= value <= 1:
-        raise InputError(f"audit.threshold: {threshold} is outside 0 to 1; give a fraction, e.g. 0.20 for 20 %")
+        raise InputError(f"{threshold} is outside 0 to 1; give a fraction, e.g. 0.20 for 20 %", option="threshold")
     if isinstance(top_patterns, bool) or not isinstance(top_patterns, (int, np.integer)) or top_patterns < 1:
-        raise InputError(f"audit.top_patterns: '{top_patterns}' must be a whole number of at least 1, e.g. 15")
+        raise InputError(f"'{top_patterns}' must be a whole number of at least 1, e.g. 15", option="top_patterns")
 
 
-def _as_list(by) -> List[str]:
-    if by is None:
-        return []
-    return [by] if isinstance(by, str) else list(by)
+def _grouping_variables(by, columns: Sequence[str]) -> Tuple[str, ...]:
+    """The grouping variables as a tuple (one name or several), each checked to be a column."""
+    names = () if by is None else (by,) if isinstance(by, str) else tuple(by)
+    for name in names:
+        if name not in columns:
+            raise InputError(f"'{name}' is not a variable of the study{did_you_mean(name, columns)}; "
+                             "list grouping variables by their column names", option="by")
+    return names
 
 
 def _empty_review(columns: Sequence[str]) -> pd.DataFrame:

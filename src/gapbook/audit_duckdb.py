@@ -7,15 +7,15 @@ as the pandas path (:func:`gapbook.audit.audit_from_counts`), so the tables are 
 """
 from __future__ import annotations
 
+import dataclasses
 from typing import Dict, List, Sequence
 
 import numpy as np
 import pandas as pd
 
-from .audit import (DEFAULT_THRESHOLD, AuditResult, GroupCounts, MissingnessCounts, _as_list, _check_options,
-                    audit_from_counts, group_codes, patterns_from_words)
-from .errors import InputError, did_you_mean
-from .intake import NOT_APPLICABLE
+from .audit import (DEFAULT_THRESHOLD, AuditResult, GroupCounts, MissingnessCounts, _check_options,
+                    _grouping_variables, audit_from_counts, group_codes, patterns_from_words)
+from .vocabulary import NOT_APPLICABLE
 from .intake_duckdb import ScannedColumn, ScannedStudy
 
 
@@ -98,7 +98,7 @@ def _group_counts(scanned: ScannedStudy, name: str, i: int, table: pd.DataFrame,
     return GroupCounts(name, tuple(labels), size, missing, not_applicable)
 
 
-def audit_scanned(scanned: ScannedStudy, threshold: float = DEFAULT_THRESHOLD, by: Sequence[str] = (),
+def audit_scanned(scanned: ScannedStudy, *, threshold: float = DEFAULT_THRESHOLD, by: Sequence[str] = (),
                   top_patterns: int = 15) -> AuditResult:
     """Audit a study read by DuckDB: the same tables as :func:`gapbook.audit.audit_study`, counted in SQL.
 
@@ -114,17 +114,14 @@ def audit_scanned(scanned: ScannedStudy, threshold: float = DEFAULT_THRESHOLD, b
     AuditResult
     """
     _check_options(threshold, top_patterns)
-    by = tuple(_as_list(by))
     names = list(scanned.columns)
-    for name in by:
-        if name not in scanned.columns:
-            raise InputError(f"audit.by: '{name}' is not a variable of the study{did_you_mean(name, names)}; "
-                             "list grouping variables by their column names")
+    by = _grouping_variables(by, names)
     reasons, groups = count_reasons_sql(scanned, by)
     counts = MissingnessCounts(names=tuple(names), n_rows=scanned.n_rows, reasons=reasons,
                                patterns=count_patterns_sql(scanned), groups=groups)
     types: Dict[str, str] = scanned.types
-    return audit_from_counts(counts, types=types, threshold=float(threshold), top_patterns=int(top_patterns),
-                             range_issues=scanned.range_issues.reset_index(drop=True),
-                             extremes=scanned.extreme_values.reset_index(drop=True),
-                             types_table=scanned.variables_table())
+    result = audit_from_counts(counts, types=types, threshold=float(threshold), top_patterns=int(top_patterns),
+                               range_issues=scanned.range_issues.reset_index(drop=True),
+                               extremes=scanned.extreme_values.reset_index(drop=True),
+                               types_table=scanned.variables_table())
+    return dataclasses.replace(result, notes=tuple(scanned.notes), engine="duckdb")

@@ -21,6 +21,7 @@ import pandas as pd
 
 from .errors import InputError
 from .inference import standardised_difference
+from .intake import levels_of
 from .models import AnalysisModel, ModelFit, add_ratio_columns, exposure_terms, formula_columns
 from .vocabulary import CATEGORICAL_TYPES, NUMBER_CODED_TYPES, STRATEGY_TITLES, infer_type, ratio_name
 FLOW_COLUMNS = ("step", "variable", "role", "n_excluded", "n_not_applicable", "n_lacking", "reasons", "n_remaining")
@@ -33,7 +34,7 @@ FLOW_COLUMNS = ("step", "variable", "role", "n_excluded", "n_not_applicable", "n
 class CompleteCaseFlow:
     """Where the rows of the file went on the way to the complete-case analysis.
 
-    ``table`` has one row for the file, one per model variable (outcome first, then the
+    ``steps`` has one row for the file, one per model variable (outcome first, then the
     formula's order, then the offset) and one for the rows used. ``n_excluded`` counts a
     row once, under the first model variable it lacks; ``n_lacking`` counts every row that
     lacks the variable, whatever else it lacks; ``n_not_applicable`` is the part of
@@ -41,7 +42,7 @@ class CompleteCaseFlow:
     ``n_lacking`` down by missing reason. ``complete`` marks the rows used.
     """
 
-    table: pd.DataFrame
+    steps: pd.DataFrame
     n_rows: int
     n_used: int
     complete: pd.Series
@@ -78,7 +79,7 @@ def _reason_text(reasons: Optional[pd.Series], lacking: np.ndarray) -> str:
     return "; ".join(f"{label} {count}" for label, count in ordered)
 
 
-def complete_case_flow(data: pd.DataFrame, model: AnalysisModel, reasons: Optional[pd.DataFrame] = None,
+def complete_case_flow(data: pd.DataFrame, *, model: AnalysisModel, reasons: Optional[pd.DataFrame] = None,
                        not_applicable: Optional[pd.DataFrame] = None) -> CompleteCaseFlow:
     """Count the rows excluded by each model variable and the rows left for the complete-case fit.
 
@@ -118,7 +119,7 @@ def complete_case_flow(data: pd.DataFrame, model: AnalysisModel, reasons: Option
         table[column] = table[column].astype("Int64")
     table["reasons"] = table["reasons"].fillna("")
     complete = pd.Series(~lacking_so_far, index=data.index, name="complete")
-    return CompleteCaseFlow(table=table, n_rows=n, n_used=n_used, complete=complete, outcome=outcome,
+    return CompleteCaseFlow(steps=table, n_rows=n, n_used=n_used, complete=complete, outcome=outcome,
                             covariates=tuple(covariates))
 
 
@@ -127,24 +128,34 @@ def complete_case_flow(data: pd.DataFrame, model: AnalysisModel, reasons: Option
 
 @dataclass(frozen=True)
 class CompleteCaseResult:
-    """The model fitted to the complete cases: flow, fit, ``estimates.csv`` rows and the exposure terms."""
+    """The model fitted to the complete cases: where the rows went, the fit and the exposure terms."""
 
     flow: CompleteCaseFlow
-    fit: ModelFit
-    estimates: pd.DataFrame
+    model_fit: ModelFit
     exposure_terms: Tuple[str, ...]
+    sentences: Tuple[str, ...] = ()
+    strategy: str = "complete_case"
 
-    @property
+    def estimates(self) -> pd.DataFrame:
+        """Rows for ``estimates.csv`` (strategy ``complete_case``)."""
+        return self.model_fit.estimates(self.strategy)
+
     def exposure_estimates(self) -> pd.DataFrame:
-        return self.estimates[self.estimates["term"].isin(self.exposure_terms)].reset_index(drop=True)
+        """The rows of :meth:`estimates` for the exposure terms."""
+        estimates = self.estimates()
+        return estimates[estimates["term"].isin(self.exposure_terms)].reset_index(drop=True)
+
+    def tables(self) -> Dict[str, pd.DataFrame]:
+        """``flow_complete_case`` and this strategy's rows of ``estimates``."""
+        return {"flow_complete_case": self.flow.steps, "estimates": self.estimates()}
 
 
 def check_model_data(data: pd.DataFrame, model: AnalysisModel) -> Tuple[str, List[str]]:
     """The outcome and covariates after checking that the outcome has observed values (exit 2 otherwise)."""
     outcome, covariates = model.variables(list(data.columns))
     if data[outcome].notna().sum() == 0:
-        raise InputError(f"analysis.formula: the outcome '{outcome}' has no observed values; "
-                         "check the outcome column and its missing markers")
+        raise InputError(f"the outcome '{outcome}' has no observed values; "
+                         "check the outcome column and its missing markers", option="formula")
     return outcome, covariates
 
 
@@ -152,14 +163,14 @@ def require_rows(flow: CompleteCaseFlow) -> None:
     """Exit 2, naming the variable lacking most often, when no row is left to fit the model to."""
     if flow.n_used > 0:
         return
-    lacking = flow.table[flow.table["step"] == "excluded"].sort_values("n_lacking", ascending=False, kind="stable")
+    lacking = flow.steps[flow.steps["step"] == "excluded"].sort_values("n_lacking", ascending=False, kind="stable")
     worst = lacking.iloc[0]
-    raise InputError(f"analysis.formula: no row has every model variable observed ('{worst['variable']}' is "
+    raise InputError(f"no row has every model variable observed ('{worst['variable']}' is "
                      f"missing in {int(worst['n_lacking'])} of {flow.n_rows} rows); drop a variable from the "
-                     "formula or use another strategy")
+                     "formula or use another strategy", option="formula")
 
 
-def complete_case_analysis(data: pd.DataFrame, model: AnalysisModel, reasons: Optional[pd.DataFrame] = None,
+def complete_case_analysis(data: pd.DataFrame, *, model: AnalysisModel, reasons: Optional[pd.DataFrame] = None,
                            not_applicable: Optional[pd.DataFrame] = None) -> CompleteCaseResult:
     """Fit the analysis model to the rows with every model variable present.
 
@@ -179,11 +190,13 @@ def complete_case_analysis(data: pd.DataFrame, model: AnalysisModel, reasons: Op
     complete-case analysis for missing covariate values. Stat Med 29:2920-2931.
     """
     check_model_data(data, model)
-    flow = complete_case_flow(data, model, reasons, not_applicable)
+    flow = complete_case_flow(data, model=model, reasons=reasons, not_applicable=not_applicable)
     require_rows(flow)
     fit = model.fit(data.loc[flow.complete.to_numpy()])
     terms = tuple(exposure_terms(fit.terms, model.exposure))
-    return CompleteCaseResult(flow=flow, fit=fit, estimates=fit.table("complete_case"), exposure_terms=terms)
+    sentence = (f"{fit.nobs:,} of {flow.n_rows:,} rows used (every model variable observed); exposure term(s): "
+                f"{', '.join(terms)}.")
+    return CompleteCaseResult(flow=flow, model_fit=fit, exposure_terms=terms, sentences=(sentence,))
 
 
 # ---------------------------------------------------------------------------
@@ -192,12 +205,6 @@ def complete_case_analysis(data: pd.DataFrame, model: AnalysisModel, reasons: Op
 def is_categorical(column: pd.Series, declared: Optional[str] = None) -> bool:
     """Whether a column is summarised by counts: its declared type, else the inferred one, is categorical."""
     return (declared or infer_type(column)[0]) in CATEGORICAL_TYPES
-
-
-def _levels(column: pd.Series) -> List[object]:
-    if isinstance(column.dtype, pd.CategoricalDtype):
-        return list(column.cat.categories)
-    return sorted(column.dropna().unique())
 
 
 def _numeric_summary(values: pd.Series) -> Dict[str, float]:
@@ -220,7 +227,7 @@ def _category_summary(values: pd.Series, levels: Sequence[object]) -> Dict[str, 
     return out
 
 
-def descriptive_table(data: pd.DataFrame, complete: pd.Series, types: Optional[Mapping[str, str]] = None,
+def descriptive_table(data: pd.DataFrame, *, complete: pd.Series, types: Optional[Mapping[str, str]] = None,
                       variables: Optional[Sequence[str]] = None) -> pd.DataFrame:
     """Summaries of each variable from every available value, beside the same in the complete cases.
 
@@ -245,7 +252,7 @@ def descriptive_table(data: pd.DataFrame, complete: pd.Series, types: Optional[M
         column = data[name]
         subset = column[mask]
         if is_categorical(column, types.get(name)):
-            levels = _levels(column)
+            levels = levels_of(column)
             available, in_complete = _category_summary(column, levels), _category_summary(subset, levels)
         else:
             available, in_complete = _numeric_summary(column), _numeric_summary(subset)
@@ -266,7 +273,7 @@ def numeric_variables(data: pd.DataFrame, types: Optional[Mapping[str, str]] = N
             and types.get(c, "continuous") in NUMBER_CODED_TYPES]
 
 
-def pairwise_correlations(data: pd.DataFrame, complete: Optional[pd.Series] = None,
+def pairwise_correlations(data: pd.DataFrame, *, complete: Optional[pd.Series] = None,
                           variables: Optional[Sequence[str]] = None) -> pd.DataFrame:
     """Pearson correlations from every pair of values observed together, with each pair's n.
 
@@ -318,13 +325,30 @@ class AvailableCaseSummary:
     correlations: pd.DataFrame
     n_rows: int
     n_complete: int
+    sentences: Tuple[str, ...] = ()
+
+    def tables(self) -> Dict[str, pd.DataFrame]:
+        """``descriptives`` and ``pairwise_correlations``."""
+        return {"descriptives": self.descriptives, "pairwise_correlations": self.correlations}
 
 
-def available_case_summary(data: pd.DataFrame, complete: pd.Series,
+def available_case_summary(data: pd.DataFrame, *, complete: pd.Series,
                            types: Optional[Mapping[str, str]] = None) -> AvailableCaseSummary:
-    """Every variable summarised from all its values and from the complete cases (see :func:`descriptive_table`)."""
-    return AvailableCaseSummary(descriptives=descriptive_table(data, complete, types),
-                                correlations=pairwise_correlations(data, complete, numeric_variables(data, types)),
+    """Every variable summarised from all its values and from the complete cases.
+
+    Parameters
+    ----------
+    data : the analysis frame.
+    complete : boolean Series marking the complete-case rows.
+    types : optional {column: type}; undeclared columns get the inferred type.
+
+    Returns
+    -------
+    AvailableCaseSummary: :func:`descriptive_table` and :func:`pairwise_correlations`.
+    """
+    return AvailableCaseSummary(descriptives=descriptive_table(data, complete=complete, types=types),
+                                correlations=pairwise_correlations(data, complete=complete,
+                                                                   variables=numeric_variables(data, types)),
                                 n_rows=len(data), n_complete=int(complete.sum()))
 
 
@@ -335,22 +359,27 @@ def available_case_summary(data: pd.DataFrame, complete: pd.Series,
 class CompletenessBaseline:
     """Fully observed variables compared between complete and incomplete rows.
 
-    ``table``: variable, level, statistic (mean or proportion), complete, complete_sd,
+    ``differences``: variable, level, statistic (mean or proportion), complete, complete_sd,
     incomplete, incomplete_sd, smd (complete minus incomplete), n_complete, n_incomplete.
     """
 
-    table: pd.DataFrame
+    differences: pd.DataFrame
     n_complete: int
     n_incomplete: int
     variables: Tuple[str, ...]
+    sentences: Tuple[str, ...] = ()
 
-    @property
     def largest_smd(self) -> float:
-        smd = self.table["smd"].abs()
+        """The largest absolute standardised difference (NaN when none could be computed)."""
+        smd = self.differences["smd"].abs()
         return float(smd.max()) if smd.notna().any() else float("nan")
 
+    def tables(self) -> Dict[str, pd.DataFrame]:
+        """``completeness_baseline``."""
+        return {"completeness_baseline": self.differences}
 
-def completeness_baseline(data: pd.DataFrame, complete: pd.Series, types: Optional[Mapping[str, str]] = None,
+
+def completeness_baseline(data: pd.DataFrame, *, complete: pd.Series, types: Optional[Mapping[str, str]] = None,
                           variables: Optional[Sequence[str]] = None) -> CompletenessBaseline:
     """Compare complete with incomplete rows on the fully observed variables, by standardised differences.
 
@@ -379,7 +408,7 @@ def completeness_baseline(data: pd.DataFrame, complete: pd.Series, types: Option
         column = data[name]
         a, b = column[mask], column[~mask]
         if is_categorical(column, types.get(name)):
-            for level in _levels(column):
+            for level in levels_of(column):
                 hit_a = (a.dropna().astype(object) == level)
                 hit_b = (b.dropna().astype(object) == level)
                 pa = float(hit_a.mean()) if len(hit_a) else np.nan
@@ -395,12 +424,17 @@ def completeness_baseline(data: pd.DataFrame, complete: pd.Series, types: Option
             sa = xa.std(ddof=1) if len(xa) > 1 else np.nan
             sb = xb.std(ddof=1) if len(xb) > 1 else np.nan
             rows.append({"variable": name, "level": "", "statistic": "mean", "complete": ma, "complete_sd": sa,
-                         "incomplete": mb, "incomplete_sd": sb, "smd": standardised_difference(ma, sa ** 2, mb, sb ** 2),
+                         "incomplete": mb, "incomplete_sd": sb,
+                         "smd": standardised_difference(ma, sa ** 2, mb, sb ** 2),
                          "n_complete": int(len(xa)), "n_incomplete": int(len(xb))})
     table = pd.DataFrame(rows, columns=["variable", "level", "statistic", "complete", "complete_sd", "incomplete",
                                         "incomplete_sd", "smd", "n_complete", "n_incomplete"])
-    return CompletenessBaseline(table=table, n_complete=int(mask.sum()), n_incomplete=int((~mask).sum()),
-                                variables=tuple(chosen))
+    smd = table["smd"].abs()
+    largest = float(smd.max()) if smd.notna().any() else float("nan")
+    sentence = (f"{int(mask.sum()):,} complete and {int((~mask).sum()):,} incomplete rows; largest absolute "
+                f"standardised difference {largest:.2f}.")
+    return CompletenessBaseline(differences=table, n_complete=int(mask.sum()), n_incomplete=int((~mask).sum()),
+                                variables=tuple(chosen), sentences=(sentence,))
 
 
 # ---------------------------------------------------------------------------
@@ -410,19 +444,24 @@ def completeness_baseline(data: pd.DataFrame, complete: pd.Series, types: Option
 class StrategyComparison:
     """The exposure's estimate under every strategy in ``estimates.csv``.
 
-    ``table``: strategy, label, term, estimate, std_error, ci_lower, ci_upper, the ratio
+    ``comparison``: strategy, label, term, estimate, std_error, ci_lower, ci_upper, the ratio
     columns (odds_ratio... / rate_ratio...) for binomial and poisson models, n_used, and
     se_relative_to_complete_case (the precision each strategy gains or loses).
     """
 
-    table: pd.DataFrame
+    comparison: pd.DataFrame
     family: str
     terms: Tuple[str, ...]
     ratio_name: Optional[str]
     alpha: float = 0.05
+    sentences: Tuple[str, ...] = ()
+
+    def tables(self) -> Dict[str, pd.DataFrame]:
+        """``strategy_comparison``."""
+        return {"strategy_comparison": self.comparison}
 
 
-def compare_strategies(estimates: pd.DataFrame, exposure: Union[str, Sequence[str], None], family: str,
+def compare_strategies(estimates: pd.DataFrame, *, exposure: Union[str, Sequence[str], None], family: str,
                        alpha: float = 0.05) -> StrategyComparison:
     """Gather the exposure term(s) of every strategy, on the ratio scale too for binomial and poisson models.
 
@@ -445,7 +484,7 @@ def compare_strategies(estimates: pd.DataFrame, exposure: Union[str, Sequence[st
     else:
         terms = [t for t in exposure if t in all_terms]
         if not terms:
-            raise InputError(f"analysis.exposure: none of {', '.join(exposure)} is a term in estimates.csv")
+            raise InputError(f"none of {', '.join(exposure)} is a term in estimates.csv", option="exposure")
     chosen = estimates[estimates["term"].isin(terms)].copy()
     chosen["_term_order"] = chosen["term"].map({t: i for i, t in enumerate(terms)})
     strategies = list(dict.fromkeys(estimates["strategy"]))
@@ -458,5 +497,5 @@ def compare_strategies(estimates: pd.DataFrame, exposure: Union[str, Sequence[st
     table["se_relative_to_complete_case"] = table["std_error"] / table["term"].map(reference)
     ordered = [c for c in table.columns if c != "n_used"] + ["n_used"]
     table = table[ordered].reset_index(drop=True)
-    return StrategyComparison(table=table, family=family, terms=tuple(terms), ratio_name=ratio_name(family),
+    return StrategyComparison(comparison=table, family=family, terms=tuple(terms), ratio_name=ratio_name(family),
                               alpha=alpha)

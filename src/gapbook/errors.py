@@ -6,9 +6,11 @@ The CLI turns :class:`InputError` into exit code 2 with its one-line message and
 from __future__ import annotations
 
 import difflib
-from typing import Iterable
+from typing import Iterable, Optional
 
 from .text import one_line
+
+__all__ = ["InputError", "AnalysisError", "nearest", "did_you_mean"]
 
 
 class InputError(Exception):
@@ -16,10 +18,17 @@ class InputError(Exception):
 
     The message is kept to one printable line (control characters from a hostile column
     name or value are shown escaped, never sent to the terminal) of at most 2,000 characters.
+
+    A stage module names the option it was given (``InputError("'x' is not a column",
+    option="auxiliary")`` reads ``auxiliary: 'x' is not a column``); the notebook-facing
+    layer (:mod:`gapbook.stage`) renames that option to the params key it came from. The
+    option may carry a dotted item after it, e.g. ``methods.bmi``.
     """
 
-    def __init__(self, message: object = "") -> None:
-        super().__init__(one_line(message, limit=2000))
+    def __init__(self, message: object = "", *, option: Optional[str] = None) -> None:
+        self.option = option
+        self.detail = one_line(message, limit=2000)
+        super().__init__(one_line(f"{option}: {message}" if option else message, limit=2000))
 
 
 class AnalysisError(Exception):

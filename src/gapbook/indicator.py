@@ -32,6 +32,7 @@ from .cases import (CompleteCaseFlow, check_model_data, complete_case_flow, expo
                     require_rows)
 from .errors import InputError
 from .expressions import ColumnAliases, parse_formula
+from .intake import levels_of
 from .models import AnalysisModel, ModelFit, exposure_terms
 
 MISSING_LEVEL = "(missing)"
@@ -68,7 +69,6 @@ class MissingCategoryData:
     label: str
     aliases: ColumnAliases = ColumnAliases((), ())
 
-    @property
     def indicator_columns(self) -> Tuple[str, ...]:
         """The indicators' columns in ``data`` (their aliases)."""
         return self.aliases.aliases
@@ -91,14 +91,10 @@ def _wrapped_in_c(formula: str, column: str) -> bool:
 
 def _with_level(column: pd.Series, missing: np.ndarray, label: str, name: str) -> pd.Series:
     """The column as a Categorical with ``label`` appended after the observed levels, at the missing cells."""
-    if isinstance(column.dtype, pd.CategoricalDtype):
-        levels = list(column.cat.categories)
-        ordered = False  # an ordered scale has no place for "missing"; the formula codes it as nominal anyway
-    else:
-        levels = sorted(column.dropna().unique())
-        ordered = False
+    levels = list(levels_of(column))
+    ordered = False  # an ordered scale has no place for "missing"; the formula codes it as nominal anyway
     if label in [str(level) for level in levels]:
-        raise InputError(f"variables.{name}: '{label}' is already a level of '{name}'; rename that level so "
+        raise InputError(f"column '{name}' already has a level '{label}'; rename that level so "
                          "the missing category can be told apart")
     values = pd.Series(pd.Categorical(column.astype(object).where(column.notna(), None),
                                       categories=levels + [label], ordered=ordered), index=column.index, name=name)
@@ -106,7 +102,7 @@ def _with_level(column: pd.Series, missing: np.ndarray, label: str, name: str) -
     return values
 
 
-def prepare_missing_category(data: pd.DataFrame, model: AnalysisModel, types: Optional[Mapping[str, str]] = None,
+def prepare_missing_category(data: pd.DataFrame, *, model: AnalysisModel, types: Optional[Mapping[str, str]] = None,
                              missing: Optional[pd.DataFrame] = None,
                              indicator_for_continuous: bool = False, label: str = MISSING_LEVEL,
                              constant: Union[str, float] = "mean") -> MissingCategoryData:
@@ -198,25 +194,36 @@ def prepare_missing_category(data: pd.DataFrame, model: AnalysisModel, types: Op
 
 @dataclass(frozen=True)
 class MissingCategoryResult:
-    """The model fitted with missing categories/indicators: the recoded data, flow, fit and estimates."""
+    """The model fitted with missing categories/indicators: the recoded data, flow, fit and exposure terms."""
 
     prepared: MissingCategoryData
     flow: CompleteCaseFlow
-    fit: ModelFit
-    estimates: pd.DataFrame
+    model_fit: ModelFit
     exposure_terms: Tuple[str, ...]
+    sentences: Tuple[str, ...] = ()
+    strategy: str = "missing_category"
 
-    @property
     def n_outcome_missing(self) -> int:
+        """Rows dropped because the outcome is missing (it never gets a category)."""
         row = self.prepared.handling[self.prepared.handling["role"] == "outcome"]
         return int(row["n_missing"].iloc[0]) if len(row) else 0
 
-    @property
+    def estimates(self) -> pd.DataFrame:
+        """Rows for ``estimates.csv`` (strategy ``missing_category``), the extra terms included."""
+        return self.model_fit.estimates(self.strategy)
+
     def exposure_estimates(self) -> pd.DataFrame:
-        return self.estimates[self.estimates["term"].isin(self.exposure_terms)].reset_index(drop=True)
+        """The rows of :meth:`estimates` for the exposure terms."""
+        estimates = self.estimates()
+        return estimates[estimates["term"].isin(self.exposure_terms)].reset_index(drop=True)
+
+    def tables(self) -> Dict[str, pd.DataFrame]:
+        """``missing_category_handling``, ``flow_missing_category`` and this strategy's ``estimates`` rows."""
+        return {"missing_category_handling": self.prepared.handling, "flow_missing_category": self.flow.steps,
+                "estimates": self.estimates()}
 
 
-def missing_category_analysis(data: pd.DataFrame, model: AnalysisModel, types: Optional[Mapping[str, str]] = None,
+def missing_category_analysis(data: pd.DataFrame, *, model: AnalysisModel, types: Optional[Mapping[str, str]] = None,
                               missing: Optional[pd.DataFrame] = None, reasons: Optional[pd.DataFrame] = None,
                               not_applicable: Optional[pd.DataFrame] = None,
                               indicator_for_continuous: bool = False, label: str = MISSING_LEVEL,
@@ -241,15 +248,21 @@ def missing_category_analysis(data: pd.DataFrame, model: AnalysisModel, types: O
     check_model_data(data, model)
     if missing is None and not_applicable is not None:
         missing = data.isna() & ~not_applicable.reindex(columns=data.columns, fill_value=False)
-    prepared = prepare_missing_category(data, model, types, missing, indicator_for_continuous, label, constant)
+    prepared = prepare_missing_category(data, model=model, types=types, missing=missing,
+                                        indicator_for_continuous=indicator_for_continuous, label=label,
+                                        constant=constant)
     recoded = dataclasses.replace(model, formula=prepared.formula)
-    flow = complete_case_flow(prepared.data, recoded, reasons, not_applicable)
+    flow = complete_case_flow(prepared.data, model=recoded, reasons=reasons, not_applicable=not_applicable)
     # The indicator columns are never missing; listing them in the flow would only add noise.
-    flow = dataclasses.replace(flow, table=flow.table[~flow.table["variable"].isin(prepared.indicator_columns)]
+    flow = dataclasses.replace(flow, steps=flow.steps[~flow.steps["variable"].isin(prepared.indicator_columns())]
                                .reset_index(drop=True))
     require_rows(flow)
     fit = recoded.fit(prepared.data.loc[flow.complete.to_numpy()])
     fit = dataclasses.replace(fit, terms=prepared.display_terms(fit.terms))
     terms = tuple(exposure_terms(fit.terms, model.exposure))
-    return MissingCategoryResult(prepared=prepared, flow=flow, fit=fit, estimates=fit.table("missing_category"),
-                                 exposure_terms=terms)
+    n_outcome = int(prepared.handling.loc[prepared.handling["role"] == "outcome", "n_missing"].sum())
+    written = model.formula + "".join(f" + {name}" for name in prepared.indicators)  # as a reader writes it
+    sentences = (f"Model fitted: {written}.",
+                 f"{fit.nobs:,} of {flow.n_rows:,} rows used ({n_outcome:,} rows without the outcome were dropped).")
+    return MissingCategoryResult(prepared=prepared, flow=flow, model_fit=fit, exposure_terms=terms,
+                                 sentences=sentences)

@@ -41,8 +41,10 @@ def wald_inference(estimate: ArrayLike, std_error: ArrayLike, df: Optional[Array
     """
     estimate = np.asarray(estimate, dtype=float)
     se = np.asarray(std_error, dtype=float)
-    dfs = np.full(estimate.shape, np.inf) if df is None else np.broadcast_to(np.asarray(df, dtype=float),
-                                                                            estimate.shape)
+    if df is None:
+        dfs = np.full(estimate.shape, np.inf)
+    else:
+        dfs = np.broadcast_to(np.asarray(df, dtype=float), estimate.shape)
     normal = ~np.isfinite(dfs)
     finite_df = np.where(normal, 1.0, dfs)
     crit = np.where(normal, stats.norm.ppf(1 - alpha / 2), stats.t.ppf(1 - alpha / 2, finite_df))

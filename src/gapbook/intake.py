@@ -123,6 +123,17 @@ def inferred_notes(infos: Mapping[str, VariableInfo]) -> Tuple[str, ...]:
     return tuple(f"{v.name}: type inferred as {v.type} ({v.reason})" for v in infos.values() if not v.declared)
 
 
+def levels_of(column: pd.Series) -> Tuple[Any, ...]:
+    """A column's levels in order: a Categorical's categories, else its distinct observed values sorted."""
+    if isinstance(column.dtype, pd.CategoricalDtype):
+        return tuple(column.cat.categories)
+    values = column.dropna().unique()
+    try:
+        return tuple(sorted(values))
+    except TypeError:  # mixed kinds of values: sort by their text
+        return tuple(sorted(values, key=str))
+
+
 def _levels_text(levels: Optional[Tuple[Any, ...]], shown: int = 12) -> str:
     """Levels for a table cell; a long list (dates, free text read as categories) is cut with its count."""
     if levels is None:

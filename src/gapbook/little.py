@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
-from typing import Any, List, Optional, Sequence, Tuple
+from typing import Any, Dict, List, Optional, Sequence, Tuple
 
 import numpy as np
 import pandas as pd
@@ -167,7 +167,7 @@ def _standardise(values: np.ndarray) -> Tuple[np.ndarray, np.ndarray, np.ndarray
     return (values - centre) / scale, centre, scale
 
 
-def em_multivariate_normal(data: pd.DataFrame, tolerance: float = 1e-8, max_iterations: int = 1000) -> EMEstimate:
+def em_multivariate_normal(data: pd.DataFrame, *, tolerance: float = 1e-8, max_iterations: int = 1000) -> EMEstimate:
     """Maximum-likelihood mean and covariance of a multivariate normal sample with missing values, by EM.
 
     The E-step works on per-pattern sums and cross-products, so each iteration costs
@@ -237,7 +237,8 @@ class LittleTest:
 
     ``patterns`` has one row per missingness pattern used: n_rows, n_observed, the pattern's
     share of the statistic (``contribution``) and one 0/1 column per variable (1 = observed).
-    ``notes`` explains variables left out, rows skipped, non-convergence or a singular covariance.
+    ``notes`` explains variables left out, rows skipped, non-convergence or a singular covariance;
+    ``sentences`` the test in words (the mechanism stage writes them).
     """
 
     statistic: float
@@ -250,9 +251,14 @@ class LittleTest:
     em: Optional[EMEstimate]
     patterns: pd.DataFrame
     notes: Tuple[str, ...] = field(default_factory=tuple)
+    sentences: Tuple[str, ...] = ()
 
-    def table(self) -> pd.DataFrame:
-        """The one-row ``mcar_test.csv``."""
+    def tables(self) -> Dict[str, pd.DataFrame]:
+        """``mcar_test`` (one row) and ``mcar_patterns`` (each pattern's part of the statistic)."""
+        return {"mcar_test": self.as_row(), "mcar_patterns": self.patterns}
+
+    def as_row(self) -> pd.DataFrame:
+        """The test as the one-row table ``mcar_test.csv``."""
         em = self.em
         return pd.DataFrame([{
             "statistic": self.statistic, "df": self.df, "p_value": self.p_value, "n_patterns": self.n_patterns,
@@ -263,7 +269,7 @@ class LittleTest:
         }])
 
 
-def little_mcar_test(data: pd.DataFrame, tolerance: float = 1e-8, max_iterations: int = 1000,
+def little_mcar_test(data: pd.DataFrame, *, tolerance: float = 1e-8, max_iterations: int = 1000,
                      notes: Sequence[str] = ()) -> LittleTest:
     """Little's test of missing completely at random for numeric variables.
 

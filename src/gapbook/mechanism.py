@@ -22,6 +22,7 @@ missing nor observed: they are left out of every comparison.
 """
 from __future__ import annotations
 
+import dataclasses
 import warnings
 from dataclasses import dataclass
 from typing import Any, Dict, List, Mapping, Optional, Sequence, Tuple
@@ -32,6 +33,7 @@ from scipy import stats
 
 from .errors import InputError, did_you_mean
 from .expressions import FORMULA_NAMESPACE, ColumnAliases
+from .intake import Study, levels_of
 from .inference import format_p, standardised_difference, standardised_difference_of_shares, wald_inference
 from .little import LittleTest, little_mcar_test
 from .vocabulary import MAR_CAUTION, NUMBER_CODED_TYPES, NUMERIC_TYPES, PLAN_CAUTION, SENSITIVITY_POINTER, infer_type
@@ -64,12 +66,6 @@ def _type_of(types: Mapping[str, str], column: str, values: pd.Series) -> str:
     return types.get(column) or infer_type(values)[0]
 
 
-def _levels_of(values: pd.Series) -> List[Any]:
-    if isinstance(values.dtype, pd.CategoricalDtype):
-        return list(values.cat.categories)
-    return sorted(values.dropna().unique())
-
-
 def _level_text(level: Any) -> str:
     return f"{level:g}" if isinstance(level, (float, np.floating)) else str(level)
 
@@ -95,21 +91,26 @@ def binary_codes(values: pd.Series) -> pd.Series:
 class GroupComparison:
     """Each variable compared between rows with an incomplete variable missing and observed.
 
-    ``table`` is ``mechanism_groups.csv``. ``quantiles`` (continuous compared variables:
+    ``comparisons`` is ``mechanism_groups.csv``. ``quantiles`` (continuous compared variables:
     incomplete_variable, compared_variable, group, probability, value) and ``level_shares``
     (categorical: incomplete_variable, compared_variable, group, level, count, share) hold
     the two distributions for figures; ``group`` is "missing" or "observed".
     """
 
-    table: pd.DataFrame
+    comparisons: pd.DataFrame
     quantiles: pd.DataFrame
     level_shares: pd.DataFrame
     alpha: float
+    sentences: Tuple[str, ...] = ()
+
+    def tables(self) -> Dict[str, pd.DataFrame]:
+        """``mechanism_groups``."""
+        return {"mechanism_groups": self.comparisons}
 
     def strongest(self, top: int = 6) -> pd.DataFrame:
         """The rows with the smallest p-values (ranked on the unadjusted p, whose order Holm keeps but
         whose ties at 1 it does not make; further ties broken by the larger |SMD|)."""
-        tested = self.table[self.table["p_adjusted"].notna()]
+        tested = self.comparisons[self.comparisons["p_adjusted"].notna()]
         order = tested.assign(_abs=tested["smd"].abs().fillna(0.0)).sort_values(
             ["p_value", "_abs"], ascending=[True, False], kind="stable")
         return order.drop(columns="_abs").head(top).reset_index(drop=True)
@@ -189,7 +190,7 @@ def _compare_categorical(v: str, w: str, g1: pd.Series, g0: pd.Series, levels: S
     return row
 
 
-def compare_groups(data: pd.DataFrame, types: Mapping[str, str], missing: Optional[pd.DataFrame] = None,
+def compare_groups(data: pd.DataFrame, *, types: Mapping[str, str], missing: Optional[pd.DataFrame] = None,
                    not_applicable: Optional[pd.DataFrame] = None, alpha: float = 0.05) -> GroupComparison:
     """Compare every variable between rows where each incomplete variable is missing and observed.
 
@@ -239,7 +240,7 @@ def compare_groups(data: pd.DataFrame, types: Mapping[str, str], missing: Option
                 rows.append(_compare_continuous(v, w, x1, x0))
                 quantile_parts.append(_quantile_frame(v, w, x1, x0))
             else:
-                levels = _levels_of(values)
+                levels = levels_of(values)
                 g1, g0 = values[is_missing & present], values[is_observed & present]
                 rows.append(_compare_categorical(v, w, g1, g0, levels))
                 share_parts.append(_share_frame(v, w, g1, g0, levels))
@@ -253,7 +254,8 @@ def compare_groups(data: pd.DataFrame, types: Mapping[str, str], missing: Option
         columns=["incomplete_variable", "compared_variable", "group", "probability", "value"])
     shares = pd.concat(share_parts, ignore_index=True) if share_parts else pd.DataFrame(
         columns=["incomplete_variable", "compared_variable", "group", "level", "count", "share"])
-    return GroupComparison(table=table, quantiles=quantiles, level_shares=shares, alpha=alpha)
+    groups = GroupComparison(comparisons=table, quantiles=quantiles, level_shares=shares, alpha=alpha)
+    return dataclasses.replace(groups, sentences=tuple(group_sentences(groups)))
 
 
 def holm_adjust(p_values: np.ndarray) -> np.ndarray:
@@ -298,7 +300,7 @@ def _share_frame(v: str, w: str, g1: pd.Series, g0: pd.Series, levels: Sequence[
 # ---------------------------------------------------------------------------
 # 2. the variables of Little's test (the test itself is in gapbook.little)
 
-def mcar_test_data(data: pd.DataFrame, types: Mapping[str, str], not_applicable: Optional[pd.DataFrame] = None,
+def mcar_test_data(data: pd.DataFrame, *, types: Mapping[str, str], not_applicable: Optional[pd.DataFrame] = None,
                    variables: Optional[Sequence[str]] = None) -> Tuple[pd.DataFrame, Tuple[str, ...]]:
     """The numeric frame Little's test runs on, and notes on what was left out and why.
 
@@ -316,14 +318,14 @@ def mcar_test_data(data: pd.DataFrame, types: Mapping[str, str], not_applicable:
         chosen = list(dict.fromkeys(variables))
         for name in chosen:
             if name not in data.columns:
-                raise InputError(f"mechanism.variables: '{name}' is not a column of the data"
-                                 f"{did_you_mean(name, data.columns)}")
+                raise InputError(f"'{name}' is not a column of the data"
+                                 f"{did_you_mean(name, data.columns)}", option="variables")
             kind = _type_of(types, name, data[name])
             if kind not in NUMBER_CODED_TYPES:
-                raise InputError(f"mechanism.variables: '{name}' is {kind}; Little's test takes continuous, count "
-                                 "and binary variables, so leave it out of mechanism.variables")
+                raise InputError(f"'{name}' is {kind}; Little's test takes continuous, count "
+                                 "and binary variables, so leave it out of mechanism.variables", option="variables")
             if data[name].notna().sum() == 0:
-                raise InputError(f"mechanism.variables: '{name}' has no observed values; leave it out")
+                raise InputError(f"'{name}' has no observed values; leave it out", option="variables")
         rows = ~not_applicable[chosen].any(axis=1).to_numpy() if chosen else np.ones(len(data), dtype=bool)
         if not rows.all():
             notes.append(f"{int((~rows).sum())} rows where a test variable does not apply were left out.")
@@ -357,14 +359,24 @@ def mcar_test_data(data: pd.DataFrame, types: Mapping[str, str], not_applicable:
 class MissingnessModels:
     """Logistic regressions of missingness indicators on the fully observed variables.
 
-    ``table`` (``mechanism_models.csv``) has one row per model term; ``fits`` one row per
-    incomplete variable: n_used, n_missing, predictors, auc, lr_p_value and a note (why a
-    model was not fitted, or that it separated perfectly).
+    ``terms`` (``mechanism_models.csv``) has one row per model term; ``model_fit``
+    (``mechanism_model_fit.csv``) one row per incomplete variable: n_used, n_missing,
+    predictors, auc, lr_p_value and a note (why a model was not fitted, or that it
+    separated perfectly).
     """
 
-    table: pd.DataFrame
-    fits: pd.DataFrame
+    terms: pd.DataFrame
+    model_fit: pd.DataFrame
     alpha: float
+    sentences: Tuple[str, ...] = ()
+
+    def fitted_terms(self) -> pd.DataFrame:
+        """The term rows of the models that were fitted (rows without a term are notes)."""
+        return self.terms[self.terms["term"] != ""]
+
+    def tables(self) -> Dict[str, pd.DataFrame]:
+        """``mechanism_models`` and ``mechanism_model_fit``."""
+        return {"mechanism_models": self.terms, "mechanism_model_fit": self.model_fit}
 
 
 def roc_auc(indicator: np.ndarray, score: np.ndarray) -> float:
@@ -404,7 +416,7 @@ def _separated_terms(indicator: np.ndarray, design: pd.DataFrame) -> List[str]:
     return found
 
 
-def fit_missingness_model(data: pd.DataFrame, variable: str, predictors: Sequence[str],
+def fit_missingness_model(data: pd.DataFrame, *, variable: str, predictors: Sequence[str],
                           indicator: np.ndarray, alpha: float = 0.05) -> Tuple[pd.DataFrame, Dict[str, Any]]:
     """One logistic regression of a missingness indicator; term rows and a one-row summary.
 
@@ -486,7 +498,7 @@ def _term_rows(variable: str, coef: pd.Series, se: pd.Series, result: Any, alpha
     }, columns=list(MODEL_COLUMNS))
 
 
-def missingness_models(data: pd.DataFrame, types: Mapping[str, str], missing: Optional[pd.DataFrame] = None,
+def missingness_models(data: pd.DataFrame, *, types: Mapping[str, str], missing: Optional[pd.DataFrame] = None,
                        not_applicable: Optional[pd.DataFrame] = None, min_missing: int = 10, alpha: float = 0.05,
                        predictors: Optional[Sequence[str]] = None) -> MissingnessModels:
     """For each incomplete variable with enough missing values, a logistic model of its missingness.
@@ -514,7 +526,8 @@ def missingness_models(data: pd.DataFrame, types: Mapping[str, str], missing: Op
     if predictors is not None:
         for name in predictors:
             if name not in data.columns:
-                raise InputError(f"predictors: '{name}' is not a column of the data{did_you_mean(name, data.columns)}")
+                raise InputError(f"'{name}' is not a column of the data{did_you_mean(name, data.columns)}",
+                                 option="predictors")
     term_parts: List[pd.DataFrame] = []
     summaries: List[Dict[str, Any]] = []
     for v in data.columns:
@@ -542,7 +555,8 @@ def missingness_models(data: pd.DataFrame, types: Mapping[str, str], missing: Op
             note = "not modelled: no fully observed variable to model on"
         else:
             subset = data.loc[rows]
-            terms, summary = fit_missingness_model(subset, v, chosen, is_missing[rows], alpha=alpha)
+            terms, summary = fit_missingness_model(subset, variable=v, predictors=chosen, indicator=is_missing[rows],
+                                                   alpha=alpha)
             term_parts.append(terms)
             summaries.append(summary)
             continue
@@ -553,7 +567,8 @@ def missingness_models(data: pd.DataFrame, types: Mapping[str, str], missing: Op
              if term_parts else pd.DataFrame(columns=list(MODEL_COLUMNS)))
     fits = pd.DataFrame(summaries, columns=["incomplete_variable", "n_used", "n_missing", "predictors", "auc",
                                             "lr_statistic", "lr_df", "lr_p_value", "separation", "note"])
-    return MissingnessModels(table=table, fits=fits, alpha=alpha)
+    models = MissingnessModels(terms=table, model_fit=fits, alpha=alpha)
+    return dataclasses.replace(models, sentences=tuple(model_sentences(models)))
 
 
 # ---------------------------------------------------------------------------
@@ -607,7 +622,7 @@ def _relation_text(row: pd.Series, variable: str) -> str:
 def group_sentences(groups: GroupComparison) -> List[str]:
     """One sentence per incomplete variable: the observed variables its missingness relates to, if any."""
     sentences = []
-    table = groups.table
+    table = groups.comparisons
     for v, rows in table.groupby("incomplete_variable", sort=False):
         tested = rows[rows["p_adjusted"].notna()]
         if tested.empty:
@@ -628,7 +643,7 @@ def model_sentences(models: MissingnessModels) -> List[str]:
     """One sentence per missingness model: evidence from the likelihood-ratio test and discrimination (AUC)."""
     sentences = []
     alpha = models.alpha
-    for _, row in models.fits.iterrows():
+    for _, row in models.model_fit.iterrows():
         v = row["incomplete_variable"]
         if not np.isfinite(row["lr_p_value"]):
             sentences.append(f"Missingness model of {v}: {row['note']}.")
@@ -649,12 +664,9 @@ def summary_sentences(groups: Optional[GroupComparison], mcar: Optional[LittleTe
     missingness of V depends on W"; never that the data are MCAR or MAR.
     """
     sentences: List[str] = []
-    if mcar is not None:
-        sentences.append(mcar_sentence(mcar, alpha))
-    if groups is not None:
-        sentences.extend(group_sentences(groups))
-    if models is not None:
-        sentences.extend(model_sentences(models))
+    for part in (mcar, groups, models):
+        if part is not None:
+            sentences.extend(part.sentences)
     sentences.append(f"{MAR_CAUTION} {SENSITIVITY_POINTER}")
     sentences.append(PLAN_CAUTION)
     return tuple(sentences)
@@ -673,8 +685,12 @@ class MechanismResult:
     sentences: Tuple[str, ...]
     alpha: float
 
+    def tables(self) -> Dict[str, pd.DataFrame]:
+        """``mechanism_groups``, ``mcar_test``, ``mcar_patterns``, ``mechanism_models``, ``mechanism_model_fit``."""
+        return {**self.groups.tables(), **self.mcar.tables(), **self.models.tables()}
 
-def assess_mechanism(data: pd.DataFrame, types: Mapping[str, str], missing: Optional[pd.DataFrame] = None,
+
+def assess_mechanism(data: pd.DataFrame, *, types: Mapping[str, str], missing: Optional[pd.DataFrame] = None,
                      not_applicable: Optional[pd.DataFrame] = None, variables: Optional[Sequence[str]] = None,
                      alpha: float = 0.05, min_missing: int = 10, em_tolerance: float = 1e-8,
                      em_max_iterations: int = 1000) -> MechanismResult:
@@ -696,16 +712,33 @@ def assess_mechanism(data: pd.DataFrame, types: Mapping[str, str], missing: Opti
     ----------
     Little RJA (1988). JASA 83:1198-1202.
     """
-    groups = compare_groups(data, types, missing, not_applicable, alpha=alpha)
-    frame, notes = mcar_test_data(data, types, not_applicable, variables)
+    groups = compare_groups(data, types=types, missing=missing, not_applicable=not_applicable, alpha=alpha)
+    frame, notes = mcar_test_data(data, types=types, not_applicable=not_applicable, variables=variables)
     mcar = little_mcar_test(frame, tolerance=em_tolerance, max_iterations=em_max_iterations, notes=notes)
-    models = missingness_models(data, types, missing, not_applicable, min_missing=min_missing, alpha=alpha)
+    mcar = dataclasses.replace(mcar, sentences=(mcar_sentence(mcar, alpha),))
+    models = missingness_models(data, types=types, missing=missing, not_applicable=not_applicable,
+                                min_missing=min_missing, alpha=alpha)
     return MechanismResult(groups=groups, mcar=mcar, models=models,
                            sentences=summary_sentences(groups, mcar, models, alpha), alpha=alpha)
 
 
-def assess_study(study: Any, settings: Any) -> MechanismResult:
-    """:func:`assess_mechanism` on a study after intake with the params' ``mechanism`` section."""
-    return assess_mechanism(study.data, study.types, study.missing, study.not_applicable,
-                            variables=settings.variables, alpha=settings.alpha, min_missing=settings.min_missing,
-                            em_tolerance=settings.em_tolerance, em_max_iterations=settings.em_max_iterations)
+def assess_study(study: Study, *, variables: Optional[Sequence[str]] = None, alpha: float = 0.05,
+                 min_missing: int = 10, em_tolerance: float = 1e-8, em_max_iterations: int = 1000) -> MechanismResult:
+    """:func:`assess_mechanism` on a study after intake (its values, types, missing and not-applicable cells).
+
+    Parameters
+    ----------
+    study : from :func:`gapbook.intake.load_study`.
+    variables, alpha, min_missing, em_tolerance, em_max_iterations : as for :func:`assess_mechanism`.
+
+    Returns
+    -------
+    MechanismResult.
+
+    References
+    ----------
+    Little RJA (1988). JASA 83:1198-1202.
+    """
+    return assess_mechanism(study.data, types=study.types, missing=study.missing, not_applicable=study.not_applicable,
+                            variables=variables, alpha=alpha, min_missing=min_missing, em_tolerance=em_tolerance,
+                            em_max_iterations=em_max_iterations)

@@ -18,7 +18,7 @@ import statsmodels.api as sm
 import statsmodels.formula.api as smf
 
 from .errors import AnalysisError, InputError, did_you_mean
-from .expressions import FORMULA_NAMESPACE, parse_formula
+from .expressions import FORMULA_NAMESPACE, ExpressionError, parse_formula
 from .inference import wald_inference
 from .vocabulary import FAMILY_NAMES, ratio_name
 
@@ -34,23 +34,23 @@ class ModelFit:
     formula: str
     family: str
     terms: Tuple[str, ...]
-    params: np.ndarray
-    cov: np.ndarray
+    coefficients: np.ndarray
+    covariance: np.ndarray
     df_resid: Optional[float]
     nobs: int
     robust: bool
     alpha: float = 0.05
 
-    @property
     def std_errors(self) -> np.ndarray:
-        return np.sqrt(np.diag(self.cov))
+        """Standard errors: square roots of the covariance's diagonal."""
+        return np.sqrt(np.diag(self.covariance))
 
-    def table(self, strategy: str) -> pd.DataFrame:
+    def estimates(self, strategy: str) -> pd.DataFrame:
         """Rows for ``estimates.csv``: one per term, with CI at level 1 - alpha and p-value."""
-        se = self.std_errors
-        lower, upper, p = wald_inference(self.params, se, self.df_resid, self.alpha)
+        se = self.std_errors()
+        lower, upper, p = wald_inference(self.coefficients, se, self.df_resid, self.alpha)
         frame = pd.DataFrame({
-            "strategy": strategy, "term": list(self.terms), "estimate": self.params, "std_error": se,
+            "strategy": strategy, "term": list(self.terms), "estimate": self.coefficients, "std_error": se,
             "ci_lower": lower, "ci_upper": upper, "p_value": p,
             "n_used": self.nobs,
         })
@@ -82,14 +82,27 @@ def formula_columns(formula: str, columns: Sequence[str]) -> List[str]:
     return [c for _, c in sorted(found)]
 
 
-def check_formula(formula: str, columns: Sequence[str], where: str = "analysis.formula") -> Tuple[str, List[str]]:
-    """The outcome and the right-hand-side columns; exits 2 when a term is not allowed or a name is not a column.
+def check_formula(formula: str, columns: Sequence[str], *, option: str = "formula") -> Tuple[str, List[str]]:
+    """The outcome and the right-hand-side columns of a formula, checked against the data's columns.
 
     The check is :func:`gapbook.expressions.parse_formula`: the formula is split by patsy's
     parser and every term checked against the expression language's allow-list before any
     of it is evaluated.
+
+    Parameters
+    ----------
+    formula : a statsmodels formula, e.g. ``"y ~ arm + age + C(site)"``.
+    columns : the data's column names.
+    option : the option name errors give (exit 2), e.g. ``formula``.
+
+    Returns
+    -------
+    (outcome, used) : the outcome column and the right-hand-side columns in formula order.
     """
-    parsed = parse_formula(formula, where=where, columns=list(columns))
+    try:
+        parsed = parse_formula(formula, where="", columns=list(columns))
+    except ExpressionError as exc:
+        raise InputError(exc.detail, option=option) from None
     return parsed.outcome, list(parsed.columns)
 
 
@@ -100,23 +113,30 @@ def _outcome_as_number(data: pd.DataFrame, outcome: str, family: str) -> pd.Data
         levels = list(column.cat.categories) if isinstance(column.dtype, pd.CategoricalDtype) \
             else sorted(column.dropna().unique())
         if len(levels) != 2:
-            raise InputError(f"analysis.formula: the binomial outcome '{outcome}' has {len(levels)} levels; "
-                             "it needs exactly two")
+            raise InputError(f"the binomial outcome '{outcome}' has {len(levels)} levels; "
+                             "it needs exactly two", option="formula")
         data = data.copy()
         data[outcome] = column.map({levels[0]: 0.0, levels[1]: 1.0}).astype(float)
         return data
     values = column.dropna().to_numpy(dtype=float) if pd.api.types.is_numeric_dtype(column) else None
     if family == "binomial" and values is not None and not np.isin(values, (0.0, 1.0)).all():
-        raise InputError(f"analysis.family: binomial needs a 0/1 or two-level outcome, but '{outcome}' holds "
+        raise InputError(f"binomial needs a 0/1 or two-level outcome, but '{outcome}' holds "
                          f"other values (e.g. {values[~np.isin(values, (0.0, 1.0))][0]:g}); choose gaussian or "
-                         "recode the outcome")
+                         "recode the outcome", option="family")
     if family == "poisson" and values is not None and (values < 0).any():
-        raise InputError(f"analysis.family: poisson needs counts, but '{outcome}' holds negative values; "
-                         "choose gaussian or check the outcome")
+        raise InputError(f"poisson needs counts, but '{outcome}' holds negative values; "
+                         "choose gaussian or check the outcome", option="family")
     return data
 
 
-def fit_model(data: pd.DataFrame, formula: str, family: str = "gaussian", robust: bool = False,
+def check_family(family: str) -> None:
+    """Exit 2 (option ``family``) unless ``family`` is one of the vocabulary's families."""
+    if family not in FAMILY_NAMES:
+        raise InputError(f"'{family}' is not one of {', '.join(FAMILY_NAMES)}{did_you_mean(family, FAMILY_NAMES)}",
+                         option="family")
+
+
+def fit_model(data: pd.DataFrame, *, formula: str, family: str = "gaussian", robust: bool = False,
               offset: Optional[str] = None, alpha: float = 0.05) -> ModelFit:
     """Fit the analysis model to the rows where every model variable is present.
 
@@ -133,12 +153,10 @@ def fit_model(data: pd.DataFrame, formula: str, family: str = "gaussian", robust
     White H (1980). A heteroskedasticity-consistent covariance matrix estimator and a
     direct test for heteroskedasticity. Econometrica 48:817-838.
     """
-    if family not in FAMILY_NAMES:
-        raise InputError(f"analysis.family: '{family}' is not one of {', '.join(FAMILY_NAMES)}"
-                         f"{did_you_mean(family, FAMILY_NAMES)}")
+    check_family(family)
     outcome, _ = check_formula(formula, list(data.columns))
     if data[outcome].notna().sum() == 0:
-        raise InputError(f"analysis.formula: the outcome '{outcome}' has no observed values")
+        raise InputError(f"the outcome '{outcome}' has no observed values", option="formula")
     data = _outcome_as_number(data, outcome, family)
     cov_type = "HC1" if robust else "nonrobust"
     try:
@@ -152,10 +170,11 @@ def fit_model(data: pd.DataFrame, formula: str, family: str = "gaussian", robust
                 kwargs: dict[str, Any] = {}
                 if offset is not None:
                     if offset not in data.columns:
-                        raise InputError(f"analysis.offset: '{offset}' is not a column{did_you_mean(offset, data.columns)}")
+                        raise InputError(f"'{offset}' is not a column{did_you_mean(offset, data.columns)}",
+                                         option="offset")
                     if (pd.to_numeric(data[offset], errors="coerce") <= 0).any():
-                        raise InputError(f"analysis.offset: '{offset}' has values <= 0; give the person-time "
-                                         "itself (gapbook takes its log), not its log")
+                        raise InputError(f"'{offset}' has values <= 0; give the person-time "
+                                         "itself (gapbook takes its log), not its log", option="offset")
                     kwargs["offset"] = np.log(data[offset])
                     kwargs["missing"] = "drop"
                 result = smf.glm(formula, data=data, family=fam, eval_env=FORMULA_NAMESPACE,
@@ -166,13 +185,13 @@ def fit_model(data: pd.DataFrame, formula: str, family: str = "gaussian", robust
     except Exception as exc:
         message = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
         if int(data.dropna(subset=[outcome]).shape[0]) == 0 or "zero-size" in message or "0 rows" in message:
-            raise InputError(f"analysis.formula: no row has every variable of '{formula}' observed") from None
+            raise InputError(f"no row has every variable of '{formula}' observed", option="formula") from None
         raise AnalysisError(f"the model '{formula}' could not be fitted: {message}") from None
     if int(result.nobs) == 0:
-        raise InputError(f"analysis.formula: no row has every variable of '{formula}' observed")
-    return ModelFit(formula=formula, family=family, terms=tuple(result.params.index), params=result.params.to_numpy(),
-                    cov=np.asarray(result.cov_params()), df_resid=df_resid, nobs=int(result.nobs), robust=robust,
-                    alpha=alpha)
+        raise InputError(f"no row has every variable of '{formula}' observed", option="formula")
+    return ModelFit(formula=formula, family=family, terms=tuple(result.params.index),
+                    coefficients=result.params.to_numpy(), covariance=np.asarray(result.cov_params()),
+                    df_resid=df_resid, nobs=int(result.nobs), robust=robust, alpha=alpha)
 
 
 def exposure_terms(terms: Sequence[str], exposure: Optional[str]) -> List[str]:
@@ -184,8 +203,8 @@ def exposure_terms(terms: Sequence[str], exposure: Optional[str]) -> List[str]:
     pattern = re.compile(rf"(^|\(|['\"]){re.escape(exposure)}(['\"]|\)|\[|$)")
     matched = [t for t in terms if pattern.search(t)]
     if not matched:
-        raise InputError(f"analysis.exposure: '{exposure}' matches no term of the model "
-                         f"({', '.join(terms)}){did_you_mean(exposure, terms)}")
+        raise InputError(f"'{exposure}' matches no term of the model "
+                         f"({', '.join(terms)}){did_you_mean(exposure, terms)}", option="exposure")
     return matched
 
 
@@ -202,28 +221,19 @@ class AnalysisModel:
 
     def fit(self, data: pd.DataFrame, formula: Optional[str] = None) -> ModelFit:
         """``fit_model`` with these options (``formula`` overrides the model's, e.g. with indicators added)."""
-        return fit_model(data, formula or self.formula, self.family, self.robust, self.offset, self.alpha)
+        return fit_model(data, formula=formula or self.formula, family=self.family, robust=self.robust,
+                         offset=self.offset, alpha=self.alpha)
 
     def variables(self, columns: Sequence[str]) -> Tuple[str, List[str]]:
         """The outcome and the other model columns (formula order, then the offset); exits 2 on unknown names."""
-        if self.family not in FAMILY_NAMES:
-            raise InputError(f"analysis.family: '{self.family}' is not one of {', '.join(FAMILY_NAMES)}"
-                             f"{did_you_mean(self.family, FAMILY_NAMES)}")
+        check_family(self.family)
         outcome, used = check_formula(self.formula, list(columns))
         used = [c for c in used if c != outcome]
         if self.offset is not None:
             if self.offset not in columns:
-                raise InputError(f"analysis.offset: '{self.offset}' is not a column{did_you_mean(self.offset, columns)}")
+                raise InputError(f"'{self.offset}' is not a column{did_you_mean(self.offset, columns)}",
+                                 option="offset")
             if self.offset not in used:
                 used.append(self.offset)
         return outcome, used
 
-
-def analysis_model(params: Any) -> AnalysisModel:
-    """The ``analysis`` section of validated params as an :class:`AnalysisModel`; exits 2 without a formula."""
-    section = params.analysis
-    if not section.formula:
-        raise InputError(f"{params.label}: analysis.formula is required for this stage; "
-                         "write it as 'outcome ~ exposure + covariates'")
-    return AnalysisModel(formula=section.formula, family=section.family, exposure=section.exposure,
-                         robust=section.robust, offset=section.offset, alpha=section.alpha)

@@ -10,15 +10,14 @@ exposure are tested together with the pooled Wald test D1 of Li, Raghunathan & R
 from __future__ import annotations
 
 from dataclasses import dataclass
-from functools import cached_property
-from typing import Optional, Sequence, Tuple, Union
+from typing import Dict, Optional, Sequence, Tuple, Union
 
 import numpy as np
 import pandas as pd
 from scipy import stats
 
 from .errors import AnalysisError, InputError
-from .inference import wald_inference
+from .inference import format_p, wald_inference
 from .models import ModelFit, add_ratio_columns, exposure_terms
 
 STRATEGY = "multiple_imputation"  # the vocabulary's name for this strategy (gapbook.vocabulary.STRATEGIES)
@@ -39,7 +38,7 @@ class RubinPooled:
     m: int
 
 
-def barnard_rubin_df(m: int, between: np.ndarray, total: np.ndarray,
+def barnard_rubin_df(m: int, between: np.ndarray, total: np.ndarray, *,
                      df_complete: Optional[float] = None) -> np.ndarray:
     """Degrees of freedom for the t reference of a pooled scalar estimate.
 
@@ -74,7 +73,7 @@ def barnard_rubin_df(m: int, between: np.ndarray, total: np.ndarray,
     return combined
 
 
-def rubin_pool(estimates: np.ndarray, variances: np.ndarray, df_complete: Optional[float] = None) -> RubinPooled:
+def rubin_pool(estimates: np.ndarray, variances: np.ndarray, *, df_complete: Optional[float] = None) -> RubinPooled:
     """Pool m estimates of p parameters with Rubin's rules.
 
     Parameters
@@ -101,7 +100,7 @@ def rubin_pool(estimates: np.ndarray, variances: np.ndarray, df_complete: Option
         raise AnalysisError(f"pooling: estimates {estimates.shape} and variances {variances.shape} differ in shape")
     m = estimates.shape[0]
     if m < 1:
-        raise InputError("imputation.m: at least one imputed dataset is needed to pool; set m to 1 or more")
+        raise InputError("at least one imputed dataset is needed to pool; set m to 1 or more", option="m")
     estimate = estimates.mean(axis=0)
     within = variances.mean(axis=0)
     between = estimates.var(axis=0, ddof=1) if m > 1 else np.zeros_like(estimate)
@@ -111,14 +110,17 @@ def rubin_pool(estimates: np.ndarray, variances: np.ndarray, df_complete: Option
         lam = np.where(total > 0, (1 + 1 / m) * between / total, 0.0)
         df_old = np.where(lam > 0, (m - 1) / np.where(lam > 0, lam, 1.0) ** 2, np.inf)
         fmi = np.where(np.isfinite(df_old), (riv + 2 / (df_old + 3)) / (riv + 1), 0.0)
-    df = barnard_rubin_df(m, between, total, df_complete)
+    df = barnard_rubin_df(m, between, total, df_complete=df_complete)
     return RubinPooled(estimate=estimate, within=within, between=between, total=total, riv=riv, lambda_=lam,
                        df=df, fmi=fmi, m=m)
 
 
 @dataclass(frozen=True)
 class WaldTest:
-    """A pooled multi-parameter Wald test (D1): statistic, numerator and denominator df, p-value."""
+    """A pooled multi-parameter Wald test (D1): statistic, numerator and denominator df, p-value.
+
+    ``sentences`` holds the test in words; :meth:`tables` gives ``imputation_exposure_test``.
+    """
 
     terms: Tuple[str, ...]
     statistic: float
@@ -126,14 +128,20 @@ class WaldTest:
     df_den: float
     p_value: float
     riv: float
+    sentences: Tuple[str, ...] = ()
 
-    def table(self) -> pd.DataFrame:
+    def as_row(self) -> pd.DataFrame:
+        """The test as a one-row table."""
         return pd.DataFrame([{"test": "pooled Wald (D1)", "terms": " + ".join(self.terms), "statistic": self.statistic,
                               "df_num": self.df_num, "df_den": self.df_den, "p_value": self.p_value,
                               "riv": self.riv}])
 
+    def tables(self) -> Dict[str, pd.DataFrame]:
+        """The record table of the exposure's pooled test."""
+        return {"imputation_exposure_test": self.as_row()}
 
-def wald_d1(estimates: np.ndarray, covariances: np.ndarray, index: Sequence[int],
+
+def wald_d1(estimates: np.ndarray, covariances: np.ndarray, index: Sequence[int], *,
             terms: Optional[Sequence[str]] = None, null: Optional[np.ndarray] = None) -> WaldTest:
     """Pooled Wald test that k parameters are jointly equal to ``null`` (default zero).
 
@@ -159,7 +167,7 @@ def wald_d1(estimates: np.ndarray, covariances: np.ndarray, index: Sequence[int]
     index = list(index)
     k = len(index)
     if k == 0:
-        raise InputError("analysis.exposure: no model term to test")
+        raise InputError("no model term to test", option="exposure")
     estimates = np.atleast_2d(np.asarray(estimates, dtype=float))[:, index]
     covariances = np.asarray(covariances, dtype=float)[:, index][:, :, index]
     m = estimates.shape[0]
@@ -180,51 +188,47 @@ def wald_d1(estimates: np.ndarray, covariances: np.ndarray, index: Sequence[int]
         v1 = t * (1 + 1 / k) * (1 + 1 / r1) ** 2 / 2
     p_value = float(stats.f.sf(statistic, k, v1)) if np.isfinite(v1) else float(stats.chi2.sf(statistic * k, k))
     names = tuple(terms) if terms is not None else tuple(str(i) for i in index)
-    return WaldTest(terms=names, statistic=statistic, df_num=k, df_den=float(v1), p_value=p_value, riv=r1)
+    sentence = (f"Pooled Wald test (D1; Li, Raghunathan & Rubin 1991) that every term of {', '.join(names)} is "
+                f"zero: F({k}, {float(v1):.1f}) = {statistic:.2f}, {format_p(p_value)}.")
+    return WaldTest(terms=names, statistic=statistic, df_num=k, df_den=float(v1), p_value=p_value, riv=r1,
+                    sentences=(sentence,))
 
 
 @dataclass(frozen=True)
 class PooledResult:
     """The analysis model pooled over m imputed datasets with Rubin's rules.
 
-    ``estimates`` (m, p) and ``covariances`` (m, p, p) are the per-imputation fits; ``table``
-    has the ``estimates.csv`` columns (strategy, term, estimate, std_error, ci_lower,
-    ci_upper, p_value, n_used, df, fmi, riv, and odds/rate-ratio columns for binomial and
-    poisson models, pooled on the log scale); ``variances`` has the per-term within,
-    between and total variances.
+    ``coefficients`` (m, p) and ``covariances`` (m, p, p) are the per-imputation fits and
+    ``rubin`` their pooled summary per term. :meth:`estimates` gives the ``estimates.csv``
+    rows (strategy, term, estimate, std_error, ci_lower, ci_upper, p_value, n_used, df, fmi,
+    riv, and odds/rate-ratio columns for binomial and poisson models, pooled on the log
+    scale); :meth:`variances` the per-term within, between and total variances.
     """
 
     terms: Tuple[str, ...]
-    estimates: np.ndarray
+    coefficients: np.ndarray
     covariances: np.ndarray
+    rubin: RubinPooled
     df_complete: Optional[float]
     nobs: int
+    m: int
     family: str = "gaussian"
     alpha: float = 0.05
     formula: str = ""
     strategy: str = STRATEGY
+    sentences: Tuple[str, ...] = ()
 
-    @property
-    def m(self) -> int:
-        return int(self.estimates.shape[0])
-
-    @cached_property
-    def pooled(self) -> RubinPooled:
-        variances = np.diagonal(self.covariances, axis1=1, axis2=2)
-        return rubin_pool(self.estimates, variances, self.df_complete)
-
-    @property
     def estimate(self) -> np.ndarray:
-        return self.pooled.estimate
+        """The pooled estimate per term."""
+        return self.rubin.estimate
 
-    @property
     def std_error(self) -> np.ndarray:
-        return np.sqrt(self.pooled.total)
+        """The pooled standard error per term: the square root of the total variance."""
+        return np.sqrt(self.rubin.total)
 
-    @cached_property
-    def table(self) -> pd.DataFrame:
+    def estimates(self) -> pd.DataFrame:
         """Rows for ``estimates.csv``: t-based intervals and p-values with Barnard-Rubin df."""
-        pooled = self.pooled
+        pooled = self.rubin
         se = np.sqrt(pooled.total)
         df = pooled.df
         lower, upper, p = wald_inference(pooled.estimate, se, df, self.alpha)
@@ -235,21 +239,23 @@ class PooledResult:
         })
         return add_ratio_columns(frame, self.family)
 
-    @cached_property
     def variances(self) -> pd.DataFrame:
         """Per term: within, between and total variance, riv, lambda, df and fmi."""
-        pooled = self.pooled
+        pooled = self.rubin
         return pd.DataFrame({"term": list(self.terms), "within": pooled.within, "between": pooled.between,
                              "total": pooled.total, "riv": pooled.riv, "lambda": pooled.lambda_, "df": pooled.df,
                              "fmi": pooled.fmi})
 
-    @cached_property
     def per_imputation(self) -> pd.DataFrame:
         """Long table: imputation (0-based), term, estimate, std_error."""
-        m, p = self.estimates.shape
+        m, p = self.coefficients.shape
         se = np.sqrt(np.diagonal(self.covariances, axis1=1, axis2=2))
         return pd.DataFrame({"imputation": np.repeat(np.arange(m), p), "term": list(self.terms) * m,
-                             "estimate": self.estimates.ravel(), "std_error": se.ravel()})
+                             "estimate": self.coefficients.ravel(), "std_error": se.ravel()})
+
+    def tables(self) -> Dict[str, pd.DataFrame]:
+        """``estimates`` (this strategy's rows) and ``imputation_variances``."""
+        return {"estimates": self.estimates(), "imputation_variances": self.variances()}
 
     def wald(self, exposure: Union[str, Sequence[str], None]) -> WaldTest:
         """D1 test that every term of ``exposure`` (a variable, a term, or a list of terms) is zero."""
@@ -259,13 +265,13 @@ class PooledResult:
             chosen = [t for t in exposure if t in self.terms]
             if len(chosen) != len(list(exposure)):
                 missing = [t for t in exposure if t not in self.terms]
-                raise InputError(f"analysis.exposure: {', '.join(missing)} is not a model term "
-                                 f"({', '.join(self.terms)})")
+                raise InputError(f"{', '.join(missing)} is not a model term ({', '.join(self.terms)})",
+                                 option="exposure")
         index = [self.terms.index(t) for t in chosen]
-        return wald_d1(self.estimates, self.covariances, index, terms=chosen)
+        return wald_d1(self.coefficients, self.covariances, index, terms=chosen)
 
 
-def pool_fits(fits: Sequence[ModelFit], strategy: str = STRATEGY) -> PooledResult:
+def pool_fits(fits: Sequence[ModelFit], *, strategy: str = STRATEGY) -> PooledResult:
     """Pool analysis-model fits (one per completed dataset) with Rubin's rules.
 
     Parameters
@@ -283,17 +289,18 @@ def pool_fits(fits: Sequence[ModelFit], strategy: str = STRATEGY) -> PooledResul
     """
     fits = list(fits)
     if not fits:
-        raise InputError("imputation.m: no imputed datasets to pool; set m to 1 or more")
+        raise InputError("no imputed datasets to pool; set m to 1 or more", option="m")
     terms = fits[0].terms
     for i, fit in enumerate(fits):
         if fit.terms != terms:
             extra = sorted(set(fit.terms) ^ set(terms))
             raise AnalysisError(f"imputed dataset {i} gives different model terms ({', '.join(extra)}); a category "
                                 "is absent from some imputed datasets")
-    estimates = np.vstack([f.params for f in fits])
-    covariances = np.stack([f.cov for f in fits])
+    coefficients = np.vstack([f.coefficients for f in fits])
+    covariances = np.stack([f.covariance for f in fits])
     df_complete = fits[0].df_resid
     nobs = int(round(float(np.mean([f.nobs for f in fits]))))
-    return PooledResult(terms=tuple(terms), estimates=estimates, covariances=covariances, df_complete=df_complete,
-                        nobs=nobs, family=fits[0].family, alpha=fits[0].alpha, formula=fits[0].formula,
-                        strategy=strategy)
+    rubin = rubin_pool(coefficients, np.diagonal(covariances, axis1=1, axis2=2), df_complete=df_complete)
+    return PooledResult(terms=tuple(terms), coefficients=coefficients, covariances=covariances, rubin=rubin,
+                        df_complete=df_complete, nobs=nobs, m=len(fits), family=fits[0].family, alpha=fits[0].alpha,
+                        formula=fits[0].formula, strategy=strategy)

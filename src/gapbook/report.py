@@ -17,9 +17,9 @@ import pandas as pd
 
 from .errors import InputError, did_you_mean
 from .intake import Study
-from .models import check_formula
+from .impute import ImputationSettings
+from .models import AnalysisModel, check_formula, exposure_terms
 from .inference import format_p
-from .params import Params
 from .vocabulary import STRATEGY_PHRASES, cautions as page_cautions
 
 # Count columns of the record's tables that small-count suppression masks, by table.
@@ -38,14 +38,27 @@ COUNT_TABLES: Dict[str, Tuple[str, ...]] = {
 
 @dataclass(frozen=True)
 class SuppressedTable:
-    """A count table with small counts masked, and how many cells were masked."""
+    """A count table with small counts masked (``masked``), and how many cells were masked."""
 
-    table: pd.DataFrame
+    masked: pd.DataFrame
     n_masked: int
     columns: Tuple[str, ...]
 
 
-def suppress_small_counts(frame: pd.DataFrame, min_cell: int, columns: Optional[Sequence[str]] = None,
+@dataclass(frozen=True)
+class RecordSuppression:
+    """Small-count suppression of the record's count tables: each masked table and the count masked."""
+
+    suppressed: Dict[str, SuppressedTable]
+    min_cell: int
+    sentences: Tuple[str, ...] = ()
+
+    def tables(self) -> Dict[str, pd.DataFrame]:
+        """The masked tables, under their record names (they replace the unmasked ones)."""
+        return {name: part.masked for name, part in self.suppressed.items()}
+
+
+def suppress_small_counts(frame: pd.DataFrame, *, min_cell: int, columns: Optional[Sequence[str]] = None,
                           linked: Optional[Mapping[str, str]] = None) -> SuppressedTable:
     """Mask counts from 1 to ``min_cell - 1`` (zero is kept: it discloses nobody).
 
@@ -110,11 +123,24 @@ def count_columns(frame: pd.DataFrame) -> Tuple[str, ...]:
     return tuple(found)
 
 
-def suppress_record_tables(tables: Mapping[str, Optional[pd.DataFrame]], min_cell: int) -> Dict[str, SuppressedTable]:
+def suppress_record_tables(tables: Mapping[str, Optional[pd.DataFrame]], *, min_cell: int) -> RecordSuppression:
     """Small-count suppression for every count table of the record that is present.
 
     ``audit_variables`` also masks its reason-count columns and the ``pct_missing`` of a
     masked ``n_missing``.
+
+    Parameters
+    ----------
+    tables : the record's count tables by name (None for a table the record lacks).
+    min_cell : the smallest count that may be shown.
+
+    Returns
+    -------
+    RecordSuppression whose :meth:`~RecordSuppression.tables` replace the unmasked tables.
+
+    References
+    ----------
+    Common practice in statistical disclosure control (threshold rules); no single source.
     """
     out: Dict[str, SuppressedTable] = {}
     for name, frame in tables.items():
@@ -123,13 +149,16 @@ def suppress_record_tables(tables: Mapping[str, Optional[pd.DataFrame]], min_cel
         if name == "audit_variables":
             known = ("variable", "type", "n", "n_missing", "pct_missing", "over_threshold")
             reason_columns = [c for c in frame.columns if c not in known and pd.api.types.is_numeric_dtype(frame[c])]
-            out[name] = suppress_small_counts(frame, min_cell, ["n", "n_missing", *reason_columns],
+            out[name] = suppress_small_counts(frame, min_cell=min_cell, columns=["n", "n_missing", *reason_columns],
                                               linked={"n_missing": "pct_missing"})
         elif name == "audit_patterns":
-            out[name] = suppress_small_counts(frame, min_cell, ["n_rows"], linked={"n_rows": "pct_rows"})
+            out[name] = suppress_small_counts(frame, min_cell=min_cell, columns=["n_rows"],
+                                              linked={"n_rows": "pct_rows"})
         else:
-            out[name] = suppress_small_counts(frame, min_cell)
-    return out
+            out[name] = suppress_small_counts(frame, min_cell=min_cell)
+    sentence = (f"Counts below {min_cell} masked: "
+                + (", ".join(f"{name} {part.n_masked}" for name, part in out.items()) or "none") + ".")
+    return RecordSuppression(suppressed=out, min_cell=min_cell, sentences=(sentence,))
 
 
 # ---------------------------------------------------------------------------
@@ -139,30 +168,28 @@ def suppress_record_tables(tables: Mapping[str, Optional[pd.DataFrame]], min_cel
 class ParticipantFlow:
     """Rows at each step from the file to each analysis, overall and by group.
 
-    ``table`` has columns step, description, all, and one column per group level.
+    ``steps`` has columns step, description, all, and one column per group level.
     """
 
-    table: pd.DataFrame
+    steps: pd.DataFrame
     group: Optional[str]
     n_rows: int
     n_complete: int
 
 
-def flow_group(params: Params, study: Study) -> Optional[str]:
-    """The grouping column of the flow: ``report.group``, else a categorical exposure, else none."""
-    group = params.report.group
+def flow_group(study: Study, *, group: Optional[str] = None, exposure: Optional[str] = None) -> Optional[str]:
+    """The grouping column of the flow: ``group`` when given, else a categorical exposure, else none."""
     if group is not None:
         if group not in study.data.columns:
-            raise InputError(f"report.group: '{group}' is not a column of the data"
-                             f"{did_you_mean(group, study.data.columns)}")
+            raise InputError(f"'{group}' is not a column of the data{did_you_mean(group, study.data.columns)}",
+                             option="group")
         return group
-    exposure = params.analysis.exposure
     if exposure in study.data.columns and study.variables[exposure].is_categorical:
         return exposure
     return None
 
 
-def participant_flow(study: Study, formula: Optional[str], group: Optional[str] = None,
+def participant_flow(study: Study, *, formula: Optional[str], group: Optional[str] = None,
                      estimates: Optional[pd.DataFrame] = None) -> ParticipantFlow:
     """Count participants from the file to each analysis (CONSORT-style flow), by group when given.
 
@@ -170,7 +197,7 @@ def participant_flow(study: Study, formula: Optional[str], group: Optional[str] 
     ----------
     study : the study after intake.
     formula : the analysis formula (its variables define "complete data for the model"), or None
-        when the params have no model: the flow is then rows in the file and rows with every
+        when there is no model: the flow is then rows in the file and rows with every
         variable observed.
     group : a column to split the counts by (e.g. the trial arm), or None.
     estimates : ``estimates.csv``; its ``n_used`` per strategy gives the analysed counts.
@@ -216,7 +243,7 @@ def participant_flow(study: Study, formula: Optional[str], group: Optional[str] 
     if outcome is None:
         rows.append({"step": "complete_all_variables", "description": "every variable observed", **counts(complete)})
         table = pd.DataFrame(rows, columns=["step", "description", "all", *levels])
-        return ParticipantFlow(table=table, group=group, n_rows=int(everyone.sum()), n_complete=int(complete.sum()))
+        return ParticipantFlow(steps=table, group=group, n_rows=int(everyone.sum()), n_complete=int(complete.sum()))
     observed_outcome = ~missing[outcome].to_numpy()
     rows.append({"step": "outcome_observed", "description": f"outcome ({outcome}) observed",
                  **counts(observed_outcome)})
@@ -239,7 +266,7 @@ def participant_flow(study: Study, formula: Optional[str], group: Optional[str] 
                 row[level] = counts(match)[level] if match is not None else float("nan")
             rows.append(row)
     table = pd.DataFrame(rows, columns=["step", "description", "all", *levels])
-    return ParticipantFlow(table=table, group=group, n_rows=int(everyone.sum()), n_complete=int(complete.sum()))
+    return ParticipantFlow(steps=table, group=group, n_rows=int(everyone.sum()), n_complete=int(complete.sum()))
 
 
 # ---------------------------------------------------------------------------
@@ -247,14 +274,15 @@ def participant_flow(study: Study, formula: Optional[str], group: Optional[str] 
 
 @dataclass(frozen=True)
 class MissingSummary:
-    """Missing values per variable with the reasons, and the variables above the audit threshold."""
+    """Missing values per variable with the reasons (``variables``), and the variables above the audit threshold."""
 
-    table: pd.DataFrame
+    variables: pd.DataFrame
     threshold: float
     over_threshold: Tuple[str, ...]
 
 
-def missing_summary(study: Study, threshold: float, audit_variables: Optional[pd.DataFrame] = None) -> MissingSummary:
+def missing_summary(study: Study, *, threshold: float,
+                    audit_variables: Optional[pd.DataFrame] = None) -> MissingSummary:
     """Per variable: n, n_missing, pct_missing, over_threshold and the reasons in words.
 
     Parameters
@@ -297,7 +325,7 @@ def missing_summary(study: Study, threshold: float, audit_variables: Optional[pd
             mapped = table["variable"].map(audit["over_threshold"].astype(str).str.lower().eq("true"))
             table["over_threshold"] = mapped.where(mapped.notna(), table["over_threshold"]).astype(bool)
     flagged = tuple(table.loc[table["over_threshold"].astype(bool), "variable"])
-    return MissingSummary(table=table, threshold=threshold, over_threshold=flagged)
+    return MissingSummary(variables=table, threshold=threshold, over_threshold=flagged)
 
 
 # ---------------------------------------------------------------------------
@@ -315,11 +343,11 @@ class ChecklistItem:
 class Checklist:
     """What the reporting guidelines ask about missing data, where the record answers it, and the answer."""
 
-    table: pd.DataFrame
+    items: pd.DataFrame
 
-    @property
-    def items(self) -> Tuple[str, ...]:
-        return tuple(self.table["item"])
+    def item_names(self) -> Tuple[str, ...]:
+        """The items' names, in order."""
+        return tuple(self.items["item"])
 
 
 def _fmt(value: object, digits: int = 2) -> str:
@@ -360,15 +388,17 @@ def effect_phrase(row: Mapping[str, object], alpha: float) -> str:
             f"{format_p(row['p_value'])})")
 
 
-def build_checklist(params: Params, flow: ParticipantFlow, missing: MissingSummary,
-                    tables: Mapping[str, Optional[pd.DataFrame]], terms: Sequence[str], min_cell: int = 0) -> Checklist:
+def build_checklist(flow: ParticipantFlow, missing: MissingSummary, tables: Mapping[str, Optional[pd.DataFrame]], *,
+                    model: Optional[AnalysisModel], imputation: Optional[ImputationSettings],
+                    terms: Sequence[str], min_cell: int = 0) -> Checklist:
     """The missing-data reporting checklist with where each item is answered and its value.
 
     Parameters
     ----------
-    params : the study params.
     flow, missing : from :func:`participant_flow` and :func:`missing_summary`.
     tables : the record's tables by name (None for a stage that did not run).
+    model : the analysis model, None when there is none (the items on analysis then do not apply).
+    imputation : the imputation settings (m, iterations, seed), None when not known.
     terms : the exposure's model terms.
     min_cell : counts from 1 to min_cell - 1 are shown as '<min_cell' (0: show every count).
 
@@ -385,16 +415,15 @@ def build_checklist(params: Params, flow: ParticipantFlow, missing: MissingSumma
     Item numbers recalled from memory; check them against the current guideline text.
     """
     items: List[ChecklistItem] = []
-    outcome = check_formula(params.analysis.formula, list(flow_columns(missing)))[0] \
-        if params.analysis.formula else None
+    outcome = check_formula(model.formula, list(flow_columns(missing)))[0] if model is not None else None
     n_rows = flow.n_rows
     estimates = tables.get("estimates")
     exposure = exposure_rows(estimates, terms)
 
     # Participant flow (CONSORT 13a/16; STROBE 13a)
-    flow_all = flow.table.set_index("step")["all"]
+    flow_all = flow.steps.set_index("step")["all"]
     analysed = "; ".join(f"{row['step'].split(': ', 1)[1]} {_fmt(row['all'])}"
-                         for _, row in flow.table.iterrows() if str(row["step"]).startswith("analysed: "))
+                         for _, row in flow.steps.iterrows() if str(row["step"]).startswith("analysed: "))
     if outcome is None:
         items.append(ChecklistItem(
             "participants in the file and with every variable observed", "CONSORT 13a; STROBE 13a",
@@ -412,9 +441,9 @@ def build_checklist(params: Params, flow: ParticipantFlow, missing: MissingSumma
                   if str(step).startswith("outcome_missing: ")]
         by_group = ""
         if flow.group is not None:
-            levels = [c for c in flow.table.columns if c not in ("step", "description", "all")]
-            observed = flow.table.set_index("step").loc["outcome_observed"]
-            total = flow.table.set_index("step").loc["in_file"]
+            levels = [c for c in flow.steps.columns if c not in ("step", "description", "all")]
+            observed = flow.steps.set_index("step").loc["outcome_observed"]
+            total = flow.steps.set_index("step").loc["in_file"]
             by_group = " (outcome missing by " + flow.group + ": " + ", ".join(
                 f"{level} {_count(total[level] - observed[level], min_cell)}" for level in levels) + ")"
         items.append(ChecklistItem(
@@ -423,7 +452,7 @@ def build_checklist(params: Params, flow: ParticipantFlow, missing: MissingSumma
             f"{outcome} missing {_count(n_rows - flow_all['outcome_observed'], min_cell)}: "
             + ("; ".join(losses) if losses else "none") + by_group))
     # Missing data per variable (STROBE 14b; Sterne et al. 2009)
-    with_missing = missing.table[missing.table["n_missing"].astype(float) > 0]
+    with_missing = missing.variables[missing.variables["n_missing"].astype(float) > 0]
     items.append(ChecklistItem(
         "number missing for each variable", "STROBE 14b; Sterne et al. 2009",
         "tables/audit_variables.csv" if tables.get("audit_variables") is not None else "summary table (this page)",
@@ -457,20 +486,21 @@ def build_checklist(params: Params, flow: ParticipantFlow, missing: MissingSumma
     if outcome is None:
         # without an analysis model the items on handling missing data in the analysis do not apply
         table = pd.DataFrame([item.__dict__ for item in items], columns=["item", "guideline", "answered_in", "value"])
-        return Checklist(table=table)
+        return Checklist(items=table)
     # Methods for handling missing data (STROBE 12c; Sterne et al. 2009)
     strategies = sorted(set(exposure["strategy"])) if len(exposure) else []
     items.append(ChecklistItem(
         "how missing data were addressed", "STROBE 12c",
         "tables/estimates.csv, strategy column",
         ", ".join(STRATEGY_PHRASES.get(s, s) for s in strategies) or "no analysis stage has run"))
-    imputation = tables.get("imputation_summary")
+    imputation_table = tables.get("imputation_summary")
     mi = exposure[exposure["strategy"] == "multiple_imputation"]
     items.append(ChecklistItem(
         "imputation model: variables, methods, number of imputations and iterations", "Sterne et al. 2009",
         "tables/imputation_summary.csv; params.yaml (imputation)",
-        (f"m = {params.imputation.m}, iterations = {params.imputation.iterations}, seed = {params.imputation.seed}; "
-         + imputation_methods_phrase(imputation)) if len(mi) or imputation is not None else "imputation stage not run"))
+        (f"m = {imputation.m}, iterations = {imputation.iterations}, seed = {imputation.seed}; "
+         + imputation_methods_phrase(imputation_table))
+        if imputation is not None and (len(mi) or imputation_table is not None) else "imputation stage not run"))
     items.append(ChecklistItem(
         "assumption about the missingness (missing at random) and its plausibility", "Sterne et al. 2009",
         "this page, cautions; the mechanism stage", "missing at random assumed for imputation; not verifiable "
@@ -478,7 +508,7 @@ def build_checklist(params: Params, flow: ParticipantFlow, missing: MissingSumma
     items.append(ChecklistItem(
         "results of complete-case and imputed analyses side by side", "Sterne et al. 2009",
         "tables/estimates.csv; tables/strategy_comparison.csv",
-        "; ".join(f"{STRATEGY_PHRASES.get(r['strategy'], r['strategy'])} {effect_phrase(r, params.analysis.alpha)}"
+        "; ".join(f"{STRATEGY_PHRASES.get(r['strategy'], r['strategy'])} {effect_phrase(r, model.alpha)}"
                   for _, r in exposure.iterrows()) or "no analysis stage has run"))
     sensitivity = tables.get("tipping_point")
     items.append(ChecklistItem(
@@ -491,7 +521,7 @@ def build_checklist(params: Params, flow: ParticipantFlow, missing: MissingSumma
         "tables/simulation_performance.csv",
         simulation_phrase(performance) if performance is not None else "simulation stage not run"))
     table = pd.DataFrame([item.__dict__ for item in items], columns=["item", "guideline", "answered_in", "value"])
-    return Checklist(table=table)
+    return Checklist(items=table)
 
 
 def _suppress_reasons(text: str, min_cell: int) -> str:
@@ -504,7 +534,7 @@ def _suppress_reasons(text: str, min_cell: int) -> str:
 
 
 def flow_columns(missing: MissingSummary) -> List[str]:
-    return list(missing.table["variable"])
+    return list(missing.variables["variable"])
 
 
 def imputation_methods_phrase(imputation: Optional[pd.DataFrame]) -> str:
@@ -538,12 +568,12 @@ def simulation_phrase(performance: pd.DataFrame) -> str:
 # ---------------------------------------------------------------------------
 # drafted paragraphs
 
-def draft_methods(params: Params, flow: ParticipantFlow, missing: MissingSummary,
-                  tables: Mapping[str, Optional[pd.DataFrame]]) -> str:
+def draft_methods(flow: ParticipantFlow, missing: MissingSummary, tables: Mapping[str, Optional[pd.DataFrame]], *,
+                  model: Optional[AnalysisModel], imputation: Optional[ImputationSettings]) -> str:
     """A methods paragraph on the handling of missing data, filled with this run's choices."""
     estimates = tables.get("estimates")
     strategies = [] if estimates is None else list(dict.fromkeys(estimates["strategy"]))
-    reasons = sorted({part.rsplit(" ", 1)[0] for text in missing.table["reasons"] if text
+    reasons = sorted({part.rsplit(" ", 1)[0] for text in missing.variables["reasons"] if text
                       for part in text.split("; ")})
     sentences = [
         f"Missing values were recorded with their reasons ({', '.join(reasons) or 'none recorded'}) rather than "
@@ -552,13 +582,12 @@ def draft_methods(params: Params, flow: ParticipantFlow, missing: MissingSummary
     if tables.get("mcar_test") is not None:
         sentences.append("Whether the data were missing completely at random was assessed with Little's test "
                          "(Little 1988), and participants with and without missing values were compared.")
-    formula = params.analysis.formula
-    if not formula:
+    if model is None:
         return " ".join(sentences)
-    sentences.append(f"The analysis model was `{formula}` ({params.analysis.family} family"
-                     + (", robust standard errors" if params.analysis.robust else "") + ").")
-    if "multiple_imputation" in strategies:
-        imp = params.imputation
+    sentences.append(f"The analysis model was `{model.formula}` ({model.family} family"
+                     + (", robust standard errors" if model.robust else "") + ").")
+    if "multiple_imputation" in strategies and imputation is not None:
+        imp = imputation
         aux = f" and the auxiliary variables {', '.join(imp.auxiliary)}" if imp.auxiliary else ""
         passive = (f"; {', '.join(imp.passive)} {'was' if len(imp.passive) == 1 else 'were'} derived passively from "
                    "the imputed components" if imp.passive else "")
@@ -590,15 +619,14 @@ def draft_methods(params: Params, flow: ParticipantFlow, missing: MissingSummary
     return " ".join(sentences)
 
 
-def draft_results(params: Params, flow: ParticipantFlow, missing: MissingSummary,
-                  tables: Mapping[str, Optional[pd.DataFrame]], terms: Sequence[str], min_cell: int = 0) -> str:
+def draft_results(flow: ParticipantFlow, missing: MissingSummary, tables: Mapping[str, Optional[pd.DataFrame]], *,
+                  model: Optional[AnalysisModel], terms: Sequence[str], min_cell: int = 0) -> str:
     """A results paragraph on missing data and the exposure effect, with this run's numbers."""
-    alpha = params.analysis.alpha
-    scope = "of the analysis model " if params.analysis.formula else ""
+    scope = "of the analysis model " if model is not None else ""
     share = _fmt(100 * flow.n_complete / flow.n_rows, 1) if flow.n_rows else "n/a"
     sentences = [f"Of {_fmt(flow.n_rows)} participants, {_fmt(flow.n_complete)} "
                  f"({share}%) had every variable {scope}observed."]
-    with_missing = missing.table[missing.table["n_missing"].astype(float) > 0].sort_values(
+    with_missing = missing.variables[missing.variables["n_missing"].astype(float) > 0].sort_values(
         "n_missing", ascending=False, key=lambda s: s.astype(float))
     if len(with_missing):
         sentences.append("Values were missing for " + "; ".join(
@@ -614,11 +642,11 @@ def draft_results(params: Params, flow: ParticipantFlow, missing: MissingSummary
         sentences.append(f"Little's test gave chi-square {_fmt(row['statistic'])} on {_fmt(row['df'])} degrees of "
                          f"freedom ({format_p(row['p_value'])}); a small p-value is evidence against missing "
                          "completely at random, a large one is not evidence for it.")
-    if not params.analysis.formula:
+    if model is None:
         return " ".join(sentences)
     exposure = exposure_rows(tables.get("estimates"), terms)
     if len(exposure):
-        parts = [f"{STRATEGY_PHRASES.get(r['strategy'], r['strategy'])} {effect_phrase(r, alpha)}"
+        parts = [f"{STRATEGY_PHRASES.get(r['strategy'], r['strategy'])} {effect_phrase(r, model.alpha)}"
                  for _, r in exposure.iterrows()]
         sentences.append(f"The estimated effect ({', '.join(terms)}) was " + "; ".join(parts) + ".")
     else:
@@ -634,8 +662,13 @@ def draft_results(params: Params, flow: ParticipantFlow, missing: MissingSummary
 
 @dataclass(frozen=True)
 class ReportSummary:
-    """Everything on the summary page."""
+    """Everything on the summary page: flow, missing data per variable, checklist and drafted text.
 
+    ``sentences`` name the stages whose tables were not found; :meth:`markdown` is
+    ``report_text.md``.
+    """
+
+    title: str
     flow: ParticipantFlow
     missing: MissingSummary
     checklist: Checklist
@@ -643,12 +676,18 @@ class ReportSummary:
     results_text: str
     cautions: Tuple[str, ...]
     not_run: Tuple[str, ...]
+    sentences: Tuple[str, ...] = ()
 
-    def markdown(self, title: str) -> str:
+    def tables(self) -> Dict[str, pd.DataFrame]:
+        """``participant_flow``, ``report_missing`` and ``report_checklist``."""
+        return {"participant_flow": self.flow.steps, "report_missing": self.missing.variables,
+                "report_checklist": self.checklist.items}
+
+    def markdown(self) -> str:
         """The drafted text as markdown (what ``report_text.md`` holds)."""
-        lines = [f"# {title}", "", "## Methods (draft, edit before use)", "", self.methods_text, "",
+        lines = [f"# {self.title}", "", "## Methods (draft, edit before use)", "", self.methods_text, "",
                  "## Results (draft, edit before use)", "", self.results_text, "", "## Reporting checklist", ""]
-        for row in self.checklist.table.itertuples():
+        for row in self.checklist.items.itertuples():
             lines.append(f"- **{row.item}** ({row.guideline}); {row.answered_in}: {row.value}")
         lines += ["", "## Cautions", ""] + [f"- {c}" for c in self.cautions]
         if self.not_run:
@@ -666,41 +705,54 @@ STAGE_OF_TABLE = {"audit_variables": "audit", "mcar_test": "mechanism", "estimat
                   "simulation_performance": "simulate"}
 
 
-def summarise(params: Params, study: Study, tables: Mapping[str, Optional[pd.DataFrame]],
-              terms: Optional[Sequence[str]] = None, min_cell: Optional[int] = None) -> ReportSummary:
+def summarise(study: Study, *, tables: Mapping[str, Optional[pd.DataFrame]], title: str,
+              model: Optional[AnalysisModel] = None, imputation: Optional[ImputationSettings] = None,
+              threshold: float = 0.20, group: Optional[str] = None, terms: Optional[Sequence[str]] = None,
+              min_cell: int = 0) -> ReportSummary:
     """Build the summary page from the study and the record's tables.
 
     Parameters
     ----------
-    params : the study params (formula, threshold, group, imputation settings).
     study : the study after intake.
     tables : the record's tables by name, None for a stage that did not run.
+    title : the page's title.
+    model : the analysis model; None when there is none (only the missing-data items apply).
+    imputation : the imputation settings the text reports (m, iterations, seed, auxiliary, passive).
+    threshold : the audit threshold fraction (0.20 is common practice, no source).
+    group : the column the flow is split by (default: the exposure when it is categorical).
     terms : the exposure's model terms; by default taken from ``estimates.csv`` with
         :func:`gapbook.models.exposure_terms`.
-    min_cell : mask counts below it in the text; default ``report.min_cell`` when
-        ``report.suppress_small`` is true, else 0 (no masking).
+    min_cell : mask counts from 1 to min_cell - 1 in the text (0: no masking).
 
     Returns
     -------
     ReportSummary.
+
+    References
+    ----------
+    von Elm E et al. (2007). The STROBE statement. Lancet 370:1453-1457.
+    Schulz KF, Altman DG, Moher D (2010). CONSORT 2010 statement. BMJ 340:c332.
+    Sterne JAC et al. (2009). Multiple imputation for missing data in epidemiological and clinical
+    research: potential and pitfalls. BMJ 338:b2393.
     """
     estimates = tables.get("estimates")
     if terms is None:
-        from .models import exposure_terms
-        terms = exposure_terms(list(dict.fromkeys(estimates["term"])), params.analysis.exposure) \
-            if estimates is not None and len(estimates) else []
-    if min_cell is None:
-        min_cell = params.report.min_cell if params.report.suppress_small else 0
-    group = flow_group(params, study)
-    flow = participant_flow(study, params.analysis.formula, group, estimates)
-    missing = missing_summary(study, params.audit.threshold, tables.get("audit_variables"))
-    checklist = build_checklist(params, flow, missing, tables, terms, min_cell)
+        terms = exposure_terms(list(dict.fromkeys(estimates["term"])), model.exposure) \
+            if model is not None and estimates is not None and len(estimates) else []
+    group = flow_group(study, group=group, exposure=model.exposure if model is not None else None)
+    flow = participant_flow(study, formula=model.formula if model is not None else None, group=group,
+                            estimates=estimates)
+    missing = missing_summary(study, threshold=threshold, audit_variables=tables.get("audit_variables"))
+    checklist = build_checklist(flow, missing, tables, model=model, imputation=imputation, terms=terms,
+                                min_cell=min_cell)
     # without a model only the audit and mechanism stages apply; the others are not "missing" from the record
-    applies = STAGE_OF_TABLE if params.analysis.formula else {
+    applies = STAGE_OF_TABLE if model is not None else {
         name: stage for name, stage in STAGE_OF_TABLE.items() if name in ("audit_variables", "mcar_test")}
     not_run = tuple(dict.fromkeys(stage for name, stage in applies.items() if tables.get(name) is None))
-    cautions = page_cautions(with_model=bool(params.analysis.formula))
-    return ReportSummary(flow=flow, missing=missing, checklist=checklist,
-                         methods_text=draft_methods(params, flow, missing, tables),
-                         results_text=draft_results(params, flow, missing, tables, terms, min_cell),
-                         cautions=cautions, not_run=not_run)
+    sentences = (("Stages whose tables are not in this record (their items say so below): "
+                  + ", ".join(not_run) + ".",) if not_run else ())
+    return ReportSummary(title=title, flow=flow, missing=missing, checklist=checklist,
+                         methods_text=draft_methods(flow, missing, tables, model=model, imputation=imputation),
+                         results_text=draft_results(flow, missing, tables, model=model, terms=terms,
+                                                    min_cell=min_cell),
+                         cautions=page_cautions(with_model=model is not None), not_run=not_run, sentences=sentences)

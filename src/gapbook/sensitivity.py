@@ -22,7 +22,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
-from typing import Callable, Dict, List, Mapping, Optional, Sequence, Tuple
+from typing import Callable, Dict, List, Mapping, Optional, Sequence, Tuple, Union
 
 import numpy as np
 import pandas as pd
@@ -30,7 +30,8 @@ from scipy import optimize
 
 from .errors import InputError, did_you_mean
 from .inference import wald_inference
-from .models import AnalysisModel
+from .impute import ImputationPlan
+from .models import AnalysisModel, exposure_terms
 from .vocabulary import MAR_CAUTION
 
 ALL_GROUPS = "all"
@@ -79,51 +80,63 @@ def default_deltas(values: pd.Series, variable_type: str) -> Tuple[float, ...]:
     return tuple(round(k * step, 10) for k in range(0, 9))
 
 
-def delta_series(params_section, data: pd.DataFrame, outcome: str,
+@dataclass(frozen=True)
+class DeltaSpec:
+    """Deltas for one variable by group: ``values`` shift every group alike, ``groups`` one level of ``by`` each."""
+
+    values: Optional[Sequence[float]] = None
+    by: Optional[str] = None
+    groups: Mapping[str, Sequence[float]] = field(default_factory=dict)
+
+
+def delta_series(data: pd.DataFrame, *, outcome: str, variable: Optional[str] = None,
+                 grids: Optional[Mapping[str, Union[Sequence[float], DeltaSpec]]] = None,
                  types: Optional[Mapping[str, str]] = None) -> Tuple[DeltaSeries, ...]:
-    """Turn ``sensitivity.delta`` into the curves to compute.
+    """Turn the delta grids into the curves to compute.
 
     Parameters
     ----------
-    params_section : ``params.sensitivity`` (variable, delta).
     data : the study data (for the default grid and to check names).
-    outcome : the analysis model's outcome (the default variable).
+    outcome : the analysis model's outcome (the variable shifted when nothing else is named).
+    variable : the variable to shift with the default grid when ``grids`` is empty.
+    grids : {variable: [deltas] or DeltaSpec}; empty for one default grid (:func:`default_deltas`).
     types : {column: type}; binary variables are shifted on the log-odds scale.
 
     Returns
     -------
     Tuple of DeltaSeries; a plain list of values gives one series for every imputed value,
-    ``{by: col, groups: {level: [...]}}`` one series per level, ``values`` with ``by`` a
-    series that shifts every group alike.
+    ``DeltaSpec(by=col, groups={level: [...]})`` one series per level, ``values`` with ``by``
+    a series that shifts every group alike.
     """
     types = dict(types or {})
-    grids = dict(params_section.delta)
+    grids = dict(grids or {})
     if not grids:
-        variable = params_section.variable or outcome
-        _check_column(variable, data, "sensitivity.variable")
+        variable = variable or outcome
+        _check_column(variable, data, "variable")
         return (DeltaSeries(variable, ALL_GROUPS, None, default_deltas(data[variable], types.get(variable, ""))),)
     series: List[DeltaSeries] = []
     for variable, grid in grids.items():
-        _check_column(variable, data, f"sensitivity.delta.{variable}")
-        if isinstance(grid, (list, tuple)):
+        _check_column(variable, data, f"delta.{variable}")
+        if not isinstance(grid, DeltaSpec):
             series.append(DeltaSeries(variable, ALL_GROUPS, None, _with_zero(grid, variable)))
             continue
         by = grid.by
         if grid.groups and by is None:
-            raise InputError(f"sensitivity.delta.{variable}.groups needs 'by': the column whose levels the groups "
-                             "name (e.g. by: arm)")
+            raise InputError("needs 'by': the column whose levels the groups name (e.g. by: arm)",
+                             option=f"delta.{variable}.groups")
         if by is not None:
-            _check_column(by, data, f"sensitivity.delta.{variable}.by")
+            _check_column(by, data, f"delta.{variable}.by")
         if grid.values:
             series.append(DeltaSeries(variable, ALL_GROUPS, None, _with_zero(grid.values, variable)))
         levels = [str(level) for level in pd.unique(data[by].dropna().astype(str))] if by is not None else []
         for level, values in grid.groups.items():
             if str(level) not in levels:
-                raise InputError(f"sensitivity.delta.{variable}.groups: '{level}' is not a level of '{by}' "
-                                 f"({', '.join(levels)}){did_you_mean(str(level), levels)}")
+                raise InputError(f"'{level}' is not a level of '{by}' ({', '.join(levels)})"
+                                 f"{did_you_mean(str(level), levels)}", option=f"delta.{variable}.groups")
             series.append(DeltaSeries(variable, str(level), by, _with_zero(values, variable)))
         if not grid.values and not grid.groups:
-            series.append(DeltaSeries(variable, ALL_GROUPS, None, default_deltas(data[variable], types.get(variable, ""))))
+            series.append(DeltaSeries(variable, ALL_GROUPS, None,
+                                      default_deltas(data[variable], types.get(variable, ""))))
     return tuple(series)
 
 
@@ -131,13 +144,13 @@ def _with_zero(values: Sequence[float], variable: str) -> Tuple[float, ...]:
     """The grid sorted with 0 (missing at random) included, since every curve starts from it."""
     numbers = sorted({float(v) for v in values} | {0.0})
     if any(not math.isfinite(v) for v in numbers):
-        raise InputError(f"sensitivity.delta.{variable}: every delta must be a finite number")
+        raise InputError("every delta must be a finite number", option=f"delta.{variable}")
     return tuple(numbers)
 
 
-def _check_column(name: str, data: pd.DataFrame, key: str) -> None:
+def _check_column(name: str, data: pd.DataFrame, option: str) -> None:
     if name not in data.columns:
-        raise InputError(f"{key}: '{name}' is not a column of the data{did_you_mean(name, data.columns)}")
+        raise InputError(f"'{name}' is not a column of the data{did_you_mean(name, data.columns)}", option=option)
 
 
 # ---------------------------------------------------------------------------
@@ -146,7 +159,8 @@ def _check_column(name: str, data: pd.DataFrame, key: str) -> None:
 Evaluate = Callable[[DeltaSeries, float], pd.DataFrame]
 
 
-def imputation_evaluator(data: pd.DataFrame, model: AnalysisModel, impute_options: Mapping[str, object]) -> Evaluate:
+def imputation_evaluator(data: pd.DataFrame, *, model: AnalysisModel,
+                         impute_options: Mapping[str, object]) -> Evaluate:
     """A function (series, delta) -> pooled estimates of the analysis model after delta-adjusted imputation.
 
     Parameters
@@ -161,32 +175,30 @@ def imputation_evaluator(data: pd.DataFrame, model: AnalysisModel, impute_option
     def evaluate(series: DeltaSeries, delta: float) -> pd.DataFrame:
         delta_arg, delta_by = series.engine_arguments(delta)
         imputed = impute_chained(data, delta=delta_arg, delta_by=delta_by, **dict(impute_options))
-        pooled = imputed.fit(model.formula, model.family)
-        return pooled.table
+        return imputed.analyse(model).estimates()
 
     return evaluate
 
 
-DEFAULT_M = 5  # imputations per delta when sensitivity.m is not set: the grid re-runs the imputation many times
+DEFAULT_M = 5  # imputations per delta when none is given: the grid re-runs the imputation many times
 
 
-def plan_evaluator(plan, m: Optional[int] = None, iterations: Optional[int] = None,
+def plan_evaluator(plan: ImputationPlan, *, m: Optional[int] = None, iterations: Optional[int] = None,
                    n_jobs: Optional[int] = None) -> Evaluate:
     """Like :func:`imputation_evaluator`, for a ``gapbook.impute.ImputationPlan`` (the params' imputation).
 
     Parameters
     ----------
-    plan : from ``gapbook.impute.plan_imputation(params, study)``.
+    plan : from :func:`gapbook.impute.plan_imputation`.
     m : imputations per delta (default :data:`DEFAULT_M`, or the plan's m when smaller).
     iterations, n_jobs : override the plan's settings (None keeps them); the seed is the plan's.
     """
-    m = min(plan.m, DEFAULT_M) if m is None else m
+    m = min(plan.settings.m, DEFAULT_M) if m is None else m
 
     def evaluate(series: DeltaSeries, delta: float) -> pd.DataFrame:
         delta_arg, delta_by = series.engine_arguments(delta)
-        imputed = plan.run(m=m, iterations=iterations, delta=delta_arg, delta_by=delta_by, n_jobs=n_jobs,
-                           progress=False)
-        return plan.fit(imputed).table
+        imputed = plan.run(m=m, iterations=iterations, delta=delta_arg, delta_by=delta_by, n_jobs=n_jobs)
+        return imputed.analyse(plan.model).estimates()
 
     return evaluate
 
@@ -239,7 +251,7 @@ class TippingPoint:
 
 
 def find_tipping_point(grid: pd.DataFrame, term: str, evaluate: Optional[Callable[[float], Tuple[float, float]]],
-                       null: float = 0.0, tolerance: Optional[float] = None, max_evaluations: int = 8,
+                       *, null: float = 0.0, tolerance: Optional[float] = None, max_evaluations: int = 8,
                        side: str = "positive") -> TippingPoint:
     """Locate the delta at which the term's CI first reaches the null, moving away from delta = 0.
 
@@ -266,7 +278,7 @@ def find_tipping_point(grid: pd.DataFrame, term: str, evaluate: Optional[Callabl
     rows = grid.sort_values("delta")
     zero = rows[np.isclose(rows["delta"], 0.0)]
     if zero.empty:
-        raise InputError("sensitivity.delta: the grid must include 0 (missing at random) to find a tipping point")
+        raise InputError("the grid must include 0 (missing at random) to find a tipping point", option="delta")
     baseline = conclusion_of(float(zero["ci_lower"].iloc[0]), float(zero["ci_upper"].iloc[0]), null)
     chosen = rows[rows["delta"] >= 0] if side == "positive" else rows[rows["delta"] <= 0].iloc[::-1]
     deltas = chosen["delta"].to_numpy(dtype=float)
@@ -305,7 +317,7 @@ def _amount(delta: float) -> str:
     return f"{size:.3g} unit" + ("" if size == 1 else "s")
 
 
-def tipping_statement(point: TippingPoint, variable: str, group: str, by: Optional[str], variable_type: str,
+def tipping_statement(point: TippingPoint, *, variable: str, group: str, by: Optional[str], variable_type: str,
                       exposure_label: str) -> str:
     """The tipping point in words, e.g. 'the conclusion holds unless the missing outcomes are 0.8 units higher'."""
     where = f"the missing values of {variable}" + (f" in {by} = {group}" if by is not None else "")
@@ -328,19 +340,25 @@ def tipping_statement(point: TippingPoint, variable: str, group: str, by: Option
 class DeltaResult:
     """The delta-adjusted estimates and the tipping points.
 
-    ``table`` has the ``sensitivity_delta.csv`` columns plus std_error, df and
-    ``evaluated_by`` (grid or root_search); ``tipping`` has the ``tipping_point.csv`` columns.
+    ``curves`` has the ``sensitivity_delta.csv`` columns plus std_error, df and
+    ``evaluated_by`` (grid or root_search); ``tipping_points`` has the ``tipping_point.csv``
+    columns, and ``sentences`` their statements.
     """
 
-    table: pd.DataFrame
-    tipping: pd.DataFrame
+    curves: pd.DataFrame
+    tipping_points: pd.DataFrame
     series: Tuple[DeltaSeries, ...]
     terms: Tuple[str, ...]
     alpha: float
     null: float = 0.0
+    sentences: Tuple[str, ...] = ()
+
+    def tables(self) -> Dict[str, pd.DataFrame]:
+        """``sensitivity_delta`` and ``tipping_point``."""
+        return {"sensitivity_delta": self.curves, "tipping_point": self.tipping_points}
 
 
-def delta_analysis(evaluate: Evaluate, series: Sequence[DeltaSeries], terms: Sequence[str], alpha: float = 0.05,
+def delta_analysis(evaluate: Evaluate, *, series: Sequence[DeltaSeries], terms: Sequence[str], alpha: float = 0.05,
                    refine: bool = True, tolerance: Optional[float] = None, max_evaluations: int = 6,
                    types: Optional[Mapping[str, str]] = None, both_sides: bool = False) -> DeltaResult:
     """Run every delta of every series, pool, and find each exposure term's tipping point.
@@ -350,7 +368,7 @@ def delta_analysis(evaluate: Evaluate, series: Sequence[DeltaSeries], terms: Seq
     evaluate : (series, delta) -> pooled estimates table (see :func:`imputation_evaluator`).
     series : from :func:`delta_series`.
     terms : the exposure's model terms.
-    alpha : 1 - confidence level (``analysis.alpha``); the CI is recomputed at this level.
+    alpha : 1 - confidence level; the CI is recomputed at this level.
     refine : root search between the bracketing grid points (extra imputation runs).
     tolerance : width at which the root search stops (default a tenth of the grid step).
     max_evaluations : cap on extra imputation runs per tipping point.
@@ -368,7 +386,7 @@ def delta_analysis(evaluate: Evaluate, series: Sequence[DeltaSeries], terms: Seq
     types = dict(types or {})
     terms = list(terms)
     if not terms:
-        raise InputError("analysis.exposure: no exposure term to follow across deltas")
+        raise InputError("no exposure term to follow across deltas", option="exposure")
     frames: List[pd.DataFrame] = []
     tipping_rows: List[dict] = []
     for s in series:
@@ -379,7 +397,7 @@ def delta_analysis(evaluate: Evaluate, series: Sequence[DeltaSeries], terms: Seq
                 table = interval(evaluate(s, delta), alpha)
                 missing = [t for t in terms if t not in set(table["term"])]
                 if missing:
-                    raise InputError(f"analysis.exposure: {', '.join(missing)} is not a term of the pooled model")
+                    raise InputError(f"{', '.join(missing)} is not a term of the pooled model", option="exposure")
                 cache[delta] = table[table["term"].isin(terms)].assign(
                     variable=s.variable, group=s.group, delta=float(delta), evaluated_by=how)
             return cache[delta]
@@ -398,9 +416,10 @@ def delta_analysis(evaluate: Evaluate, series: Sequence[DeltaSeries], terms: Seq
                     row = row[row["term"] == term].iloc[0]
                     return float(row["ci_lower"]), float(row["ci_upper"])
 
-                point = find_tipping_point(term_grid, term, bounds if refine else None, 0.0, tolerance,
-                                           max_evaluations, side)
-                statement = tipping_statement(point, s.variable, s.group, s.by, types.get(s.variable, ""), term)
+                point = find_tipping_point(term_grid, term, bounds if refine else None, null=0.0, tolerance=tolerance,
+                                           max_evaluations=max_evaluations, side=side)
+                statement = tipping_statement(point, variable=s.variable, group=s.group, by=s.by,
+                                              variable_type=types.get(s.variable, ""), exposure_label=term)
                 tipping_rows.append({
                     "variable": s.variable, "group": s.group, "term": term, "side": side,
                     "baseline_conclusion": point.baseline, "found": point.found, "tipping_delta": point.delta,
@@ -412,7 +431,8 @@ def delta_analysis(evaluate: Evaluate, series: Sequence[DeltaSeries], terms: Seq
     extra = [c for c in ("std_error", "df", "evaluated_by") if c in table.columns]
     table = table[list(DELTA_COLUMNS) + extra].reset_index(drop=True)
     tipping = pd.DataFrame(tipping_rows, columns=list(TIPPING_COLUMNS))
-    return DeltaResult(table=table, tipping=tipping, series=tuple(series), terms=tuple(terms), alpha=alpha)
+    return DeltaResult(curves=table, tipping_points=tipping, series=tuple(series), terms=tuple(terms), alpha=alpha,
+                       sentences=tuple(tipping["statement"]))
 
 
 # ---------------------------------------------------------------------------
@@ -420,14 +440,19 @@ def delta_analysis(evaluate: Evaluate, series: Sequence[DeltaSeries], terms: Seq
 
 @dataclass(frozen=True)
 class StrategyAndDelta:
-    """The exposure effect under each strategy and each delta-adjusted imputation, and one sentence."""
+    """The exposure effect under each strategy and each delta-adjusted imputation, in a table and in words."""
 
-    table: pd.DataFrame
-    sentence: str
+    comparison: pd.DataFrame
+    sentences: Tuple[str, ...]
     changes: bool
 
+    def tables(self) -> Dict[str, pd.DataFrame]:
+        """``sensitivity_comparison``."""
+        return {"sensitivity_comparison": self.comparison}
 
-def compare_with_deltas(estimates: Optional[pd.DataFrame], result: DeltaResult, null: float = 0.0) -> StrategyAndDelta:
+
+def compare_with_deltas(estimates: Optional[pd.DataFrame], result: DeltaResult, *,
+                        null: float = 0.0) -> StrategyAndDelta:
     """Put complete case, missing category, multiple imputation and the delta-adjusted runs in one table.
 
     Parameters
@@ -438,7 +463,7 @@ def compare_with_deltas(estimates: Optional[pd.DataFrame], result: DeltaResult, 
 
     Returns
     -------
-    StrategyAndDelta whose table has analysis, variable, group, delta, term, estimate,
+    StrategyAndDelta whose comparison has analysis, variable, group, delta, term, estimate,
     ci_lower, ci_upper, p_value, conclusion; the sentence says whether the conclusion changes.
     """
     rows: List[pd.DataFrame] = []
@@ -449,8 +474,8 @@ def compare_with_deltas(estimates: Optional[pd.DataFrame], result: DeltaResult, 
             "term": base["term"].to_numpy(), "estimate": base["estimate"].to_numpy(),
             "ci_lower": base["ci_lower"].to_numpy(), "ci_upper": base["ci_upper"].to_numpy(),
             "p_value": base["p_value"].to_numpy()}))
-    grid = result.table[result.table["evaluated_by"] == "grid"] if "evaluated_by" in result.table.columns \
-        else result.table
+    grid = result.curves[result.curves["evaluated_by"] == "grid"] if "evaluated_by" in result.curves.columns \
+        else result.curves
     rows.append(pd.DataFrame({
         "analysis": [f"delta_adjusted ({v}{'' if g == ALL_GROUPS else ', ' + g} {d:+g})"
                      for v, g, d in zip(grid["variable"], grid["group"], grid["delta"])],
@@ -477,4 +502,60 @@ def compare_with_deltas(estimates: Optional[pd.DataFrame], result: DeltaResult, 
                              + ", ".join(f"{n} with the interval {words[c]}" for c, n in counts.items())
                              + f" (differing from {part['analysis'].iloc[0]}: {shown}).")
     sentences.append(f"{MAR_CAUTION} The delta-adjusted rows show how the answer depends on that assumption.")
-    return StrategyAndDelta(table=table, sentence=" ".join(sentences), changes=changes)
+    return StrategyAndDelta(comparison=table, sentences=tuple(sentences), changes=changes)
+
+
+# ---------------------------------------------------------------------------
+# the stage in one call
+
+@dataclass(frozen=True)
+class SensitivityResult:
+    """The sensitivity stage: the delta curves with their tipping points, and every analysis side by side.
+
+    ``sentences`` describe the set-up (model, exposure terms, imputation per delta, grids).
+    """
+
+    deltas: DeltaResult
+    comparison: StrategyAndDelta
+    m: int
+    sentences: Tuple[str, ...] = ()
+
+    def tables(self) -> Dict[str, pd.DataFrame]:
+        """``sensitivity_delta``, ``tipping_point`` and ``sensitivity_comparison``."""
+        return {**self.deltas.tables(), **self.comparison.tables()}
+
+
+def sensitivity_analysis(plan: ImputationPlan, *, series: Sequence[DeltaSeries], m: Optional[int] = None,
+                         estimates: Optional[pd.DataFrame] = None, refine: bool = True) -> SensitivityResult:
+    """Delta-adjusted imputation over every grid, tipping points, and every analysis side by side.
+
+    Parameters
+    ----------
+    plan : the study's imputation plan (:func:`gapbook.impute.plan_imputation`); its seed is
+        used for every delta, so the curves show the effect of delta, not Monte Carlo noise.
+    series : from :func:`delta_series`.
+    m : imputations per delta (default :data:`DEFAULT_M`, or the plan's m when smaller).
+    estimates : the record's ``estimates.csv`` for the side-by-side comparison (None when no
+        other strategy has run).
+    refine : root search for the tipping point between grid points.
+
+    Returns
+    -------
+    SensitivityResult.
+
+    References
+    ----------
+    Carpenter JR, Kenward MG (2013). Multiple Imputation and its Application. Wiley, chapter 10.
+    """
+    model = plan.model
+    m = min(plan.settings.m, DEFAULT_M) if m is None else m
+    terms = exposure_terms(model.fit(plan.data).terms, model.exposure)
+    deltas = delta_analysis(plan_evaluator(plan, m=m), series=series, terms=terms, alpha=model.alpha,
+                            refine=refine, types=plan.types)
+    grids = "; ".join(f"{s.variable}" + ("" if s.by is None else f" in {s.by} = {s.group}")
+                      + f": {', '.join(f'{d:g}' for d in s.deltas)}" for s in series)
+    sentences = (f"Analysis model: {model.formula}; exposure term(s): {', '.join(terms)}.",
+                 f"Imputation per delta: m = {m}, {plan.settings.iterations} iterations, seed {plan.settings.seed}.",
+                 f"Grids: {grids}.")
+    return SensitivityResult(deltas=deltas, comparison=compare_with_deltas(estimates, deltas), m=m,
+                             sentences=sentences)

@@ -23,6 +23,7 @@ methods. Statistics in Medicine 38:2074-2102.
 """
 from __future__ import annotations
 
+import dataclasses
 import sys
 import warnings
 from dataclasses import dataclass, field
@@ -153,6 +154,11 @@ class SimulationDesign:
     outcome_levels: Optional[Tuple[object, ...]] = None
     terms: Tuple[str, ...] = ()
 
+    def missing_fraction_table(self) -> pd.DataFrame:
+        """The missing fraction imposed on each model variable (the study's own), as a table."""
+        return pd.DataFrame({"variable": list(self.missing_fractions),
+                             "missing_fraction": list(self.missing_fractions.values())})
+
 
 def default_mar_on(model: AnalysisModel, data: pd.DataFrame, covariates: Sequence[str]) -> List[str]:
     """The first numeric covariate that is not the exposure (the MAR driver when params give none)."""
@@ -166,7 +172,7 @@ def default_mar_on(model: AnalysisModel, data: pd.DataFrame, covariates: Sequenc
     return list(covariates[:1])
 
 
-def design_from_data(data: pd.DataFrame, model: AnalysisModel, mar_on: Optional[Sequence[str]] = None,
+def design_from_data(data: pd.DataFrame, *, model: AnalysisModel, mar_on: Optional[Sequence[str]] = None,
                      missing: Optional[pd.DataFrame] = None, types: Optional[Mapping[str, str]] = None,
                      n: Optional[int] = None) -> SimulationDesign:
     """Fit the analysis model to the complete cases and keep what is needed to simulate from it.
@@ -189,11 +195,11 @@ def design_from_data(data: pd.DataFrame, model: AnalysisModel, mar_on: Optional[
     mar_on = list(mar_on) if mar_on else default_mar_on(model, data, covariates)
     for column in mar_on:
         if column not in data.columns:
-            raise InputError(f"simulation.mar_on: '{column}' is not a column of the data"
-                             f"{did_you_mean(column, data.columns)}")
+            raise InputError(f"'{column}' is not a column of the data"
+                             f"{did_you_mean(column, data.columns)}", option="mar_on")
         if column == outcome:
-            raise InputError(f"simulation.mar_on: '{column}' is the outcome; MAR must depend on observed "
-                             "variables, so name covariates or auxiliary variables")
+            raise InputError(f"'{column}' is the outcome; MAR must depend on observed "
+                             "variables, so name covariates or auxiliary variables", option="mar_on")
     missing = data.isna() if missing is None else missing
     keep_columns = list(dict.fromkeys([*covariates, *mar_on]))
     # a not-applicable cell is not missing but has no value either: such rows are outside the model's population
@@ -318,9 +324,7 @@ def impose_missing(complete: pd.DataFrame, design: SimulationDesign, mechanism: 
     ----------
     Rubin DB (1976). Inference and missing data. Biometrika 63:581-592 (the three mechanisms).
     """
-    if mechanism not in MECHANISMS:
-        raise InputError(f"mechanism '{mechanism}' is not one of {', '.join(MECHANISMS)}"
-                         f"{did_you_mean(mechanism, MECHANISMS)}")
+    _check_mechanisms([mechanism])
     data = complete.copy()
     if mechanism == "MAR":
         driver = np.mean([standardised_score(complete[c]) for c in design.mar_on], axis=0)
@@ -398,7 +402,7 @@ class LeastSquares:
         resid = y - x @ beta
         df_resid = float(n - np.linalg.matrix_rank(xtx))  # rank of X'X equals rank of X, at p x p cost
         cov = xtx_inv * float(resid @ resid) / df_resid
-        return ModelFit(formula=self.formula, family="gaussian", terms=self.terms, params=beta, cov=cov,
+        return ModelFit(formula=self.formula, family="gaussian", terms=self.terms, coefficients=beta, covariance=cov,
                         df_resid=df_resid, nobs=n, robust=False, alpha=self.alpha)
 
 
@@ -431,10 +435,10 @@ class CompleteCaseStrategy:
     def __call__(self, replicate: Replicate, rng: np.random.Generator) -> pd.DataFrame:
         data = replicate.data
         if self.fast is None or replicate.complete_design is None:
-            return self.model.fit(data).table(self.name)[list(ESTIMATE_FIELDS)]
+            return self.model.fit(data).estimates(self.name)[list(ESTIMATE_FIELDS)]
         keep = data[list(self.columns)].notna().all(axis=1).to_numpy()
         y = data[self.fast.outcome].to_numpy(dtype=float)[keep]
-        return self.fast.fit(replicate.complete_design[keep], y).table(self.name)[list(ESTIMATE_FIELDS)]
+        return self.fast.fit(replicate.complete_design[keep], y).estimates(self.name)[list(ESTIMATE_FIELDS)]
 
 
 @dataclass(frozen=True)
@@ -455,18 +459,18 @@ class MissingCategoryStrategy:
         from . import indicator
         types = dict(self.types) or None
         if self.fast is None:
-            result = indicator.missing_category_analysis(replicate.data, self.model, types=types,
+            result = indicator.missing_category_analysis(replicate.data, model=self.model, types=types,
                                                          indicator_for_continuous=self.indicator_for_continuous)
-            return result.estimates[list(ESTIMATE_FIELDS)]
+            return result.estimates()[list(ESTIMATE_FIELDS)]
         import patsy
-        prepared = indicator.prepare_missing_category(replicate.data, self.model, types, None,
-                                                      self.indicator_for_continuous)
+        prepared = indicator.prepare_missing_category(replicate.data, model=self.model, types=types,
+                                                      indicator_for_continuous=self.indicator_for_continuous)
         y, x = patsy.dmatrices(prepared.formula, prepared.data, return_type="dataframe",
                                eval_env=formula_environment())
         solver = LeastSquares(prepared.formula, self.fast.outcome, prepared.display_terms(x.columns), None,
                               self.fast.alpha)
         fit = solver.fit(x.to_numpy(dtype=float), y.to_numpy(dtype=float).ravel())
-        return fit.table(self.name)[list(ESTIMATE_FIELDS)]
+        return fit.estimates(self.name)[list(ESTIMATE_FIELDS)]
 
 
 @dataclass(frozen=True)
@@ -487,11 +491,9 @@ class ImputationStrategy:
         data = replicate.data
         seed = int(rng.integers(0, 2 ** 31 - 1))
         imputed = impute_chained(data, m=self.m, iterations=self.iterations, seed=seed,
-                                 types=dict(self.types) or None, progress=False)
+                                 types=dict(self.types) or None)
         if self.fast is None or replicate.complete_design is None:
-            pooled = imputed.fit(self.model.formula, self.model.family, self.model.robust, self.model.offset,
-                                 self.model.alpha)
-            return pooled.table[list(ESTIMATE_FIELDS)]
+            return imputed.analyse(self.model).estimates()[list(ESTIMATE_FIELDS)]
         changed = np.flatnonzero(data[list(self.covariates)].isna().any(axis=1).to_numpy())
         completed = [imputed.completed(i) for i in range(imputed.m)]
         # One design-matrix build for the imputed rows of all m datasets (formula evaluation has a fixed cost).
@@ -503,16 +505,27 @@ class ImputationStrategy:
             if stacked is not None:
                 x[changed] = stacked[i * len(changed):(i + 1) * len(changed)]
             fits.append(self.fast.fit(x, frame[self.fast.outcome].to_numpy(dtype=float)))
-        return pool_fits(fits).table[list(ESTIMATE_FIELDS)]
+        return pool_fits(fits).estimates()[list(ESTIMATE_FIELDS)]
 
 
 Strategy = Callable[[Replicate, np.random.Generator], pd.DataFrame]
 
 
-def default_strategies(design: SimulationDesign, m: int = 5, iterations: int = 5,
+def default_strategies(design: SimulationDesign, *, m: int = 5, iterations: int = 5,
                        include: Sequence[str] = ("complete_case", "missing_category", "multiple_imputation"),
                        ) -> Dict[str, Strategy]:
-    """Every strategy gapbook offers, set up for the design (cheap imputation settings: m, iterations)."""
+    """Every strategy gapbook offers, set up for the design (cheap imputation settings: m, iterations).
+
+    Parameters
+    ----------
+    design : from :func:`design_from_data`.
+    m, iterations : imputations and chained-equation sweeps inside each replicate.
+    include : the strategies to set up, by their names in ``gapbook.vocabulary.STRATEGIES``.
+
+    Returns
+    -------
+    {strategy name: callable(Replicate, rng) -> estimates rows}.
+    """
     types = tuple(sorted(design.types.items()))
     fast = least_squares_for(design)
     columns = (design.outcome, *design.covariates)
@@ -566,7 +579,10 @@ def run_replicate(design: SimulationDesign, strategies: Mapping[str, Strategy], 
 
 @dataclass(frozen=True)
 class SimulationResult:
-    """Per-replicate estimates and the performance of every strategy under every mechanism."""
+    """Per-replicate estimates and the performance of every strategy under every mechanism.
+
+    ``sentences`` name the strategies with clear bias or poor coverage under each mechanism.
+    """
 
     replicates: pd.DataFrame
     performance: pd.DataFrame
@@ -575,11 +591,17 @@ class SimulationResult:
     seed: int
     strength: float
     n_failed: int
+    sentences: Tuple[str, ...] = ()
+
+    def tables(self) -> Dict[str, pd.DataFrame]:
+        """``simulation_performance``."""
+        return {"simulation_performance": self.performance}
 
 
-def run_simulation(design: SimulationDesign, strategies: Mapping[str, Strategy], replicates: int = 200,
+def run_simulation(design: SimulationDesign, strategies: Mapping[str, Strategy], *, replicates: int = 200,
                    seed: int = 0, n_jobs: int = 1, mechanisms: Sequence[str] = MECHANISMS,
-                   strength: float = DEFAULT_STRENGTH, progress: bool = True) -> SimulationResult:
+                   strength: float = DEFAULT_STRENGTH, alpha: float = 0.05,
+                   progress: bool = False) -> SimulationResult:
     """Run the bias simulation in parallel and summarise it.
 
     Parameters
@@ -591,7 +613,8 @@ def run_simulation(design: SimulationDesign, strategies: Mapping[str, Strategy],
     n_jobs : parallel workers (joblib); results do not depend on it.
     mechanisms : which of MCAR, MAR, MNAR to impose.
     strength : log-odds change in the chance of missingness per SD of the driver.
-    progress : show a progress bar (on standard error).
+    alpha : 1 - the nominal coverage, for the sentences.
+    progress : show a progress bar (on standard error; off by default, so pages stay clean).
 
     Returns
     -------
@@ -602,17 +625,16 @@ def run_simulation(design: SimulationDesign, strategies: Mapping[str, Strategy],
     Morris TP, White IR, Crowther MJ (2019). Statistics in Medicine 38:2074-2102.
     """
     if replicates < 2:
-        raise InputError("simulation.replicates: at least 2 replicates are needed for an empirical SE")
-    for mechanism in mechanisms:
-        if mechanism not in MECHANISMS:
-            raise InputError(f"mechanism '{mechanism}' is not one of {', '.join(MECHANISMS)}"
-                             f"{did_you_mean(mechanism, MECHANISMS)}")
+        raise InputError("at least 2 replicates are needed for an empirical SE", option="replicates")
+    _check_mechanisms(mechanisms)
     if not strategies:
         raise InputError("no strategy to simulate; give at least complete_case")
     seeds = np.random.SeedSequence(seed).spawn(replicates)
     fast = next((s.fast for s in strategies.values() if getattr(s, "fast", None) is not None), None)
     tasks = ((design, strategies, tuple(mechanisms), s, r, strength, fast) for r, s in enumerate(seeds))
-    bar = _progress(replicates, progress)
+    from tqdm import tqdm
+
+    bar = tqdm(total=replicates, desc="replicates", file=sys.stderr, mininterval=1.0, disable=not progress)
     rows: List[dict] = []
     if n_jobs == 1:
         for task in tasks:
@@ -635,23 +657,16 @@ def run_simulation(design: SimulationDesign, strategies: Mapping[str, Strategy],
     perf = perf.sort_values(["mechanism", "strategy"], key=lambda s: s.map(mech_order if s.name == "mechanism"
                                                                             else order),
                             kind="stable").reset_index(drop=True)
-    return SimulationResult(replicates=table, performance=perf, design=design, n_replicates=replicates, seed=seed,
-                            strength=strength, n_failed=int(table["failed"].sum()))
+    result = SimulationResult(replicates=table, performance=perf, design=design, n_replicates=replicates, seed=seed,
+                              strength=strength, n_failed=int(table["failed"].sum()))
+    return dataclasses.replace(result, sentences=tuple(summary_sentences(result, alpha)))
 
 
-class _NoBar:
-    def update(self, n: int) -> None:
-        pass
-
-    def close(self) -> None:
-        pass
-
-
-def _progress(total: int, show: bool):
-    if not show:
-        return _NoBar()
-    from tqdm import tqdm
-    return tqdm(total=total, desc="replicates", file=sys.stderr, mininterval=1.0)
+def _check_mechanisms(mechanisms: Sequence[str]) -> None:
+    for mechanism in mechanisms:
+        if mechanism not in MECHANISMS:
+            raise InputError(f"'{mechanism}' is not one of {', '.join(MECHANISMS)}"
+                             f"{did_you_mean(mechanism, MECHANISMS)}", option="mechanisms")
 
 
 # ---------------------------------------------------------------------------
@@ -684,3 +699,42 @@ def summary_sentences(result: SimulationResult, alpha: float = 0.05) -> List[str
     out.append(f"Based on {result.n_replicates} replicates of {result.design.n} rows; the mechanisms imposed here "
                "are illustrations, and the study's own mechanism cannot be verified from the data.")
     return out
+
+
+# ---------------------------------------------------------------------------
+# the stage in one call
+
+def simulate_study(data: pd.DataFrame, *, model: AnalysisModel, missing: Optional[pd.DataFrame] = None,
+                   types: Optional[Mapping[str, str]] = None, mar_on: Optional[Sequence[str]] = None,
+                   replicates: int = 100, seed: int = 0, n_jobs: int = 1, m: int = 5,
+                   progress: bool = False) -> SimulationResult:
+    """The bias simulation for a study like this one: design, every strategy, performance and sentences.
+
+    Parameters
+    ----------
+    data, missing, types : the study's values, missing cells and variable types.
+    model : the analysis model; its complete-case fit is the simulation's truth.
+    mar_on : always-observed variables that drive MAR missingness (default: see :func:`default_mar_on`).
+    replicates, seed, n_jobs : as for :func:`run_simulation`.
+    m : imputations per replicate (with :data:`SIMULATION_ITERATIONS` sweeps each).
+    progress : show a progress bar on standard error.
+
+    Returns
+    -------
+    SimulationResult whose first sentences describe the simulated study.
+
+    References
+    ----------
+    Morris TP, White IR, Crowther MJ (2019). Statistics in Medicine 38:2074-2102.
+    """
+    design = design_from_data(data, model=model, mar_on=mar_on or None, missing=missing, types=types)
+    strategies = default_strategies(design, m=m, iterations=SIMULATION_ITERATIONS)
+    result = run_simulation(design, strategies, replicates=replicates, seed=seed, n_jobs=n_jobs, alpha=model.alpha,
+                            progress=progress)
+    setup = (f"{replicates} replicates of {design.n:,} rows (covariates resampled from {len(design.pool):,} complete "
+             f"covariate rows); MAR driven by {', '.join(design.mar_on)}; imputation inside the simulation: m = {m}, "
+             f"{SIMULATION_ITERATIONS} iterations; seed {seed}; {n_jobs} parallel worker(s).",
+             "True value(s): " + ", ".join(f"{t} = {v:.4f}" for t, v in design.true_values.items())
+             + f". Strategy fits that failed: {result.n_failed}.")
+    return dataclasses.replace(result, sentences=setup + result.sentences)
+

@@ -1,27 +1,71 @@
-"""What a stage notebook needs: its params, the study after intake, and where to write.
+"""What a stage notebook needs: its params, the study after intake, one call per stage, and
+where to write.
 
 A notebook's ``parameters`` cell holds ``params = None`` (the demo study) and
 ``out_dir = "."``; the runner injects the resolved params dict and the record folder.
-``open_stage`` turns those into a :class:`StageContext` and every table and figure goes
-through it, so file names, CSV formatting and figure settings are the same everywhere
-and a rerun writes the same bytes.
+:func:`open_stage` turns those into a :class:`StageContext`.
+
+This is the notebook-facing layer, the one place that reads ``Params``:
+
+- the params -> options adapters: each stage method (``ctx.audit()``, ``ctx.mechanism()``,
+  ...) takes the stage's options from the params and calls the stage module, whose
+  functions take data and plain keyword-only options and never see ``Params``;
+- the wording of errors that name a params key: a stage module's error names the option
+  it was given (``InputError(..., option="auxiliary")``) and :func:`params_errors` renames
+  it to the key it came from (``imputation.auxiliary``), with the params file;
+- every table and figure goes through the context, so file names, CSV formatting and
+  figure settings are the same everywhere and a rerun writes the same bytes.
+
+Every stage result follows one contract (:class:`StageResult`): a frozen dataclass whose
+``tables()`` gives ``{record table name: DataFrame}`` and whose ``sentences`` hold its
+wording; :meth:`StageContext.save_result` writes a whole result with one call.
 """
 from __future__ import annotations
 
+import contextlib
+import dataclasses
 from dataclasses import dataclass
 from functools import cached_property
 from pathlib import Path
-from typing import Any, Dict, Optional, Tuple, Union
+from typing import TYPE_CHECKING, Any, Dict, Iterator, Optional, Protocol, Sequence, Tuple, Union
 
 import pandas as pd
 
+from .errors import InputError
 from .intake import Study, load_study
-from .params import Params, load_params
-from .vocabulary import strategy_rank
+from .params import DeltaGrid, Params, load_params
+from .text import md_code, md_escape
+from .vocabulary import cautions, strategy_rank
+
+if TYPE_CHECKING:  # the stage modules are imported where a stage is run, not when this module loads
+    from .audit import AuditResult
+    from .cases import AvailableCaseSummary, CompleteCaseResult, CompletenessBaseline, StrategyComparison
+    from .impute import ChainedImputation, ImputationPlan
+    from .indicator import MissingCategoryResult
+    from .mechanism import MechanismResult
+    from .models import AnalysisModel
+    from .pool import PooledResult, WaldTest
+    from .report import RecordSuppression, ReportSummary
+    from .sensitivity import SensitivityResult
+    from .simulate import SimulationResult
+
+__all__ = ["StageResult", "StageContext", "open_stage", "analysis_model", "params_errors", "write_csv",
+           "merge_estimates", "CSV_FLOAT_FORMAT", "ESTIMATE_COLUMNS", "FIGURE_DPI"]
 
 CSV_FLOAT_FORMAT = "%.10g"
 ESTIMATE_COLUMNS = ("strategy", "term", "estimate", "std_error", "ci_lower", "ci_upper", "p_value", "n_used",
                     "df", "fmi", "riv")
+FIGURE_DPI = 150
+SVG_HASH_SALT = "gapbook"  # matplotlib's SVG ids are hashed with this salt, so reruns write the same bytes
+
+
+class StageResult(Protocol):
+    """The contract every stage result keeps (a frozen dataclass; derived values are methods)."""
+
+    sentences: Tuple[str, ...]
+
+    def tables(self) -> Dict[str, pd.DataFrame]:
+        """``{record table name: DataFrame}``."""
 
 
 def write_csv(frame: pd.DataFrame, path: Path) -> Path:
@@ -31,19 +75,59 @@ def write_csv(frame: pd.DataFrame, path: Path) -> Path:
     return path
 
 
-@dataclass(frozen=True)
-class AuditRun:
-    """The audit stage's result with the intake notes and which engine counted it, and why."""
+# ---------------------------------------------------------------------------
+# params keys in error messages
 
-    result: Any  # gapbook.audit.AuditResult
-    notes: Tuple[str, ...]
-    engine: str
-    why: str
+_SPECIAL_KEYS = {"types": "variables.{}.type", "delta_by": "sensitivity.delta.{}.by"}
 
+
+def _params_key(option: str, sections: Sequence[str]) -> Optional[str]:
+    """The params key an option came from, looked up in the schema of the given sections (first match)."""
+    head, _, item = option.partition(".")
+    if head in _SPECIAL_KEYS and item:
+        return _SPECIAL_KEYS[head].format(item)
+    for section in sections:
+        model = Params.model_fields[section].annotation
+        if head in getattr(model, "model_fields", {}):
+            return f"{section}.{option}"
+    return None
+
+
+@contextlib.contextmanager
+def params_errors(params: Params, *sections: str) -> Iterator[None]:
+    """Rename the option in a stage module's ``InputError`` to the params key it came from.
+
+    ``sections`` are the params sections whose keys the options are, in order of precedence
+    (e.g. ``"mechanism", "analysis"``: ``alpha`` is ``mechanism.alpha``). The message then
+    names the params file and the key: ``study.yaml: imputation.auxiliary: 'x' is not a column``.
+    """
+    try:
+        yield
+    except InputError as exc:
+        key = _params_key(exc.option, sections) if exc.option else None
+        if key is None:
+            raise
+        raise InputError(f"{params.label}: {key}: {exc.detail}") from None
+
+
+def analysis_model(params: Params) -> "AnalysisModel":
+    """The ``analysis`` section as an :class:`~gapbook.models.AnalysisModel`; exits 2 without a formula."""
+    from .models import AnalysisModel
+
+    section = params.analysis
+    if not section.formula:
+        raise InputError(f"{params.label}: analysis.formula is required for this stage; "
+                         "write it as 'outcome ~ exposure + covariates'")
+    return AnalysisModel(formula=section.formula, family=section.family, exposure=section.exposure,
+                         robust=section.robust, offset=section.offset, alpha=section.alpha)
+
+
+# ---------------------------------------------------------------------------
+# the context
 
 @dataclass
 class StageContext:
-    """The params, the study and the record folder of one stage run."""
+    """The params, the study and the record folder of one stage run, with one call per stage."""
 
     params: Params
     out_dir: Path
@@ -51,20 +135,6 @@ class StageContext:
     @cached_property
     def study(self) -> Study:
         return load_study(self.params)
-
-    def audit(self) -> AuditRun:
-        """Audit the study with the engine ``data.engine`` picks: pandas in memory, or DuckDB over the file."""
-        from .audit import audit_study
-        from .audit_duckdb import audit_scanned
-        from .intake_duckdb import choose_engine, scan_study
-
-        engine, why = choose_engine(self.params)
-        settings = self.params.audit
-        options = dict(threshold=settings.threshold, by=settings.by, top_patterns=settings.top_patterns)
-        if engine == "duckdb":
-            with scan_study(self.params) as scanned:
-                return AuditRun(audit_scanned(scanned, **options), scanned.notes, engine, why)
-        return AuditRun(audit_study(self.study, **options), self.study.notes, engine, why)
 
     @property
     def tables_dir(self) -> Path:
@@ -74,27 +144,262 @@ class StageContext:
     def figures_dir(self) -> Path:
         return self.out_dir / "figures"
 
+    # -- writing and reading the record
     def save_table(self, name: str, frame: pd.DataFrame) -> Path:
+        """Write ``tables/<name>.csv``."""
         return write_csv(frame, self.tables_dir / f"{name}.csv")
+
+    def save_text(self, name: str, text: str) -> Path:
+        """Write ``tables/<name>`` as UTF-8 text (e.g. the drafted report text)."""
+        self.tables_dir.mkdir(parents=True, exist_ok=True)
+        path = self.tables_dir / name
+        path.write_text(text, encoding="utf-8")
+        return path
+
+    def save_result(self, result: StageResult) -> None:
+        """Write every table of a stage result; ``estimates`` rows replace this strategy's rows only."""
+        for name, frame in result.tables().items():
+            if name == "estimates":
+                self.update_estimates(frame)
+            else:
+                self.save_table(name, frame)
 
     def read_table(self, name: str) -> Optional[pd.DataFrame]:
         """A table an earlier stage wrote to this record, or None when that stage has not run."""
         path = self.tables_dir / f"{name}.csv"
         return pd.read_csv(path) if path.is_file() else None
 
+    def read_tables(self, names: Sequence[str]) -> Dict[str, Optional[pd.DataFrame]]:
+        """Several tables by name (None for each one the record lacks)."""
+        return {name: self.read_table(name) for name in names}
+
     def save_figure(self, name: str, figure: Any) -> Path:
-        """Save a matplotlib figure as PNG (no time stamp in its metadata, so reruns match)."""
+        """Save a matplotlib figure as PNG (150 dpi) and SVG, with no time stamps, so reruns write the same bytes.
+
+        Returns the PNG's path.
+        """
+        import matplotlib
+
         self.figures_dir.mkdir(parents=True, exist_ok=True)
-        path = self.figures_dir / f"{name}.png"
-        figure.savefig(path, dpi=110, bbox_inches="tight", metadata={"Software": None})
-        return path
+        png = self.figures_dir / f"{name}.png"
+        figure.savefig(png, dpi=FIGURE_DPI, bbox_inches="tight", metadata={"Software": None})
+        with matplotlib.rc_context({"svg.hashsalt": SVG_HASH_SALT}):
+            figure.savefig(self.figures_dir / f"{name}.svg", format="svg", bbox_inches="tight",
+                           metadata={"Date": None})
+        return png
 
     def update_estimates(self, rows: pd.DataFrame) -> pd.DataFrame:
         """Replace this strategy's rows in ``estimates.csv``, keep the others, and return the whole table."""
         return merge_estimates(self.read_table("estimates"), rows, self.tables_dir / "estimates.csv")
 
+    # -- what a page shows
+    def show_figure(self, name: str, figure: Any) -> None:
+        """Save a figure to the record, close it, and show the saved PNG."""
+        import matplotlib.pyplot as plt
+        from IPython.display import Image, display
+
+        path = self.save_figure(name, figure)
+        plt.close(figure)
+        display(Image(filename=str(path)))
+
+    def show_sentences(self, sentences: Union[StageResult, Sequence[str]]) -> None:
+        """Show a result's sentences (or the sentences given) as a list."""
+        from IPython.display import Markdown, display
+
+        lines = getattr(sentences, "sentences", sentences)
+        if lines:  # sentences carry user text (column names, formulas): shown literally, never as markup
+            display(Markdown("\n".join(f"- {md_escape(line)}" for line in lines)))
+
+    def model_header(self) -> str:
+        """The analysis model in one line of Markdown: family, robust SEs, formula, offset, exposure."""
+        model = self.model()
+        return (f"**Analysis model** ({model.family}{', sandwich standard errors' if model.robust else ''}): "
+                f"{md_code(model.formula)}" + (f", offset log({md_code(model.offset)})" if model.offset else "")
+                + f"; exposure: {md_code(model.exposure or '(first term)')}.")
+
+    def show_model(self) -> None:
+        """Show :meth:`model_header`."""
+        from IPython.display import Markdown, display
+
+        display(Markdown(self.model_header()))
+
+    def show_cautions(self) -> None:
+        """Show the cautions of the trade (one wording, from the vocabulary)."""
+        self.show_sentences(cautions(with_model=bool(self.params.analysis.formula)))
+
+    def is_demo(self) -> bool:
+        """Whether this run is the shipped demo study with its own model (whose true effect is known)."""
+        from .demo import demo_csv_path, demo_params
+
+        return (self.params.data_path == demo_csv_path().resolve()
+                and self.params.analysis.formula == demo_params().analysis.formula)
+
+    def reference_effect(self) -> Optional[float]:
+        """The demo's true exposure effect for figures, or None for any other study."""
+        from .demo import TRUE_ARM_EFFECT
+
+        return TRUE_ARM_EFFECT if self.is_demo() else None
+
+    # -- one call per stage: params -> options
+    def model(self) -> "AnalysisModel":
+        """The analysis model from ``analysis``."""
+        return analysis_model(self.params)
+
+    def audit(self) -> "AuditResult":
+        """The audit stage with the ``audit`` section, counted by the engine ``data.engine`` picks.
+
+        pandas counts the study in memory; DuckDB counts over the file without loading it.
+        The tables are the same either way; a sentence says which engine counted and why.
+        """
+        from .audit import audit_study
+        from .audit_duckdb import audit_scanned
+        from .intake_duckdb import choose_engine, scan_study
+
+        engine, why = choose_engine(self.params)
+        section = self.params.audit
+        options = dict(threshold=section.threshold, by=section.by, top_patterns=section.top_patterns)
+        with params_errors(self.params, "audit"):
+            if engine == "duckdb":
+                with scan_study(self.params) as scanned:
+                    result = audit_scanned(scanned, **options)
+            else:
+                result = audit_study(self.study, **options)
+        return dataclasses.replace(result, sentences=result.sentences + (f"Counted with {engine} ({why}).",))
+
+    def mechanism(self) -> "MechanismResult":
+        """The mechanism stage with the ``mechanism`` section."""
+        from .mechanism import assess_study
+
+        section = self.params.mechanism
+        with params_errors(self.params, "mechanism"):
+            return assess_study(self.study, variables=section.variables, alpha=section.alpha,
+                                min_missing=section.min_missing, em_tolerance=section.em_tolerance,
+                                em_max_iterations=section.em_max_iterations)
+
+    def complete_cases(self) -> "CompleteCaseResult":
+        """The analysis model on the complete cases."""
+        from .cases import complete_case_analysis
+
+        study = self.study
+        with params_errors(self.params, "analysis"):
+            return complete_case_analysis(study.data, model=self.model(), reasons=study.reasons,
+                                          not_applicable=study.not_applicable)
+
+    def available_cases(self, complete: pd.Series) -> "AvailableCaseSummary":
+        """Descriptives and correlations from every available value, beside the complete cases."""
+        from .cases import available_case_summary
+
+        return available_case_summary(self.study.data, complete=complete, types=self.study.types)
+
+    def completeness(self, complete: pd.Series) -> "CompletenessBaseline":
+        """Complete against incomplete rows on the fully observed variables."""
+        from .cases import completeness_baseline
+
+        return completeness_baseline(self.study.data, complete=complete, types=self.study.types)
+
+    def missing_category(self, *, indicator_for_continuous: bool = True) -> "MissingCategoryResult":
+        """The missing-category strategy (with the missing-indicator method for continuous covariates)."""
+        from .indicator import missing_category_analysis
+
+        study = self.study
+        with params_errors(self.params, "analysis"):
+            return missing_category_analysis(study.data, model=self.model(), types=study.types, missing=study.missing,
+                                             reasons=study.reasons, not_applicable=study.not_applicable,
+                                             indicator_for_continuous=indicator_for_continuous)
+
+    def strategy_comparison(self) -> "StrategyComparison":
+        """The exposure under every strategy in this record's ``estimates.csv``."""
+        from .cases import compare_strategies
+
+        model = self.model()
+        with params_errors(self.params, "analysis"):
+            return compare_strategies(self.read_table("estimates"), exposure=model.exposure, family=model.family,
+                                      alpha=model.alpha)
+
+    def imputation_plan(self) -> "ImputationPlan":
+        """What to impute and how, from the ``imputation`` section and the analysis model."""
+        from .impute import plan_imputation
+
+        section = self.params.imputation
+        with params_errors(self.params, "imputation", "analysis", "sensitivity"):
+            return plan_imputation(self.study, model=self.model(), m=section.m, iterations=section.iterations,
+                                   seed=section.seed, donors=section.donors, n_jobs=section.n_jobs,
+                                   methods=section.methods, passive=section.passive, predictors=section.predictors,
+                                   exclude_predictors=section.exclude_predictors, auxiliary=section.auxiliary)
+
+    def impute(self, plan: "ImputationPlan") -> "ChainedImputation":
+        """Run the plan (m chains); no progress bar on the page."""
+        with params_errors(self.params, "imputation", "analysis", "sensitivity"):
+            return plan.run()
+
+    def pool(self, imputation: "ChainedImputation") -> "PooledResult":
+        """The analysis model fitted to every completed dataset and pooled with Rubin's rules."""
+        with params_errors(self.params, "analysis"):
+            return imputation.analyse(self.model())
+
+    def exposure_test(self, pooled: "PooledResult") -> "WaldTest":
+        """The pooled Wald test (D1) that every exposure term is zero."""
+        with params_errors(self.params, "analysis"):
+            return pooled.wald(self.model().exposure)
+
+    def sensitivity(self, plan: "ImputationPlan") -> "SensitivityResult":
+        """Delta adjustment over the ``sensitivity`` grids, tipping points and every analysis side by side."""
+        from .sensitivity import DeltaSpec, delta_series, sensitivity_analysis
+
+        section = self.params.sensitivity
+        grids = {variable: (DeltaSpec(values=grid.values, by=grid.by, groups=dict(grid.groups))
+                            if isinstance(grid, DeltaGrid) else list(grid))
+                 for variable, grid in section.delta.items()}
+        with params_errors(self.params, "sensitivity", "imputation", "analysis"):
+            series = delta_series(self.study.data, outcome=plan.outcome, variable=section.variable, grids=grids,
+                                  types=self.study.types)
+            return sensitivity_analysis(plan, series=series, m=section.m, estimates=self.read_table("estimates"))
+
+    def simulation(self) -> "SimulationResult":
+        """The bias simulation with the ``simulation`` section."""
+        from .simulate import simulate_study
+
+        section = self.params.simulation
+        study = self.study
+        with params_errors(self.params, "simulation", "analysis"):
+            return simulate_study(study.data, model=self.model(), missing=study.missing, types=study.types,
+                                  mar_on=section.mar_on, replicates=section.replicates, seed=section.seed,
+                                  n_jobs=section.n_jobs, m=section.m)
+
+    def report(self) -> "ReportSummary":
+        """The summary page from the record's tables, with ``report``, ``audit.threshold`` and the model."""
+        from .impute import ImputationSettings
+        from .report import REPORT_TABLES, summarise
+
+        params = self.params
+        imp = params.imputation
+        settings = ImputationSettings(m=imp.m, iterations=imp.iterations, seed=imp.seed, donors=imp.donors,
+                                      n_jobs=imp.n_jobs, methods=dict(imp.methods), passive=dict(imp.passive),
+                                      auxiliary=tuple(imp.auxiliary))
+        model = self.model() if params.analysis.formula else None
+        with params_errors(params, "report", "audit", "analysis"):
+            return summarise(self.study, tables=self.read_tables(REPORT_TABLES),
+                             title=params.report.title or f"Missing data in {params.study.name}", model=model,
+                             imputation=settings, threshold=params.audit.threshold, group=params.report.group,
+                             min_cell=params.report.min_cell if params.report.suppress_small else 0)
+
+    def suppression(self) -> Tuple[Optional["RecordSuppression"], Tuple[str, ...]]:
+        """Small-count suppression of the record's count tables when ``report.suppress_small`` asks for it.
+
+        Returns the suppression (None when it is off) and the sentence to show.
+        """
+        from .report import COUNT_TABLES, suppress_record_tables
+
+        section = self.params.report
+        if not section.suppress_small:
+            return None, (f"Small-count suppression is off (report.suppress_small: false); turn it on before sharing "
+                          f"tables outside the study team (threshold report.min_cell = {section.min_cell}).",)
+        result = suppress_record_tables(self.read_tables(list(COUNT_TABLES)), min_cell=section.min_cell)
+        return result, result.sentences
+
 
 def merge_estimates(existing: Optional[pd.DataFrame], rows: pd.DataFrame, path: Path) -> pd.DataFrame:
+    """``estimates.csv`` with ``rows`` in place of their strategies' rows, in the vocabulary's strategy order."""
     strategies = set(rows["strategy"])
     parts = [rows] if existing is None else [existing[~existing["strategy"].isin(strategies)], rows]
     table = pd.concat([p for p in parts if len(p)], ignore_index=True)
@@ -112,8 +417,15 @@ def merge_estimates(existing: Optional[pd.DataFrame], rows: pd.DataFrame, path: 
 def open_stage(params: Union[None, str, Path, Dict[str, Any]] = None, out_dir: str = ".") -> StageContext:
     """The context for a stage notebook.
 
-    ``params`` is the resolved dict the runner injects, a path to a params YAML file (handy
-    when a notebook is opened by hand for a one-off question), or None for the demo study.
+    Parameters
+    ----------
+    params : the resolved dict the runner injects, a path to a params YAML file (handy when a
+        notebook is opened by hand for a one-off question), or None for the demo study.
+    out_dir : the record folder; ``tables/`` and ``figures/`` are written under it.
+
+    Returns
+    -------
+    StageContext
     """
     if params is None:
         from .demo import demo_params

@@ -10,8 +10,8 @@ The subpackage in four parts, arrows pointing down:
 from __future__ import annotations
 
 from .engine import ChainedImputation, impute_chained
-from .plan import ImputationPlan, impute_study, plan_imputation
+from .plan import ImputationPlan, ImputationSettings, plan_imputation
 from .preparation import passive_inputs
 
-__all__ = ["ChainedImputation", "impute_chained", "ImputationPlan", "plan_imputation", "impute_study",
+__all__ = ["ChainedImputation", "impute_chained", "ImputationPlan", "ImputationSettings", "plan_imputation",
            "passive_inputs"]

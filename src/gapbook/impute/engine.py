@@ -29,7 +29,7 @@ applicable is never used to fit that variable's own model.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from typing import Any, Dict, Iterator, List, Mapping, Optional, Sequence
+from typing import Any, Dict, Iterator, List, Mapping, Optional, Sequence, Tuple
 
 import numpy as np
 import pandas as pd
@@ -37,12 +37,13 @@ from scipy import linalg
 from scipy.special import expit
 
 from ..errors import AnalysisError, InputError, did_you_mean
-from ..models import fit_model
+from ..models import AnalysisModel
 from ..pool import PooledResult, pool_fits
 from ..vocabulary import CATEGORICAL_TYPES, IMPUTATION_METHODS, VARIABLE_TYPES, infer_type
 from .numerics import (augmentation, cholesky, gram_rows, linear_draw, multinomial_terms, newton, ordinal_terms,
                        pmm_match, predict_rows)
-from .preparation import Problem, Variable, check_names, evaluate_passive, levels_of, prepare
+from ..intake import levels_of
+from .preparation import Problem, Variable, check_names, evaluate_passive, prepare
 
 __all__ = ["ChainedImputation", "impute_chained", "Chain", "run_chain", "run_chains"]
 
@@ -287,6 +288,11 @@ class ChainedImputation:
     variables: pd.DataFrame
     donors: int = 5
     delta: Dict[str, Any] = field(default_factory=dict)
+    sentences: Tuple[str, ...] = ()
+
+    def tables(self) -> Dict[str, pd.DataFrame]:
+        """``imputation_convergence`` and ``imputation_summary`` (:meth:`observed_and_imputed`)."""
+        return {"imputation_convergence": self.convergence, "imputation_summary": self.observed_and_imputed()}
 
     def completed(self, i: int) -> pd.DataFrame:
         """The i-th completed dataset (i = 0..m-1), with the data's own dtypes and categories."""
@@ -316,11 +322,14 @@ class ChainedImputation:
         for i in range(self.m):
             yield self.completed(i)
 
-    def fit(self, formula: str, family: str = "gaussian", robust: bool = False, offset: Optional[str] = None,
-            alpha: float = 0.05) -> PooledResult:
-        """Fit the analysis model to every completed dataset and pool with Rubin's rules."""
-        fits = [fit_model(self.completed(i), formula, family, robust, offset, alpha) for i in range(self.m)]
-        return pool_fits(fits)
+    def analyse(self, model: AnalysisModel) -> PooledResult:
+        """Fit the analysis model to every completed dataset and pool the fits with Rubin's rules.
+
+        References
+        ----------
+        Rubin DB (1987). Multiple Imputation for Nonresponse in Surveys. Wiley.
+        """
+        return pool_fits([model.fit(frame) for frame in self.completed_all()])
 
     def imputed_long(self, name: str) -> pd.DataFrame:
         """Imputed values of one variable: imputation, row, value (categories as their labels)."""
@@ -337,7 +346,7 @@ class ChainedImputation:
             frame["value"] = values.ravel()
         return frame
 
-    def summary(self) -> pd.DataFrame:
+    def observed_and_imputed(self) -> pd.DataFrame:
         """Per imputed variable: method, n_imputed, observed and imputed mean and SD, and what 'mean' measures."""
         rows = []
         for name, values in self.imputed.items():
@@ -367,13 +376,14 @@ class ChainedImputation:
 # ---------------------------------------------------------------------------
 # the engine's entry point
 
-def impute_chained(data: pd.DataFrame, m: int = 20, iterations: int = 10, seed: Optional[int] = None,
-                   methods: Optional[Mapping[str, str]] = None, predictors: Optional[Mapping[str, Sequence[str]]] = None,
+def impute_chained(data: pd.DataFrame, *, m: int = 20, iterations: int = 10, seed: Optional[int] = None,
+                   methods: Optional[Mapping[str, str]] = None,
+                   predictors: Optional[Mapping[str, Sequence[str]]] = None,
                    passive: Optional[Mapping[str, str]] = None, n_jobs: int = 1,
                    types: Optional[Mapping[str, str]] = None, delta: Optional[Mapping[str, Any]] = None,
                    delta_by: Optional[Mapping[str, str]] = None, impute_mask: Optional[pd.DataFrame] = None,
                    donors: int = 5, exclude_predictors: Optional[Mapping[str, Sequence[str]]] = None,
-                   progress: bool = True) -> ChainedImputation:
+                   progress: bool = False) -> ChainedImputation:
     """Multiple imputation by chained equations (fully conditional specification).
 
     Parameters
@@ -409,11 +419,11 @@ def impute_chained(data: pd.DataFrame, m: int = 20, iterations: int = 10, seed: 
         halved the bias but not the undercoverage (79 %). With a roughly normal variable and
         many missing values concentrated in a tail, prefer ``methods={col: "normal"}``.
     exclude_predictors : {column: [columns not to use as its predictors]}.
-    progress : show a progress bar over chains.
+    progress : show a progress bar over chains (on standard error; off by default, so pages stay clean).
 
     Returns
     -------
-    ChainedImputation with ``.m``, ``.completed(i)``, ``.convergence``, ``.fit(formula, family)``.
+    ChainedImputation with ``.m``, ``.completed(i)``, ``.convergence``, ``.analyse(model)``.
 
     References
     ----------
@@ -425,51 +435,51 @@ def impute_chained(data: pd.DataFrame, m: int = 20, iterations: int = 10, seed: 
     preferred. J Clin Epidemiol 59:1092-1101.
     """
     if not isinstance(data, pd.DataFrame) or data.shape[1] == 0:
-        raise InputError("impute_chained: data must be a DataFrame with at least one column")
+        raise InputError("give a DataFrame with at least one column", option="data")
     if not isinstance(m, (int, np.integer)) or m < 1:
-        raise InputError(f"imputation.m: {m!r} is not allowed; give a whole number of imputed datasets, 1 or more")
+        raise InputError(f"{m!r} is not allowed; give a whole number of imputed datasets, 1 or more", option="m")
     if not isinstance(iterations, (int, np.integer)) or iterations < 1:
-        raise InputError(f"imputation.iterations: {iterations!r} is not allowed; give a whole number, 1 or more")
+        raise InputError(f"{iterations!r} is not allowed; give a whole number, 1 or more", option="iterations")
     if not isinstance(donors, (int, np.integer)) or donors < 1:
-        raise InputError(f"imputation.donors: {donors!r} is not allowed; give a whole number, 1 or more")
+        raise InputError(f"{donors!r} is not allowed; give a whole number, 1 or more", option="donors")
     if not isinstance(n_jobs, (int, np.integer)) or n_jobs < 1:
-        raise InputError(f"imputation.n_jobs: {n_jobs!r} is not allowed; give a whole number, 1 or more")
+        raise InputError(f"{n_jobs!r} is not allowed; give a whole number, 1 or more", option="n_jobs")
     data = data.reset_index(drop=True)
     columns = [str(c) for c in data.columns]
     if len(set(columns)) != len(columns):
-        raise InputError("impute_chained: the data have duplicate column names")
+        raise InputError("the data have duplicate column names", option="data")
     # a wider mapping (e.g. every study column's type) is fine: only the data's columns are used
     type_map = {k: v for k, v in dict(types or {}).items() if k in columns}
     for name, kind in type_map.items():
         if kind not in VARIABLE_TYPES:
-            raise InputError(f"variables.{name}.type: '{kind}' is not one of {', '.join(VARIABLE_TYPES)}"
-                             f"{did_you_mean(str(kind), VARIABLE_TYPES)}")
+            raise InputError(f"'{kind}' is not one of {', '.join(VARIABLE_TYPES)}"
+                             f"{did_you_mean(str(kind), VARIABLE_TYPES)}", option=f"types.{name}")
     full_types = {c: type_map.get(c) or infer_type(data[c])[0] for c in columns}
     for name, kind in full_types.items():
         if kind in ("continuous", "count") and not pd.api.types.is_numeric_dtype(data[name].dtype):
-            raise InputError(f"variables.{name}.type: '{name}' holds text, so it cannot be {kind}; "
-                             "declare it binary, nominal or ordinal")
-    method_map = check_names(methods, columns, "imputation.methods")
+            raise InputError(f"'{name}' holds text, so it cannot be {kind}; "
+                             "declare it binary, nominal or ordinal", option=f"types.{name}")
+    method_map = check_names(methods, columns, "methods")
     for name, method in method_map.items():
         if method not in IMPUTATION_METHODS:
-            raise InputError(f"imputation.methods.{name}: '{method}' is not one of {', '.join(IMPUTATION_METHODS)}"
-                             f"{did_you_mean(str(method), IMPUTATION_METHODS)}")
-    predictor_map = {k: list(v) for k, v in check_names(predictors, columns, "imputation.predictors").items()}
+            raise InputError(f"'{method}' is not one of {', '.join(IMPUTATION_METHODS)}"
+                             f"{did_you_mean(str(method), IMPUTATION_METHODS)}", option=f"methods.{name}")
+    predictor_map = {k: list(v) for k, v in check_names(predictors, columns, "predictors").items()}
     exclude_map = {k: list(v) for k, v in check_names(exclude_predictors, columns,
-                                                      "imputation.exclude_predictors").items()}
-    passive_map = {k: str(v) for k, v in check_names(passive, columns, "imputation.passive").items()}
-    delta_map = check_names(delta, columns, "sensitivity.delta")
-    delta_by_map = {k: str(v) for k, v in check_names(delta_by, columns, "sensitivity.delta_by").items()}
+                                                      "exclude_predictors").items()}
+    passive_map = {k: str(v) for k, v in check_names(passive, columns, "passive").items()}
+    delta_map = check_names(delta, columns, "delta")
+    delta_by_map = {k: str(v) for k, v in check_names(delta_by, columns, "delta_by").items()}
     if impute_mask is None:
         mask = data.isna()
     else:
         if not isinstance(impute_mask, pd.DataFrame):
-            raise InputError("impute_mask: give a DataFrame of True/False with the data's columns")
+            raise InputError("give a DataFrame of True/False with the data's columns", option="impute_mask")
         extra = [c for c in impute_mask.columns if c not in columns]
         if extra:
-            raise InputError(f"impute_mask: column '{extra[0]}' is not a column of the data")
+            raise InputError(f"column '{extra[0]}' is not a column of the data", option="impute_mask")
         if len(impute_mask) != len(data):
-            raise InputError(f"impute_mask: {len(impute_mask)} rows, but the data have {len(data)}")
+            raise InputError(f"{len(impute_mask)} rows, but the data have {len(data)}", option="impute_mask")
         mask = pd.DataFrame({c: (impute_mask[c].to_numpy(dtype=bool) if c in impute_mask.columns
                                  else np.zeros(len(data), dtype=bool)) for c in columns})
     mask.columns = columns
@@ -497,7 +507,9 @@ def impute_chained(data: pd.DataFrame, m: int = 20, iterations: int = 10, seed: 
                              impute_mask=keep_mask, imputed=imputed,
                              impute_rows={n: problem.variables[n].impute_rows for n in names}, types=full_types,
                              methods=methods_used, convergence=convergence, variables=table, donors=int(donors),
-                             delta=dict(delta_map))
+                             delta=dict(delta_map),
+                             sentences=(f"{int(m)} chains of {int(iterations)} iterations; seed "
+                                        f"{int(sequence.entropy)}.",))
 
 
 def run_chains(problem: Problem, children: List[np.random.SeedSequence], n_jobs: int, progress: bool):

@@ -16,11 +16,12 @@ import numpy as np
 import pandas as pd
 
 from ..errors import InputError, did_you_mean
-from ..expressions import VALUE, Expression, parse_expression
+from ..expressions import VALUE, Expression, ExpressionError, parse_expression
+from ..intake import levels_of
 from ..vocabulary import ALLOWED_METHODS, CATEGORICAL_TYPES, DEFAULT_METHOD, DELTA_METHODS
 
-__all__ = ["Variable", "Problem", "levels_of", "check_names", "passive_inputs", "evaluate_passive", "prepare",
-           "delta_shifts"]
+__all__ = ["Variable", "Problem", "choose_method", "choose_predictors", "check_names", "passive_inputs",
+           "evaluate_passive", "prepare", "delta_shifts"]
 
 
 # ---------------------------------------------------------------------------
@@ -66,22 +67,13 @@ class Problem:
     originals: Dict[str, np.ndarray]  # numbers on their own scale (donor values are copied from here, exactly)
 
 
-def levels_of(column: pd.Series) -> Tuple[Any, ...]:
-    if isinstance(column.dtype, pd.CategoricalDtype):
-        return tuple(column.cat.categories)
-    values = column.dropna().unique()
-    try:
-        return tuple(sorted(values))
-    except TypeError:
-        return tuple(sorted(values, key=str))
-
-
-def check_names(mapping: Optional[Mapping[str, Any]], columns: Sequence[str], key: str) -> Dict[str, Any]:
+def check_names(mapping: Optional[Mapping[str, Any]], columns: Sequence[str], option: str) -> Dict[str, Any]:
+    """The mapping as a dict, after checking that every key is a column (exit 2 naming ``option.<key>``)."""
     mapping = dict(mapping or {})
     for name in mapping:
         if name not in columns:
-            raise InputError(f"{key}.{name}: '{name}' is not a column of the imputation data"
-                             f"{did_you_mean(name, columns)}")
+            raise InputError(f"'{name}' is not a column of the imputation data{did_you_mean(name, columns)}",
+                             option=f"{option}.{name}")
     return mapping
 
 
@@ -91,9 +83,12 @@ def passive_inputs(formula: str, columns: Sequence[str], variable: str) -> Tuple
     The formula is checked by the expression language (:mod:`gapbook.expressions`): column
     names, numbers, arithmetic, comparisons and the listed functions only.
     """
-    parsed = _passive(formula, f"imputation.passive.{variable}", tuple(columns))
+    try:
+        parsed = _passive(formula, "", tuple(columns))
+    except ExpressionError as exc:
+        raise InputError(exc.detail, option=f"passive.{variable}") from None
     if variable in parsed.columns:
-        raise InputError(f"imputation.passive.{variable}: the formula uses '{variable}' itself")
+        raise InputError(f"the formula uses '{variable}' itself", option=f"passive.{variable}")
     return parsed.columns
 
 
@@ -113,6 +108,43 @@ def _passive(formula: str, where: str, columns: Optional[Tuple[str, ...]]) -> Ex
 
 # ---------------------------------------------------------------------------
 # building the problem
+
+def choose_method(name: str, variable_type: str, methods: Mapping[str, str], passive: Mapping[str, str]) -> str:
+    """The imputation method of one variable: the one given, else passive for a formula, else the type's default.
+
+    Exits 2 (option ``methods.<name>``) when the method does not suit the variable's type or
+    contradicts ``passive``.
+    """
+    method = methods.get(name) or ("passive" if name in passive else DEFAULT_METHOD[variable_type])
+    if name in passive and method != "passive":
+        raise InputError(f"'{method}' given but passive.{name} is a formula; use one or the other",
+                         option=f"methods.{name}")
+    if method == "passive" and name not in passive:
+        raise InputError(f"'passive' needs a formula in passive.{name}", option=f"methods.{name}")
+    if method not in ALLOWED_METHODS[variable_type]:
+        raise InputError(f"'{method}' does not suit the {variable_type} variable '{name}'; use "
+                         f"{' or '.join(ALLOWED_METHODS[variable_type])}", option=f"methods.{name}")
+    return method
+
+
+def choose_predictors(name: str, columns: Sequence[str], predictors: Mapping[str, Sequence[str]],
+                      exclude: Mapping[str, Sequence[str]], passive_in: Mapping[str, Sequence[str]]) -> List[str]:
+    """The predictors of one variable: those listed for it, else every other column (a passive
+    variable never predicts its own inputs), less the excluded ones; exits 2 on unknown names."""
+    if name in predictors:
+        chosen = list(predictors[name])
+        for p in chosen:
+            if p not in columns:
+                raise InputError(f"'{p}' is not a column of the imputation data{did_you_mean(p, columns)}",
+                                 option=f"predictors.{name}")
+    else:
+        chosen = [c for c in columns if c != name and not (c in passive_in and name in passive_in[c])]
+    for p in exclude.get(name, []):
+        if p not in columns:
+            raise InputError(f"'{p}' is not a column of the imputation data{did_you_mean(p, columns)}",
+                             option=f"exclude_predictors.{name}")
+    return [c for c in chosen if c != name and c not in exclude.get(name, [])]
+
 
 def prepare(data: pd.DataFrame, types: Dict[str, str], methods: Dict[str, str], predictors: Dict[str, List[str]],
             exclude: Dict[str, List[str]], passive: Dict[str, str], mask: pd.DataFrame, iterations: int,
@@ -138,10 +170,10 @@ def prepare(data: pd.DataFrame, types: Dict[str, str], methods: Dict[str, str], 
     for v, inputs in passive_in.items():
         for name in inputs:
             if types[name] not in ("continuous", "count"):
-                raise InputError(f"imputation.passive.{v}: '{name}' is {types[name]}; passive formulas take numbers")
+                raise InputError(f"'{name}' is {types[name]}; passive formulas take numbers", option=f"passive.{v}")
             if name in passive:
-                raise InputError(f"imputation.passive.{v}: '{name}' is itself passive; write the formula from "
-                                 "measured variables")
+                raise InputError(f"'{name}' is itself passive; write the formula from "
+                                 "measured variables", option=f"passive.{v}")
 
     # design layout: intercept, then one block per variable
     blocks: Dict[str, np.ndarray] = {}
@@ -205,15 +237,7 @@ def prepare(data: pd.DataFrame, types: Dict[str, str], methods: Dict[str, str], 
         impute_rows = np.flatnonzero(is_masked)
         fit_rows = fit_rows_all[name]
         other_rows = np.setdiff1d(np.arange(n), fit_rows, assume_unique=True)
-        method = methods.get(name, "passive" if name in passive else DEFAULT_METHOD[types[name]])
-        if name in passive and method != "passive":
-            raise InputError(f"imputation.methods.{name}: '{method}' given but imputation.passive.{name} is a formula; "
-                             "use one or the other")
-        if method == "passive" and name not in passive:
-            raise InputError(f"imputation.methods.{name}: 'passive' needs a formula in imputation.passive.{name}")
-        if method not in ALLOWED_METHODS[types[name]]:
-            raise InputError(f"imputation.methods.{name}: '{method}' does not suit a {types[name]} variable; use "
-                             f"{' or '.join(ALLOWED_METHODS[types[name]])}")
+        method = choose_method(name, types[name], methods, passive)
         if len(impute_rows) == 0:
             method_used = "passive" if name in passive else ""
         else:
@@ -221,21 +245,7 @@ def prepare(data: pd.DataFrame, types: Dict[str, str], methods: Dict[str, str], 
             if method != "passive" and len(fit_rows) == 0:
                 raise InputError(f"{name}: the column has no observed values, so it cannot be imputed; drop it from "
                                  "the imputation model or supply values")
-        # predictors: every other variable unless listed; a passive variable never predicts its own inputs
-        if name in predictors:
-            chosen = list(predictors[name])
-            for p in chosen:
-                if p not in columns:
-                    raise InputError(f"imputation.predictors.{name}: '{p}' is not a column of the imputation data"
-                                     f"{did_you_mean(p, columns)}")
-        else:
-            chosen = [c for c in columns if c != name]
-            chosen = [c for c in chosen if not (c in passive_in and name in passive_in[c])]
-        for p in exclude.get(name, []):
-            if p not in columns:
-                raise InputError(f"imputation.exclude_predictors.{name}: '{p}' is not a column of the imputation data"
-                                 f"{did_you_mean(p, columns)}")
-        chosen = [c for c in chosen if c != name and c not in exclude.get(name, [])]
+        chosen = choose_predictors(name, columns, predictors, exclude, passive_in)
         pred_cols = np.concatenate([[0]] + [blocks[c] for c in chosen]).astype(np.int64)
         variables[name] = Variable(
             name=name, type=types[name], method=method_used, columns=blocks[name], center=centers[name],
@@ -260,28 +270,28 @@ def delta_shifts(data: pd.DataFrame, variables: Dict[str, Variable], delta: Dict
     for name, shift in delta.items():
         variable = variables[name]
         if variable.method not in DELTA_METHODS:
-            raise InputError(f"sensitivity.delta.{name}: delta adjustment applies to variables imputed by pmm, normal "
-                             f"or logistic; '{name}' is imputed by '{variable.method or 'nothing (it is complete)'}'")
+            raise InputError(f"delta adjustment applies to variables imputed by pmm, normal or logistic; '{name}' is "
+                             f"imputed by '{variable.method or 'nothing (it is complete)'}'", option=f"delta.{name}")
         scale = 1.0 if variable.categorical else variable.scale
         by = delta_by.get(name)
         if not isinstance(shift, Mapping):
             if by is not None:
-                raise InputError(f"sensitivity.delta.{name}: with a grouping column ({by}) give one delta per group")
+                raise InputError(f"with a grouping column ({by}) give one delta per group", option=f"delta.{name}")
             out[name] = float(shift) / scale
             continue
         if by is None:
-            raise InputError(f"sensitivity.delta.{name}: deltas by group need delta_by.{name} (the grouping column)")
+            raise InputError(f"deltas by group need delta_by.{name} (the grouping column)", option=f"delta.{name}")
         if by not in variables:
-            raise InputError(f"sensitivity.delta.{name}: grouping column '{by}' is not a column of the imputation data"
-                             f"{did_you_mean(by, list(variables))}")
+            raise InputError(f"grouping column '{by}' is not a column of the imputation data"
+                             f"{did_you_mean(by, list(variables))}", option=f"delta.{name}")
         group = variables[by]
         if group.categorical:
             names = [str(x) for x in group.levels]
             lookup = np.zeros(len(group.levels) + 1)
             for key, value in shift.items():
                 if str(key) not in names:
-                    raise InputError(f"sensitivity.delta.{name}: '{key}' is not a level of '{by}' "
-                                     f"({', '.join(names)}){did_you_mean(str(key), names)}")
+                    raise InputError(f"'{key}' is not a level of '{by}' "
+                                     f"({', '.join(names)}){did_you_mean(str(key), names)}", option=f"delta.{name}")
                 lookup[names.index(str(key))] = float(value) / scale
             out[name] = ("categorical", by, lookup)
         else:

@@ -18,7 +18,7 @@ def plot_flow(flow: CompleteCaseFlow):
     The gap between the two bars is the overlap with earlier variables; the title gives
     the rows used out of the rows in the file.
     """
-    steps = flow.table[flow.table["step"] == "excluded"]
+    steps = flow.steps[flow.steps["step"] == "excluded"]
     names = list(steps["variable"])[::-1]
     first = steps["n_excluded"].to_numpy(dtype=float)[::-1]
     every = steps["n_lacking"].to_numpy(dtype=float)[::-1]
@@ -43,7 +43,7 @@ def plot_completeness_differences(baseline: CompletenessBaseline, threshold: flo
     ``threshold`` draws the often-used |SMD| = 0.1 guide lines (common practice, no source;
     see Austin 2009, Stat Med 28:3083, for the statistic itself).
     """
-    table = baseline.table
+    table = baseline.differences
     n_rows = len(table)
     if n_rows > MAX_VARIABLES_SHOWN:  # the largest differences; the table keeps every row
         keep = table["smd"].abs().fillna(0).sort_values(ascending=False, kind="stable").index[:MAX_VARIABLES_SHOWN]
@@ -105,7 +105,7 @@ def plot_strategy_comparison(comparison: StrategyComparison, reference_value: Op
     stands alone. ``reference_value`` (on the coefficient scale) marks a known truth, e.g.
     in a simulation or the demo study.
     """
-    table = comparison.table
+    table = comparison.comparison
     ratio = comparison.ratio_name
     if ratio is not None:
         est, lo, hi = (table[ratio], table[f"{ratio}_ci_lower"], table[f"{ratio}_ci_upper"])

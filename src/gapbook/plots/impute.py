@@ -92,7 +92,7 @@ def plot_observed_vs_imputed(imputation: ChainedImputation, bins: int = 30):
 def plot_missing_information(pooled: PooledResult):
     """Per model term: the fraction of missing information, split from the share of the total
     variance that comes from between-imputation spread (lambda)."""
-    table = pooled.variances
+    table = pooled.variances()
     figure, ax = plt.subplots(figsize=(7.0, 0.35 * len(table) + 1.3), layout="constrained")
     y = np.arange(len(table))[::-1]
     ax.barh(y, table["fmi"], color=EMPHASIS, height=0.6, label="fraction of missing information")

@@ -34,7 +34,7 @@ def relation_overview(groups: GroupComparison, annotate: Optional[bool] = None):
     is missing and rows where it is observed; a dot marks a Holm-adjusted p-value below
     alpha; a grey cell was not tested (too few rows, or no variation).
     """
-    table = groups.table
+    table = groups.comparisons
     rows = list(dict.fromkeys(table["incomplete_variable"]))
     columns = list(dict.fromkeys(list(rows) + list(table["compared_variable"])))
     columns = [c for c in columns if c in set(table["compared_variable"]) or c in rows]
@@ -224,15 +224,15 @@ def _wrap(text: str, width: int) -> str:
 
 def missingness_odds_ratios(models: MissingnessModels, top: int = 3):
     """Odds ratios (with CIs, log scale) of being missing, for the models with the smallest LR p-values."""
-    fits = models.fits[np.isfinite(models.fits["lr_p_value"].astype(float))]
+    fits = models.model_fit[np.isfinite(models.model_fit["lr_p_value"].astype(float))]
     if fits.empty:
         figure, axes = new_figure(6, 2)
         axes.text(0.5, 0.5, "No missingness model could be fitted (see the table notes).", ha="center", va="center")
         axes.set_axis_off()
         return figure
     chosen = fits.sort_values("lr_p_value", kind="stable").head(top)["incomplete_variable"].tolist()
-    table = models.table[models.table["incomplete_variable"].isin(chosen) & (models.table["term"] != "Intercept")
-                         & models.table["odds_ratio"].notna()]
+    table = models.terms[models.terms["incomplete_variable"].isin(chosen) & (models.terms["term"] != "Intercept")
+                         & models.terms["odds_ratio"].notna()]
     table = table.assign(_order=table["incomplete_variable"].map({v: i for i, v in enumerate(chosen)}))
     table = table.sort_values("_order", kind="stable").reset_index(drop=True)
     figure, axes = new_figure(7.5, max(2.5, 0.3 * len(table) + 0.5 * len(chosen) + 1.2))

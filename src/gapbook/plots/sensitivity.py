@@ -24,7 +24,7 @@ def delta_curve(result: DeltaResult, term: Optional[str] = None):
     value; root-search evaluations are hollow points, grid deltas filled ones.
     """
     term = term or result.terms[0]
-    table = result.table[result.table["term"] == term]
+    table = result.curves[result.curves["term"] == term]
     keys = list(dict.fromkeys(zip(table["variable"], table["group"])))
     figure, axes = plt.subplots(1, len(keys), figsize=(max(5.0, 4.6 * len(keys)), 3.8), squeeze=False,
                                 sharey=True, layout="constrained")
@@ -42,8 +42,8 @@ def delta_curve(result: DeltaResult, term: Optional[str] = None):
                     label="root search")
         ax.axhline(result.null, color=REFERENCE, lw=1, ls="--", label="null")
         ax.axvline(0.0, color=NEUTRAL, lw=0.8, ls=":")
-        tips = result.tipping[(result.tipping["variable"] == variable) & (result.tipping["group"] == group)
-                              & (result.tipping["term"] == term)]
+        tips = result.tipping_points[(result.tipping_points["variable"] == variable) & (result.tipping_points["group"] == group)
+                              & (result.tipping_points["term"] == term)]
         for tip in tips.itertuples():
             if tip.found:
                 ax.axvline(tip.tipping_delta, color=EMPHASIS, lw=1.4)
@@ -64,7 +64,7 @@ def delta_curve(result: DeltaResult, term: Optional[str] = None):
 
 def analyses_side_by_side(comparison: StrategyAndDelta, term: Optional[str] = None):
     """Intervals of the exposure effect under every strategy and delta, top to bottom, with the null."""
-    table = comparison.table
+    table = comparison.comparison
     term = term or table["term"].iloc[0]
     part = table[table["term"] == term].reset_index(drop=True)
     height = 1.2 + 0.32 * len(part)
