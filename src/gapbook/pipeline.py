@@ -156,17 +156,20 @@ def check_model_up_front(params: Params, study: Any) -> Tuple[str, List[str]]:
     """
     from .cases import check_model_data
     from .errors import AnalysisError
-    from .models import analysis_model, check_formula
+    from .models import check_formula
+    from .stage import analysis_model, params_errors
 
-    found = check_formula(params.analysis.formula, list(study.data.columns))
-    model = analysis_model(params)
-    outcome, covariates = check_model_data(study.data, model)
+    with params_errors(params, "analysis"):
+        found = check_formula(params.analysis.formula, list(study.data.columns))
+        model = analysis_model(params)
+        outcome, covariates = check_model_data(study.data, model)
     for column in covariates:
         if study.data[column].notna().sum() == 0:
             raise InputError(f"{params.label}: analysis.formula uses '{column}', which has no observed values; "
                              "drop it from the formula or check its missing markers")
     try:
-        model.fit(study.data)
+        with params_errors(params, "analysis"):
+            model.fit(study.data)
     except AnalysisError:
         pass
     return found
