@@ -300,7 +300,7 @@ class PooledVisitEffects:
         """Rows of ``visit_effects.csv`` with the fraction of missing information (fmi) and riv."""
         rows = []
         for k, (term, visit) in enumerate(self.names):
-            pooled = rubin_pool(self.estimates[:, [k]], self.variances[:, [k]], float(self.complete_df[k]))
+            pooled = rubin_pool(self.estimates[:, [k]], self.variances[:, [k]], df_complete=float(self.complete_df[k]))
             estimate, se, df = float(pooled.estimate[0]), float(np.sqrt(pooled.total[0])), float(pooled.df[0])
             lower, upper, p = (float(v) for v in wald_inference(estimate, se, df, self.alpha))
             rows.append({"strategy": self.strategy, "visit": visit, "term": term, "estimate": estimate,
