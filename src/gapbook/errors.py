@@ -27,7 +27,7 @@ class InputError(Exception):
 
     def __init__(self, message: object = "", *, option: Optional[str] = None) -> None:
         self.option = option
-        self.detail = one_line(message, limit=2000)
+        self.message = one_line(message, limit=2000)  # without the option's name
         super().__init__(one_line(f"{option}: {message}" if option else message, limit=2000))
 
 

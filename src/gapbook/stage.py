@@ -107,7 +107,7 @@ def params_errors(params: Params, *sections: str) -> Iterator[None]:
         key = _params_key(exc.option, sections) if exc.option else None
         if key is None:
             raise
-        raise InputError(f"{params.label}: {key}: {exc.detail}") from None
+        raise InputError(f"{params.label}: {key}: {exc.message}") from None
 
 
 def analysis_model(params: Params) -> "AnalysisModel":
