@@ -130,7 +130,7 @@ def test_not_applicable_cells_are_not_given_a_category(demo):
     assert prepared.loc[na, "insulin_dose"].isna().all()
     indicator = result.prepared.aliases.alias("insulin_dose_missing")  # the column goes by an internal alias
     assert prepared.loc[na, indicator].eq(0).all()
-    assert "insulin_dose_missing" in result.fit.terms  # and is named as before in the table
+    assert "insulin_dose_missing" in result.model_fit.terms  # and is named as before in the table
     # Rows kept: outcome observed and insulin dose applicable (pandas count).
     kept = int((study.data["hba1c_12m"].notna() & ~study.not_applicable["insulin_dose"]).sum())
     assert result.model_fit.nobs == kept
@@ -200,10 +200,10 @@ def test_formulas_gapbook_builds_never_contain_column_names_from_the_data():
                          "dose mg.day": rng.normal(10, 2, n)})
     data.loc[rng.choice(n, 12, replace=False), "dose mg.day"] = np.nan
     model = AnalysisModel('y ~ arm + Q("dose mg.day")', exposure="arm")
-    result = missing_category_analysis(data, model, indicator_for_continuous=True)
+    result = missing_category_analysis(data, model=model, indicator_for_continuous=True)
     assert "dose mg.day_missing" not in result.prepared.formula
     assert result.prepared.formula.endswith("+ gapbook_indicator_0")
-    assert 'Q("dose mg.day_missing")' in result.fit.terms and 'Q("dose mg.day")' in result.fit.terms
+    assert 'Q("dose mg.day_missing")' in result.model_fit.terms and 'Q("dose mg.day")' in result.model_fit.terms
     # the same fit by hand with statsmodels (the reference) on a plainly named copy
     import statsmodels.formula.api as smf
 
@@ -211,4 +211,4 @@ def test_formulas_gapbook_builds_never_contain_column_names_from_the_data():
     plain["dose_missing"] = plain["dose"].isna().astype(float)
     plain["dose"] = plain["dose"].fillna(plain["dose"].mean())
     reference = smf.ols("y ~ arm + dose + dose_missing", plain).fit()
-    np.testing.assert_allclose(result.fit.params, reference.params.to_numpy(), rtol=1e-10)
+    np.testing.assert_allclose(result.model_fit.coefficients, reference.params.to_numpy(), rtol=1e-10)

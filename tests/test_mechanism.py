@@ -431,7 +431,7 @@ def test_missingness_model_refers_to_columns_by_alias_and_names_terms_as_statsmo
     data = pd.DataFrame({"alk.phos": rng.normal(100, 20, n),
                          "sex": pd.Categorical(rng.choice(["female", "male"], n))})
     indicator = rng.random(n) < 1 / (1 + np.exp(-(data["alk.phos"] - 100) / 20))
-    terms, summary = fit_missingness_model(data, "bili", ["alk.phos", "sex"], indicator)
+    terms, summary = fit_missingness_model(data, variable="bili", predictors=["alk.phos", "sex"], indicator=indicator)
     assert list(terms["term"]) == ["Intercept", "sex[T.male]", 'Q("alk.phos")']
     frame = data.assign(miss=indicator.astype(float))
     reference = smf.logit('miss ~ Q("alk.phos") + sex', frame).fit(disp=0)
