@@ -360,10 +360,50 @@ def test_figures_draw_from_the_result(demo_audit, hand):
     from gapbook.plots import audit as plots
     for result in (demo_audit, hand):
         assert isinstance(result, AuditResult)
-        for draw in (plots.missingness_map, plots.missing_share, plots.comissingness_matrix, plots.common_patterns):
+        for draw in (plots.missingness_map, plots.missing_share, plots.missing_together, plots.common_patterns):
             figure = draw(result)
-            assert figure.axes and figure.axes[0].get_title()
+            assert figure.axes and (figure.axes[0].get_title() or figure.get_suptitle())
             plt.close(figure)
+
+
+def test_missing_together_draws_the_table():
+    # Three blocks of variables missing in the same rows, plus scattered gaps: the view must draw
+    # each ordered pair's shared rows inside a frame of the row variable's missing rows (so the
+    # filled share of the frame is P(B missing | A missing), hand-checked against the table),
+    # keep blocks next to each other, and say how many variables were left out.
+    import matplotlib.pyplot as plt
+    from matplotlib.patches import Rectangle
+    from gapbook.plots.audit import missing_together
+    rng = np.random.default_rng(5)
+    n = 600
+    data = pd.DataFrame(rng.normal(size=(n, 9)), columns=[f"x{i}" for i in range(9)])
+    for block, share in (([0, 4, 7], 0.3), ([1, 5], 0.2)):
+        rows = rng.random(n) < share
+        for j in block:
+            data.loc[rows & (rng.random(n) < 0.95), f"x{j}"] = np.nan
+    for j in (2, 3, 6, 8):
+        data.loc[rng.random(n) < 0.02 * (j + 1), f"x{j}"] = np.nan
+    result = audit_frame(data)
+    figure = missing_together(result, max_variables=7)
+    axes = figure.axes[0]
+    names = [t.get_text() for t in axes.get_xticklabels()]
+    assert len(names) == 7 and "2 left out" in axes.get_title(loc="left").replace("\n", " ")
+    assert set(names) == set(result.variables.sort_values("n_missing", ascending=False, kind="stable")
+                             ["variable"].head(7))
+    positions = {v: i for i, v in enumerate(names)}
+    assert max(positions[v] for v in ("x0", "x4", "x7")) - min(positions[v] for v in ("x0", "x4", "x7")) == 2
+    assert abs(positions["x1"] - positions["x5"]) == 1
+    squares = {}
+    for patch in axes.patches:
+        if isinstance(patch, Rectangle):
+            x, y = patch.get_x() + patch.get_width() / 2, patch.get_y() + patch.get_height() / 2
+            squares.setdefault((round(y), round(x)), []).append(patch.get_width() ** 2)
+    table = result.comissingness.set_index(["variable_a", "variable_b"])
+    for (a, b), row in table.iterrows():
+        if a in positions and b in positions and row["n_both_missing"] > 0:
+            frame, filled = sorted(squares[(positions[a], positions[b])], reverse=True)
+            assert filled / frame == pytest.approx(row["p_missing_b_given_a"], rel=1e-9)
+    plt.close(figure)
 
 
 def test_map_slices_preserve_missing_counts(demo_audit):

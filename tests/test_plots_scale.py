@@ -29,7 +29,7 @@ def wide_audit():
     return audit_study(study, threshold=0.2, by=[], top_patterns=1000)
 
 
-@pytest.mark.parametrize("plot", ["missing_share", "comissingness_matrix", "missingness_map", "common_patterns"])
+@pytest.mark.parametrize("plot", ["missing_share", "missing_together", "missingness_map", "common_patterns"])
 def test_variable_figures_show_a_stated_number(wide_audit, plot):
     figure = getattr(audit_plots, plot)(wide_audit)
     axes = figure.axes[0]
@@ -38,7 +38,11 @@ def test_variable_figures_show_a_stated_number(wide_audit, plot):
     labels = [t.get_text() for t in (axes.get_yticklabels() if plot in ("missing_share", "common_patterns")
                                      else axes.get_xticklabels())]
     assert len(labels) <= MAX_VARIABLES_SHOWN
-    if plot != "common_patterns":
+    if plot == "missing_together":  # a denser square: fewer variables, and the count left out in its note
+        assert len(labels) == audit_plots.MAX_TOGETHER
+        assert f"{len(wide_audit.comissingness_matrix) - audit_plots.MAX_TOGETHER} left out" in \
+            axes.get_title(loc="left").replace("\n", " ")
+    elif plot != "common_patterns":
         assert f"the {MAX_VARIABLES_SHOWN} with the most missing of" in axes.get_title()
     if plot == "missing_share":  # the most incomplete are the ones shown
         shown = {label.split(" (")[0] for label in labels}

@@ -2,19 +2,23 @@
 
 1. :func:`missingness_map` - where are the gaps, and do they line up across rows?
 2. :func:`missing_share` - which variables lack too much, and for what reasons?
-3. :func:`comissingness_matrix` - which variables go missing together?
+3. :func:`missing_together` - when A is missing, how much more often is B missing?
 4. :func:`common_patterns` - which combinations of gaps are common?
 """
 from __future__ import annotations
 
+import textwrap
 from typing import Sequence
 
 import numpy as np
+from matplotlib.cm import ScalarMappable
+from matplotlib.colors import Normalize
 from matplotlib.patches import Patch
 
-from . import EMPHASIS, MAX_VARIABLES_SHOWN, MISSING, OBSERVED, REFERENCE, new_figure, shown_of
-from .palette import reason_shades, scale, text_on
+from . import EMPHASIS, GRID, MAX_VARIABLES_SHOWN, MISSING, NEUTRAL, OBSERVED, REFERENCE, new_figure, shown_of
+from .palette import reason_shades, scale
 
+MAX_TOGETHER = 20  # the most incomplete variables the co-missingness view shows; the rest are named as left out
 MAP_SLICES = 400  # vertical resolution of the map: beyond this many rows, rows are shown in slices
 
 
@@ -145,55 +149,132 @@ def missing_share(result):
     return figure
 
 
-def comissingness_matrix(result, annotate_up_to: int = 15):
-    """Correlation of missingness indicators between incomplete variables (lower triangle).
+def _together_order(names, single, both):
+    """Variables ordered by average-linkage clustering on 1 - Jaccard of their missing rows."""
+    k = len(names)
+    if k < 3:
+        return list(range(k))
+    from scipy.cluster.hierarchy import leaves_list, linkage, optimal_leaf_ordering
+    from scipy.spatial.distance import squareform
+    union = single[:, None] + single[None, :] - both
+    with np.errstate(divide="ignore", invalid="ignore"):
+        distance = np.where(union > 0, 1.0 - both / union, 1.0)
+    np.fill_diagonal(distance, 0.0)
+    condensed = squareform(distance, checks=False)
+    tree = optimal_leaf_ordering(linkage(condensed, method="average"), condensed)
+    return [int(i) for i in leaves_list(tree)]
+
+
+def missing_together(result, max_variables: int = MAX_TOGETHER):
+    """When A is missing, how much more often is B missing? Lift and shared rows of every ordered pair.
+
+    Row A, column B. Each cell holds a frame whose area is the number of rows missing A (the
+    same across the row) and, inside it, a filled square whose area is the number of rows
+    missing both, so the filled share of the frame is P(B missing | A missing) and differs
+    between (A, B) and (B, A). The fill's colour is the lift P(B missing | A missing) /
+    P(B missing): teal when B goes missing with A more often than in all rows, olive when
+    less often, pale when about as often (log scale). The diagonal shows the rows missing
+    each variable. Variables are ordered by average-linkage clustering on 1 - Jaccard
+    similarity of their missing rows (variables missing in the same rows sit together);
+    only the ``max_variables`` most incomplete variables are drawn and the figure says how
+    many were left out.
 
     Parameters
     ----------
     result : AuditResult.
-    annotate_up_to : write the values in the cells when there are at most this many variables.
+    max_variables : the most variables drawn (the most incomplete; ties in column order).
 
     Returns
     -------
     matplotlib Figure.
+
+    References
+    ----------
+    Jaccard P (1912). The distribution of the flora in the alpine zone. New Phytologist
+    11:37-50 (the similarity). Sokal RR, Michener CD (1958). A statistical method for
+    evaluating systematic relationships. Univ Kansas Sci Bull 38:1409-1438 (average linkage).
+    Bar-Joseph Z, Gifford DK, Jaakkola TS (2001). Fast optimal leaf ordering for
+    hierarchical clustering. Bioinformatics 17(Suppl 1):S22-S29.
     """
-    matrix = result.comissingness_matrix
-    n_variables = len(matrix)
-    if n_variables > MAX_VARIABLES_SHOWN:
-        share = result.variables.set_index("variable")["pct_missing"].reindex(matrix.index).fillna(0)
-        keep = [v for v in matrix.index if v in set(share.sort_values(ascending=False, kind="stable")
-                                                      .index[:MAX_VARIABLES_SHOWN])]
-        matrix = matrix.loc[keep, keep]
-    k = len(matrix)
-    size = max(3.5, 0.45 * k + 2.5)
-    figure, axes = new_figure(size + 1.0, size)
+    variables = result.variables
+    counts = dict(zip(variables["variable"], variables["n_missing"].astype(np.int64)))
+    incomplete = [v for v in variables["variable"] if counts[v] > 0]
+    shown = sorted(incomplete, key=lambda v: -counts[v])[:max(int(max_variables), 2)]  # stable: ties in column order
+    left_out = len(incomplete) - len(shown)
+    k = len(shown)
+    size = max(4.0, 0.36 * k + 2.6)
+    figure, axes = new_figure(size + 1.4, size + 0.6)
     if k < 2:
         axes.text(0.5, 0.5, "fewer than two incomplete variables:\nnothing can go missing together",
                   ha="center", va="center", transform=axes.transAxes)
         axes.set_axis_off()
+        figure.suptitle("When A is missing, how much more often is B missing?", fontsize=11, x=0.01, ha="left")
         return figure
-    values = matrix.to_numpy(dtype=float).copy()
-    values[np.triu_indices(k)] = np.nan  # each pair once; the diagonal is 1 by definition
-    # Lower triangle without the diagonal: rows from the second variable, columns up to the last but one.
-    values = values[1:, :-1]
-    image = axes.imshow(np.ma.masked_invalid(values), cmap=scale("ratio"), vmin=-1, vmax=1, interpolation="nearest")
-    axes.set_xticks(range(k - 1))
-    axes.set_xticklabels(matrix.columns[:-1], rotation=60, ha="right", fontsize=8)
-    axes.set_yticks(range(k - 1))
-    axes.set_yticklabels(matrix.index[1:], fontsize=8)
-    if k <= annotate_up_to:
-        for i in range(k - 1):
-            for j in range(i + 1):
-                if np.isfinite(values[i, j]):
-                    axes.text(j, i, f"{values[i, j]:.2f}", ha="center", va="center", fontsize=7,
-                              color=text_on(abs(values[i, j])))
-    for side in ("top", "right"):
+    index = {v: i for i, v in enumerate(shown)}
+    single = np.array([counts[v] for v in shown], dtype=np.float64)
+    both = np.diag(single).copy()
+    lift = np.full((k, k), np.nan)
+    pairs = result.comissingness
+    pairs = pairs[pairs["variable_a"].isin(index) & pairs["variable_b"].isin(index)]
+    for a, b, n_both, value in zip(pairs["variable_a"], pairs["variable_b"], pairs["n_both_missing"], pairs["lift"]):
+        both[index[a], index[b]] = n_both
+        lift[index[a], index[b]] = value
+    order = _together_order(shown, single, both)
+    names = [shown[i] for i in order]
+    single, both, lift = single[order], both[np.ix_(order, order)], lift[np.ix_(order, order)]
+
+    with np.errstate(divide="ignore"):
+        log_lift = np.log2(lift)
+    finite = np.abs(log_lift[np.isfinite(log_lift)])
+    reach = float(np.clip(np.ceil(finite.max()) if finite.size else 1.0, 1.0, 4.0))  # 2x to 16x either way
+    norm = Normalize(vmin=-reach, vmax=reach)
+    colours = scale("ratio")
+    largest = float(single.max())
+    for i in range(k):
+        frame = 0.92 * np.sqrt(single[i] / largest)
+        for j in range(k):
+            if i == j:
+                axes.add_patch(_square(j, i, frame, facecolor=NEUTRAL, edgecolor="none"))
+                continue
+            axes.add_patch(_square(j, i, frame, facecolor="none", edgecolor=GRID, linewidth=0.8))
+            if both[i, j] > 0:
+                side = 0.92 * np.sqrt(both[i, j] / largest)
+                value = np.clip(log_lift[i, j], -reach, reach)
+                axes.add_patch(_square(j, i, side, facecolor=colours(norm(value)), edgecolor=REFERENCE,
+                                       linewidth=0.3))
+    axes.set_xlim(-0.5, k - 0.5)
+    axes.set_ylim(k - 0.5, -0.5)
+    axes.set_aspect("equal")
+    axes.set_xticks(range(k), names, rotation=60, ha="right", fontsize=8)
+    axes.set_yticks(range(k), [f"{v} ({int(n):,})" for v, n in zip(names, single)], fontsize=8)
+    axes.set_xlabel("B: is this variable missing too?")
+    axes.set_ylabel("A: when this variable is missing (rows missing it)")
+    axes.tick_params(length=0)
+    for side in ("top", "right", "bottom", "left"):
         axes.spines[side].set_visible(False)
-    bar = figure.colorbar(image, ax=axes, fraction=0.045)
-    bar.set_label("correlation of missingness (phi)")
-    axes.set_title(f"Which variables go missing together{shown_of(k, n_variables, 'incomplete variables')}",
-                   fontsize=10)
+    mappable = ScalarMappable(norm=norm, cmap=colours)
+    bar = figure.colorbar(mappable, ax=axes, fraction=0.04, pad=0.02)
+    ticks = np.arange(-reach, reach + 1)
+    bar.set_ticks(ticks, labels=[_times(t) for t in ticks])
+    bar.set_label("lift: P(B missing | A missing) / P(B missing)", fontsize=8)
+    shown_words = (f"the {k} most incomplete of {len(incomplete)} incomplete variables shown, {left_out} left out"
+                   if left_out else f"all {k} incomplete variables shown")
+    note = (f"Frame: rows missing A. Filled square: rows missing both, so its share of the frame is "
+            f"P(B missing | A missing). Colour: lift. {shown_words[0].upper() + shown_words[1:]}; complete "
+            f"variables are not drawn. Order: average-linkage clustering on 1 \u2212 Jaccard of the missing rows.")
+    axes.set_title(textwrap.fill(note, width=int(12.5 * (size + 1.4))), fontsize=8, loc="left")
+    figure.suptitle("When A is missing, how much more often is B missing?", fontsize=11, x=0.01, ha="left")
     return figure
+
+
+def _square(x: float, y: float, side: float, **style):
+    from matplotlib.patches import Rectangle
+    return Rectangle((x - side / 2, y - side / 2), side, side, **style)
+
+
+def _times(log2_value: float) -> str:
+    value = 2.0 ** log2_value
+    return f"{value:g}\u00d7" if value >= 1 else f"1/{1 / value:g}\u00d7"
 
 
 def _pattern_label(missing: Sequence[str], limit: int = 3) -> str:
