@@ -148,3 +148,25 @@ def test_unordered_variables_use_the_share_of_each_level():
     assert result.above == ("colour",)
     assert result.rhat["summary"].iloc[0].startswith("share of each level")
     assert "colour" not in result.constant  # level 'a' is constant, but the variable is judged on b and c
+
+
+def test_figure_draws_the_table_and_asks_its_question():
+    import matplotlib.pyplot as plt
+    from matplotlib.colors import to_hex
+    from gapbook.plots import palette
+    from gapbook.plots.impute import plot_chain_convergence
+    rng = np.random.default_rng(6)
+    result = chain_convergence(pd.concat([_trace(_ar1(np.linspace(-3, 3, 8), 12, 0.2, rng), "settles"),
+                                          _trace(_ar1(np.linspace(-9, 9, 8), 12, 0.95, rng), "stuck")]))
+    figure = plot_chain_convergence(result)
+    assert figure.get_suptitle() == "Have the chains forgotten their starting values, and from which iteration?"
+    top = figure.axes[0]
+    lines = [line for line in top.get_lines() if line.get_marker() == "o"]
+    wide = result.rhat.pivot(index="iteration", columns="variable", values="rhat")
+    drawn = {to_hex(line.get_color()): line.get_ydata() for line in lines}
+    limit_top = top.get_ylim()[1]
+    stuck = drawn[to_hex(palette.EMPHASIS)]  # the variable above the line is drawn in the emphasis colour
+    assert np.allclose(stuck, np.minimum(wide["stuck"].to_numpy(), limit_top), equal_nan=True)
+    assert any(np.allclose(line.get_ydata(), wide["settles"].to_numpy(), equal_nan=True) for line in lines)
+    assert any(np.allclose(line.get_ydata(), [RHAT_LIMIT, RHAT_LIMIT]) for line in top.get_lines())
+    plt.close(figure)

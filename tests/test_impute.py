@@ -268,6 +268,21 @@ def test_convergence_table_and_summary():
     assert len(trace) == 3 * 4 * 2 and set(trace["chain"]) == {0, 1, 2}
     last = trace[(trace.chain == 1) & (trace.iteration == 4) & (trace.variable == "score")]["mean"].iloc[0]
     assert last == pytest.approx(result.completed(1).loc[data["score"].isna(), "score"].mean())
+    # the unordered variable's level shares: hand count of chain 2's imputed values at the last iteration
+    shares = result.level_shares
+    assert set(shares["variable"]) == {"nominal"} and list(dict.fromkeys(shares["level"])) == [
+        "red", "green", "blue", "purple"]
+    imputed = result.completed(2).loc[data["nominal"].isna(), "nominal"]
+    last_shares = shares[(shares.chain == 2) & (shares.iteration == 4)].set_index("level")["share"]
+    for level in ("red", "green", "blue", "purple"):
+        assert last_shares[level] == pytest.approx((imputed == level).mean())
+    # R-hat is added to the trace: iterations 1-3 have none (too short), iteration 4 has one per variable
+    checked = result.chain_convergence()
+    assert list(checked.tables()["imputation_convergence"].columns) == ["chain", "iteration", "variable", "mean",
+                                                                         "sd", "rhat"]
+    assert checked.trace["rhat"].isna().sum() == 3 * 3 * 2
+    assert checked.rhat.set_index(["variable", "iteration"]).loc[("nominal", 4), "summary"].startswith(
+        "share of each level")
     summary = result.observed_and_imputed()
     assert list(summary["variable"]) == ["score", "nominal"]
     assert summary.loc[0, "n_imputed"] == int(data["score"].isna().sum())

@@ -154,13 +154,15 @@ class ChainConvergence:
 
     Fields
     ------
+    trace : the imputation's convergence trace (chain, iteration, variable, mean, sd) with
+        the variable's R-hat at that iteration added as ``rhat`` (the same on every chain's row).
     rhat : variable, iteration, summary (the scalar used), rhat_bulk, rhat_folded, rhat (the
         larger of the two; for an unordered variable the largest over its levels, while
         rhat_bulk and rhat_folded are those of the level named in ``summary``, the one
         with the largest R-hat at the last iteration).
     spread : variable, iteration and the chains' lowest, lower quartile, median, upper
-        quartile and highest value of the scalar, in standard deviations of all chains'
-        values over the latter half of the run around their mean (where the chains settle).
+        quartile and highest value of the scalar, centred on the mean of all chains over the
+        latter half of the run and in units of the within-chain standard deviation there.
     limit : the reference line (1.05).
     iterations, m : the run's length and number of chains.
     settled_from : first iteration from which every variable's R-hat stays below the limit
@@ -171,6 +173,7 @@ class ChainConvergence:
     sentences : the page's wording.
     """
 
+    trace: pd.DataFrame
     rhat: pd.DataFrame
     spread: pd.DataFrame
     limit: float
@@ -182,8 +185,9 @@ class ChainConvergence:
     sentences: Tuple[str, ...]
 
     def tables(self) -> Dict[str, pd.DataFrame]:
-        """``imputation_rhat``: R-hat per variable and iteration; ``imputation_chain_spread``: the chains' spread."""
-        return {"imputation_rhat": self.rhat, "imputation_chain_spread": self.spread}
+        """``imputation_convergence`` (the trace with R-hat), ``imputation_rhat`` and ``imputation_chain_spread``."""
+        return {"imputation_convergence": self.trace, "imputation_rhat": self.rhat,
+                "imputation_chain_spread": self.spread}
 
     def final(self) -> pd.Series:
         """Each variable's R-hat at the last iteration."""
@@ -251,7 +255,9 @@ def chain_convergence(trace: pd.DataFrame, level_shares: Optional[pd.DataFrame] 
     table = pd.DataFrame(rhat_rows, columns=list(RHAT_COLUMNS))
     spread = pd.DataFrame(spread_rows, columns=list(SPREAD_COLUMNS))
     settled, above = _settled(table, iterations, limit)
-    result = ChainConvergence(rhat=table, spread=spread, limit=float(limit), iterations=iterations, m=m,
+    with_rhat = trace.merge(table[["variable", "iteration", "rhat"]], on=["variable", "iteration"], how="left",
+                            validate="many_to_one")
+    result = ChainConvergence(trace=with_rhat, rhat=table, spread=spread, limit=float(limit), iterations=iterations, m=m,
                               settled_from=settled, above=above, constant=tuple(constant), sentences=())
     return _with_sentences(result)
 
@@ -264,12 +270,19 @@ def _worst(results) -> int:
 
 
 def _spread_rows(name: str, values: np.ndarray):
-    """The chains' quantiles at each iteration, standardised by where the chains settle."""
+    """The chains' quantiles at each iteration, centred on where the chains end up and scaled by a chain's own spread.
+
+    Centre: the mean of every chain's values over the latter half of the run. Scale: the
+    within-chain standard deviation over that half (the square root of R-hat's W), so a
+    band many units wide says the chains differ by more than each one moves: they still
+    remember their starts. Chains that have forgotten them span about +-2 units when there
+    are 20 (the range of 20 draws from one distribution).
+    """
     iterations = values.shape[1]
     settled = values[:, iterations // 2:]
     centre = float(np.mean(settled))
-    scale = float(np.std(settled, ddof=1)) if settled.size > 1 else 0.0
-    scale = scale if scale > 0 else 1.0
+    within = float(np.mean(np.var(settled, axis=1, ddof=1))) if settled.shape[1] > 1 else 0.0
+    scale = np.sqrt(within) if within > 0 else (float(np.std(settled)) or 1.0)
     quantiles = np.quantile((values - centre) / scale, [0.0, 0.25, 0.5, 0.75, 1.0], axis=0)
     return [{"variable": name, "iteration": t + 1, "lowest": quantiles[0, t], "lower_quartile": quantiles[1, t],
              "median": quantiles[2, t], "upper_quartile": quantiles[3, t], "highest": quantiles[4, t]}
@@ -300,14 +313,14 @@ def _with_sentences(result: ChainConvergence) -> ChainConvergence:
     limit = f"{result.limit:g}"
     if result.m < 2:
         words = ("R-hat needs at least two chains; this run has one, so convergence across chains cannot be "
-                 "judged: raise `imputation.m`.",)
+                 "judged: raise imputation.m.",)
     elif result.iterations < FIRST_ITERATION:
         words = (f"R-hat needs at least {FIRST_ITERATION} iterations; this run has {result.iterations}: raise "
-                 "`imputation.iterations`.",)
+                 "imputation.iterations.",)
     elif result.above:
         names = ", ".join(result.above)
         words = (f"At the last iteration ({result.iterations}) R-hat is still at or above {limit} for {names}: "
-                 "the chains may not have forgotten their starting values; raise `imputation.iterations` "
+                 "the chains may not have forgotten their starting values; raise imputation.iterations "
                  "(or simplify that variable's imputation model) and run again.",)
     elif result.settled_from is None:
         words = ("Every imputed variable's values are the same in every chain and iteration: there is nothing "

@@ -36,6 +36,7 @@ import pandas as pd
 from scipy import linalg
 from scipy.special import expit
 
+from ..convergence import ChainConvergence, chain_convergence
 from ..errors import AnalysisError, InputError, did_you_mean
 from ..models import AnalysisModel
 from ..pool import PooledResult, pool_fits
@@ -241,11 +242,19 @@ class Chain:
         return self.original_values(name, rows)
 
     def summary_rows(self, chain: int, iteration: int) -> List[Dict[str, Any]]:
+        """The convergence trace at this iteration: mean and SD of each variable's imputed values, and for an
+        unordered variable of three or more levels the share of each level (rows with a ``share``)."""
         rows = []
         for name in self.problem.visit_order + self.problem.passive_order:
-            values = self.imputed(name).astype(float)
+            positions = self.imputed(name)
+            values = positions.astype(float)
             rows.append({"chain": chain, "iteration": iteration, "variable": name, "mean": float(values.mean()),
                          "sd": float(values.std(ddof=1)) if len(values) > 1 else float("nan")})
+            variable = self.problem.variables[name]
+            if variable.categorical and variable.type == "nominal" and len(variable.levels) >= 3 and len(positions):
+                shares = np.bincount(positions, minlength=len(variable.levels)) / len(positions)
+                rows.extend({"chain": chain, "iteration": iteration, "variable": name, "level": str(level),
+                             "share": float(share)} for level, share in zip(variable.levels, shares))
         return rows
 
 
@@ -272,6 +281,8 @@ class ChainedImputation:
     ``convergence``: chain (0-based, chain i gives ``completed(i)``), iteration (1..iterations),
     variable, mean and sd of its imputed values (categories: the level position 0..K-1, so
     for a binary variable the share in its second level).
+    ``level_shares``: for unordered variables of three or more levels, chain, iteration,
+    variable, level and the share of the imputed values in that level.
     ``variables``: variable, type, method, n_observed, n_imputed, n_left_missing, predictors.
     """
 
@@ -289,10 +300,24 @@ class ChainedImputation:
     donors: int = 5
     delta: Dict[str, Any] = field(default_factory=dict)
     sentences: Tuple[str, ...] = ()
+    level_shares: pd.DataFrame = field(default_factory=lambda: pd.DataFrame(
+        columns=["chain", "iteration", "variable", "level", "share"]))
 
     def tables(self) -> Dict[str, pd.DataFrame]:
-        """``imputation_convergence`` and ``imputation_summary`` (:meth:`observed_and_imputed`)."""
-        return {"imputation_convergence": self.convergence, "imputation_summary": self.observed_and_imputed()}
+        """``imputation_convergence`` (the trace with R-hat), ``imputation_rhat`` and ``imputation_chain_spread``
+        (:meth:`chain_convergence`), and ``imputation_summary`` (:meth:`observed_and_imputed`)."""
+        return {**self.chain_convergence().tables(), "imputation_summary": self.observed_and_imputed()}
+
+    def chain_convergence(self) -> ChainConvergence:
+        """Have the chains forgotten their starting values? R-hat across chains at every iteration.
+
+        References
+        ----------
+        Vehtari A, Gelman A, Simpson D, Carpenter B, Bürkner P-C (2021). Rank-normalization,
+        folding, and localization: an improved R-hat for assessing convergence of MCMC.
+        Bayesian Analysis 16:667-718.
+        """
+        return chain_convergence(self.convergence, self.level_shares)
 
     def completed(self, i: int) -> pd.DataFrame:
         """The i-th completed dataset (i = 0..m-1), with the data's own dtypes and categories."""
@@ -493,8 +518,11 @@ def impute_chained(data: pd.DataFrame, *, m: int = 20, iterations: int = 10, see
 
     names = list(problem.visit_order + problem.passive_order)
     imputed = {name: np.vstack([r[0][name] for r in results]) for name in names}
-    convergence = pd.DataFrame([row for r in results for row in r[1]],
+    trace = [row for r in results for row in r[1]]
+    convergence = pd.DataFrame([row for row in trace if "share" not in row],
                                columns=["chain", "iteration", "variable", "mean", "sd"])
+    level_shares = pd.DataFrame([row for row in trace if "share" in row],
+                                columns=["chain", "iteration", "variable", "level", "share"])
     methods_used = {name: problem.variables[name].method for name in names}
     table = pd.DataFrame([{
         "variable": v.name, "type": v.type, "method": v.method or "(complete: predictor only)",
@@ -507,7 +535,7 @@ def impute_chained(data: pd.DataFrame, *, m: int = 20, iterations: int = 10, see
                              impute_mask=keep_mask, imputed=imputed,
                              impute_rows={n: problem.variables[n].impute_rows for n in names}, types=full_types,
                              methods=methods_used, convergence=convergence, variables=table, donors=int(donors),
-                             delta=dict(delta_map),
+                             delta=dict(delta_map), level_shares=level_shares,
                              sentences=(f"{int(m)} chains of {int(iterations)} iterations; seed "
                                         f"{int(sequence.entropy)}.",))
 

@@ -1,5 +1,12 @@
-"""Figures of the imputation stage: chain traces, observed against imputed values, and how
-much information each pooled term lost to missing data."""
+"""Figures of the imputation stage.
+
+1. :func:`plot_chain_convergence` - have the chains forgotten their starting values, and
+   from which iteration?
+2. :func:`plot_observed_vs_imputed` - do the imputed values look like values the variable
+   can take, and how do they differ from the observed ones?
+3. :func:`plot_missing_information` - how much does each pooled estimate depend on the
+   imputations?
+"""
 from __future__ import annotations
 
 import math
@@ -7,37 +14,133 @@ import math
 import matplotlib.pyplot as plt
 import numpy as np
 
+from ..convergence import ChainConvergence
 from ..impute import ChainedImputation
 from ..pool import PooledResult
 from ..vocabulary import CATEGORICAL_TYPES
-from . import BACKGROUND, EMPHASIS, IMPUTED, NEUTRAL, OBSERVED, REFERENCE
+from . import BACKGROUND, EMPHASIS, GRID, IMPUTED, NEUTRAL, OBSERVED, REFERENCE, UNTESTED
+from .palette import blend
 
 
-def plot_convergence(imputation: ChainedImputation):
-    """Mean and SD of each variable's imputed values at every iteration, one line per chain.
+def plot_chain_convergence(convergence: ChainConvergence):
+    """Have the chains forgotten their starting values, and from which iteration?
 
-    Chains that started from different random values and have forgotten their start
-    overlap and show no trend; a drift or a chain that stays apart asks for more iterations
-    or a simpler imputation model.
+    Top: R-hat of each imputed variable against the iteration (on iterations 1..t, see
+    :mod:`gapbook.convergence`), with the 1.05 line; a variable still above it at the last
+    iteration is drawn in the emphasis colour and named. Bottom: where the chains are, one
+    strip per variable: the range (light) and middle half (darker) of the m chains' values
+    with their median, in standard deviations of where the chains settle (the latter half
+    of the run). Strips that start wide or off-centre and then hold a steady band show the
+    start being forgotten.
+
+    Parameters
+    ----------
+    convergence : from :meth:`gapbook.impute.ChainedImputation.chain_convergence`.
+
+    Returns
+    -------
+    matplotlib Figure.
     """
-    trace = imputation.convergence
-    names = list(dict.fromkeys(trace["variable"]))
-    figure, axes = plt.subplots(len(names), 2, figsize=(8.0, 1.7 * len(names) + 0.8), layout="constrained",
-                                squeeze=False, sharex=True)
-    for row, name in enumerate(names):
-        part = trace[trace["variable"] == name]
-        for column, statistic in enumerate(("mean", "sd")):
-            ax = axes[row, column]
-            for chain, lines in part.groupby("chain"):
-                ax.plot(lines["iteration"], lines[statistic], color=IMPUTED,
-                        linewidth=0.9, alpha=0.8)
-            ax.set_ylabel(f"{name}\n{statistic}" if column == 0 else statistic, fontsize=8)
-            ax.tick_params(labelsize=7)
-            ax.spines[["top", "right"]].set_visible(False)
-    for ax in axes[-1]:
-        ax.set_xlabel("iteration")
-    figure.suptitle(f"Imputed values across iterations ({imputation.m} chains, one line each)", fontsize=11)
+    table = convergence.rhat
+    names = list(dict.fromkeys(table["variable"]))
+    iterations = max(convergence.iterations, 1)
+    figure = plt.figure(figsize=(7.5, 3.0 + 0.34 * len(names) + 0.9), layout="constrained")
+    top, bottom = figure.subplots(2, 1, sharex=True, height_ratios=[3.0, 0.34 * max(len(names), 1) + 0.6])
+    _rhat_panel(top, convergence, names)
+    _spread_panel(bottom, convergence, names)
+    bottom.set_xlabel("iteration")
+    bottom.set_xlim(0.5, iterations + 0.5)
+    figure.suptitle("Have the chains forgotten their starting values, and from which iteration?", fontsize=11,
+                    x=0.01, ha="left")
     return figure
+
+
+def _rhat_panel(axes, convergence, names) -> None:
+    table = convergence.rhat
+    wide = table.pivot(index="iteration", columns="variable", values="rhat").reindex(columns=names)
+    finite = wide.to_numpy()[np.isfinite(wide.to_numpy())]
+    top = float(np.clip(finite.max() * 1.03 if finite.size else 1.1, convergence.limit + 0.05, RHAT_TOP))
+    bottom = float(min(0.98, finite.min() - 0.01)) if finite.size else 0.98
+    axes.axhspan(convergence.limit, top, color=blend(UNTESTED, weight=0.5), linewidth=0, zorder=0)
+    axes.axhline(convergence.limit, color=REFERENCE, linestyle="--", linewidth=1)
+    axes.text(0.0, convergence.limit, f"{convergence.limit:g} ", transform=axes.get_yaxis_transform(),
+              va="center", ha="right", fontsize=7, color=REFERENCE)
+    above = set(convergence.above)
+    finals = {}
+    for name in names:
+        series = wide[name]
+        if series.notna().sum() == 0:
+            continue
+        flagged = name in above
+        shown = np.minimum(series.to_numpy(), top)
+        axes.plot(series.index, shown, color=EMPHASIS if flagged else OBSERVED, linewidth=1.6 if flagged else 1.0,
+                  alpha=1.0 if flagged else 0.7, marker="o", markersize=2.5, zorder=3 if flagged else 2,
+                  clip_on=False)
+        beyond = series.to_numpy() > top
+        if beyond.any():  # above the drawn range: a mark on the edge
+            axes.plot(series.index[beyond], shown[beyond], linestyle="none", marker="^", markersize=5,
+                      color=EMPHASIS if flagged else OBSERVED, clip_on=False, zorder=4)
+        finals[name] = float(series.dropna().iloc[-1])
+    # Name the variables above the line, or else the slowest one; the rest need no name.
+    named = [n for n in names if n in above] or ([max(finals, key=finals.get)] if finals else [])
+    for y, name in _dodge([(min(finals[n], top), n) for n in named], top - bottom):
+        axes.annotate(name if name in above else f"{name} (highest at the end)", (convergence.iterations, y),
+                      xytext=(6, 0), textcoords="offset points", va="center", fontsize=7,
+                      color=EMPHASIS if name in above else REFERENCE, annotation_clip=False)
+    if convergence.settled_from is not None:
+        late = convergence.settled_from > 0.6 * convergence.iterations
+        axes.axvline(convergence.settled_from, color=IMPUTED, linestyle=":", linewidth=1.2)
+        axes.annotate(f"all below from iteration {convergence.settled_from}", (convergence.settled_from, top),
+                      xytext=(-4 if late else 4, -3), textcoords="offset points", ha="right" if late else "left",
+                      va="top", fontsize=8, color=IMPUTED)
+    axes.set_ylim(bottom, top)
+    axes.set_ylabel("R-hat across chains\n(iterations 1 to t)", fontsize=8)
+    axes.tick_params(labelsize=7)
+    axes.spines[["top", "right"]].set_visible(False)
+    axes.set_title(f"Rank-normalised split R-hat across the {convergence.m} chains, one line per imputed variable"
+                   + (f" (triangles: above {RHAT_TOP:g})" if finite.size and finite.max() > top else ""),
+                   fontsize=9, loc="left")
+
+
+def _dodge(ends, span: float):
+    """Label positions at least a line apart, in the order of their values."""
+    gap = span * 0.06
+    placed = []
+    for y, name in sorted(ends):
+        if placed and y - placed[-1][0] < gap:
+            y = placed[-1][0] + gap
+        placed.append((y, name))
+    return placed
+
+
+RHAT_TOP = 2.0  # the R-hat axis ends here; higher values are drawn on the edge as triangles
+SPREAD_LIMIT = 4.0  # each strip shows -4 to +4 within-chain SDs; values beyond are drawn at its edge
+
+
+def _spread_panel(axes, convergence, names) -> None:
+    spread = convergence.spread
+    half = 0.42 / SPREAD_LIMIT
+    for row, name in enumerate(names):
+        part = spread[spread["variable"] == name]
+        if part.empty:
+            continue
+        x = part["iteration"].to_numpy()
+
+        def y(column):
+            return row - half * np.clip(part[column].to_numpy(dtype=float), -SPREAD_LIMIT, SPREAD_LIMIT)
+
+        axes.fill_between(x, y("lowest"), y("highest"), color=blend(IMPUTED, weight=0.7), linewidth=0)
+        axes.fill_between(x, y("lower_quartile"), y("upper_quartile"), color=blend(IMPUTED, weight=0.35),
+                          linewidth=0)
+        axes.plot(x, y("median"), color=IMPUTED, linewidth=1.0)
+        axes.axhline(row, color=GRID, linewidth=0.6, zorder=0)
+    axes.set_yticks(range(len(names)), names, fontsize=7)
+    axes.set_ylim(len(names) - 0.5, -0.5)
+    axes.tick_params(labelsize=7)
+    axes.spines[["top", "right"]].set_visible(False)
+    axes.set_title(f"Where the chains are: range (light), middle half and median of the {convergence.m} chains, "
+                   f"\nin within-chain SDs around where they end up (each strip \u00b1{SPREAD_LIMIT:g})", fontsize=9,
+                   loc="left")
 
 
 def plot_observed_vs_imputed(imputation: ChainedImputation, bins: int = 30):
