@@ -16,9 +16,11 @@ from matplotlib.colors import Normalize
 from matplotlib.patches import Patch
 
 from . import EMPHASIS, GRID, MAX_VARIABLES_SHOWN, MISSING, NEUTRAL, OBSERVED, REFERENCE, new_figure, shown_of
-from .palette import reason_shades, scale
+from .palette import BACKGROUND, REASON_SHADES, reason_shades, scale
 
 MAX_TOGETHER = 20  # the most incomplete variables the co-missingness view shows; the rest are named as left out
+PATTERN_RULES = 60          # at most this many patterns get a rule between their bands
+PATTERN_LABEL_SHARE = 3.0   # patterns with at least this % of rows get their share written at the right
 MAP_SLICES = 400  # vertical resolution of the map: beyond this many rows, rows are shown in slices
 
 
@@ -84,22 +86,36 @@ def missingness_map(result, max_slices: int = MAP_SLICES):
     slices = int(min(total, max_slices))
     shares = _slice_shares(bits.astype(np.float64), counts, slices)
     image = axes.imshow(shares, aspect="auto", interpolation="nearest", cmap=scale("observed_to_missing"),
-                        vmin=0, vmax=1,
-                        extent=(-0.5, len(order) - 0.5, 100, 0))
+                        vmin=0, vmax=1, extent=(-0.5, len(order) - 0.5, 100, 0))
+    # Each pattern is a band of rows: thin rules between bands, and the larger bands' shares at the right,
+    # so the reader sees which gaps line up in the same rows and how many rows each combination holds.
+    edges = np.cumsum(counts)[:-1] / total * 100
+    if len(counts) <= PATTERN_RULES:
+        for edge in edges:
+            axes.axhline(edge, color=BACKGROUND, linewidth=0.5)
+    starts = np.concatenate([[0.0], edges])
+    ends = np.concatenate([edges, [100.0]])
+    labelled = [(0.5 * (a + b), b - a) for a, b in zip(starts, ends) if b - a >= PATTERN_LABEL_SHARE]
+    right = axes.twinx()
+    right.set_ylim(100, 0)
+    right.set_yticks([c for c, _ in labelled], [f"{w:.0f} %" for _, w in labelled], fontsize=7)
+    right.tick_params(length=0)
+    right.spines[["top", "right", "left", "bottom"]].set_visible(False)
+    right.set_ylabel("share of rows with that pattern", fontsize=8)
     axes.set_xticks(range(len(order)))
     axes.set_xticklabels(order, rotation=60, ha="right")
     axes.set_ylabel("rows, sorted by missingness pattern (% of rows)")
     axes.set_xlabel("variables, from least to most missing")
     shape = "monotone (dropout)" if result.monotone else "not monotone"
-    axes.set_title(f"Where the gaps are: {total:,} rows in {result.n_patterns:,} patterns, {shape}"
-                   f"{shown_of(len(order), n_variables)}", fontsize=10)
+    axes.set_title(f"Where are the gaps, and do they line up across rows?\n{total:,} rows in "
+                   f"{result.n_patterns:,} patterns, {shape}{shown_of(len(order), n_variables)}", fontsize=10)
     if slices < total:
-        bar = figure.colorbar(image, ax=axes, fraction=0.04)
-        bar.set_label(f"share missing within each slice of {total / slices:,.0f} rows")
+        bar = figure.colorbar(image, ax=[axes, right], fraction=0.04, location="bottom", aspect=40)
+        bar.set_label(f"share missing within each slice of {total / slices:,.0f} rows", fontsize=8)
     else:
-        axes.legend(handles=[Patch(color=OBSERVED, label="observed or not applicable"),
+        axes.legend(handles=[Patch(color=scale("observed_to_missing")(0.0), label="observed or not applicable"),
                              Patch(color=MISSING, label="missing")],
-                    loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False, fontsize=8)
+                    loc="upper left", bbox_to_anchor=(0.0, -0.28), ncol=2, frameon=False, fontsize=8)
     return figure
 
 
@@ -125,9 +141,11 @@ def missing_share(result):
     left = np.zeros(len(table))
     n = table["n"].to_numpy(dtype=float)
     with np.errstate(divide="ignore", invalid="ignore"):
-        for column, label, colour in zip(reason_columns, reason_labels, colours):
+        for k, (column, label, colour) in enumerate(zip(reason_columns, reason_labels, colours)):
             share = np.where(n > 0, table[column].to_numpy(dtype=float) / n * 100, 0.0)
-            axes.barh(positions, share, left=left, color=colour, label=label, height=0.7)
+            hatch = "///" if k >= len(REASON_SHADES) else None  # shades repeat: a hatch tells them apart
+            axes.barh(positions, share, left=left, color=colour, label=label, height=0.7, hatch=hatch,
+                      edgecolor=BACKGROUND if hatch else None, linewidth=0)
             left += share
     limit = max(float(np.nanmax(left)) if len(left) else 0.0, result.threshold * 100) * 1.15 + 1
     for y, value, rows in zip(positions, table["pct_missing"], table["n"]):
@@ -143,7 +161,7 @@ def missing_share(result):
     axes.set_xlim(0, limit)
     axes.set_ylim(-0.6, len(table) + 0.2)
     axes.set_xlabel("% of rows to which the variable applies")
-    axes.set_title(f"How much each variable lacks, and why{shown_of(len(table), n_variables)}", fontsize=10)
+    axes.set_title(f"How much does each variable lack, and why?{shown_of(len(table), n_variables)}", fontsize=10)
     if reason_columns:
         axes.legend(title="missing reason", loc="lower right", frameon=False, fontsize=7, title_fontsize=8)
     return figure
@@ -313,6 +331,7 @@ def common_patterns(result, top: int = None):
     axes.set_xlim(0, float(table["pct_rows"].max()) * 1.3 if len(table) else 1)
     axes.set_xlabel("% of rows")
     covered = float(table["pct_rows"].sum())
-    axes.set_title(f"The {len(table)} most common of {result.n_patterns:,} patterns ({covered:.1f} % of rows)",
+    axes.set_title(f"Which combinations of gaps are common?\nthe {len(table)} most common of {result.n_patterns:,} "
+                   f"patterns ({covered:.1f} % of rows)",
                    fontsize=10)
     return figure

@@ -31,7 +31,8 @@ def plot_flow(flow: CompleteCaseFlow):
     axes.set_yticks(y, [f"{n} ({r})" for n, r in zip(names, list(steps["role"])[::-1])])
     axes.set_xlabel("rows")
     share = flow.n_used / flow.n_rows if flow.n_rows else float("nan")
-    axes.set_title(f"Complete cases: {flow.n_used} of {flow.n_rows} rows used ({share:.0%})")
+    axes.set_title(f"Which variables cost the complete-case analysis its rows?\n{flow.n_used} of {flow.n_rows} "
+                   f"rows used ({share:.0%})")
     axes.legend(loc="lower right", frameon=False, fontsize=8)
     axes.spines[["top", "right"]].set_visible(False)
     return figure
@@ -66,7 +67,8 @@ def plot_completeness_differences(baseline: CompletenessBaseline, threshold: flo
         axes.axvline(edge, color=NEUTRAL, linestyle=":", linewidth=0.8)
     axes.set_yticks(y, labels)
     axes.set_xlabel("standardised difference (complete minus incomplete rows)")
-    axes.set_title(f"Complete ({baseline.n_complete}) vs incomplete ({baseline.n_incomplete}) rows"
+    axes.set_title(f"Do complete rows ({baseline.n_complete}) differ from incomplete ones "
+                   f"({baseline.n_incomplete})?"
                    + shown_of(len(table), n_rows, "variables and levels", "with the largest differences"))
     axes.legend(loc="best", frameon=False, fontsize=8)
     axes.spines[["top", "right"]].set_visible(False)
@@ -142,5 +144,5 @@ def plot_strategy_comparison(comparison: StrategyComparison, reference_value: Op
     text_axes.set_axis_off()
     text_axes.set_title(f"estimate ({level} interval)", fontsize=9, loc="left")
     subject = comparison.terms[0] if not multiple_terms else f"the exposure ({len(comparison.terms)} terms)"
-    figure.suptitle(f"Effect of {subject} under each missing-data strategy", fontsize=11)
+    figure.suptitle(f"Does the effect of {subject} depend on how missing data are handled?", fontsize=11)
     return figure

@@ -188,7 +188,8 @@ def plot_observed_vs_imputed(imputation: ChainedImputation, bins: int = 30):
         ax.set_axis_off()
     if names:
         axes.ravel()[0].legend(fontsize=7, frameon=False)
-    figure.suptitle("Observed and imputed values per variable", fontsize=11)
+    figure.suptitle("Do the imputed values look like values each variable takes, and where do they differ?",
+                    fontsize=11)
     return figure
 
 
@@ -207,5 +208,5 @@ def plot_missing_information(pooled: PooledResult):
     ax.axvline(0, color=NEUTRAL, linewidth=0.6)
     ax.spines[["top", "right"]].set_visible(False)
     ax.legend(fontsize=7, frameon=False, loc="lower left", bbox_to_anchor=(0, 1.0), ncol=2)
-    figure.suptitle(f"How much each pooled estimate depends on the imputations (m = {pooled.m})", fontsize=11)
+    figure.suptitle(f"How much does each pooled estimate depend on the imputations? (m = {pooled.m})", fontsize=11)
     return figure

@@ -146,7 +146,7 @@ def strongest_relations(groups: GroupComparison, top: int = 6, columns: int = 3)
     handles = [Line2D([], [], color=MISSING, lw=2.5, label="value missing"),
                Line2D([], [], color=OBSERVED, lw=2.5, label="value observed")]
     figure.legend(handles=handles, loc="outside lower center", ncol=2, frameon=False)
-    figure.suptitle("Strongest relations between missingness and observed values", x=0.01, ha="left")
+    figure.suptitle("For the clearest relations, how do rows lacking the value differ?", x=0.01, ha="left")
     return figure
 
 

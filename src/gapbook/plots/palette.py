@@ -48,7 +48,7 @@ STRATEGY_COLOURS: Dict[str, str] = {
     "complete_case": "#364669",               # navy slate
     "missing_category": "#ADA945",            # olive
     "multiple_imputation": IMPUTED,           # the imputation accent
-    "delta_adjusted": "#B77DF1",              # lavender: imputation shifted away from MAR
+    "delta_adjusted": "#7C9BDB",              # cornflower: imputation shifted away from MAR
     "mixed_model": "#5A4EBB",                 # indigo
     "jump_to_reference": "#793E11",           # reference-based family: brown,
     "copy_reference": "#9B7D22",              # ochre,
@@ -64,9 +64,10 @@ STRATEGY_MARKERS: Dict[str, str] = {
 # Groups of a study (arms, exposure levels) in level order: the first (reference) level dark.
 GROUPS: Tuple[str, ...] = (REFERENCE, "#5A4EBB", "#ADA945", "#793E11", "#B77DF1", NEUTRAL)
 
-# Missing reasons: shades of the accent hue from deep to light, then of the olive.
+# Missing reasons: three shades of the accent hue, three of the olive, two of navy; a plot
+# that needs more cycles them with a hatch.
 REASON_SHADES: Tuple[str, ...] = ("#005C56", "#3A9A92", "#A2D6D0", "#565200", "#968D3A", "#D7CD94",
-                                  "#087A73", "#5DBAB2", "#756F1C", "#B7AD59")
+                                  "#1F2A44", "#9AA8C7")
 
 # ---------------------------------------------------------------------------
 # colour-blind check: which roles are drawn together and must stay apart
@@ -79,7 +80,7 @@ DISTINGUISHABLE: Tuple[Tuple[str, ...], ...] = (
     ("mixed_model", "multiple_imputation", "jump_to_reference", "copy_reference", "copy_increments_reference",
      "delta_adjusted", "completers", "last_observation", "reference"),
     ("group_1", "group_2", "group_3", "group_4", "group_5"),
-    ("reason_1", "reason_2", "reason_3", "reason_4", "reason_5", "reason_6"),
+    tuple(f"reason_{i + 1}" for i in range(8)),
 )
 
 
@@ -116,7 +117,7 @@ def group_colours(levels: Sequence) -> Dict:
 
 
 def reason_shades(k: int) -> Tuple[str, ...]:
-    """k shades for k missing reasons, on the missing side of the palette (cycling after ten)."""
+    """k shades for k missing reasons, on the missing side of the palette (cycling after eight)."""
     return tuple(REASON_SHADES[i % len(REASON_SHADES)] for i in range(int(k)))
 
 
@@ -130,8 +131,9 @@ def blend(colour: str, toward: str = BACKGROUND, weight: float = 0.5) -> Tuple[f
 # colour scales
 
 _SCALES: Mapping[str, Tuple[str, ...]] = {
-    # share missing: from observed to missing (the map of gaps)
-    "observed_to_missing": (OBSERVED, MISSING),
+    # share missing: from observed to missing (the map of gaps). Observed cells are the map's
+    # ground, so they take a light tint of the observed tone rather than the full dark tone.
+    "observed_to_missing": ("#D5D6D8", MISSING),
     # a magnitude on the missing side (|standardised difference|): white to the deep accent
     "magnitude": (BACKGROUND, "#C6E3DF", MISSING, IMPUTED, "#00443F"),
     # a ratio around 1 on a log scale (lift): less often than by chance olive, more often teal

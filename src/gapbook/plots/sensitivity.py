@@ -58,7 +58,8 @@ def delta_curve(result: DeltaResult, term: Optional[str] = None):
         ax.set_xlabel("delta (added to imputed values)")
     axes[0][0].set_ylabel(f"{term} estimate")
     axes[0][-1].legend(fontsize=8, loc="best", frameon=False)
-    figure.suptitle("How the exposure effect moves if missing values differ from the MAR imputation", fontsize=11)
+    figure.suptitle("How far does the exposure effect move if missing values differ from the MAR imputation, "
+                    "and where does the conclusion tip?", fontsize=11)
     return figure
 
 
@@ -79,6 +80,11 @@ def analyses_side_by_side(comparison: StrategyAndDelta, term: Optional[str] = No
     ax.set_yticks(y)
     ax.set_yticklabels([str(a).replace("delta_adjusted", "delta-adjusted") if str(a).startswith("delta_adjusted")
                         else str(a).replace("_", " ") for a in part["analysis"]], fontsize=8)
-    ax.set_xlabel(f"{term} estimate and interval (violet: conclusion differs from the first row)")
-    ax.set_title("The exposure effect under each analysis", fontsize=11)
+    first = part["conclusion"].iloc[0]
+    for label, conclusion in zip(ax.get_yticklabels(), part["conclusion"]):
+        if conclusion != first:  # named in the emphasis colour, not only drawn in it
+            label.set_color(EMPHASIS)
+            label.set_fontweight("bold")
+    ax.set_xlabel(f"{term} estimate and interval (bold: conclusion differs from the first row)")
+    ax.set_title("Does the conclusion change between the analyses?", fontsize=11)
     return figure

@@ -45,6 +45,6 @@ def performance_panels(result: SimulationResult, term: Optional[str] = None, alp
         bottom.set_xticklabels([s.replace("_", "\n") for s in strategies], fontsize=8)
     axes[0][0].set_ylabel(f"bias of {term}")
     axes[1][0].set_ylabel(f"coverage of {int(round(100 * (1 - alpha)))}% CI (%)")
-    figure.suptitle(f"Each strategy in {result.n_replicates} simulated studies like this one "
-                    "(bars: 2 Monte Carlo SEs)", fontsize=11)
+    figure.suptitle(f"In {result.n_replicates} simulated studies like this one, which strategy is biased and "
+                    "which intervals cover the truth?\n(bars: 2 Monte Carlo SEs)", fontsize=11)
     return figure
