@@ -240,11 +240,15 @@ class PooledResult:
         return add_ratio_columns(frame, self.family)
 
     def variances(self) -> pd.DataFrame:
-        """Per term: within, between and total variance, riv, lambda, df and fmi."""
+        """Per term: within, between and total variance, riv, between_share, df and fmi.
+
+        ``between_share`` is (1 + 1/m) B / T, the share of the total variance that comes from
+        the spread between imputations (Rubin 1987).
+        """
         pooled = self.rubin
         return pd.DataFrame({"term": list(self.terms), "within": pooled.within, "between": pooled.between,
-                             "total": pooled.total, "riv": pooled.riv, "lambda": pooled.lambda_, "df": pooled.df,
-                             "fmi": pooled.fmi})
+                             "total": pooled.total, "riv": pooled.riv, "between_share": pooled.lambda_,
+                             "df": pooled.df, "fmi": pooled.fmi})
 
     def per_imputation(self) -> pd.DataFrame:
         """Long table: imputation (0-based), term, estimate, std_error."""

@@ -194,13 +194,13 @@ def plot_observed_vs_imputed(imputation: ChainedImputation, bins: int = 30):
 
 
 def plot_missing_information(pooled: PooledResult):
-    """Per model term: the fraction of missing information, split from the share of the total
-    variance that comes from between-imputation spread (lambda)."""
+    """Per model term: the fraction of missing information, beside the share of the total
+    variance that comes from between-imputation spread (``between_share``)."""
     table = pooled.variances()
     figure, ax = plt.subplots(figsize=(7.0, 0.35 * len(table) + 1.3), layout="constrained")
     y = np.arange(len(table))[::-1]
     ax.barh(y, table["fmi"], color=EMPHASIS, height=0.6, label="fraction of missing information")
-    ax.plot(table["lambda"], y, linestyle="none", marker="|", markersize=12, color=REFERENCE,
+    ax.plot(table["between_share"], y, linestyle="none", marker="|", markersize=12, color=REFERENCE,
             label="between-imputation share of total variance")
     ax.set_yticks(y, table["term"], fontsize=8)
     ax.set_xlim(0, max(0.05, float(np.nanmax(table["fmi"])) * 1.15))
