@@ -719,8 +719,9 @@ def decide_column(cells: DistinctCells, column: str, spec: VariableSpec, markers
     if all_numeric:
         value_of = np.array([numbers[i] if unique_reason[i] is None else np.nan for i in range(len(uniques))],
                             dtype=float)
+        # + 0.0 makes -0.0 and 0.0 one value whatever order they come in (np.unique keeps either).
         observed = pd.Series(np.unique(np.concatenate([value_of[~np.isnan(value_of)],
-                                                       np.asarray(cells.plain.values, dtype=float)])),
+                                                       np.asarray(cells.plain.values, dtype=float)]) + 0.0),
                              dtype=float, name=column)
         numeric_storage = True
         codes, categories = None, ()
