@@ -73,13 +73,12 @@ def child(path: Path, engine: str, out: Path) -> None:
     from gapbook.stage import StageContext, write_csv
 
     start = time.perf_counter()
-    run = StageContext(params=params_for(path, engine), out_dir=out).audit()
+    result = StageContext(params=params_for(path, engine), out_dir=out).audit()
     seconds = time.perf_counter() - start
-    for name, table in run.result.tables().items():
+    for name, table in result.tables().items():
         write_csv(table, out / f"{name}.csv")
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 2**20  # KiB -> GiB
-    print(json.dumps({"engine": run.engine, "seconds": seconds, "peak_gib": peak,
-                      "patterns": run.result.n_patterns}))
+    print(json.dumps({"engine": engine, "seconds": seconds, "peak_gib": peak, "patterns": result.n_patterns}))
 
 
 def measure(path: Path, engine: str, out: Path) -> dict:
