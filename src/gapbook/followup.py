@@ -27,11 +27,10 @@ from .mixed_model import STRATEGY as MIXED_MODEL
 from .mixed_model import VISIT_EFFECT_COLUMNS, MixedModelFit, fit_mixed_model
 from .repeated import RepeatedOutcome, label
 from .repeated_imputation import DELTA_STRATEGY, RULE_STRATEGY, draw_posteriors, impute_repeated
-from .vocabulary import INFORMATION_ANCHORING, REFERENCE_BASED_VARIANCE
+from .vocabulary import FOLLOWUP_STRATEGY_NAMES, INFORMATION_ANCHORING, REFERENCE_BASED_VARIANCE
 
-# Every strategy of the stage, in the order tables and figures show them.
-FOLLOWUP_STRATEGIES: Tuple[str, ...] = (MIXED_MODEL, "multiple_imputation", "jump_to_reference", "copy_reference",
-                                        "copy_increments_reference", DELTA_STRATEGY, COMPLETERS, LAST_OBSERVATION)
+# Every strategy of the stage, in the order tables and figures show them (the vocabulary's list).
+FOLLOWUP_STRATEGIES: Tuple[str, ...] = FOLLOWUP_STRATEGY_NAMES
 STRATEGY_RULE = {strategy: rule for rule, strategy in RULE_STRATEGY.items()}
 REFERENCE_BASED = ("jump_to_reference", "copy_reference", "copy_increments_reference")
 DEFAULT_STRATEGIES = tuple(s for s in FOLLOWUP_STRATEGIES if s != DELTA_STRATEGY)

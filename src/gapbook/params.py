@@ -17,7 +17,8 @@ import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
 from .errors import InputError, did_you_mean
-from .vocabulary import FAMILY_NAMES, IMPUTATION_METHODS, VARIABLE_TYPES
+from .vocabulary import (COVARIANCE_STRUCTURES, FAMILY_NAMES, FOLLOWUP_STRATEGY_NAMES, IMPUTATION_METHODS,
+                         INTERCURRENT_STRATEGY_NAMES, LAYOUTS, VARIABLE_TYPES)
 from .expressions import CONDITION, VALUE, ExpressionError, parse_expression, parse_formula
 
 DATA_FORMATS: Tuple[str, ...] = ("auto", "csv", "tsv", "xlsx", "parquet")
@@ -26,7 +27,12 @@ VariableType = Literal.__getitem__(VARIABLE_TYPES)
 FamilyName = Literal.__getitem__(FAMILY_NAMES)
 ImputationMethod = Literal.__getitem__(IMPUTATION_METHODS)
 DataFormat = Literal.__getitem__(DATA_FORMATS)
-STAGES: Tuple[str, ...] = ("audit", "mechanism", "cases", "indicator", "impute", "sensitivity", "simulate", "report")
+Layout = Literal.__getitem__(LAYOUTS)
+CovarianceStructure = Literal.__getitem__(COVARIANCE_STRUCTURES)
+FollowupStrategy = Literal.__getitem__(FOLLOWUP_STRATEGY_NAMES)
+IntercurrentStrategy = Literal.__getitem__(INTERCURRENT_STRATEGY_NAMES)
+STAGES: Tuple[str, ...] = ("audit", "mechanism", "cases", "indicator", "followup", "impute", "sensitivity", "simulate",
+                           "report")
 
 Marker = Union[str, int, float]
 
@@ -47,6 +53,7 @@ MAX_LIST = 1_000             # markers, reasons, levels, predictors ... in one l
 MAX_TEXT = 500               # characters in a name, title or label
 MAX_PARAMS_BYTES = 5_000_000 # size of the params file
 MAX_PARAMS_DEPTH = 20        # nesting of the YAML (the schema itself needs 5)
+MAX_VISITS = 100             # planned visits of a follow-up study (the unstructured covariance has T(T+1)/2 terms)
 
 
 class _Section(BaseModel):
@@ -160,6 +167,62 @@ class MechanismSection(_Section):
     em_max_iterations: int = Field(1000, ge=1, le=MAX_EM_ITERATIONS)
 
 
+VisitLabel = Union[int, float, Annotated[str, Field(min_length=1, max_length=MAX_TEXT)]]
+
+
+class DesignSection(_Section):
+    """A follow-up study: who the participant is, which visits were planned, how the file is laid out."""
+
+    layout: Layout = "long"
+    subject: Optional[Name] = None
+    visit: Name = "visit"
+    visits: Annotated[List[VisitLabel], Field(min_length=1, max_length=MAX_VISITS)]
+    baseline: Optional[VisitLabel] = None
+    outcome_columns: Annotated[List[Name], Field(max_length=MAX_VISITS)] = Field(default_factory=list)
+
+    @model_validator(mode="after")
+    def _plan(self) -> "DesignSection":
+        labels = [str(v).strip() for v in self.visits]
+        repeated = [v for v in labels if labels.count(v) > 1]
+        if repeated:
+            raise ValueError(f"visit {repeated[0]} is listed twice; list each planned visit once, in order")
+        if self.baseline is not None and str(self.baseline).strip() not in labels:
+            raise ValueError(f"baseline {self.baseline} is not one of the planned visits ({', '.join(labels)}); "
+                             "list it first in visits")
+        if self.baseline is not None and len(labels) < 2:
+            raise ValueError("list at least one visit after the baseline visit")
+        if self.layout == "wide" and len(self.outcome_columns) != len(self.visits):
+            raise ValueError(f"the wide layout needs outcome_columns: one outcome column per planned visit "
+                             f"({len(self.visits)} visits, {len(self.outcome_columns)} columns), in the order of visits")
+        if self.layout == "long" and self.outcome_columns:
+            raise ValueError("outcome_columns is for the wide layout; in the long layout the formula names the "
+                             "outcome column")
+        return self
+
+
+class RepeatedSection(_Section):
+    """The mixed model for repeated measures and the follow-up strategies (needs a design section)."""
+
+    subject: Optional[Name] = None          # default design.subject; must agree with it
+    visit: Optional[Name] = None            # default design.visit; must agree with it
+    covariance: CovarianceStructure = "unstructured"
+    method: Literal["reml", "ml"] = "reml"
+    strategies: Optional[Annotated[List[FollowupStrategy], Field(min_length=1)]] = None
+    reference: Optional[Union[str, int, float]] = None
+    delta: Optional[Union[float, Annotated[List[float], Field(min_length=1, max_length=MAX_VISITS)]]] = None
+
+    @model_validator(mode="after")
+    def _delta_when_asked(self) -> "RepeatedSection":
+        if self.strategies is not None:
+            twice = [s for s in self.strategies if self.strategies.count(s) > 1]
+            if twice:
+                raise ValueError(f"strategy {twice[0]} is listed twice")
+            if "delta_adjusted" in self.strategies and self.delta is None:
+                raise ValueError("the delta_adjusted strategy needs delta: the shift of outcomes imputed after "
+                                 "leaving (one number, or one per analysed visit)")
+        return self
+
+
 class AnalysisSection(_Section):
     formula: Optional[str] = None
     family: FamilyName = "gaussian"
@@ -167,6 +230,7 @@ class AnalysisSection(_Section):
     offset: Optional[str] = None
     robust: bool = False
     alpha: float = Field(0.05, gt=0, lt=1)
+    repeated: Optional[RepeatedSection] = None
 
     @field_validator("formula")
     @classmethod
@@ -246,6 +310,22 @@ class SimulationSection(_Section):
     mar_on: List[str] = Field(default_factory=list)
 
 
+class IntercurrentEvent(_Section):
+    event: Name
+    strategy: IntercurrentStrategy
+
+
+class EstimandSection(_Section):
+    """The estimand (ICH E9(R1), 2019): what the analysis is meant to estimate, stated before it is estimated."""
+
+    population: Optional[Text] = None
+    treatment: Optional[Text] = None
+    variable: Optional[Text] = None
+    intercurrent_events: Annotated[List[IntercurrentEvent], Field(max_length=MAX_LIST)] = Field(default_factory=list)
+    summary: Optional[Text] = None
+    primary: Optional[FollowupStrategy] = None
+
+
 class ReportSection(_Section):
     title: Optional[Text] = None
     min_cell: int = Field(5, ge=0)
@@ -254,7 +334,7 @@ class ReportSection(_Section):
 
 
 SECTIONS: Tuple[str, ...] = (
-    "study", "data", "variables", "missing", "audit", "mechanism", "analysis",
+    "study", "data", "design", "variables", "missing", "audit", "mechanism", "estimand", "analysis",
     "imputation", "sensitivity", "simulation", "report",
 )
 
@@ -264,10 +344,12 @@ class Params(_Section):
 
     study: StudySection = Field(default_factory=StudySection)
     data: DataSection
+    design: Optional[DesignSection] = None
     variables: Dict[str, VariableSpec] = Field(default_factory=dict)
     missing: MissingSection = Field(default_factory=MissingSection)
     audit: AuditSection = Field(default_factory=AuditSection)
     mechanism: MechanismSection = Field(default_factory=MechanismSection)
+    estimand: Optional[EstimandSection] = None
     analysis: AnalysisSection = Field(default_factory=AnalysisSection)
     imputation: ImputationSection = Field(default_factory=ImputationSection)
     sensitivity: SensitivitySection = Field(default_factory=SensitivitySection)
@@ -295,6 +377,18 @@ class Params(_Section):
     def label(self) -> str:
         return self.source or "params"
 
+    @property
+    def is_followup(self) -> bool:
+        """Whether the study is a follow-up study (a ``design`` section names subject and planned visits)."""
+        return self.design is not None
+
+    @property
+    def subject_column(self) -> Optional[str]:
+        """The participant column of a follow-up study: ``design.subject``, else ``data.id``."""
+        if self.design is None:
+            return None
+        return self.design.subject or self.data.id
+
     def to_dict(self) -> Dict[str, Any]:
         """Plain JSON/YAML-ready dict with the data path made absolute (what notebooks receive)."""
         out = self.model_dump(mode="json")
@@ -317,11 +411,13 @@ class Params(_Section):
         if source is not None:
             body["source"] = str(source)
         try:
-            return cls.model_validate(body)
+            params = cls.model_validate(body)
         except ValidationError as exc:
             raise InputError(_explain(exc, label)) from None
         except RecursionError:
             raise InputError(f"{label}: the params are nested too deeply") from None
+        _check_followup(params, label)
+        return params
 
 
 def load_params(path: Union[str, Path]) -> Params:
@@ -349,6 +445,42 @@ def load_params(path: Union[str, Path]) -> Params:
     if raw is None:
         raise InputError(f"{path}: the params file is empty; it needs at least a 'data' section with 'path'")
     return Params.from_dict(raw, source=str(path.resolve()))
+
+
+def _check_followup(params: Params, label: str) -> None:
+    """Keys of different sections that must agree in a follow-up study (design, analysis.repeated, estimand)."""
+    design, repeated = params.design, params.analysis.repeated
+    if design is None:
+        if repeated is not None:
+            raise InputError(f"{label}: analysis.repeated needs a design section naming the subject column, the "
+                             "visit column and the planned visits (see params/template.yaml)")
+        return
+    subject = params.subject_column
+    if subject is None:
+        raise InputError(f"{label}: design.subject is required: name the column that identifies the participant "
+                         "(e.g. USUBJID)")
+    if design.layout == "wide" and params.data.id is None:
+        raise InputError(f"{label}: data.id is required in the wide layout: name the participant column "
+                         f"(design.subject '{subject}')")
+    if params.data.id is not None and params.data.id != subject:
+        raise InputError(f"{label}: data.id '{params.data.id}' and design.subject '{subject}' differ; in a follow-up "
+                         "study the participant column is the id: give one of them, or the same column in both")
+    if design.layout == "long" and design.visit == subject:
+        raise InputError(f"{label}: design.visit '{design.visit}' is also the subject column")
+    if repeated is not None:
+        for key, given, expected in (("subject", repeated.subject, subject), ("visit", repeated.visit, design.visit)):
+            if given is not None and given != expected:
+                raise InputError(f"{label}: analysis.repeated.{key} '{given}' differs from design.{key} "
+                                 f"'{expected}'; the model's {key} column is the design's (leave it out or make "
+                                 "them the same)")
+        if isinstance(repeated.delta, list):
+            analysed = len(design.visits) - (design.baseline is not None)
+            if len(repeated.delta) != analysed:
+                raise InputError(f"{label}: analysis.repeated.delta has {len(repeated.delta)} values; give one number "
+                                 f"or one per analysed visit ({analysed}, baseline excluded)")
+    if params.analysis.family != "gaussian":
+        raise InputError(f"{label}: analysis.family is '{params.analysis.family}'; the follow-up analyses (mixed "
+                         "model for repeated measures) take a continuous outcome: use family gaussian")
 
 
 def _check_depth(raw: Any, label: str) -> None:

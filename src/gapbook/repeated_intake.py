@@ -23,9 +23,7 @@ import pandas as pd
 
 from .errors import InputError, did_you_mean
 from .repeated import RepeatedOutcome, label, repeated_outcome, wide_to_long
-from .vocabulary import NO_RECORD
-
-LAYOUTS = ("long", "wide")
+from .vocabulary import LAYOUTS, NO_RECORD
 
 
 def _as_number(value: Any) -> Optional[float]:

@@ -25,6 +25,8 @@ __all__ = [
     "BLANK", "NOT_APPLICABLE", "IMPLAUSIBLE", "NO_RECORD", "REASON_NOT_GIVEN",
     "MAR_CAUTION", "SENSITIVITY_POINTER", "PLAN_CAUTION", "REPORTING_CAUTION", "CAUTIONS", "cautions",
     "COMPLETERS_CAUTION", "LAST_OBSERVATION_CAUTION", "REFERENCE_BASED_VARIANCE", "INFORMATION_ANCHORING",
+    "LAYOUTS", "COVARIANCE_STRUCTURES", "FOLLOWUP_STRATEGY_NAMES", "NOT_RECOMMENDED_STRATEGIES",
+    "IntercurrentStrategy", "INTERCURRENT_STRATEGIES", "INTERCURRENT_STRATEGY_NAMES", "targeting_strategies",
 ]
 
 # ---------------------------------------------------------------------------
@@ -155,9 +157,74 @@ STRATEGY_TITLES: Dict[str, str] = {s.name: s.title for s in STRATEGIES}
 STRATEGY_PHRASES: Dict[str, str] = {s.name: s.phrase for s in STRATEGIES}
 
 
+# The follow-up (repeated-measures) strategies, in the order tables and figures show them.
+FOLLOWUP_STRATEGY_NAMES: Tuple[str, ...] = (
+    "mixed_model", "multiple_imputation", "jump_to_reference", "copy_reference", "copy_increments_reference",
+    "delta_adjusted", "completers", "last_observation")
+NOT_RECOMMENDED_STRATEGIES: Tuple[str, ...] = ("completers", "last_observation")
+# Follow-up designs: how the file is laid out, and the covariance structures the mixed model fits.
+LAYOUTS: Tuple[str, ...] = ("long", "wide")
+COVARIANCE_STRUCTURES: Tuple[str, ...] = ("unstructured",)
+
+
 def strategy_rank(name: str) -> int:
     """Position of a strategy in table order; unknown strategies come after the known ones."""
     return STRATEGY_NAMES.index(name) if name in STRATEGY_NAMES else len(STRATEGY_NAMES)
+
+
+# ---------------------------------------------------------------------------
+# estimands (ICH E9(R1) addendum, 2019): strategies for intercurrent events, and which of the
+# follow-up analyses target an estimand built on each
+
+
+@dataclass(frozen=True)
+class IntercurrentStrategy:
+    """An ICH E9(R1) strategy for an intercurrent event, and the follow-up analyses that target it."""
+
+    name: str
+    title: str
+    analyses: Tuple[str, ...]
+    why: str
+
+
+INTERCURRENT_STRATEGIES: Tuple[IntercurrentStrategy, ...] = (
+    IntercurrentStrategy(
+        "hypothetical", "Hypothetical",
+        ("mixed_model", "multiple_imputation", "delta_adjusted"),
+        "the outcome had the event not happened, i.e. had the participant stayed on treatment and in follow-up: "
+        "the mixed model and imputation under missing at random estimate it when, after the event, participants "
+        "would have continued like those with the same history who stayed (delta adjustment shows how far it moves "
+        "if they would have done worse)"),
+    IntercurrentStrategy(
+        "treatment_policy", "Treatment policy",
+        ("jump_to_reference", "copy_reference", "copy_increments_reference"),
+        "the outcome whatever happened after the event: when outcomes after leaving treatment were not collected, "
+        "reference-based imputation approximates it by assuming those who left the active arm then did as the "
+        "reference arm does (jump to reference: at once; copy reference: as if they had always been in it; copy "
+        "increments: changing from where they were as the reference arm changes); outcomes observed after the "
+        "event should be analysed as observed"),
+    IntercurrentStrategy(
+        "composite", "Composite", (),
+        "the event is part of the outcome (e.g. leaving for lack of efficacy counts as a failure): none of the "
+        "follow-up analyses here targets it; define the composite outcome in the data and analyse it"),
+    IntercurrentStrategy(
+        "while_on_treatment", "While on treatment", (),
+        "the outcome before the event only: none of the follow-up analyses here targets it (it needs an "
+        "outcome summarised over the time on treatment)"),
+    IntercurrentStrategy(
+        "principal_stratum", "Principal stratum", (),
+        "the effect in those who would not have the event on either treatment: none of the follow-up analyses "
+        "here targets it (it needs a principal stratification model)"),
+)
+INTERCURRENT_STRATEGY_NAMES: Tuple[str, ...] = tuple(s.name for s in INTERCURRENT_STRATEGIES)
+
+
+def targeting_strategies(intercurrent: str) -> Tuple[str, ...]:
+    """The follow-up analyses that target an estimand using the given intercurrent-event strategy."""
+    for strategy in INTERCURRENT_STRATEGIES:
+        if strategy.name == intercurrent:
+            return strategy.analyses
+    raise KeyError(intercurrent)
 
 
 # ---------------------------------------------------------------------------
