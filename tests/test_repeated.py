@@ -76,7 +76,7 @@ def test_visit_not_in_plan_names_subject_and_visit():
 def test_arm_changing_within_subject_names_subject_and_visit():
     frame = small_trial()
     frame.loc[2, "arm"] = "trt"
-    with pytest.raises(InputError, match=r"analysis.exposure: 'arm' changes within subject A \(at visit 3\)"):
+    with pytest.raises(InputError, match=r"analysis.exposure: the arm 'arm' changes within subject A \(from \w+ to trt at visit 3\)"):
         build(frame)
 
 

@@ -74,7 +74,7 @@ def test_arm_changing_within_subject_names_subject_and_visit():
     data, reasons = long_frame()
     data.loc[10, "arm"] = "trt"
     study = repeated_study(data, reasons, layout="long", subject="id", visit="week", visits=VISITS, baseline=0)
-    with pytest.raises(InputError, match=r"'arm' changes within subject D \(at visit 8\)"):
+    with pytest.raises(InputError, match=r"the arm 'arm' changes within subject D \(from ctl to trt at visit 8\)"):
         study.outcome(formula=FORMULA, exposure="arm")
 
 

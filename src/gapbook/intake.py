@@ -560,9 +560,10 @@ def _refuse_markers_that_are_levels(params: Params) -> None:
 
 def check_declared_columns(params: Params, columns: Sequence[str], label: str) -> None:
     """Every column the params name (data.id, variables, missing.columns) must be in the file."""
-    id_column = params.data.id
+    id_column = params.subject_column or params.data.id
     if id_column is not None and id_column not in columns:
-        raise InputError(f"{params.label}: data.id '{id_column}' is not a column of {label}"
+        key = "design.subject" if params.design is not None and params.design.subject else "data.id"
+        raise InputError(f"{params.label}: {key} '{id_column}' is not a column of {label}"
                          f"{did_you_mean(id_column, columns)}")
     columns = [c for c in columns if c != id_column]  # the id is not a variable
     for name in params.variables:
@@ -592,13 +593,20 @@ def duplicate_id_error(label: str, id_column: str, first: Any, rows: Sequence[in
 
 def _split_ids(raw: pd.DataFrame, params: Params, label: str) -> Tuple[pd.Series, Optional[str], pd.DataFrame]:
     id_column = params.data.id
+    # A follow-up study's participant column is its id; in the long layout it repeats, once per visit.
+    repeats = params.design is not None and params.design.layout == "long"
+    if params.design is not None:
+        id_column = params.subject_column
     if id_column is None:
         return pd.Series(np.arange(1, len(raw) + 1), name="row"), None, raw
     ids = raw[id_column].map(clean_id)
     blank = np.flatnonzero(ids.isna().to_numpy())
     if len(blank):
+        if repeats:
+            raise InputError(f"{label}: the subject column '{id_column}' (design.subject) is empty at data row "
+                             f"{int(blank[0]) + 1}; every row needs its participant")
         raise blank_id_error(label, id_column, int(blank[0]))
-    dup = ids.duplicated(keep=False).to_numpy()
+    dup = ids.duplicated(keep=False).to_numpy() if not repeats else np.zeros(len(ids), dtype=bool)
     if dup.any():
         rows = np.flatnonzero(dup)
         first = ids.iloc[rows[0]]

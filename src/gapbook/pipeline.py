@@ -40,6 +40,10 @@ STAGE_TITLES: Dict[str, str] = {
     "report": "Summary for reporting",
 }
 MODEL_STAGES = frozenset({"cases", "indicator", "impute", "sensitivity", "simulate"})
+# Stages that analyse one row per participant: a follow-up study (a design section) skips them,
+# its rows being visits; FOLLOWUP_STAGES run only for a follow-up study.
+PARTICIPANT_ROW_STAGES = frozenset({"cases", "indicator", "impute", "sensitivity", "simulate"})
+FOLLOWUP_STAGES = frozenset()
 KIT, STUDY, RECORD = "kit", "study", "record"
 
 Log = Callable[[str], None]
@@ -124,7 +128,17 @@ def resolve_stages(only: Optional[Sequence[str]], params: Optional[Params] = Non
         raise InputError(f"{kit_notebooks_dir()}: no stage notebooks found; reinstall gapbook "
                          "(pip install gapbook, or make demo in a source checkout)")
     no_model = params is not None and not params.analysis.formula
+    followup = params is not None and params.is_followup
     if not only:
+        if params is not None:
+            unsuited = FOLLOWUP_STAGES if not followup else PARTICIPANT_ROW_STAGES
+            skipped = [s for s in available if s in unsuited]
+            if skipped and log is not None:
+                log(f"skipped: {', '.join(skipped)} ("
+                    + ("they analyse one row per participant; a follow-up study (design section) is analysed by "
+                       "the follow-up stage" if followup else "they are for follow-up studies, which have a design "
+                       f"section in {params.label}") + ")")
+            available = [s for s in available if s not in unsuited]
         if no_model:
             skipped = [s for s in available if s in MODEL_STAGES]
             if skipped and log is not None:
@@ -139,6 +153,12 @@ def resolve_stages(only: Optional[Sequence[str]], params: Optional[Params] = Non
                              f"(stages: {', '.join(STAGES)})")
         if name not in available:
             raise InputError(f"--only: stage '{name}' has no notebook (looked in {kit_notebooks_dir()})")
+        if followup and name in PARTICIPANT_ROW_STAGES:
+            raise InputError(f"{params.label}: stage '{name}' analyses one row per participant; a follow-up study "
+                             "(design section) is analysed by the follow-up stage")
+        if params is not None and not followup and name in FOLLOWUP_STAGES:
+            raise InputError(f"{params.label}: stage '{name}' is for follow-up studies; add a design section "
+                             "(subject, visit, planned visits) to the params")
         if no_model and name in MODEL_STAGES:
             raise InputError(f"{params.label}: stage '{name}' needs analysis.formula; add it to the analysis section "
                              "(e.g. formula: \"outcome ~ exposure + covariates\")")
@@ -173,6 +193,31 @@ def check_model_up_front(params: Params, study: Any) -> Tuple[str, List[str]]:
     except AnalysisError:
         pass
     return found
+
+
+def check_followup_up_front(params: Params, study: Any, stages: Sequence[str]) -> None:
+    """A follow-up study's rows against its design, and its model, before any stage.
+
+    Refuses (exit 2, naming subject and visit) a row without a visit, a visit not in the
+    plan, two rows for one visit, an arm that changes within a participant, a covariate that
+    changes after baseline, a formula that cannot be built on the visit grid, and options
+    the imputation strategies cannot run with.
+    """
+    from .stage import repeated_design, repeated_model_data
+
+    repeated = repeated_design(params, study)
+    if not params.analysis.formula:
+        return
+    outcome = repeated_model_data(params, repeated, study.source or "data")
+    if not outcome.observed.any():
+        raise InputError(f"{params.label}: analysis.formula: the outcome '{outcome.outcome_name}' is observed at no "
+                         "planned visit; check design.visits and the outcome's missing markers")
+    section = params.analysis.repeated
+    imputing = section is None or section.strategies is None or any(
+        s not in ("mixed_model", "completers", "last_observation") for s in section.strategies)
+    if imputing and any(s in FOLLOWUP_STAGES for s in stages) and params.imputation.m < 2:
+        raise InputError(f"{params.label}: imputation.m is {params.imputation.m}; the follow-up imputation strategies "
+                         "pool at least two imputed datasets: raise it (e.g. 20)")
 
 
 @dataclass(frozen=True)
@@ -248,7 +293,7 @@ def preflight(params: Params, *, only: Optional[Sequence[str]] = None, log: Opti
     found = stage_notebooks(params, notebooks, notebook_origin)
     stages = resolve_stages(only, params, log, available=list(found))
     model_stages = bool(params.analysis.formula) and any(s in MODEL_STAGES or s == "report" for s in stages)
-    data, study = check_data(params, need_frame=model_stages)
+    data, study = check_data(params, need_frame=model_stages or params.is_followup)
     if log is not None:
         for warning in data.warnings:  # legitimate but worth a look (also shown on the audit page)
             log(f"warning: {warning}")
@@ -256,7 +301,9 @@ def preflight(params: Params, *, only: Optional[Sequence[str]] = None, log: Opti
         if column not in data.columns:
             raise InputError(f"{params.label}: audit.by '{column}' is not a column{did_you_mean(column, data.columns)}")
     model = None
-    if model_stages:
+    if params.is_followup:
+        check_followup_up_front(params, study, stages)
+    elif model_stages:
         model = check_model_up_front(params, study)
     chosen = tuple(found[s] for s in stages)
     notes = tuple(f"notebook {nb.file}: the study folder's copy, which differs from the kit's"

@@ -280,7 +280,7 @@ def repeated_outcome(data: pd.DataFrame, *, formula: str, subject: str, visit: s
     for column in covariates:
         if _subject_level(data, subject, column):
             subject_columns.append(column)
-        elif _subject_level(data, visit, column):
+        elif column != exposure and _subject_level(data, visit, column):  # the arm is never a per-visit column
             visit_columns.append(column)
         else:
             counts = data.groupby(subject, sort=False, observed=True)[column].nunique(dropna=True)
@@ -288,12 +288,14 @@ def repeated_outcome(data: pd.DataFrame, *, formula: str, subject: str, visit: s
             rows = data[data[subject] == who]
             first = rows[column].dropna().iloc[0]
             changed = rows.loc[rows[column].notna() & (rows[column] != first), visit].iloc[0]
-            key = "analysis.exposure" if column == exposure else "analysis.formula"
-            raise InputError(f"{key}: '{column}' changes within subject {label(who)} (at visit {label(changed)}); "
-                             "a repeated-measures model takes covariates fixed per subject (baseline values) "
-                             "or per visit")
-    if exposure is not None and exposure in visit_columns:
-        raise InputError(f"analysis.exposure: '{exposure}' must be fixed per subject (the randomised arm)")
+            if column == exposure:
+                raise InputError(f"analysis.exposure: the arm '{column}' changes within subject {label(who)} (from "
+                                 f"{label(first)} to {label(rows.loc[rows[visit] == changed, column].iloc[0])} at "
+                                 f"visit {label(changed)}); a participant keeps the arm they were randomised to: "
+                                 "correct the data")
+            raise InputError(f"analysis.formula: '{column}' changes within subject {label(who)} (at visit "
+                             f"{label(changed)}); a repeated-measures model takes covariates fixed per subject "
+                             "(baseline values) or per visit")
     analysed = data[data[visit].isin(list(visits))]
     order = pd.unique(data[subject])
     per_subject = data.groupby(subject, sort=False, observed=True)[subject_columns].first().reindex(order) \

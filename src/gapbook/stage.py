@@ -48,9 +48,14 @@ if TYPE_CHECKING:  # the stage modules are imported where a stage is run, not wh
     from .report import RecordSuppression, ReportSummary
     from .sensitivity import SensitivityResult
     from .simulate import SimulationResult
+    from .followup import FollowupAnalysis
+    from .followup_audit import FollowupAudit
+    from .repeated import RepeatedOutcome
+    from .repeated_intake import RepeatedStudy
 
 __all__ = ["StageResult", "StageContext", "open_stage", "analysis_model", "params_errors", "write_csv",
-           "merge_estimates", "CSV_FLOAT_FORMAT", "ESTIMATE_COLUMNS", "FIGURE_DPI"]
+           "merge_estimates", "CSV_FLOAT_FORMAT", "ESTIMATE_COLUMNS", "FIGURE_DPI", "repeated_design",
+           "repeated_model_data"]
 
 CSV_FLOAT_FORMAT = "%.10g"
 ESTIMATE_COLUMNS = ("strategy", "term", "estimate", "std_error", "ci_lower", "ci_upper", "p_value", "n_used",
@@ -120,6 +125,91 @@ def analysis_model(params: Params) -> "AnalysisModel":
                          "write it as 'outcome ~ exposure + covariates'")
     return AnalysisModel(formula=section.formula, family=section.family, exposure=section.exposure,
                          robust=section.robust, offset=section.offset, alpha=section.alpha)
+
+
+# ---------------------------------------------------------------------------
+# follow-up studies: the design section and analysis.repeated -> options
+
+@contextlib.contextmanager
+def design_errors(params: Params, data_label: str) -> Iterator[None]:
+    """Name the file in the follow-up modules' errors, which start with the params key (or ``data:``) they concern."""
+    try:
+        yield
+    except InputError as exc:
+        message = str(exc)
+        if message.startswith("data:"):
+            raise InputError(f"{data_label}:{message[len('data:'):]}") from None
+        if message.startswith(params.label):
+            raise
+        raise InputError(f"{params.label}: {message}") from None
+
+
+def _outcome_name(params: Params) -> str:
+    formula = params.analysis.formula or ""
+    name = formula.split("~", 1)[0].strip()
+    if not name.isidentifier():
+        raise InputError(f"{params.label}: analysis.formula: in the wide layout the left of '~' names the repeated "
+                         f"outcome (e.g. 'chg ~ arm * C(visit)'); use a plain name, not '{name}'")
+    return name
+
+
+def repeated_design(params: Params, study: Study) -> "RepeatedStudy":
+    """A follow-up study laid out long over its planned visits, checked against the ``design`` section.
+
+    Exits 2 naming subject and visit for a row without a visit, a visit not in the plan or two
+    rows for one visit.
+    """
+    from .repeated_intake import repeated_study
+
+    design = params.design
+    if design is None:
+        raise InputError(f"{params.label}: this stage needs a design section (a follow-up study)")
+    subject = params.subject_column
+    label = study.source or "data"
+    with design_errors(params, label):
+        if design.layout == "long":
+            data = study.data.assign(**{subject: study.ids.to_numpy()})  # intake kept the subject apart, as an id
+            return repeated_study(data, study.reasons, layout="long", subject=subject, visit=design.visit,
+                                  visits=design.visits, baseline=design.baseline)
+        return repeated_study(study.data, study.reasons, layout="wide", subject=subject, visit=design.visit,
+                              visits=design.visits, baseline=design.baseline, ids=study.ids,
+                              outcome_columns=design.outcome_columns, outcome=_outcome_name(params))
+
+
+def repeated_model_data(params: Params, repeated: "RepeatedStudy", data_label: str = "data") -> "RepeatedOutcome":
+    """The participants x visits outcome and design of ``analysis.formula``; exits 2 on what cannot be modelled.
+
+    An exposure (arm) that changes within a participant, a post-baseline covariate, a
+    formula that cannot be built on the visit grid, or a reference group that is not an arm.
+    """
+    section = params.analysis
+    if not section.formula:
+        raise InputError(f"{params.label}: analysis.formula is required for the follow-up analyses; write the "
+                         f"long-format model, e.g. 'chg ~ arm * C({params.design.visit}) + base * C({params.design.visit})'")
+    if not section.exposure:
+        raise InputError(f"{params.label}: analysis.exposure is required for the follow-up analyses: name the "
+                         "arm whose effect is reported at every visit")
+    with design_errors(params, data_label):
+        outcome = repeated.outcome(formula=section.formula, exposure=section.exposure)
+    if not outcome.levels:
+        raise InputError(f"{params.label}: analysis.exposure '{section.exposure}' must be categorical (the "
+                         "randomised arm) for the follow-up analyses")
+    reference = section.repeated.reference if section.repeated is not None else None
+    if reference is not None and _level(outcome.levels, reference) is None:
+        from .repeated import label
+
+        raise InputError(f"{params.label}: analysis.repeated.reference '{reference}' is not a level of "
+                         f"{section.exposure} ({', '.join(map(label, outcome.levels))})")
+    return outcome
+
+
+def _level(levels: Sequence[Any], wanted: Any) -> Any:
+    from .repeated import label
+
+    for level in levels:
+        if label(level) == label(wanted):
+            return level
+    return None
 
 
 # ---------------------------------------------------------------------------
@@ -245,6 +335,58 @@ class StageContext:
         """The analysis model from ``analysis``."""
         return analysis_model(self.params)
 
+    # -- follow-up studies (a design section)
+    def is_followup(self) -> bool:
+        """Whether the params describe a follow-up study (a ``design`` section)."""
+        return self.params.is_followup
+
+    @cached_property
+    def repeated(self) -> "RepeatedStudy":
+        """The study laid out long over the planned visits (``design``)."""
+        return repeated_design(self.params, self.study)
+
+    @cached_property
+    def repeated_outcome(self) -> "RepeatedOutcome":
+        """The participants x visits outcome of ``analysis.formula``."""
+        return repeated_model_data(self.params, self.repeated, self.study.source or "data")
+
+    def followup_audit(self) -> Optional["FollowupAudit"]:
+        """The audit of follow-up (visits attended, dropout, retention, reasons, leavers); None without a design.
+
+        Needs ``analysis.formula`` and ``analysis.exposure`` (the outcome and the arms).
+        """
+        from .followup_audit import audit_followup
+
+        if not self.params.is_followup or not self.params.analysis.formula:
+            return None
+        outcome = self.repeated_outcome
+        with params_errors(self.params, "analysis"):
+            return audit_followup(outcome, reasons=self.repeated.visit_reasons(outcome), alpha=self.params.analysis.alpha)
+
+    def followup(self) -> Optional["FollowupAnalysis"]:
+        """Every follow-up strategy side by side (``analysis.repeated``, ``imputation.m``/``seed``); None without a design."""
+        from .followup import DEFAULT_STRATEGIES, analyse_followup
+        from .vocabulary import FOLLOWUP_STRATEGY_NAMES
+
+        if not self.params.is_followup:
+            return None
+        outcome = self.repeated_outcome
+        section = self.params.analysis.repeated
+        strategies, reference, delta, method = DEFAULT_STRATEGIES, None, None, "reml"
+        if section is not None:
+            method = section.method
+            delta = section.delta
+            reference = None if section.reference is None else _level(outcome.levels, section.reference)
+            if section.strategies is not None:
+                strategies = tuple(section.strategies)
+            elif delta is not None:
+                strategies = tuple(s for s in FOLLOWUP_STRATEGY_NAMES if s in DEFAULT_STRATEGIES
+                                   or s == "delta_adjusted")
+        imputation = self.params.imputation
+        with design_errors(self.params, self.study.source or "data"):
+            return analyse_followup(outcome, strategies=strategies, m=imputation.m, seed=imputation.seed,
+                                    reference=reference, delta=delta, method=method, alpha=self.params.analysis.alpha)
+
     def audit(self) -> "AuditResult":
         """The audit stage with the ``audit`` section, counted by the engine ``data.engine`` picks.
 
@@ -255,7 +397,9 @@ class StageContext:
         from .audit_duckdb import audit_scanned
         from .intake_duckdb import choose_engine, scan_study
 
-        engine, why = choose_engine(self.params)
+        # A follow-up study is read in memory: its subject column repeats, which only the pandas intake allows.
+        engine, why = (("pandas", "a follow-up design is read in memory") if self.params.is_followup
+                       else choose_engine(self.params))
         section = self.params.audit
         options = dict(threshold=section.threshold, by=section.by, top_patterns=section.top_patterns)
         with params_errors(self.params, "audit"):

@@ -1,0 +1,150 @@
+"""Follow-up studies through `check`: the design section, analysis.repeated and the estimand are read
+and every problem of a follow-up file is refused up front, exit 2, in one line naming subject and visit."""
+from __future__ import annotations
+
+import shutil
+from pathlib import Path
+
+import pytest
+
+from gapbook.cli import main
+from gapbook.errors import InputError
+from gapbook.followup_demo import followup_demo_files, followup_demo_frame
+from gapbook.params import Params, load_params
+
+HEADER = "subject,arm,base,week,chg\n"
+
+
+def one_line(capsys, argv, code=2):
+    assert main([str(a) for a in argv]) == code
+    out, err = capsys.readouterr()
+    lines = [line for line in err.splitlines() if line.strip()]
+    assert len(lines) == 1 and "Traceback" not in err, err
+    return out, lines[0]
+
+
+@pytest.fixture
+def study(tmp_path):
+    """A copy of the follow-up demo study (data and params) that a test may edit."""
+    csv, params = followup_demo_files()
+    folder = tmp_path / "trial"
+    folder.mkdir()
+    shutil.copy(csv, folder / csv.name)
+    shutil.copy(params, folder / "params.yaml")
+    return folder
+
+
+def edit_data(study: Path, old: str, new: str, count: int = 1) -> None:
+    path = study / "followup_trial.csv"
+    text = path.read_text()
+    assert old in text, old
+    path.write_text(text.replace(old, new, count))
+
+
+def edit_params(study: Path, old: str, new: str) -> Path:
+    path = study / "params.yaml"
+    text = path.read_text()
+    assert old in text, old
+    path.write_text(text.replace(old, new))
+    return path
+
+
+def test_the_shipped_demo_file_is_what_the_generator_writes():
+    csv, _ = followup_demo_files()
+    written = followup_demo_frame().to_csv(index=False, lineterminator="\n")
+    assert csv.read_text() == written
+
+
+def test_check_accepts_the_followup_demo_and_skips_the_participant_row_stages(study, capsys):
+    assert main(["check", str(study / "params.yaml")]) == 0
+    out, _ = capsys.readouterr()
+    assert "ok" in out.splitlines()[-1]
+    assert "skipped: cases, indicator, impute, sensitivity, simulate" in out
+    params = load_params(study / "params.yaml")
+    assert params.is_followup and params.subject_column == "subject"
+    assert params.design.visits == [2, 4, 8, 12, 16] and params.analysis.repeated.covariance == "unstructured"
+    assert [e.strategy for e in params.estimand.intercurrent_events] == ["treatment_policy", "hypothetical"]
+
+
+def test_two_rows_for_one_visit_names_subject_and_visit(study, capsys):
+    edit_data(study, "P0001,control,49.6,4,-11.3\n", "P0001,control,49.6,4,-11.3\nP0001,control,49.6,4,-10.0\n")
+    _, line = one_line(capsys, ["check", study / "params.yaml"])
+    assert "followup_trial.csv: subject P0001 has 2 rows for visit 4" in line
+
+
+def test_a_visit_not_in_the_plan_names_subject_and_visit(study, capsys):
+    edit_data(study, "P0001,control,49.6,4,-11.3", "P0001,control,49.6,5,-11.3")
+    _, line = one_line(capsys, ["check", study / "params.yaml"])
+    assert "params.yaml: design.visits: subject P0001 has visit 5" in line and "not a planned visit" in line
+
+
+def test_a_row_without_visit_names_the_subject(study, capsys):
+    edit_data(study, "P0001,control,49.6,4,-11.3", "P0001,control,49.6,,-11.3")
+    _, line = one_line(capsys, ["check", study / "params.yaml"])
+    assert "subject P0001 has no visit" in line
+
+
+def test_a_row_without_subject_names_the_row(study, capsys):
+    edit_data(study, "P0001,control,49.6,4,-11.3", ",control,49.6,4,-11.3")
+    _, line = one_line(capsys, ["check", study / "params.yaml"])
+    assert "subject column 'subject'" in line and "data row 2" in line
+
+
+def test_an_arm_that_changes_within_a_participant_names_subject_and_visit(study, capsys):
+    edit_data(study, "P0001,control,49.6,8,-13.8", "P0001,active,49.6,8,-13.8")
+    _, line = one_line(capsys, ["check", study / "params.yaml"])
+    assert ("analysis.exposure: the arm 'arm' changes within subject P0001 (from control to active at visit 8)"
+            in line)
+    # run refuses it the same way, before any stage, and writes nothing
+    _, ran = one_line(capsys, ["run", study / "params.yaml", "--out", study / "records"])
+    assert ran == line and not (study / "records").exists()
+
+
+def test_a_covariate_that_changes_after_baseline_is_refused(study, capsys):
+    edit_data(study, "P0001,control,49.6,8,-13.8", "P0001,control,52.0,8,-13.8")
+    _, line = one_line(capsys, ["check", study / "params.yaml"])
+    assert "analysis.formula: 'base' changes within subject P0001 (at visit 8)" in line
+
+
+@pytest.mark.parametrize("old, new, expected", [
+    ("visits: [2, 4, 8, 12, 16]", "visits: [2, 4, 4, 16]", "design: visit 4 is listed twice"),
+    ("visits: [2, 4, 8, 12, 16]", "visits: [2, 4, 8, 12, 16]\n  baseline: 0", "design: baseline 0 is not one of"),
+    ("layout: long", "layout: wide", "the wide layout needs outcome_columns"),
+    ("layout: long", "layout: tall", "design.layout: 'tall' is not one of long, wide"),
+    ("covariance: unstructured", "covariance: compound", "analysis.repeated.covariance: 'compound' is not one of "
+                                                         "unstructured"),
+    ("method: reml", "method: remI", "analysis.repeated.method: 'remI' is not one of reml, ml"),
+    ("reference: control", "reference: placebo", "analysis.repeated.reference 'placebo' is not a level of arm"),
+    ("reference: control", "reference: control\n    strategies: [mixed_model, jump_to_refrence]",
+     "'jump_to_refrence' is not one of"),
+    ("delta: 2.0", "delta: [1, 2]", "analysis.repeated.delta has 2 values; give one number or one per analysed "
+                                    "visit (5"),
+    ("delta: 2.0", "strategies: [delta_adjusted]", "the delta_adjusted strategy needs delta"),
+    ("covariance: unstructured", "subject: patient", "analysis.repeated.subject 'patient' differs from "
+                                                     "design.subject 'subject'"),
+    ("strategy: hypothetical", "strategy: hypothetic", "estimand.intercurrent_events.1.strategy: 'hypothetic' is "
+                                                       "not one of hypothetical, treatment_policy"),
+    ("family: gaussian", "family: binomial", "analysis.family is 'binomial'; the follow-up analyses"),
+    ("  exposure: arm\n", "", "analysis.exposure is required for the follow-up analyses"),
+    ("subject: subject", "subject: USUBJID", "design.subject 'USUBJID' is not a column"),
+    ("visit: week", "visit: AVISITN", "design.visit: 'AVISITN' is not a column"),
+    ("formula: \"chg ~ arm * C(week) + base * C(week)\"", "formula: \"chg ~ arm * C(week) + __import__('os')\"",
+     "analysis.formula"),
+])
+def test_params_problems_are_one_line_naming_the_key(study, capsys, old, new, expected):
+    edit_params(study, old, new)
+    _, line = one_line(capsys, ["check", study / "params.yaml"])
+    assert expected in line and "params.yaml" in line
+
+
+def test_repeated_without_design_is_refused():
+    with pytest.raises(InputError, match="analysis.repeated needs a design section"):
+        Params.from_dict({"data": {"path": "x.csv"}, "analysis": {"repeated": {"covariance": "unstructured"}}})
+
+
+def test_long_layout_data_id_must_be_the_subject():
+    body = {"data": {"path": "x.csv", "id": "row"}, "design": {"subject": "subject", "visits": [1, 2]}}
+    with pytest.raises(InputError, match="data.id 'row' and design.subject 'subject' differ"):
+        Params.from_dict(body)
+    body["data"]["id"] = "subject"
+    assert Params.from_dict(body).subject_column == "subject"
