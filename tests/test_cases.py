@@ -59,8 +59,8 @@ def test_binomial_complete_case_equals_statsmodels_with_odds_ratios(penguins):
                         family=sm.families.Binomial()).fit()
     _assert_matches(result.estimates(), reference, len(by_hand))
     row = result.estimates().set_index("term").loc["body_mass_g"]
-    assert row["odds_ratio"] == pytest.approx(np.exp(reference.params["body_mass_g"]), rel=TOL)
-    assert row["odds_ratio_ci_upper"] == pytest.approx(np.exp(reference.conf_int().loc["body_mass_g", 1]), rel=TOL)
+    assert row["exp_estimate"] == pytest.approx(np.exp(reference.params["body_mass_g"]), rel=TOL)
+    assert row["exp_ci_upper"] == pytest.approx(np.exp(reference.conf_int().loc["body_mass_g", 1]), rel=TOL)
 
 
 def test_poisson_with_offset_equals_statsmodels():
@@ -81,7 +81,7 @@ def test_poisson_with_offset_equals_statsmodels():
     reference = smf.glm("events ~ x + C(group)", data=by_hand, family=sm.families.Poisson(),
                         offset=np.log(by_hand["time"])).fit()
     _assert_matches(result.estimates(), reference, len(by_hand))
-    assert "rate_ratio" in result.estimates().columns
+    assert result.estimates()["exp_estimate"].notna().all()
     flow = result.flow.steps.set_index("variable")
     assert flow.loc["time", "role"] == "offset"
 
@@ -266,22 +266,22 @@ def test_comparison_on_ratio_scale_and_forest_plot(penguins):
     table = comparison.comparison
     assert list(table["strategy"]) == ["complete_case", "multiple_imputation"] * 2
     # Source: the odds ratio is exp(log-odds coefficient) (logistic model definition).
-    assert np.allclose(table["odds_ratio"], np.exp(table["estimate"]), rtol=1e-12)
-    assert np.allclose(table["odds_ratio_ci_lower"], np.exp(table["ci_lower"]), rtol=1e-12)
+    assert np.allclose(table["exp_estimate"], np.exp(table["estimate"]), rtol=1e-12)
+    assert np.allclose(table["exp_ci_lower"], np.exp(table["ci_lower"]), rtol=1e-12)
     assert np.allclose(table.loc[table["strategy"] == "multiple_imputation", "se_relative_to_complete_case"], 0.9)
     from gapbook.plots.cases import plot_strategy_comparison
     figure = plot_strategy_comparison(comparison, reference_value=0.0)
     axes = figure.axes[0]
     assert axes.get_xscale() == "log"
     drawn = [line.get_xdata()[0] for line in axes.get_lines() if len(line.get_xdata()) == 1]  # point estimates
-    assert np.allclose(drawn, table["odds_ratio"])
+    assert np.allclose(drawn, table["exp_estimate"])
 
 
 def test_comparison_of_gaussian_keeps_coefficient_scale(demo):
     params, study = demo
     cc = complete_case_analysis(study.data, model=analysis_model(params))
     comparison = compare_strategies(cc.estimates(), exposure=list(cc.exposure_terms), family="gaussian")
-    assert "odds_ratio" not in comparison.comparison.columns
+    assert comparison.comparison["exp_estimate"].isna().all()
     assert comparison.comparison["term"].tolist() == ["arm[T.sms]"]
     # The demo's true effect is -0.40 (gapbook.demo docstring); the complete-case interval should hold it
     # since dropout depends on baseline HbA1c, a model covariate (MAR given covariates).

@@ -121,11 +121,67 @@ def test_odds_ratios_pooled_on_log_scale():
     table = pooled.estimates()
     log_mean = np.mean([f.coefficients for f in fits], axis=0)
     assert np.allclose(table["estimate"], log_mean)
-    assert np.allclose(table["odds_ratio"], np.exp(log_mean))      # exp of the pooled log odds ratio
-    assert not np.allclose(table["odds_ratio"], np.mean([np.exp(f.coefficients) for f in fits], axis=0), rtol=1e-6)
-    assert np.allclose(table["odds_ratio_ci_lower"], np.exp(table["ci_lower"]))
-    # GLMs have no complete-data df: Rubin's large-sample df apply
-    assert np.all(np.isfinite(table["df"])) and set(table.columns) >= {"df", "fmi", "riv", "n_used"}
+    assert np.allclose(table["exp_estimate"], np.exp(log_mean))      # exp of the pooled log odds ratio
+    assert not np.allclose(table["exp_estimate"], np.mean([np.exp(f.coefficients) for f in fits], axis=0), rtol=1e-6)
+    assert np.allclose(table["exp_ci_lower"], np.exp(table["ci_lower"]))
+    assert set(table.columns) >= {"df", "fmi", "riv", "n_used", "converged"}
+
+
+@pytest.mark.parametrize("family", ["gaussian", "binomial"])
+def test_barnard_rubin_df_use_n_minus_p_for_every_family(family):
+    # Barnard & Rubin (1999) Biometrika 86:948, eqs. 2-3, by hand, with nu_com = n - p for every family
+    # (for a GLM, n - p as the complete-data df is common practice, no source).
+    fits = _penguin_fits(m=5, family=family)
+    pooled = pool_fits(fits)
+    n, p, m = fits[0].nobs, len(fits[0].terms), 5
+    nu_com = n - p
+    assert pooled.df_complete == nu_com
+    q = np.array([f.coefficients for f in fits])
+    u = np.array([np.diag(f.covariance) for f in fits])
+    b = q.var(axis=0, ddof=1)
+    t = u.mean(axis=0) + (1 + 1 / m) * b
+    gamma = (1 + 1 / m) * b / t
+    nu_m = (m - 1) / gamma ** 2
+    nu_obs = (nu_com + 1) / (nu_com + 3) * nu_com * (1 - gamma)
+    expected = 1 / (1 / nu_m + 1 / nu_obs)
+    table = pooled.estimates()
+    assert np.allclose(table["df"], expected, rtol=1e-12)
+    assert np.all(table["df"] < nu_com)   # never above the complete-data df (Barnard & Rubin 1999, sec. 3)
+    # the single-term pooled Wald test is the square of the pooled t, on the same df
+    k = list(fits[0].terms).index("flipper_length_mm")
+    test = pooled.wald(["flipper_length_mm"])
+    assert test.df_den == pytest.approx(table["df"][k], rel=1e-12)
+    t_stat = table["estimate"][k] / table["std_error"][k]
+    assert test.statistic == pytest.approx(t_stat ** 2, rel=1e-10)
+    assert test.p_value == pytest.approx(table["p_value"][k], rel=1e-8)
+
+
+def test_very_large_df_are_printed_as_such():
+    from gapbook.inference import format_df
+
+    # common practice, no source: past 1000 df the t and normal 97.5% quantiles agree to 0.0025 (scipy)
+    assert stats.t.ppf(0.975, 1000) - stats.norm.ppf(0.975) < 0.0025
+    assert format_df(38782635.2) == ">1000"
+    assert format_df(float("inf")) == "infinite"
+    assert format_df(12.6912) == "12.7" and format_df(245.4) == "245"
+    # a pooled test with m = 2 nearly identical imputations: D1's df would be huge, the sentence says ">1000"
+    est = np.array([[0.5, 1.0], [0.5 + 1e-6, 1.0]])
+    cov = np.stack([np.diag([0.01, 0.02])] * 2)
+    test = wald_d1(est, cov, [0, 1])
+    assert test.df_den > 1000 and "F(2, >1000)" in test.sentences[0]
+
+
+def test_d1_with_complete_data_df_never_exceeds_them():
+    # The Barnard-Rubin harmonic rule carried over to k terms (common practice, no source): v <= v_obs < nu_com.
+    est = ESTIMATES
+    cov = np.stack([np.diag(v) for v in VARIANCES])
+    large = wald_d1(est, cov, [0, 1])
+    small = wald_d1(est, cov, [0, 1], df_complete=20.0)
+    assert small.statistic == pytest.approx(large.statistic, rel=1e-12)
+    nu = 20.0
+    v_obs = (nu + 1) / (nu + 3) * nu / (1 + large.riv)
+    assert small.df_den == pytest.approx(1 / (1 / large.df_den + 1 / v_obs), rel=1e-12)
+    assert small.df_den < v_obs < nu and small.p_value > large.p_value
 
 
 def test_d1_reduces_to_squared_t_for_one_parameter():

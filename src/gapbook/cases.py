@@ -23,7 +23,8 @@ from .errors import InputError
 from .inference import standardised_difference
 from .intake import levels_of
 from .models import AnalysisModel, ModelFit, add_ratio_columns, exposure_terms, formula_columns
-from .vocabulary import CATEGORICAL_TYPES, NUMBER_CODED_TYPES, STRATEGY_TITLES, infer_type, ratio_name
+from .vocabulary import (CATEGORICAL_TYPES, NUMBER_CODED_TYPES, STRATEGY_TITLES, effect_scale, has_ratio_scale,
+                         infer_type, ratio_name)
 FLOW_COLUMNS = ("step", "variable", "role", "n_excluded", "n_not_applicable", "n_lacking", "reasons", "n_remaining")
 
 
@@ -196,7 +197,16 @@ def complete_case_analysis(data: pd.DataFrame, *, model: AnalysisModel, reasons:
     terms = tuple(exposure_terms(fit.terms, model.exposure))
     sentence = (f"{fit.nobs:,} of {flow.n_rows:,} rows used (every model variable observed); exposure term(s): "
                 f"{', '.join(terms)}.")
-    return CompleteCaseResult(flow=flow, model_fit=fit, exposure_terms=terms, sentences=(sentence,))
+    return CompleteCaseResult(flow=flow, model_fit=fit, exposure_terms=terms,
+                              sentences=(sentence, scale_sentence(fit.family), *fit.fit_sentences()))
+
+
+def scale_sentence(family: str) -> str:
+    """Which scale the estimates are on, for the sentences under a table of estimates."""
+    if has_ratio_scale(family):
+        return (f"Estimates and intervals are on the model's scale ({effect_scale(family, exponentiated=False)}); "
+                f"exp_estimate, exp_ci_lower and exp_ci_upper give the {effect_scale(family, exponentiated=True)}.")
+    return f"Estimates are on the outcome's own scale ({effect_scale(family, exponentiated=False)})."
 
 
 # ---------------------------------------------------------------------------
@@ -444,9 +454,11 @@ def completeness_baseline(data: pd.DataFrame, *, complete: pd.Series, types: Opt
 class StrategyComparison:
     """The exposure's estimate under every strategy in ``estimates.csv``.
 
-    ``comparison``: strategy, label, term, estimate, std_error, ci_lower, ci_upper, the ratio
-    columns (odds_ratio... / rate_ratio...) for binomial and poisson models, n_used, and
-    se_relative_to_complete_case (the precision each strategy gains or loses).
+    ``comparison``: strategy, label, term, estimate, std_error, ci_lower, ci_upper (the model's
+    scale: log odds or log rate ratio for binomial and poisson models), exp_estimate,
+    exp_ci_lower, exp_ci_upper (the odds or rate ratio; empty for gaussian),
+    se_relative_to_complete_case (the precision each strategy gains or loses) and n_used.
+    ``ratio_name`` is the family's ratio stem (``odds_ratio``), None for a difference.
     """
 
     comparison: pd.DataFrame

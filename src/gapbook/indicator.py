@@ -29,7 +29,7 @@ import numpy as np
 import pandas as pd
 
 from .cases import (CompleteCaseFlow, check_model_data, complete_case_flow, exposure_column, is_categorical,
-                    require_rows)
+                    require_rows, scale_sentence)
 from .errors import InputError
 from .expressions import ColumnAliases, parse_formula
 from .intake import levels_of
@@ -258,11 +258,13 @@ def missing_category_analysis(data: pd.DataFrame, *, model: AnalysisModel, types
                                .reset_index(drop=True))
     require_rows(flow)
     fit = recoded.fit(prepared.data.loc[flow.complete.to_numpy()])
-    fit = dataclasses.replace(fit, terms=prepared.display_terms(fit.terms))
+    fit = dataclasses.replace(fit, terms=prepared.display_terms(fit.terms),
+                              dropped=tuple((prepared.aliases.display(term), why) for term, why in fit.dropped))
     terms = tuple(exposure_terms(fit.terms, model.exposure))
     n_outcome = int(prepared.handling.loc[prepared.handling["role"] == "outcome", "n_missing"].sum())
     written = model.formula + "".join(f" + {name}" for name in prepared.indicators)  # as a reader writes it
     sentences = (f"Model fitted: {written}.",
-                 f"{fit.nobs:,} of {flow.n_rows:,} rows used ({n_outcome:,} rows without the outcome were dropped).")
+                 f"{fit.nobs:,} of {flow.n_rows:,} rows used ({n_outcome:,} rows without the outcome were dropped).",
+                 scale_sentence(fit.family), *fit.fit_sentences())
     return MissingCategoryResult(prepared=prepared, flow=flow, model_fit=fit, exposure_terms=terms,
                                  sentences=sentences)

@@ -12,7 +12,9 @@ from typing import Optional, Tuple, Union
 import numpy as np
 from scipy import stats
 
-__all__ = ["wald_inference", "standardised_difference", "standardised_difference_of_shares", "format_p"]
+__all__ = ["wald_inference", "standardised_difference", "standardised_difference_of_shares", "format_p",
+           "format_p_cell", "format_df", "LARGE_DF",
+           "format_estimate"]
 
 ArrayLike = Union[float, np.ndarray]
 
@@ -122,10 +124,61 @@ def format_p(p: object) -> str:
     Three decimals throughout, the precision a reader of a p-value can use (common
     practice, no source).
     """
+    cell = format_p_cell(p)
+    return "p not available" if not cell else f"p {cell}" if cell.startswith("<") else f"p = {cell}"
+
+
+def format_p_cell(p: object) -> str:
+    """A p-value for a table cell: '< 0.001', '0.012', '0.831'; empty when missing (see :func:`format_p`)."""
+    value = _as_float(p)
+    if value is None or not math.isfinite(value):
+        return ""
+    return "< 0.001" if value < 0.001 else f"{value:.3f}"
+
+
+def _as_float(value: object) -> Optional[float]:
+    """``value`` as a float (NaN and infinities included), or None when it is not a number at all."""
     try:
-        value = float(p)  # type: ignore[arg-type]
+        return float(value)  # type: ignore[arg-type]
     except (TypeError, ValueError):
-        return "p not available"
-    if not math.isfinite(value):
-        return "p not available"
-    return "p < 0.001" if value < 0.001 else f"p = {value:.3f}"
+        return None
+
+
+# Above this many degrees of freedom a t reference is the normal one for reading purposes: the
+# two-sided 95% quantile is 1.962 against 1.960 (scipy.stats.t.ppf(0.975, 1000)).
+LARGE_DF = 1000.0
+
+
+def format_df(df: object) -> str:
+    """Degrees of freedom for a sentence: '12.7', '245', or '>1000' when very large ('infinite' for none).
+
+    A df such as 38782635.2 carries no information beyond 'large' (the t reference is then
+    the normal one), so it is printed as such.
+    """
+    value = _as_float(df)
+    if value is None or math.isnan(value):
+        return "not available"
+    if math.isinf(value):
+        return "infinite"
+    if value > LARGE_DF:
+        return f">{LARGE_DF:.0f}"
+    return f"{value:.1f}" if value < 100 else f"{value:.0f}"
+
+
+def format_estimate(value: object, digits: int = 3) -> str:
+    """An estimate or interval end for reading: ``digits`` significant digits with trailing zeros kept
+    (1.00, 0.500, -0.426, 12.3), whole units from 100 up (1,234), 'n/a' when missing, 'infinite' for a
+    diverged ratio. Three significant digits suit an effect and its interval (common practice, no source).
+    """
+    number = _as_float(value)
+    if number is None or math.isnan(number):
+        return "n/a"
+    if math.isinf(number):
+        return "infinite" if number > 0 else "-infinite"
+    if abs(number) >= 10 ** (digits - 1):
+        return f"{number:,.0f}"
+    if number == 0:
+        return "0"
+    if abs(number) < 1e-3:
+        return f"{number:.{digits - 1}e}"
+    return f"{number:#.{digits}g}".rstrip(".")

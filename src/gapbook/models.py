@@ -10,7 +10,7 @@ from __future__ import annotations
 import re
 import warnings
 from dataclasses import dataclass
-from typing import Any, List, Optional, Sequence, Tuple
+from typing import Any, Dict, List, Optional, Sequence, Tuple
 
 import numpy as np
 import pandas as pd
@@ -20,7 +20,7 @@ import statsmodels.formula.api as smf
 from .errors import AnalysisError, InputError, did_you_mean
 from .expressions import FORMULA_NAMESPACE, ExpressionError, parse_formula
 from .inference import wald_inference
-from .vocabulary import FAMILY_NAMES, ratio_name
+from .vocabulary import FAMILY_NAMES, has_ratio_scale
 
 
 @dataclass(frozen=True)
@@ -28,7 +28,11 @@ class ModelFit:
     """Coefficients, covariance and inference of one fitted analysis model.
 
     ``df_resid`` is the residual degrees of freedom used for t-based inference (OLS), or
-    None when inference is by the normal distribution (GLMs).
+    None when inference is by the normal distribution (GLMs). ``dropped`` lists the design
+    columns left out before fitting, each with why (constant among the analysed rows, or a
+    linear combination of the columns before it), so no term is reported as estimate 0, SE 0.
+    ``converged`` is False when the fit did not converge (iterative fits) or the data are
+    perfectly separated; ``warnings`` holds the fitting library's warnings about this fit.
     """
 
     formula: str
@@ -40,10 +44,26 @@ class ModelFit:
     nobs: int
     robust: bool
     alpha: float = 0.05
+    converged: bool = True
+    warnings: Tuple[str, ...] = ()
+    dropped: Tuple[Tuple[str, str], ...] = ()
 
     def std_errors(self) -> np.ndarray:
         """Standard errors: square roots of the covariance's diagonal."""
         return np.sqrt(np.diag(self.covariance))
+
+    def complete_data_df(self) -> float:
+        """The complete-data degrees of freedom n - p (rows used minus estimated coefficients).
+
+        For OLS this is the residual df of the t reference. For a GLM there is no exact
+        small-sample reference; n - p is used as its complete-data df in multiple-imputation
+        pooling (common practice, no source).
+        """
+        return float(self.nobs - len(self.terms))
+
+    def dropped_terms(self) -> Tuple[str, ...]:
+        """The names of the design columns left out before fitting."""
+        return tuple(term for term, _ in self.dropped)
 
     def estimates(self, strategy: str) -> pd.DataFrame:
         """Rows for ``estimates.csv``: one per term, with CI at level 1 - alpha and p-value."""
@@ -54,16 +74,45 @@ class ModelFit:
             "ci_lower": lower, "ci_upper": upper, "p_value": p,
             "n_used": self.nobs,
         })
-        return add_ratio_columns(frame, self.family)
+        return add_ratio_columns(frame, self.family).assign(converged=bool(self.converged))
+
+    def fit_sentences(self) -> Tuple[str, ...]:
+        """What a reader must know about this fit: terms left out and non-convergence (empty when neither)."""
+        out: List[str] = []
+        if self.dropped:
+            out.append(dropped_sentence(self.dropped, self.nobs))
+        if not self.converged:
+            named = [w for w in self.warnings if w.split(":")[0] in NOT_CONVERGED_WARNINGS] or list(self.warnings)
+            detail = f" ({'; '.join(named)})" if named else ""
+            out.append(f"The model fit did not converge{detail}: its estimates and standard errors are not "
+                       "reliable; simplify the model or check for a covariate that separates the outcome.")
+        return tuple(out)
+
+
+def dropped_sentence(dropped: Sequence[Tuple[str, str]], nobs: int) -> str:
+    """'Left out before fitting: C(site)[T.(missing)] (constant among the 412 analysed rows).'"""
+    parts = [f"{term} ({reason.replace('{n}', f'{nobs:,}')})" for term, reason in dropped]
+    return ("Left out before fitting, because the data cannot estimate them (they are not reported as "
+            "estimate 0): " + "; ".join(parts) + ".")
+
+
+EXP_COLUMNS = ("exp_estimate", "exp_ci_lower", "exp_ci_upper")
 
 
 def add_ratio_columns(frame: pd.DataFrame, family: str) -> pd.DataFrame:
-    """For log-link models, the estimate and CI on the ratio scale (odds or rate ratio)."""
-    name = ratio_name(family)
-    if name is None:
-        return frame
-    return frame.assign(**{name: np.exp(frame["estimate"]), f"{name}_ci_lower": np.exp(frame["ci_lower"]),
-                           f"{name}_ci_upper": np.exp(frame["ci_upper"])})
+    """``exp_estimate``, ``exp_ci_lower``, ``exp_ci_upper``: the estimate and CI on the ratio scale (odds,
+    rate or hazard ratio) for a family with one (:func:`gapbook.vocabulary.has_ratio_scale`), empty otherwise.
+
+    The log-scale columns stay as they are (they join with statsmodels); the ratio is the
+    exponential of the estimate and of each interval end, never an average of ratios.
+    """
+    if has_ratio_scale(family):
+        with np.errstate(over="ignore"):  # a diverged fit's ratio is inf, and says so in ``converged``
+            values = {name: np.exp(frame[source].to_numpy(dtype=float))
+                      for name, source in zip(EXP_COLUMNS, ("estimate", "ci_lower", "ci_upper"))}
+    else:
+        values = {name: np.full(len(frame), np.nan) for name in EXP_COLUMNS}
+    return frame.assign(**values)
 
 
 def formula_columns(formula: str, columns: Sequence[str]) -> List[str]:
@@ -136,9 +185,109 @@ def check_family(family: str) -> None:
                          option="family")
 
 
+def _as_written(value: Any) -> Any:
+    """A whole float (2.0) as the integer it was written as (2); anything else unchanged."""
+    if isinstance(value, (float, np.floating)) and np.isfinite(value) and float(value).is_integer():
+        return int(value)
+    return value
+
+
+def values_as_written(data: pd.DataFrame, formula: str) -> pd.DataFrame:
+    """Integer-valued category codes back as integers, so terms read ``C(stage)[T.2]`` as statsmodels
+    names them on the raw file, not ``C(stage)[T.2.0]``.
+
+    Intake keeps every number as float64 (NaN for missing). A column the formula codes with
+    ``C()`` whose values are whole numbers, and a categorical column whose categories are
+    whole numbers, get integer values again (missing cells stay missing).
+    """
+    coded = set(parse_formula(formula, where="", columns=list(data.columns)).coded)
+    changed: Dict[str, pd.Series] = {}
+    for name in data.columns:
+        column = data[name]
+        if isinstance(column.dtype, pd.CategoricalDtype):
+            categories = list(column.cat.categories)
+            written = [_as_written(c) for c in categories]
+            if any(type(a) is not type(b) for a, b in zip(categories, written)) and len(set(written)) == len(written):
+                changed[name] = column.cat.rename_categories(written)
+        elif name in coded and pd.api.types.is_float_dtype(column.dtype):
+            values = column.to_numpy(dtype=float)
+            present = ~np.isnan(values)
+            if present.any() and np.all(np.mod(values[present], 1) == 0):
+                as_int = np.empty(len(values), dtype=object)
+                as_int[present] = values[present].astype(np.int64).tolist()
+                as_int[~present] = None
+                changed[name] = pd.Series(as_int, index=column.index, name=name)
+    return data.assign(**changed) if changed else data
+
+
+def identifiable_columns(design: np.ndarray, names: Sequence[str], *, tolerance: float = 1e-9
+                         ) -> Tuple[List[int], List[Tuple[str, str]]]:
+    """The design columns the data can estimate, and the others with why they cannot be.
+
+    Columns are taken in order; one is left out when it adds nothing to the span of those
+    kept before it (relative singular-value tolerance ``tolerance``): a constant column after
+    the intercept ("constant among the {n} analysed rows"), or a linear combination of earlier
+    columns ("aliased: a linear combination of the terms before it"). Statsmodels would
+    otherwise report such a column with a pseudo-inverse's arbitrary estimate 0 and SE 0.
+
+    Returns
+    -------
+    (kept, dropped) : positions of the kept columns; (name, reason) of each left out, where
+    ``{n}`` in the reason stands for the number of analysed rows.
+    """
+    design = np.asarray(design, dtype=float)
+    if design.shape[1] == 0:
+        return [], []
+    scale = np.sqrt((design ** 2).sum(axis=0))
+    scaled = design / np.where(scale > 0, scale, 1.0)
+    if np.linalg.matrix_rank(scaled, tol=tolerance * max(scaled.shape)) == design.shape[1] and np.all(scale > 0):
+        return list(range(design.shape[1])), []
+    kept: List[int] = []
+    dropped: List[Tuple[str, str]] = []
+    for j in range(design.shape[1]):
+        trial = scaled[:, kept + [j]]
+        if scale[j] > 0 and np.linalg.matrix_rank(trial, tol=tolerance * max(trial.shape)) == len(kept) + 1:
+            kept.append(j)
+            continue
+        column = design[:, j]
+        constant = bool(np.all(column == column[0])) if len(column) else True
+        dropped.append((str(names[j]), "constant among the {n} analysed rows" if constant
+                        else "aliased: a linear combination of the terms before it"))
+    return kept, dropped
+
+
+# statsmodels' warnings that say a fit did not converge or its estimates do not exist
+NOT_CONVERGED_WARNINGS = ("ConvergenceWarning", "PerfectSeparationWarning", "IterationLimitWarning")
+
+
+def _fit_warnings(caught: Sequence[warnings.WarningMessage]) -> Tuple[Tuple[str, ...], bool]:
+    """The fitting library's warnings about this fit (distinct, in order) and whether any says 'not converged'.
+
+    Warnings about library versions (FutureWarning, DeprecationWarning) are not about the fit
+    and are left out.
+    """
+    from statsmodels.tools.sm_exceptions import ModelWarning
+
+    kept: List[str] = []
+    failed = False
+    for item in caught:
+        if not issubclass(item.category, (ModelWarning, RuntimeWarning)):
+            continue
+        text = f"{item.category.__name__}: {str(item.message).strip().splitlines()[0] if str(item.message) else ''}"
+        failed = failed or item.category.__name__ in NOT_CONVERGED_WARNINGS
+        if text not in kept:
+            kept.append(text)
+    return tuple(kept), failed
+
+
 def fit_model(data: pd.DataFrame, *, formula: str, family: str = "gaussian", robust: bool = False,
               offset: Optional[str] = None, alpha: float = 0.05) -> ModelFit:
     """Fit the analysis model to the rows where every model variable is present.
+
+    Design columns the analysed rows cannot estimate (constant, e.g. a missing-category
+    indicator that is 0 in every analysed row, or aliased with other columns) are left out
+    before fitting and listed in ``dropped``; whether the fit converged and the fitting
+    library's warnings are kept on the result (nothing is silenced).
 
     Parameters
     ----------
@@ -148,23 +297,28 @@ def fit_model(data: pd.DataFrame, *, formula: str, family: str = "gaussian", rob
     robust : sandwich (heteroskedasticity-consistent, HC1) standard errors.
     offset : column whose log is the offset of a poisson model (person-time), or None.
 
+    Returns
+    -------
+    ModelFit whose term names are statsmodels' for ``formula`` on the data file (integer
+    category codes as written, see :func:`values_as_written`).
+
     References
     ----------
     White H (1980). A heteroskedasticity-consistent covariance matrix estimator and a
     direct test for heteroskedasticity. Econometrica 48:817-838.
+    McCullagh P, Nelder JA (1989). Generalized Linear Models, 2nd ed. Chapman & Hall.
     """
     check_family(family)
     outcome, _ = check_formula(formula, list(data.columns))
     if data[outcome].notna().sum() == 0:
         raise InputError(f"the outcome '{outcome}' has no observed values", option="formula")
-    data = _outcome_as_number(data, outcome, family)
+    data = values_as_written(_outcome_as_number(data, outcome, family), formula)
     cov_type = "HC1" if robust else "nonrobust"
     try:
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
             if family == "gaussian":
-                result = smf.ols(formula, data=data, eval_env=FORMULA_NAMESPACE).fit(cov_type=cov_type)
-                df_resid: Optional[float] = float(result.df_resid)
+                model = smf.ols(formula, data=data, eval_env=FORMULA_NAMESPACE)
             else:
                 fam = sm.families.Binomial() if family == "binomial" else sm.families.Poisson()
                 kwargs: dict[str, Any] = {}
@@ -177,9 +331,19 @@ def fit_model(data: pd.DataFrame, *, formula: str, family: str = "gaussian", rob
                                          "itself (gapbook takes its log), not its log", option="offset")
                     kwargs["offset"] = np.log(data[offset])
                     kwargs["missing"] = "drop"
-                result = smf.glm(formula, data=data, family=fam, eval_env=FORMULA_NAMESPACE,
-                                 **kwargs).fit(cov_type=cov_type)
-                df_resid = None
+                model = smf.glm(formula, data=data, family=fam, eval_env=FORMULA_NAMESPACE, **kwargs)
+            if int(model.nobs) == 0:
+                raise InputError(f"no row has every variable of '{formula}' observed", option="formula")
+            kept, dropped = identifiable_columns(model.exog, model.exog_names)
+            if dropped:
+                design = pd.DataFrame(model.exog[:, kept], columns=[model.exog_names[j] for j in kept])
+                if family == "gaussian":
+                    model = sm.OLS(model.endog, design)
+                else:
+                    model = sm.GLM(model.endog, design, family=model.family,
+                                   offset=getattr(model, "offset", None))
+            result = model.fit(cov_type=cov_type)
+            df_resid: Optional[float] = float(result.df_resid) if family == "gaussian" else None
     except InputError:
         raise
     except Exception as exc:
@@ -187,11 +351,13 @@ def fit_model(data: pd.DataFrame, *, formula: str, family: str = "gaussian", rob
         if int(data.dropna(subset=[outcome]).shape[0]) == 0 or "zero-size" in message or "0 rows" in message:
             raise InputError(f"no row has every variable of '{formula}' observed", option="formula") from None
         raise AnalysisError(f"the model '{formula}' could not be fitted: {message}") from None
-    if int(result.nobs) == 0:
-        raise InputError(f"no row has every variable of '{formula}' observed", option="formula")
-    return ModelFit(formula=formula, family=family, terms=tuple(result.params.index),
-                    coefficients=result.params.to_numpy(), covariance=np.asarray(result.cov_params()),
-                    df_resid=df_resid, nobs=int(result.nobs), robust=robust, alpha=alpha)
+    notes, failed = _fit_warnings(caught)
+    converged = bool(getattr(result, "converged", True)) and not failed
+    coefficients = result.params.to_numpy(dtype=float)
+    return ModelFit(formula=formula, family=family, terms=tuple(str(t) for t in result.params.index),
+                    coefficients=coefficients, covariance=np.asarray(result.cov_params(), dtype=float),
+                    df_resid=df_resid, nobs=int(result.nobs), robust=robust, alpha=alpha, converged=converged,
+                    warnings=notes, dropped=tuple(dropped))
 
 
 def exposure_terms(terms: Sequence[str], exposure: Optional[str]) -> List[str]:

@@ -17,7 +17,7 @@ import pandas as pd
 from scipy import stats
 
 from .errors import AnalysisError, InputError
-from .inference import format_p, wald_inference
+from .inference import format_df, format_p, wald_inference
 from .models import ModelFit, add_ratio_columns, exposure_terms
 
 STRATEGY = "multiple_imputation"  # the vocabulary's name for this strategy (gapbook.vocabulary.STRATEGIES)
@@ -46,8 +46,9 @@ def barnard_rubin_df(m: int, between: np.ndarray, total: np.ndarray, *,
     ----------
     m : number of imputations.
     between, total : between-imputation and total variance per parameter.
-    df_complete : the complete-data residual degrees of freedom; None for large-sample
-        (normal-theory) models, which gives Rubin's (1987) large-sample value.
+    df_complete : the complete-data degrees of freedom n - p (for a GLM, n - p is common
+        practice, no source); None gives Rubin's (1987) large-sample value, which grows without
+        bound as the imputations agree and is not what gapbook reports.
 
     Returns
     -------
@@ -142,7 +143,8 @@ class WaldTest:
 
 
 def wald_d1(estimates: np.ndarray, covariances: np.ndarray, index: Sequence[int], *,
-            terms: Optional[Sequence[str]] = None, null: Optional[np.ndarray] = None) -> WaldTest:
+            terms: Optional[Sequence[str]] = None, null: Optional[np.ndarray] = None,
+            df_complete: Optional[float] = None) -> WaldTest:
     """Pooled Wald test that k parameters are jointly equal to ``null`` (default zero).
 
     Parameters
@@ -152,17 +154,26 @@ def wald_d1(estimates: np.ndarray, covariances: np.ndarray, index: Sequence[int]
     index : positions of the k tested parameters.
     terms : their names, for the result.
     null : hypothesised values (length k), default zeros.
+    df_complete : the complete-data df n - p, or None for the large-sample reference.
 
     Returns
     -------
     WaldTest with D1 = (Qbar - Q0)' Ubar^-1 (Qbar - Q0) / (k (1 + r1)),
-    r1 = (1 + 1/m) tr(B Ubar^-1) / k, referred to F(k, v1) with v1 = 4 + (t - 4)(1 + (1 - 2/t) / r1)^2
-    when t = k (m - 1) > 4, else t (1 + 1/k)(1 + 1/r1)^2 / 2.
+    r1 = (1 + 1/m) tr(B Ubar^-1) / k, referred to F(k, v). For k = 1, D1 is the square of the
+    pooled t statistic and v its Barnard-Rubin df, so the test and the estimates table agree.
+    For k > 1, v1 = 4 + (t - 4)(1 + (1 - 2/t) / r1)^2 when t = k (m - 1) > 4, else
+    t (1 + 1/k)(1 + 1/r1)^2 / 2 (Li et al. 1991); with ``df_complete`` it is combined with
+    the observed-data df as Barnard & Rubin (1999) do for one parameter,
+    1/v = 1/v1 + 1/v_obs with v_obs = (nu + 1)/(nu + 3) nu / (1 + r1) (the same rule carried
+    over to k parameters: common practice, no source; Reiter 2007, Biometrika 94:502-508,
+    derives a closer small-sample df, citation recalled from memory).
 
     References
     ----------
     Li KH, Raghunathan TE, Rubin DB (1991). Large-sample significance levels from multiply
     imputed data using moment-based statistics and an F reference distribution. JASA 86:1065-1073.
+    Barnard J, Rubin DB (1999). Small-sample degrees of freedom with multiple imputation.
+    Biometrika 86:948-955.
     """
     index = list(index)
     k = len(index)
@@ -179,17 +190,28 @@ def wald_d1(estimates: np.ndarray, covariances: np.ndarray, index: Sequence[int]
     ubar_inv = np.linalg.inv(ubar)
     r1 = (1 + 1 / m) * float(np.trace(between @ ubar_inv)) / k
     statistic = float(qbar @ ubar_inv @ qbar) / (k * (1 + r1))
-    t = k * (m - 1)
-    if r1 <= 0:
-        v1 = np.inf
-    elif t > 4:
-        v1 = 4 + (t - 4) * (1 + (1 - 2 / t) / r1) ** 2
+    if k == 1:
+        total = float(ubar[0, 0]) * (1 + r1)
+        v1 = float(barnard_rubin_df(m, np.array([float(between[0, 0])]), np.array([total]),
+                                    df_complete=df_complete)[0])
     else:
-        v1 = t * (1 + 1 / k) * (1 + 1 / r1) ** 2 / 2
+        t = k * (m - 1)
+        if r1 <= 0:
+            v1 = np.inf
+        elif t > 4:
+            v1 = 4 + (t - 4) * (1 + (1 - 2 / t) / r1) ** 2
+        else:
+            v1 = t * (1 + 1 / k) * (1 + 1 / r1) ** 2 / 2
+        if df_complete is not None and np.isfinite(df_complete):
+            nu = float(df_complete)
+            v_observed = (nu + 1) / (nu + 3) * nu / (1 + max(r1, 0.0))
+            v1 = v_observed if not np.isfinite(v1) else 1 / (1 / v1 + 1 / v_observed)
     p_value = float(stats.f.sf(statistic, k, v1)) if np.isfinite(v1) else float(stats.chi2.sf(statistic * k, k))
     names = tuple(terms) if terms is not None else tuple(str(i) for i in index)
     sentence = (f"Pooled Wald test (D1; Li, Raghunathan & Rubin 1991) that every term of {', '.join(names)} is "
-                f"zero: F({k}, {float(v1):.1f}) = {statistic:.2f}, {format_p(p_value)}.")
+                f"zero: F({k}, {format_df(v1)}) = {statistic:.2f}, {format_p(p_value)}"
+                + (" (denominator df above 1000: the reference is practically chi-square)"
+                   if format_df(v1).startswith(">") else "") + ".")
     return WaldTest(terms=names, statistic=statistic, df_num=k, df_den=float(v1), p_value=p_value, riv=r1,
                     sentences=(sentence,))
 
@@ -201,8 +223,10 @@ class PooledResult:
     ``coefficients`` (m, p) and ``covariances`` (m, p, p) are the per-imputation fits and
     ``rubin`` their pooled summary per term. :meth:`estimates` gives the ``estimates.csv``
     rows (strategy, term, estimate, std_error, ci_lower, ci_upper, p_value, n_used, df, fmi,
-    riv, and odds/rate-ratio columns for binomial and poisson models, pooled on the log
-    scale); :meth:`variances` the per-term within, between and total variances.
+    riv, exp_estimate, exp_ci_lower, exp_ci_upper (the odds or rate ratio for binomial and
+    poisson models, pooled on the log scale and exponentiated; empty for gaussian) and
+    converged (every one of the m fits converged)); :meth:`variances` the per-term within,
+    between and total variances. ``df_complete`` is n - p whatever the family.
     """
 
     terms: Tuple[str, ...]
@@ -217,6 +241,11 @@ class PooledResult:
     formula: str = ""
     strategy: str = STRATEGY
     sentences: Tuple[str, ...] = ()
+    converged: Tuple[bool, ...] = ()
+
+    def all_converged(self) -> bool:
+        """Whether the model fit to every imputed dataset converged."""
+        return all(self.converged)
 
     def estimate(self) -> np.ndarray:
         """The pooled estimate per term."""
@@ -237,7 +266,7 @@ class PooledResult:
             "ci_lower": lower, "ci_upper": upper, "p_value": p,
             "n_used": self.nobs, "df": df, "fmi": pooled.fmi, "riv": pooled.riv,
         })
-        return add_ratio_columns(frame, self.family)
+        return add_ratio_columns(frame, self.family).assign(converged=self.all_converged())
 
     def variances(self) -> pd.DataFrame:
         """Per term: within, between and total variance, riv, between_share, df and fmi.
@@ -272,7 +301,7 @@ class PooledResult:
                 raise InputError(f"{', '.join(missing)} is not a model term ({', '.join(self.terms)})",
                                  option="exposure")
         index = [self.terms.index(t) for t in chosen]
-        return wald_d1(self.coefficients, self.covariances, index, terms=chosen)
+        return wald_d1(self.coefficients, self.covariances, index, terms=chosen, df_complete=self.df_complete)
 
 
 def pool_fits(fits: Sequence[ModelFit], *, strategy: str = STRATEGY) -> PooledResult:
@@ -302,9 +331,15 @@ def pool_fits(fits: Sequence[ModelFit], *, strategy: str = STRATEGY) -> PooledRe
                                 "is absent from some imputed datasets")
     coefficients = np.vstack([f.coefficients for f in fits])
     covariances = np.stack([f.covariance for f in fits])
-    df_complete = fits[0].df_resid
+    # Barnard & Rubin's complete-data df: n - p for every family (for a GLM common practice, no source)
+    df_complete = fits[0].complete_data_df()
     nobs = int(round(float(np.mean([f.nobs for f in fits]))))
+    converged = tuple(bool(f.converged) for f in fits)
+    failed = len(converged) - sum(converged)
+    sentences = (() if not failed else
+                 (f"The model did not converge in {failed} of the {len(fits)} imputed datasets; the pooled "
+                  "estimates include those fits and are not reliable until the model is simplified.",))
     rubin = rubin_pool(coefficients, np.diagonal(covariances, axis1=1, axis2=2), df_complete=df_complete)
     return PooledResult(terms=tuple(terms), coefficients=coefficients, covariances=covariances, rubin=rubin,
                         df_complete=df_complete, nobs=nobs, m=len(fits), family=fits[0].family, alpha=fits[0].alpha,
-                        formula=fits[0].formula, strategy=strategy)
+                        formula=fits[0].formula, strategy=strategy, converged=converged, sentences=sentences)

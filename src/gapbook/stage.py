@@ -59,7 +59,7 @@ __all__ = ["StageResult", "StageContext", "open_stage", "analysis_model", "param
 
 CSV_FLOAT_FORMAT = "%.10g"
 ESTIMATE_COLUMNS = ("strategy", "term", "estimate", "std_error", "ci_lower", "ci_upper", "p_value", "n_used",
-                    "df", "fmi", "riv")
+                    "df", "fmi", "riv", "exp_estimate", "exp_ci_lower", "exp_ci_upper", "converged")
 FIGURE_DPI = 150
 SVG_HASH_SALT = "gapbook"  # matplotlib's SVG ids are hashed with this salt, so reruns write the same bytes
 

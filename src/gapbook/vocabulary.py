@@ -20,8 +20,10 @@ import pandas as pd
 __all__ = [
     "VARIABLE_TYPES", "CATEGORICAL_TYPES", "NUMERIC_TYPES", "NUMBER_CODED_TYPES", "infer_type",
     "IMPUTATION_METHODS", "DEFAULT_METHOD", "ALLOWED_METHODS", "DELTA_METHODS", "METHOD_WORDS",
-    "Family", "FAMILIES", "FAMILY_NAMES", "RATIO_NAMES", "ratio_name",
-    "Strategy", "STRATEGIES", "STRATEGY_NAMES", "STRATEGY_TITLES", "STRATEGY_PHRASES", "strategy_rank",
+    "Family", "FAMILIES", "FAMILY_NAMES", "RATIO_NAMES", "RATIO_WORDS", "ratio_name", "has_ratio_scale",
+    "effect_scale",
+    "Strategy", "STRATEGIES", "STRATEGY_NAMES", "STRATEGY_TITLES", "STRATEGY_PHRASES", "STRATEGY_ASSUMPTIONS",
+    "strategy_rank",
     "BLANK", "NOT_APPLICABLE", "IMPLAUSIBLE", "NO_RECORD", "REASON_NOT_GIVEN",
     "MAR_CAUTION", "SENSITIVITY_POINTER", "PLAN_CAUTION", "REPORTING_CAUTION", "CAUTIONS", "cautions",
     "COMPLETERS_CAUTION", "LAST_OBSERVATION_CAUTION", "REFERENCE_BASED_VARIANCE", "INFORMATION_ANCHORING",
@@ -119,9 +121,28 @@ FAMILY_NAMES: Tuple[str, ...] = tuple(f.name for f in FAMILIES)
 RATIO_NAMES: Dict[str, str] = {f.name: f.ratio for f in FAMILIES if f.ratio}
 
 
+RATIO_WORDS: Dict[str, str] = {f.name: f.ratio_words for f in FAMILIES if f.ratio_words}
+
+
 def ratio_name(family: str) -> Optional[str]:
     """The ratio column stem of a family (``odds_ratio``, ``rate_ratio``), or None for an identity link."""
     return RATIO_NAMES.get(family)
+
+
+def has_ratio_scale(family: str) -> bool:
+    """Whether a family's coefficients are log ratios, reported also exponentiated (``exp_estimate``...).
+
+    A family joins the rule by naming its ratio in :data:`FAMILIES` (e.g. a hazard ratio for cox).
+    """
+    return family in RATIO_NAMES
+
+
+def effect_scale(family: str, *, exponentiated: bool) -> str:
+    """The scale of an estimate in words: 'odds ratio', 'log odds ratio', or 'difference in the outcome'."""
+    words = RATIO_WORDS.get(family)
+    if words is None:
+        return "difference in the outcome (model coefficient)"
+    return words if exponentiated else f"log {words}"
 
 
 # ---------------------------------------------------------------------------
@@ -155,6 +176,21 @@ STRATEGIES: Tuple[Strategy, ...] = (
 STRATEGY_NAMES: Tuple[str, ...] = tuple(s.name for s in STRATEGIES)
 STRATEGY_TITLES: Dict[str, str] = {s.name: s.title for s in STRATEGIES}
 STRATEGY_PHRASES: Dict[str, str] = {s.name: s.phrase for s in STRATEGIES}
+# What each strategy assumes about why values are missing, in a few words for the landing page's table
+# (Little & Rubin 2019, Statistical Analysis with Missing Data, 3rd ed.; White & Carlin 2010, Stat Med
+# 29:2920; Carpenter & Kenward 2013, Multiple Imputation and its Application; recalled from memory).
+STRATEGY_ASSUMPTIONS: Dict[str, str] = {
+    "complete_case": "missingness does not depend on the outcome, given the model's covariates",
+    "missing_category": "acceptable for baseline covariates in a randomised trial; biased otherwise",
+    "mixed_model": "missing at random, given the observed outcomes and covariates",
+    "multiple_imputation": "missing at random, given the variables in the imputation model",
+    "jump_to_reference": "not at random: after leaving, outcomes follow the reference group",
+    "copy_reference": "not at random: the whole profile follows the reference group",
+    "copy_increments_reference": "not at random: changes after leaving follow the reference group",
+    "delta_adjusted": "not at random: outcomes after leaving are shifted by delta",
+    "completers": "those who left are like those who stayed",
+    "last_observation": "the outcome froze at the last attended visit",
+}
 
 
 # The follow-up (repeated-measures) strategies, in the order tables and figures show them.

@@ -10,6 +10,7 @@ from matplotlib import pyplot as plt
 from . import BACKGROUND, EMPHASIS, MAX_VARIABLES_SHOWN, MISSING, NEUTRAL, OBSERVED, REFERENCE, new_figure, shown_of
 from .palette import strategy_colour, strategy_marker
 from ..cases import CompleteCaseFlow, CompletenessBaseline, StrategyComparison
+from ..vocabulary import effect_scale
 
 
 def plot_flow(flow: CompleteCaseFlow):
@@ -110,11 +111,11 @@ def plot_strategy_comparison(comparison: StrategyComparison, reference_value: Op
     table = comparison.comparison
     ratio = comparison.ratio_name
     if ratio is not None:
-        est, lo, hi = (table[ratio], table[f"{ratio}_ci_lower"], table[f"{ratio}_ci_upper"])
-        null, scale_label = 1.0, ratio.replace("_", " ")
+        est, lo, hi = (table["exp_estimate"], table["exp_ci_lower"], table["exp_ci_upper"])
+        null, scale_label = 1.0, f"{effect_scale(comparison.family, exponentiated=True)} (log axis)"
     else:
         est, lo, hi = table["estimate"], table["ci_lower"], table["ci_upper"]
-        null, scale_label = 0.0, "difference (model coefficient)"
+        null, scale_label = 0.0, effect_scale(comparison.family, exponentiated=False)
     est, lo, hi = (np.asarray(v, dtype=float) for v in (est, lo, hi))
     rows = len(table)
     multiple_terms = len(comparison.terms) > 1
