@@ -100,7 +100,7 @@ def test_the_landing_page_leads_with_the_answer(demo_record):
     labels = pd.read_csv(demo_record / "tables" / "strategy_comparison.csv").set_index("strategy")["label"]
     for row in arm.itertuples():
         assert f'<td class="text">{labels[row.strategy]}</td>' in table
-        assert f"{row.estimate:.3g}" in table  # gaussian model: the coefficient itself, 3 significant digits
+        assert f"{row.estimate:#.3g}" in table  # gaussian model: the coefficient itself, 3 significant digits
     assert "cannot be verified" in text and text.count("cannot be verified") == 1  # cautions once
     figure = re.search(r'<img id="effect-figure"[^>]*src="([^"]+)"', text).group(1)
     assert (demo_record / "report" / figure).resolve() == (demo_record / "figures" / "strategy_comparison.png")
@@ -115,11 +115,44 @@ def test_ratio_families_lead_with_the_ratio_columns():
     effect = pages.effect_table(estimates, family="binomial", exposure="treat", alpha=0.05)
     assert effect.scale == "odds ratio"
     assert list(effect.frame["odds ratio"]) == ["1.65", "1.49"]
-    assert list(effect.frame["95 % CI"]) == ["1.11 to 2.46", "1 to 2.23"]
+    assert list(effect.frame["95% CI"]) == ["1.11 to 2.46", "1.00 to 2.23"]
     assert list(effect.frame["p"]) == ["0.010", "< 0.001"]
+    # the answer in one sentence: the primary strategy, its assumption, the ratio and how sure
+    assert effect.lead == ("Under multiple imputation (which assumes missing at random, given the variables in the "
+                           "imputation model), the odds ratio for treat[T.yes] is 1.49 (95% confidence interval "
+                           "1.00 to 2.23; p < 0.001).")
     plain = pages.effect_table(estimates.drop(columns=["exp_estimate", "exp_ci_lower", "exp_ci_upper"]),
                                family="binomial", exposure="treat", alpha=0.05)
-    assert plain.scale == "log odds ratio" and list(plain.frame["log odds ratio"]) == ["0.5", "0.4"]
+    assert plain.scale == "log odds ratio" and list(plain.frame["log odds ratio"]) == ["0.500", "0.400"]
+
+
+def test_table_cells_on_pages_read_as_numbers_not_machine_output():
+    # pandas writes counts held as floats as 1200.000000 and missing integers as <NA>; a reader wants
+    # 1200 and an empty cell, and 3-4 significant digits elsewhere (common practice, no source).
+    frame = pd.DataFrame({"step": ["rows in the file", "excluded"], "n": [1200.0, 35.0],
+                          "n_excluded": pd.array([None, 35], dtype="Int64"), "share": [0.123456789, 12345.678]})
+    shown = pages.readable_cells(frame.to_html())
+    cells = re.findall(r"<td>([^<]*)</td>", shown)
+    assert cells == ["rows in the file", "1200", "", "0.1235", "excluded", "35", "35", "12,346"]
+    assert "&lt;NA&gt;" not in shown and "NaN" not in shown
+    # p-values read as sentences print them (one formatter, gapbook.inference.format_p_cell)
+    tested = pd.DataFrame({"term": ["a", "b"], "p_value": [0.0000004, 0.83123]}).round(4).to_html()
+    assert re.findall(r"<td>([^<]*)</td>", pages.readable_cells(tested)) == ["a", "&lt; 0.001", "b", "0.831"]
+    hostile = pd.DataFrame({"name": ["<b>x</b>"], "n": [3.0]}).to_html()
+    assert "&lt;b&gt;x&lt;/b&gt;" in pages.readable_cells(hostile)  # text cells keep pandas' escaping
+
+
+def test_escaped_user_text_reads_as_written_and_formulas_as_code():
+    # CommonMark (spec 0.31, "Entity and numeric character references"): an entity in text is the
+    # character it names, so text escaped for Markdown (md_escape) reads "a < b", not "a &lt; b".
+    from gapbook.text import md_code, md_escape
+
+    shown = pages._markdown("- " + md_escape("a < b & <i>c</i>") + " " + md_code("y ~ Q('x<1')"))
+    assert "a &lt; b &amp; &lt;i&gt;c&lt;/i&gt;" in shown and "&amp;lt;" not in shown
+    assert "<code>y ~ Q(&#x27;x&lt;1&#x27;)</code>" in shown or "<code>y ~ Q('x&lt;1')</code>" in shown
+    assert "<i>" not in shown and "&lt;code" not in shown
+    raw = pages._markdown('<code onclick="x">a</code> <script>alert(1)</script>')
+    assert "<script>" not in raw and "<code onclick" not in raw
 
 
 HOSTILE = '<img src=x onerror="alert(1)"><script>alert(2)</script>'

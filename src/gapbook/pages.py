@@ -25,12 +25,13 @@ import numpy as np
 import pandas as pd
 
 from . import __version__
-from .vocabulary import FAMILIES, STRATEGY_TITLES, cautions
+from .inference import format_estimate, format_p, format_p_cell
+from .vocabulary import (STRATEGY_ASSUMPTIONS, STRATEGY_PHRASES, STRATEGY_TITLES, cautions, effect_scale,
+                         has_ratio_scale)
 
 # The figure that answers "what is the effect under each strategy" (saved by the imputation stage,
 # or by the missing-category stage when imputation did not run).
 EFFECT_FIGURE = "strategy_comparison"
-RATIO_WORDS = {f.name: f.ratio_words for f in FAMILIES if f.ratio_words}
 
 STYLE = """
 :root{--ink:#1f2328;--muted:#5b6470;--rule:#d8dde3;--band:#f5f7f9;--accent:#2b5d8a;--warn:#fbf6ec}
@@ -49,6 +50,8 @@ table{border-collapse:collapse;font-size:.88rem;font-variant-numeric:tabular-num
 th,td{border-bottom:1px solid var(--rule);padding:.25rem .6rem;text-align:right;vertical-align:top;white-space:nowrap}
 th{background:var(--band);font-weight:600} tbody tr:nth-child(even){background:#fafbfc}
 th:first-child,td:first-child,td.text,th.text{text-align:left}
+td.wrap,th.wrap{white-space:normal;min-width:12rem;max-width:20rem}
+.answer{font-size:1.08rem;background:var(--band);border-left:4px solid var(--accent);padding:.5rem 1rem}
 table.dataframe{border:none} .dataframe thead th{text-align:right}
 .params{background:var(--band);border-left:4px solid var(--accent);padding:.5rem 1rem;margin:1rem 0}
 .params dl{display:grid;grid-template-columns:max-content 1fr;gap:.1rem 1rem;margin:.3rem 0}
@@ -59,10 +62,27 @@ table.dataframe{border:none} .dataframe thead th{text-align:right}
 """
 
 
+# The only raw HTML a page keeps from Markdown: the code element ``gapbook.text.md_code`` writes
+# around a formula (its content is HTML-escaped there). Every other tag is shown as text.
+_KEPT_INLINE_HTML = ("<code>", "</code>")
+
+
 def _markdown(text: str) -> str:
     import mistune  # nbconvert's own markdown renderer
+    from mistune.renderers.html import HTMLRenderer
+    from mistune.util import safe_entity
 
-    render = mistune.create_markdown(escape=True, plugins=["table", "strikethrough"])
+    class PageRenderer(HTMLRenderer):
+        """Raw HTML escaped, except md_code's <code>; entities written by md_escape (&lt;) read as the
+        character, as CommonMark and Jupyter show them, not as '&lt;'."""
+
+        def text(self, text: str) -> str:
+            return safe_entity(text)
+
+        def inline_html(self, html_text: str) -> str:
+            return html_text if html_text in _KEPT_INLINE_HTML else self.escape_raw(html_text)
+
+    render = mistune.create_markdown(renderer=PageRenderer(escape=True), plugins=["table", "strikethrough"])
     return render(text)
 
 
@@ -105,12 +125,71 @@ def _output_html(output: Mapping[str, Any]) -> str:
         payload = base64.b64encode(_text(data["image/svg+xml"]).encode("utf-8")).decode("ascii")
         return f'<img alt="figure" src="data:image/svg+xml;base64,{payload}">'
     if "text/html" in data:
-        return f'<div class="scroll">{_text(data["text/html"])}</div>'
+        return f'<div class="scroll">{readable_cells(_text(data["text/html"]))}</div>'
     if "text/markdown" in data:
         return f'<div class="markdown">{_markdown(_text(data["text/markdown"]))}</div>'
     if "text/plain" in data:
         return f"<pre>{html.escape(_text(data['text/plain']))}</pre>"
     return ""
+
+
+_CELL = re.compile(r"(<td[^>]*>)([^<]*)(</td>)")
+_MISSING_CELLS = {"<NA>", "NaN", "nan", "None", "NaT", "<na>"}
+
+
+def readable_cell(text: str, digits: int = 4) -> str:
+    """A table cell as text for reading: whole numbers as integers, others to ``digits`` significant
+    digits, and missing markers (``<NA>``, ``NaN``) as an empty cell. Anything else is left as it is."""
+    stripped = text.strip()
+    if stripped in _MISSING_CELLS:
+        return ""
+    try:
+        value = float(stripped.replace(",", "")) if re.fullmatch(r"[-+]?[\d,]*\.?\d+(e[-+]?\d+)?", stripped, re.I) \
+            else None
+    except ValueError:
+        value = None
+    if value is None:
+        return text
+    if value.is_integer() and abs(value) < 1e15:
+        return f"{int(value):,}" if abs(value) >= 10_000 else f"{int(value)}"
+    return _number(value, digits)
+
+
+_ROW = re.compile(r"<tr[^>]*>(.*?)</tr>", re.S)
+_HEADER_CELL = re.compile(r"<th[^>]*>([^<]*)</th>")
+P_VALUE_COLUMNS = re.compile(r"^(p|p_value|p_adjusted|p_.*|.*_p_value)$")
+
+
+def readable_cells(table_html: str) -> str:
+    """A pandas table's HTML with every data cell passed through :func:`readable_cell` (the markup pandas
+    wrote, already escaped, is kept; only cell text changes). Cells under a p-value column (``p``,
+    ``p_value``, ``p_adjusted``) read as ``format_p_cell`` writes them ('< 0.001', '0.012')."""
+    head = re.search(r"<thead>(.*?)</thead>", table_html, re.S)
+    header_rows = _ROW.findall(head.group(1)) if head else []
+    columns = [html.unescape(c).strip() for c in _HEADER_CELL.findall(header_rows[-1])] if header_rows else []
+
+    def one_row(row: "re.Match[str]") -> str:
+        body = row.group(1)
+        index_cells = len(re.findall(r"<th[^>]*>", body))
+        position = iter(range(index_cells, index_cells + 10 ** 6))
+
+        def one(match: "re.Match[str]") -> str:
+            at = next(position)
+            raw = html.unescape(match.group(2))
+            name = columns[at] if at < len(columns) else ""
+            if P_VALUE_COLUMNS.match(name) and (format_p_cell(raw) or raw.strip() in _MISSING_CELLS):
+                shown = format_p_cell(raw)
+            else:
+                shown = readable_cell(raw)
+            return match.group(1) + (match.group(2) if shown == raw else html.escape(shown)) + match.group(3)
+
+        return row.group(0).replace(body, _CELL.sub(one, body), 1)
+
+    if "<tbody>" not in table_html:
+        return _CELL.sub(lambda m: m.group(1) + html.escape(readable_cell(html.unescape(m.group(2)))) + m.group(3),
+                         table_html)
+    start = table_html.index("<tbody>")
+    return table_html[:start] + _ROW.sub(one_row, table_html[start:])
 
 
 def parameters_summary(params: Any) -> List[Tuple[str, str]]:
@@ -209,19 +288,18 @@ def _number(value: Any, digits: int = 3) -> str:
     return f"{value:.{digits - 1}e}"
 
 
-def _p_value(value: Any) -> str:
-    if value is None or (isinstance(value, float) and math.isnan(value)):
-        return ""
-    return "< 0.001" if value < 0.001 else f"{value:.3f}"
 
 
-def _table(frame: pd.DataFrame, *, table_id: str, text_columns: Sequence[str] = ()) -> str:
-    head = "".join(f'<th class="{"text" if c in text_columns else ""}">{html.escape(str(c))}</th>' for c in frame.columns)
+def _table(frame: pd.DataFrame, *, table_id: str, text_columns: Sequence[str] = (),
+           wrap_columns: Sequence[str] = ()) -> str:
+    def css(column: Any) -> str:
+        return " ".join(name for name, on in (("text", column in text_columns), ("wrap", column in wrap_columns))
+                        if on)
+
+    head = "".join(f'<th class="{css(c)}">{html.escape(str(c))}</th>' for c in frame.columns)
     rows = []
     for record in frame.itertuples(index=False):
-        cells = "".join(
-            f'<td class="{"text" if c in text_columns else ""}">{html.escape(_number(v))}</td>'
-            for c, v in zip(frame.columns, record))
+        cells = "".join(f'<td class="{css(c)}">{html.escape(_number(v))}</td>' for c, v in zip(frame.columns, record))
         rows.append(f"<tr>{cells}</tr>")
     return (f'<div class="scroll"><table id="{table_id}"><thead><tr>{head}</tr></thead>'
             f'<tbody>{"".join(rows)}</tbody></table></div>')
@@ -229,16 +307,34 @@ def _table(frame: pd.DataFrame, *, table_id: str, text_columns: Sequence[str] = 
 
 @dataclass(frozen=True)
 class EffectTable:
+    """The exposure's effect under every strategy, as the landing page shows it.
+
+    ``frame`` holds the cells as text; ``scale`` says what the numbers are (e.g. 'odds ratio');
+    ``lead`` is the one sentence that answers "what is the effect, under which assumption, how sure".
+    """
+
     frame: pd.DataFrame
     scale: str
     terms: Tuple[str, ...]
+    lead: str = ""
+
+
+def _estimate_text(value: Any) -> str:
+    """An estimate or interval end as the landing page shows it (empty when missing)."""
+    text = format_estimate(value)
+    return "" if text == "n/a" else text
+
+
+# The strategy a reader is pointed to first, when present (the others are comparisons or sensitivity).
+LEAD_STRATEGIES = ("multiple_imputation", "mixed_model", "complete_case")
 
 
 def effect_table(estimates: pd.DataFrame, *, family: str, exposure: Optional[str], alpha: float,
                  labels: Optional[Mapping[str, str]] = None) -> Optional[EffectTable]:
     """The exposure's rows of ``estimates.csv`` under every strategy, on the ratio scale for ratio families.
 
-    ``labels`` names the strategies for reading (the stages' ``strategy_comparison.csv`` has them)."""
+    ``labels`` names the strategies for reading (the stages' ``strategy_comparison.csv`` has them).
+    Each row says what the strategy assumes about why values are missing."""
     labels = {**STRATEGY_TITLES, **(labels or {})}
     from .errors import InputError
     from .models import exposure_terms
@@ -250,23 +346,47 @@ def effect_table(estimates: pd.DataFrame, *, family: str, exposure: Optional[str
         chosen = exposure_terms(terms, exposure)
     except InputError:
         chosen = terms[:1]
-    ratio = family in RATIO_WORDS and {"exp_estimate", "exp_ci_lower", "exp_ci_upper"} <= set(estimates.columns)
+    ratio = has_ratio_scale(family) and {"exp_estimate", "exp_ci_lower", "exp_ci_upper"} <= set(estimates.columns)
     prefix = "exp_" if ratio else ""
-    level = f"{100 * (1 - alpha):g} %"
-    scale = RATIO_WORDS[family] if ratio else ("log " + RATIO_WORDS[family] if family in RATIO_WORDS
-                                                else "difference in the outcome")
-    rows = []
+    level = f"{100 * (1 - alpha):g}%"
+    scale = effect_scale(family, exponentiated=ratio)
+    rows, lead_rows = [], {}
     for row in estimates[estimates["term"].astype(str).isin(chosen)].itertuples(index=False):
         values = row._asdict()
+        strategy = str(values["strategy"])
+        estimate = _estimate_text(values[f"{prefix}estimate"])
+        interval = f"{_estimate_text(values[f'{prefix}ci_lower'])} to {_estimate_text(values[f'{prefix}ci_upper'])}"
         rows.append({
-            "strategy": labels.get(str(values["strategy"]), str(values["strategy"]).replace("_", " ")),
+            "strategy": labels.get(strategy, strategy.replace("_", " ")),
+            "assumes about the missing values": STRATEGY_ASSUMPTIONS.get(strategy, ""),
             "term": str(values["term"]),
-            scale: _number(values[f"{prefix}estimate"]),
-            f"{level} CI": f"{_number(values[f'{prefix}ci_lower'])} to {_number(values[f'{prefix}ci_upper'])}",
-            "p": _p_value(values.get("p_value")),
+            scale: estimate,
+            f"{level} CI": interval,
+            "p": format_p_cell(values.get("p_value")),
             "rows used": _number(values.get("n_used")),
         })
-    return EffectTable(pd.DataFrame(rows), scale, tuple(chosen))
+        lead_rows.setdefault(strategy, (str(values["term"]), estimate, interval, values.get("p_value")))
+    lead = ""
+    first = next((s for s in LEAD_STRATEGIES if s in lead_rows), next(iter(lead_rows), None))
+    if first is not None:
+        term, estimate, interval, p = lead_rows[first]
+        assumption = STRATEGY_ASSUMPTIONS.get(first)
+        lead = (f"Under {STRATEGY_PHRASES.get(first, first.replace('_', ' '))}"
+                + (f" (which assumes {assumption})" if assumption else "")
+                + f", the {scale} for {term} is {estimate} ({level} confidence interval {interval}; "
+                + f"{format_p(p)})" + (" on the first term of the exposure" if len(chosen) > 1 else "") + ".")
+    return EffectTable(pd.DataFrame(rows), scale, tuple(chosen), lead)
+
+
+def _tipping_statements(folder: Path) -> str:
+    """The sensitivity stage's tipping-point statements (``tables/tipping_point.csv``), or '' when it did not run."""
+    path = folder / "tables" / "tipping_point.csv"
+    if not path.is_file():
+        return ""
+    table = pd.read_csv(path)
+    if "statement" not in table.columns:
+        return ""
+    return " ".join(str(s) for s in table["statement"].dropna())
 
 
 def _figure_link(folder: Path, name: str) -> str:
@@ -320,11 +440,18 @@ def write_index(folder: Path, *, params: Any, pages: Sequence[Tuple[str, str, fl
                               alpha=params.analysis.alpha, labels=labels)
         if effect is not None and len(effect.frame):
             parts.append("<h2>The exposure effect under each strategy</h2>")
+            parts.append(f'<p class="answer"><b>{html.escape(effect.lead)}</b></p>')
+            tipping = _tipping_statements(folder)
+            if tipping:
+                parts.append(f"<p><b>If the data are missing not at random.</b> {html.escape(tipping)}</p>")
             parts.append(f"<p>{html.escape(', '.join(effect.terms))}: {html.escape(effect.scale)} with its "
-                         f"confidence interval, one row per way of handling the missing values. Each strategy rests "
-                         f"on its own assumption about why values are missing; the sensitivity page shows how far "
-                         f"the multiple-imputation result moves if they are missing not at random.</p>")
-            parts.append(_table(effect.frame, table_id="estimates", text_columns=("strategy", "term")))
+                         f"confidence interval, one row per way of handling the missing values, each with what it "
+                         f"assumes about why values are missing"
+                         + ("; the model's own estimates are on the log scale in tables/estimates.csv"
+                            if has_ratio_scale(params.analysis.family) else "") + ".</p>")
+            parts.append(_table(effect.frame, table_id="estimates",
+                                text_columns=("strategy", "assumes about the missing values", "term"),
+                                wrap_columns=("assumes about the missing values",)))
             parts.append(_figure_link(folder, EFFECT_FIGURE))
     flow_path = folder / "tables" / "participant_flow.csv"
     if flow_path.is_file():
@@ -338,8 +465,9 @@ def write_index(folder: Path, *, params: Any, pages: Sequence[Tuple[str, str, fl
         parts.append("<h2>Drafted methods and results</h2>")
         parts.append(f'<section class="summary">{drafted}</section>')
     if pages:
-        items = "\n".join(f'<li><a href="{html.escape(page)}">{html.escape(label)}</a> '
-                          f'<span class="t">({seconds:.1f} s)</span></li>' for label, page, seconds in pages)
+        # run times are in manifest.json; a reader of the answer does not need them
+        items = "\n".join(f'<li><a href="{html.escape(page)}">{html.escape(label)}</a></li>'
+                          for label, page, _seconds in pages)
         parts.append(f"<h2>Stage pages</h2><ol>{items}</ol>")
     tables = "\n".join(f'<li><a href="../tables/{html.escape(p.name)}">{html.escape(p.name)}</a></li>'
                        for p in sorted((folder / "tables").glob("*.csv")))

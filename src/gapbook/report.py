@@ -19,8 +19,8 @@ from .errors import InputError, did_you_mean
 from .intake import Study
 from .impute import ImputationSettings
 from .models import AnalysisModel, check_formula, exposure_terms
-from .inference import format_p
-from .vocabulary import STRATEGY_PHRASES, cautions as page_cautions
+from .inference import format_estimate, format_p
+from .vocabulary import STRATEGY_PHRASES, cautions as page_cautions, effect_scale, has_ratio_scale
 
 # Count columns of the record's tables that small-count suppression masks, by table.
 COUNT_TABLES: Dict[str, Tuple[str, ...]] = {
@@ -358,7 +358,7 @@ def _fmt(value: object, digits: int = 2) -> str:
         return str(value)
     if not math.isfinite(number):
         return "n/a"
-    if number == int(number) and abs(number) >= 1:
+    if number == int(number) and (abs(number) >= 1 or number == 0):
         return f"{int(number):,}"
     return f"{number:.{digits}f}"
 
@@ -381,11 +381,25 @@ def exposure_rows(estimates: Optional[pd.DataFrame], terms: Sequence[str]) -> pd
     return estimates[estimates["term"].isin(list(terms))].reset_index(drop=True)
 
 
-def effect_phrase(row: Mapping[str, object], alpha: float) -> str:
-    """'-0.40 (95% CI -0.49 to -0.31; p < 0.001)' for one estimates row."""
-    level = int(round(100 * (1 - alpha)))
-    return (f"{_fmt(row['estimate'])} ({level}% CI {_fmt(row['ci_lower'])} to {_fmt(row['ci_upper'])}; "
-            f"{format_p(row['p_value'])})")
+def effect_phrase(row: Mapping[str, object], alpha: float, family: str = "gaussian") -> str:
+    """One estimates row in words, naming its scale.
+
+    'difference -0.40 (95% CI -0.49 to -0.31; p < 0.001)' for a gaussian model; 'odds ratio
+    1.65 (95% CI 1.11 to 2.45; p = 0.013)' for a binomial one (the exponentiated log odds
+    ratio, as in the ``exp_*`` columns), likewise rate ratios for poisson.
+    """
+    level = f"{100 * (1 - alpha):g}"
+    if has_ratio_scale(family):
+        values = [row.get(f"exp_{name}") if hasattr(row, "get") else None
+                  for name in ("estimate", "ci_lower", "ci_upper")]
+        if any(v is None or (isinstance(v, float) and math.isnan(v)) for v in values):
+            values = [math.exp(float(row[name])) for name in ("estimate", "ci_lower", "ci_upper")]
+        words = effect_scale(family, exponentiated=True)
+        estimate, lower, upper = (format_estimate(v) for v in values)
+    else:
+        words = "difference"
+        estimate, lower, upper = (_fmt(row[name]) for name in ("estimate", "ci_lower", "ci_upper"))
+    return f"{words} {estimate} ({level}% CI {lower} to {upper}; {format_p(row['p_value'])})"
 
 
 def build_checklist(flow: ParticipantFlow, missing: MissingSummary, tables: Mapping[str, Optional[pd.DataFrame]], *,
@@ -508,7 +522,7 @@ def build_checklist(flow: ParticipantFlow, missing: MissingSummary, tables: Mapp
     items.append(ChecklistItem(
         "results of complete-case and imputed analyses side by side", "Sterne et al. 2009",
         "tables/estimates.csv; tables/strategy_comparison.csv",
-        "; ".join(f"{STRATEGY_PHRASES.get(r['strategy'], r['strategy'])} {effect_phrase(r, model.alpha)}"
+        "; ".join(f"{STRATEGY_PHRASES.get(r['strategy'], r['strategy'])} {effect_phrase(r, model.alpha, model.family)}"
                   for _, r in exposure.iterrows()) or "no analysis stage has run"))
     sensitivity = tables.get("tipping_point")
     items.append(ChecklistItem(
@@ -596,7 +610,12 @@ def draft_methods(flow: ParticipantFlow, missing: MissingSummary, tables: Mappin
             f"imputed datasets and {imp.iterations} iterations (seed {imp.seed}); the imputation model included "
             f"the outcome, the exposure and every covariate of the analysis model{aux}{passive}. "
             f"{imputation_methods_phrase(tables.get('imputation_summary')).capitalize()}. Estimates were "
-            "combined with Rubin's rules (Rubin 1987) with small-sample degrees of freedom (Barnard & Rubin 1999).")
+            "combined with Rubin's rules (Rubin 1987) with small-sample degrees of freedom (Barnard & Rubin 1999), "
+            "taking n - p (rows analysed minus estimated coefficients) as the complete-data degrees of freedom"
+            + (" (for a generalised linear model a common choice without a published source)"
+               if model.family != "gaussian" else "")
+            + (f"; {effect_scale(model.family, exponentiated=True)}s were pooled on the log scale and "
+               "exponentiated" if has_ratio_scale(model.family) else "") + ".")
     others = [STRATEGY_PHRASES[s] for s in ("complete_case", "missing_category") if s in strategies]
     if others:
         sentences.append(f"For comparison the model was also fitted by {' and '.join(others)}.")
@@ -646,9 +665,11 @@ def draft_results(flow: ParticipantFlow, missing: MissingSummary, tables: Mappin
         return " ".join(sentences)
     exposure = exposure_rows(tables.get("estimates"), terms)
     if len(exposure):
-        parts = [f"{STRATEGY_PHRASES.get(r['strategy'], r['strategy'])} {effect_phrase(r, model.alpha)}"
+        parts = [f"{STRATEGY_PHRASES.get(r['strategy'], r['strategy'])} {effect_phrase(r, model.alpha, model.family)}"
                  for _, r in exposure.iterrows()]
-        sentences.append(f"The estimated effect ({', '.join(terms)}) was " + "; ".join(parts) + ".")
+        scale = (f"{effect_scale(model.family, exponentiated=True)}, the exponentiated model coefficient"
+                 if has_ratio_scale(model.family) else "difference in the outcome")
+        sentences.append(f"The estimated effect of {', '.join(terms)} ({scale}) was " + "; ".join(parts) + ".")
     else:
         sentences.append("No analysis stage has written estimates yet.")
     tipping = tables.get("tipping_point")
