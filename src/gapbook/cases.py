@@ -22,9 +22,8 @@ import pandas as pd
 from .errors import InputError
 from .inference import standardised_difference
 from .intake import levels_of
-from .models import AnalysisModel, ModelFit, add_ratio_columns, exposure_terms, formula_columns
-from .vocabulary import (CATEGORICAL_TYPES, NUMBER_CODED_TYPES, STRATEGY_TITLES, effect_scale, has_ratio_scale,
-                         infer_type, ratio_name)
+from .models import AnalysisModel, ModelFit, add_ratio_columns, exposure_terms, formula_columns, scale_sentence
+from .vocabulary import CATEGORICAL_TYPES, NUMBER_CODED_TYPES, STRATEGY_TITLES, infer_type, ratio_name
 FLOW_COLUMNS = ("step", "variable", "role", "n_excluded", "n_not_applicable", "n_lacking", "reasons", "n_remaining")
 
 
@@ -199,14 +198,6 @@ def complete_case_analysis(data: pd.DataFrame, *, model: AnalysisModel, reasons:
                 f"{', '.join(terms)}.")
     return CompleteCaseResult(flow=flow, model_fit=fit, exposure_terms=terms,
                               sentences=(sentence, scale_sentence(fit.family), *fit.fit_sentences()))
-
-
-def scale_sentence(family: str) -> str:
-    """Which scale the estimates are on, for the sentences under a table of estimates."""
-    if has_ratio_scale(family):
-        return (f"Estimates and intervals are on the model's scale ({effect_scale(family, exponentiated=False)}); "
-                f"exp_estimate, exp_ci_lower and exp_ci_upper give the {effect_scale(family, exponentiated=True)}.")
-    return f"Estimates are on the outcome's own scale ({effect_scale(family, exponentiated=False)})."
 
 
 # ---------------------------------------------------------------------------

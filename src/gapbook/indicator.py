@@ -29,11 +29,11 @@ import numpy as np
 import pandas as pd
 
 from .cases import (CompleteCaseFlow, check_model_data, complete_case_flow, exposure_column, is_categorical,
-                    require_rows, scale_sentence)
+                    require_rows)
 from .errors import InputError
 from .expressions import ColumnAliases, parse_formula
 from .intake import levels_of
-from .models import AnalysisModel, ModelFit, exposure_terms
+from .models import AnalysisModel, ModelFit, exposure_terms, scale_sentence
 
 MISSING_LEVEL = "(missing)"
 INDICATOR_SUFFIX = "_missing"

@@ -20,7 +20,7 @@ import statsmodels.formula.api as smf
 from .errors import AnalysisError, InputError, did_you_mean
 from .expressions import FORMULA_NAMESPACE, ExpressionError, parse_formula
 from .inference import wald_inference
-from .vocabulary import FAMILY_NAMES, has_ratio_scale
+from .vocabulary import FAMILY_NAMES, effect_scale, has_ratio_scale
 
 
 @dataclass(frozen=True)
@@ -94,6 +94,14 @@ def dropped_sentence(dropped: Sequence[Tuple[str, str]], nobs: int) -> str:
     parts = [f"{term} ({reason.replace('{n}', f'{nobs:,}')})" for term, reason in dropped]
     return ("Left out before fitting, because the data cannot estimate them (they are not reported as "
             "estimate 0): " + "; ".join(parts) + ".")
+
+
+def scale_sentence(family: str) -> str:
+    """Which scale the estimates are on, for the sentences under a table of estimates."""
+    if has_ratio_scale(family):
+        return (f"Estimates and intervals are on the model's scale ({effect_scale(family, exponentiated=False)}); "
+                f"exp_estimate, exp_ci_lower and exp_ci_upper give the {effect_scale(family, exponentiated=True)}.")
+    return "Estimates and intervals are differences in the outcome's own units (the model's coefficients)."
 
 
 EXP_COLUMNS = ("exp_estimate", "exp_ci_lower", "exp_ci_upper")

@@ -18,7 +18,7 @@ from scipy import stats
 
 from .errors import AnalysisError, InputError
 from .inference import format_df, format_p, wald_inference
-from .models import ModelFit, add_ratio_columns, exposure_terms
+from .models import ModelFit, add_ratio_columns, exposure_terms, scale_sentence
 
 STRATEGY = "multiple_imputation"  # the vocabulary's name for this strategy (gapbook.vocabulary.STRATEGIES)
 
@@ -336,9 +336,9 @@ def pool_fits(fits: Sequence[ModelFit], *, strategy: str = STRATEGY) -> PooledRe
     nobs = int(round(float(np.mean([f.nobs for f in fits]))))
     converged = tuple(bool(f.converged) for f in fits)
     failed = len(converged) - sum(converged)
-    sentences = (() if not failed else
-                 (f"The model did not converge in {failed} of the {len(fits)} imputed datasets; the pooled "
-                  "estimates include those fits and are not reliable until the model is simplified.",))
+    sentences = (scale_sentence(fits[0].family),) + (() if not failed else (
+        f"The model did not converge in {failed} of the {len(fits)} imputed datasets; the pooled "
+        "estimates include those fits and are not reliable until the model is simplified.",))
     rubin = rubin_pool(coefficients, np.diagonal(covariances, axis1=1, axis2=2), df_complete=df_complete)
     return PooledResult(terms=tuple(terms), coefficients=coefficients, covariances=covariances, rubin=rubin,
                         df_complete=df_complete, nobs=nobs, m=len(fits), family=fits[0].family, alpha=fits[0].alpha,
