@@ -54,7 +54,8 @@ def _roles(outcome: str, covariates: Sequence[str], model: AnalysisModel, column
     exposure = exposure_column(model, columns)
     roles = {outcome: "outcome"}
     for name in covariates:
-        roles[name] = "offset" if name == model.offset else ("exposure" if name == exposure else "covariate")
+        roles[name] = ("offset" if name == model.offset else "event" if model.event and name == model.event.column
+                       else "exposure" if name == exposure else "covariate")
     return roles
 
 

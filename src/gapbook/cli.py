@@ -71,7 +71,10 @@ def cmd_check(args: argparse.Namespace) -> int:
         _print(f"range: {data.range_issues} values outside their plausible range (listed by the audit stage)")
     if plan.model is not None:
         outcome, used = plan.model
-        _print(f"model: {params.analysis.family} model of {outcome} on {', '.join(used)}")
+        event = params.analysis.event_column()
+        follow_up = (f" (follow-up time; event column {event}, ties {params.analysis.ties})"
+                     if event is not None else "")
+        _print(f"model: {params.analysis.family} model of {outcome}{follow_up} on {', '.join(used)}")
     origins = {nb.origin for nb in plan.notebooks}
     _print(f"stages: {', '.join(plan.stages)} ({' and '.join(sorted(origins))} notebooks)")
     _print("ok")

@@ -146,6 +146,7 @@ def prepare_missing_category(data: pd.DataFrame, *, model: AnalysisModel, types:
         cells = is_missing[name].to_numpy(dtype=bool) & data[name].isna().to_numpy()
         n_na = int((data[name].isna().to_numpy() & ~cells).sum())
         role = ("outcome" if name == outcome else "offset" if name == model.offset
+                else "event" if model.event is not None and name == model.event.column
                 else "exposure" if name == exposure else "covariate")
         categorical = is_categorical(data[name], types.get(name))
         kind = types.get(name) or ("categorical" if categorical else "continuous")
@@ -153,7 +154,7 @@ def prepare_missing_category(data: pd.DataFrame, *, model: AnalysisModel, types:
                                   "n_not_applicable": n_na, "indicator": "", "constant": np.nan}
         if not cells.any():
             row["handling"] = "complete: nothing to do"
-        elif role in ("outcome", "exposure", "offset"):
+        elif role in ("outcome", "exposure", "offset", "event"):
             row["handling"] = f"rows dropped: a missing {role} is never given a category"
         elif categorical and (isinstance(data[name].dtype, pd.CategoricalDtype)
                               or not pd.api.types.is_numeric_dtype(data[name]) or _wrapped_in_c(formula, name)):

@@ -20,7 +20,8 @@ import statsmodels.formula.api as smf
 from .errors import AnalysisError, InputError, did_you_mean
 from .expressions import FORMULA_NAMESPACE, ExpressionError, parse_formula
 from .inference import wald_inference
-from .vocabulary import FAMILY_NAMES, effect_scale, has_ratio_scale
+from .survival import EventCoding, check_follow_up, cox_model, fit_cox_model
+from .vocabulary import FAMILY_NAMES, TIME_TO_EVENT_FAMILIES, effect_scale, has_ratio_scale
 
 
 @dataclass(frozen=True)
@@ -289,7 +290,8 @@ def _fit_warnings(caught: Sequence[warnings.WarningMessage]) -> Tuple[Tuple[str,
 
 
 def fit_model(data: pd.DataFrame, *, formula: str, family: str = "gaussian", robust: bool = False,
-              offset: Optional[str] = None, alpha: float = 0.05) -> ModelFit:
+              offset: Optional[str] = None, alpha: float = 0.05, event: Optional[EventCoding] = None,
+              ties: str = "efron") -> ModelFit:
     """Fit the analysis model to the rows where every model variable is present.
 
     Design columns the analysed rows cannot estimate (constant, e.g. a missing-category
@@ -300,10 +302,14 @@ def fit_model(data: pd.DataFrame, *, formula: str, family: str = "gaussian", rob
     Parameters
     ----------
     data : the analysis frame (NaN where missing).
-    formula : statsmodels formula, e.g. ``"y ~ arm + C(clinic) + Q('dose.mg')"``.
-    family : gaussian (OLS), binomial (logistic) or poisson (log-linear).
-    robust : sandwich (heteroskedasticity-consistent, HC1) standard errors.
+    formula : statsmodels formula, e.g. ``"y ~ arm + C(clinic) + Q('dose.mg')"``; for cox the
+        left side is the follow-up time.
+    family : gaussian (OLS), binomial (logistic), poisson (log-linear) or cox (proportional
+        hazards, statsmodels' ``PHReg``; no intercept).
+    robust : sandwich standard errors (HC1; for cox the robust covariance of Lin & Wei 1989).
     offset : column whose log is the offset of a poisson model (person-time), or None.
+    event : cox only: the event column and its coding.
+    ties : cox only: ``efron`` or ``breslow``.
 
     Returns
     -------
@@ -315,11 +321,15 @@ def fit_model(data: pd.DataFrame, *, formula: str, family: str = "gaussian", rob
     White H (1980). A heteroskedasticity-consistent covariance matrix estimator and a
     direct test for heteroskedasticity. Econometrica 48:817-838.
     McCullagh P, Nelder JA (1989). Generalized Linear Models, 2nd ed. Chapman & Hall.
+    Cox DR (1972). Regression models and life-tables. JRSS B 34:187-220.
     """
     check_family(family)
     outcome, _ = check_formula(formula, list(data.columns))
     if data[outcome].notna().sum() == 0:
         raise InputError(f"the outcome '{outcome}' has no observed values", option="formula")
+    if family in TIME_TO_EVENT_FAMILIES:
+        return _fit_cox(values_as_written(data, formula), formula=formula, family=family, robust=robust,
+                        alpha=alpha, event=event, ties=ties)
     data = values_as_written(_outcome_as_number(data, outcome, family), formula)
     cov_type = "HC1" if robust else "nonrobust"
     try:
@@ -368,6 +378,47 @@ def fit_model(data: pd.DataFrame, *, formula: str, family: str = "gaussian", rob
                     warnings=notes, dropped=tuple(dropped))
 
 
+def _fit_cox(data: pd.DataFrame, *, formula: str, family: str, robust: bool, alpha: float,
+             event: Optional[EventCoding], ties: str) -> ModelFit:
+    """The proportional hazards branch of :func:`fit_model` (statsmodels' ``PHReg``, same term names).
+
+    As for the other families, design columns the analysed rows cannot estimate are left out
+    before fitting; a Cox model has no intercept, and the baseline hazard absorbs a constant
+    column, so the check is made with a column of ones in front.
+    """
+    if event is None:
+        raise InputError(f"family {family} needs the event column", option="event")
+    outcome, _ = check_formula(formula, list(data.columns))
+    check_follow_up(data, time=outcome, event=event)
+    try:
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            model = cox_model(data, formula=formula, event=event, ties=ties, eval_env=FORMULA_NAMESPACE)
+            names = list(model.exog_names)
+            kept, dropped = identifiable_columns(np.column_stack([np.ones(model.exog.shape[0]), model.exog]),
+                                                 ["(baseline hazard)"] + names)
+            columns = [j - 1 for j in kept if j > 0]
+            if not columns:
+                raise InputError(f"no term of '{formula}' can be estimated from the rows used (each is constant "
+                                 "among them)", option="formula")
+            if dropped:
+                model = cox_model(data, formula=formula, event=event, ties=ties, eval_env=FORMULA_NAMESPACE,
+                                  columns=columns)
+            result = fit_cox_model(model, robust=robust)
+    except InputError:
+        raise
+    except Exception as exc:
+        message = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+        raise AnalysisError(f"the Cox model '{formula}' could not be fitted: {message}") from None
+    notes, failed = _fit_warnings(caught)
+    coefficients = np.asarray(result.params, dtype=float)
+    converged = bool(np.all(np.isfinite(coefficients))) and not failed
+    return ModelFit(formula=formula, family=family, terms=tuple(names[j] for j in columns), coefficients=coefficients,
+                    covariance=np.asarray(result.cov_params(), dtype=float), df_resid=None,
+                    nobs=int(model.exog.shape[0]), robust=robust, alpha=alpha, converged=converged, warnings=notes,
+                    dropped=tuple(dropped))
+
+
 def exposure_terms(terms: Sequence[str], exposure: Optional[str]) -> List[str]:
     """The model terms that belong to the exposure (a variable name or an exact term name)."""
     if exposure is None:
@@ -392,22 +443,36 @@ class AnalysisModel:
     robust: bool = False
     offset: Optional[str] = None
     alpha: float = 0.05
+    event: Optional[EventCoding] = None   # time-to-event families: the event column and its coding
+    ties: str = "efron"
 
     def fit(self, data: pd.DataFrame, formula: Optional[str] = None) -> ModelFit:
         """``fit_model`` with these options (``formula`` overrides the model's, e.g. with indicators added)."""
         return fit_model(data, formula=formula or self.formula, family=self.family, robust=self.robust,
-                         offset=self.offset, alpha=self.alpha)
+                         offset=self.offset, alpha=self.alpha, event=self.event, ties=self.ties)
+
+    def is_time_to_event(self) -> bool:
+        """Whether the outcome is a follow-up time with an event column (family cox)."""
+        return self.family in TIME_TO_EVENT_FAMILIES
 
     def variables(self, columns: Sequence[str]) -> Tuple[str, List[str]]:
-        """The outcome and the other model columns (formula order, then the offset); exits 2 on unknown names."""
+        """The outcome and the other model columns (formula order, then the offset or the event column).
+
+        Exits 2 on unknown names.
+        """
         check_family(self.family)
         outcome, used = check_formula(self.formula, list(columns))
         used = [c for c in used if c != outcome]
-        if self.offset is not None:
-            if self.offset not in columns:
-                raise InputError(f"'{self.offset}' is not a column{did_you_mean(self.offset, columns)}",
-                                 option="offset")
-            if self.offset not in used:
-                used.append(self.offset)
+        for extra, option in ((self.offset, "offset"), (self.event.column if self.event else None, "event")):
+            if extra is None:
+                continue
+            if extra not in columns:
+                raise InputError(f"'{extra}' is not a column{did_you_mean(extra, columns)}", option=option)
+            if extra == outcome:
+                raise InputError(f"'{extra}' is the formula's outcome as well", option=option)
+            if extra not in used:
+                used.append(extra)
+        if self.is_time_to_event() and self.event is None:
+            raise InputError(f"family {self.family} needs the event column", option="event")
         return outcome, used
 

@@ -18,7 +18,7 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_valida
 
 from .errors import InputError, did_you_mean
 from .vocabulary import (COVARIANCE_STRUCTURES, FAMILY_NAMES, FOLLOWUP_STRATEGY_NAMES, IMPUTATION_METHODS,
-                         INTERCURRENT_STRATEGY_NAMES, LAYOUTS, VARIABLE_TYPES)
+                         INTERCURRENT_STRATEGY_NAMES, LAYOUTS, TIES_METHODS, TIME_TO_EVENT_FAMILIES, VARIABLE_TYPES)
 from .expressions import CONDITION, VALUE, ExpressionError, parse_expression, parse_formula
 
 DATA_FORMATS: Tuple[str, ...] = ("auto", "csv", "tsv", "xlsx", "parquet")
@@ -33,6 +33,7 @@ FollowupStrategy = Literal.__getitem__(FOLLOWUP_STRATEGY_NAMES)
 IntercurrentStrategy = Literal.__getitem__(INTERCURRENT_STRATEGY_NAMES)
 STAGES: Tuple[str, ...] = ("audit", "mechanism", "cases", "indicator", "followup", "impute", "sensitivity", "simulate",
                            "report")
+TiesMethod = Literal.__getitem__(TIES_METHODS)
 
 Marker = Union[str, int, float]
 
@@ -223,6 +224,22 @@ class RepeatedSection(_Section):
         return self
 
 
+class EventSpec(_Section):
+    """The event column of a time-to-event model, with the values that mean event and censored."""
+
+    column: Name
+    event: Annotated[List[Marker], Field(min_length=1, max_length=MAX_LIST)] = Field(default_factory=lambda: [1])
+    censored: Annotated[List[Marker], Field(min_length=1, max_length=MAX_LIST)] = Field(
+        default_factory=lambda: [0])
+
+    @model_validator(mode="after")
+    def _apart(self) -> "EventSpec":
+        both = [v for v in self.event if str(v) in {str(c) for c in self.censored}]
+        if both:
+            raise ValueError(f"{both[0]!r} is listed both as an event and as censored; give it one meaning")
+        return self
+
+
 class AnalysisSection(_Section):
     formula: Optional[str] = None
     family: FamilyName = "gaussian"
@@ -231,6 +248,26 @@ class AnalysisSection(_Section):
     robust: bool = False
     alpha: float = Field(0.05, gt=0, lt=1)
     repeated: Optional[RepeatedSection] = None
+    event: Optional[Union[Name, EventSpec]] = None
+    ties: TiesMethod = "efron"
+
+    @model_validator(mode="after")
+    def _time_to_event(self) -> "AnalysisSection":
+        if self.family in TIME_TO_EVENT_FAMILIES:
+            if self.event is None:
+                raise ValueError(f"family {self.family} needs analysis.event, the column that is 1 for an event and "
+                                 "0 for censored (or {column: ..., event: [...], censored: [...]})")
+            if self.offset is not None:
+                raise ValueError(f"family {self.family} takes no offset; drop analysis.offset (follow-up time is "
+                                 "the formula's left side)")
+        elif self.event is not None:
+            raise ValueError(f"analysis.event is used only with family: {', '.join(TIME_TO_EVENT_FAMILIES)}; "
+                             "drop it, or set the family")
+        return self
+
+    def event_column(self) -> Optional[str]:
+        """The event column's name, or None without a time-to-event model."""
+        return self.event.column if isinstance(self.event, EventSpec) else self.event
 
     @field_validator("formula")
     @classmethod

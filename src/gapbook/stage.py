@@ -52,6 +52,7 @@ if TYPE_CHECKING:  # the stage modules are imported where a stage is run, not wh
     from .followup_audit import FollowupAudit
     from .repeated import RepeatedOutcome
     from .repeated_intake import RepeatedStudy
+    from .survival import EventCoding
 
 __all__ = ["StageResult", "StageContext", "open_stage", "analysis_model", "params_errors", "write_csv",
            "merge_estimates", "CSV_FLOAT_FORMAT", "ESTIMATE_COLUMNS", "FIGURE_DPI", "repeated_design",
@@ -124,7 +125,20 @@ def analysis_model(params: Params) -> "AnalysisModel":
         raise InputError(f"{params.label}: analysis.formula is required for this stage; "
                          "write it as 'outcome ~ exposure + covariates'")
     return AnalysisModel(formula=section.formula, family=section.family, exposure=section.exposure,
-                         robust=section.robust, offset=section.offset, alpha=section.alpha)
+                         robust=section.robust, offset=section.offset, alpha=section.alpha,
+                         event=event_coding(params), ties=section.ties)
+
+
+def event_coding(params: Params) -> "Optional[EventCoding]":
+    """``analysis.event`` as an :class:`~gapbook.survival.EventCoding` (None without a time-to-event model)."""
+    from .survival import EventCoding
+
+    event = params.analysis.event
+    if event is None:
+        return None
+    if isinstance(event, str):
+        return EventCoding(column=event)
+    return EventCoding(column=event.column, event=tuple(event.event), censored=tuple(event.censored))
 
 
 # ---------------------------------------------------------------------------
@@ -305,6 +319,8 @@ class StageContext:
         model = self.model()
         return (f"**Analysis model** ({model.family}{', sandwich standard errors' if model.robust else ''}): "
                 f"{md_code(model.formula)}" + (f", offset log({md_code(model.offset)})" if model.offset else "")
+                + (f", follow-up time on the left, event {md_code(model.event.describe())}, {model.ties} ties"
+                   if model.event is not None else "")
                 + f"; exposure: {md_code(model.exposure or '(first term)')}.")
 
     def show_model(self) -> None:

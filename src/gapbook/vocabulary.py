@@ -21,7 +21,7 @@ __all__ = [
     "VARIABLE_TYPES", "CATEGORICAL_TYPES", "NUMERIC_TYPES", "NUMBER_CODED_TYPES", "infer_type",
     "IMPUTATION_METHODS", "DEFAULT_METHOD", "ALLOWED_METHODS", "DELTA_METHODS", "METHOD_WORDS",
     "Family", "FAMILIES", "FAMILY_NAMES", "RATIO_NAMES", "RATIO_WORDS", "ratio_name", "has_ratio_scale",
-    "effect_scale",
+    "effect_scale", "TIME_TO_EVENT_FAMILIES", "TIES_METHODS",
     "Strategy", "STRATEGIES", "STRATEGY_NAMES", "STRATEGY_TITLES", "STRATEGY_PHRASES", "STRATEGY_ASSUMPTIONS",
     "strategy_rank",
     "BLANK", "NOT_APPLICABLE", "IMPLAUSIBLE", "NO_RECORD", "REASON_NOT_GIVEN",
@@ -116,9 +116,17 @@ FAMILIES: Tuple[Family, ...] = (
     Family("gaussian"),
     Family("binomial", "odds_ratio", "odds ratio"),
     Family("poisson", "rate_ratio", "rate ratio"),
+    # Proportional hazards (Cox) regression: the formula's left side is the follow-up time and
+    # analysis.event names the event column; exponentiated coefficients are hazard ratios.
+    Family("cox", "hazard_ratio", "hazard ratio"),
 )
 FAMILY_NAMES: Tuple[str, ...] = tuple(f.name for f in FAMILIES)
 RATIO_NAMES: Dict[str, str] = {f.name: f.ratio for f in FAMILIES if f.ratio}
+TIME_TO_EVENT_FAMILIES: Tuple[str, ...] = ("cox",)   # outcome = follow-up time, with an event column
+# Approximations to the Cox partial likelihood for tied event times; Efron's is the default
+# because it is closer to the exact likelihood when ties are many (Efron 1977, JASA 72:557;
+# Hertz-Picciotto & Rockhill 1997, Biometrics 53:1151) and equal to Breslow's without ties.
+TIES_METHODS: Tuple[str, ...] = ("efron", "breslow")
 
 
 RATIO_WORDS: Dict[str, str] = {f.name: f.ratio_words for f in FAMILIES if f.ratio_words}

@@ -1,0 +1,259 @@
+"""Time-to-event building blocks: how the event column is read, the Cox fit, and the
+Nelson–Aalen and Kaplan–Meier estimators every survival stage uses.
+
+Censoring is not missing data. A censored row has a follow-up time and the knowledge that
+the event had not happened by then; the Cox model uses it in full. A row whose time or
+event status is unknown is missing data (with the reason the intake recorded), and the
+stages count and handle it as such.
+
+This module sits below :mod:`gapbook.models` (which fits the Cox model through
+:func:`cox_model` and :func:`fit_cox_model`) and imports only the data layer.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any, Optional, Sequence, Tuple, Union
+
+import numpy as np
+import pandas as pd
+
+from .errors import InputError
+from .vocabulary import TIES_METHODS
+
+__all__ = ["EventCoding", "check_follow_up", "cox_model", "fit_cox_model", "nelson_aalen", "cumulative_hazard_at",
+           "kaplan_meier"]
+
+Value = Union[str, int, float]
+
+
+def _values_text(values: Sequence[Value]) -> str:
+    return ", ".join(repr(v) if isinstance(v, str) else f"{v:g}" for v in values)
+
+
+def _as_number(value: Value) -> Optional[float]:
+    try:
+        return float(value)
+    except (TypeError, ValueError):
+        return None
+
+
+@dataclass(frozen=True)
+class EventCoding:
+    """The event column and which of its values mean "event" and which "censored".
+
+    The default coding is the usual 1 = event, 0 = censored. A study coded otherwise
+    (e.g. 2 = died, 1 = alive at last contact, or text such as ``died``/``alive``) lists its
+    values; any other observed value is an error, never silently read as censored.
+    """
+
+    column: str
+    event: Tuple[Value, ...] = (1,)
+    censored: Tuple[Value, ...] = (0,)
+
+    def _hits(self, values: pd.Series, wanted: Sequence[Value]) -> np.ndarray:
+        if pd.api.types.is_numeric_dtype(values) and not isinstance(values.dtype, pd.CategoricalDtype):
+            numbers = [n for n in (_as_number(w) for w in wanted) if n is not None]
+            return np.isin(values.to_numpy(dtype=float, na_value=np.nan), numbers)
+        text = values.astype(object).where(values.notna(), None)
+        as_text = np.array([None if v is None else (f"{v:g}" if isinstance(v, float) else str(v)) for v in text],
+                           dtype=object)
+        wanted_text = {f"{w:g}" if isinstance(w, float) else str(w) for w in wanted}
+        return np.array([v is not None and v in wanted_text for v in as_text], dtype=bool)
+
+    def unexpected(self, data: pd.DataFrame) -> np.ndarray:
+        """Positions of rows whose event value is observed but neither an event nor a censored value."""
+        values = data[self.column]
+        known = self._hits(values, self.event) | self._hits(values, self.censored)
+        return np.flatnonzero(values.notna().to_numpy() & ~known)
+
+    def refuse_unexpected(self, data: pd.DataFrame, ids: Optional[pd.Series] = None) -> None:
+        """Exit 2 (option ``event``) naming the first row (and id) whose value is not in the coding."""
+        bad = self.unexpected(data)
+        if not len(bad):
+            return
+        value = data[self.column].iloc[bad[0]]
+        shown = repr(value) if isinstance(value, str) else f"{float(value):g}"
+        where = f"data row {bad[0] + 1}" + (f" (id {ids.iloc[bad[0]]})" if ids is not None else "")
+        raise InputError(f"column '{self.column}' holds {shown} at {where} and in {len(bad)} row(s) in all, which is "
+                         f"neither an event value ({_values_text(self.event)}) nor a censored value "
+                         f"({_values_text(self.censored)}); list it under event or censored, or declare it a "
+                         "missing marker", option="event")
+
+    def indicator(self, data: pd.DataFrame) -> np.ndarray:
+        """1.0 for an event, 0.0 for censored, NaN where the event status is missing.
+
+        Exits 2 (option ``event``) when an observed value is neither an event nor a censored value.
+        """
+        if self.column not in data.columns:
+            raise InputError(f"'{self.column}' is not a column", option="event")
+        self.refuse_unexpected(data)
+        values = data[self.column]
+        out = np.full(len(values), np.nan)
+        out[self._hits(values, self.censored)] = 0.0
+        out[self._hits(values, self.event)] = 1.0
+        return out
+
+    def describe(self) -> str:
+        """The coding in words, e.g. ``status (event: 2; censored: 1)``."""
+        return f"{self.column} (event: {_values_text(self.event)}; censored: {_values_text(self.censored)})"
+
+
+def check_follow_up(data: pd.DataFrame, *, time: str, event: EventCoding,
+                    ids: Optional[pd.Series] = None) -> None:
+    """Exit 2 when a follow-up time is not a positive number or an event value is not in the coding.
+
+    Missing times and event values are not errors: they are missing data, counted with their reasons.
+
+    Parameters
+    ----------
+    data : the analysis frame.
+    time : the follow-up time column (the formula's left side).
+    event : the event coding.
+    ids : the participants' ids (``study.ids``), to name the first offending row.
+    """
+    column = data[time]
+    if not pd.api.types.is_numeric_dtype(column) or isinstance(column.dtype, pd.CategoricalDtype):
+        raise InputError(f"the follow-up time '{time}' is not numeric; give the time from the start of "
+                         "follow-up to the event or censoring as a number", option="formula")
+    values = column.to_numpy(dtype=float, na_value=np.nan)
+    bad = np.flatnonzero(~np.isnan(values) & ~(values > 0))
+    if len(bad):
+        where = f"data row {bad[0] + 1}" + (f" (id {ids.iloc[bad[0]]})" if ids is not None else "")
+        raise InputError(f"the follow-up time '{time}' is {values[bad[0]]:g} at {where} and is not positive in "
+                         f"{len(bad)} row(s); follow-up times must be above 0 (check the dates, or how the "
+                         "analysis plan counts same-day events)", option="formula")
+    if not np.isfinite(values[~np.isnan(values)]).all():
+        raise InputError(f"the follow-up time '{time}' holds an infinite value; give a finite time",
+                         option="formula")
+    event.refuse_unexpected(data, ids)
+
+
+def cox_model(data: pd.DataFrame, *, formula: str, event: EventCoding, ties: str = "efron", eval_env: Any = None,
+              columns: Optional[Sequence[int]] = None) -> Any:
+    """statsmodels' ``PHReg`` for the rows with every model value, before fitting.
+
+    Parameters
+    ----------
+    data : the analysis frame; the formula's left side is the follow-up time.
+    formula : ``"time ~ exposure + covariates"`` (no intercept: the baseline hazard absorbs it).
+    event : the event coding of the status column.
+    ties : ``efron`` or ``breslow``, the approximation to the partial likelihood for tied times.
+    eval_env : the namespace patsy evaluates the formula's functions in.
+    columns : positions of the design columns to keep (all by default); the model's
+        ``exog_names`` then still lists every term of the formula.
+
+    Returns
+    -------
+    The ``PHReg`` model; its ``exog_names`` are the term names.
+
+    References
+    ----------
+    Cox DR (1972). Regression models and life-tables. JRSS B 34:187-220.
+    Efron B (1977). The efficiency of Cox's likelihood function for censored data. JASA 72:557-565.
+    Breslow N (1974). Covariance analysis of censored survival data. Biometrics 30:89-99.
+    """
+    from statsmodels.duration.hazard_regression import PHReg
+
+    if ties not in TIES_METHODS:
+        raise InputError(f"'{ties}' is not one of {', '.join(TIES_METHODS)}", option="ties")
+    status = event.indicator(data)
+    frame = data.loc[~np.isnan(status)]
+    status = status[~np.isnan(status)]
+    model = PHReg.from_formula(formula, frame, status=pd.Series(status, index=frame.index), ties=ties,
+                               missing="drop", eval_env=eval_env)
+    if model.exog.shape[0] == 0:
+        raise InputError(f"no row has every variable of '{formula}' observed", option="formula")
+    if model.exog.shape[1] == 0:
+        raise InputError(f"the Cox model '{formula}' has no covariate; add the exposure to its right side",
+                         option="formula")
+    if not (model.status > 0).any():
+        raise InputError(f"no row used by '{formula}' has an event; a Cox model needs events "
+                         f"(check the coding of '{event.column}')", option="event")
+    if columns is not None:
+        model = PHReg(model.endog, model.exog[:, list(columns)], status=model.status, ties=ties)
+    return model
+
+
+def fit_cox_model(model: Any, *, robust: bool = False) -> Any:
+    """Fit a ``PHReg`` model; ``robust`` gives the Lin & Wei (1989) sandwich covariance, each row its own cluster.
+
+    statsmodels' own robust covariance (``fit(groups=...)``) is NaN whenever a row is censored
+    before the first event time, because it marks such rows' score residuals NaN; they are
+    never at risk at an event time, so their score residual is 0, which is what is used here.
+    The score residuals are statsmodels' (Breslow's form, whichever ties method is fitted).
+
+    References
+    ----------
+    Lin DY, Wei LJ (1989). The robust inference for the proportional hazards model. JASA 84:1074-1078.
+    """
+    from statsmodels.duration.hazard_regression import PHRegResults
+
+    result = model.fit()
+    if not robust:
+        return result
+    scores = np.nan_to_num(model.score_residuals(result.params), nan=0.0)
+    bread = np.linalg.inv(model.hessian(result.params))
+    return PHRegResults(model, result.params, bread @ (scores.T @ scores) @ bread)
+
+
+# ---------------------------------------------------------------------------
+# nonparametric estimators
+
+def nelson_aalen(time: np.ndarray, event: np.ndarray) -> Tuple[np.ndarray, np.ndarray]:
+    """The Nelson–Aalen cumulative hazard: (distinct event times, H at each of them).
+
+    H(t) = sum over event times s <= t of d(s) / n(s), with d the events at s and n the
+    number at risk just before s (rows with time >= s).
+
+    References
+    ----------
+    Nelson W (1972). Theory and applications of hazard plotting for censored failure data.
+    Technometrics 14:945-966. Aalen O (1978). Nonparametric inference for a family of
+    counting processes. Ann Stat 6:701-726.
+    """
+    time = np.asarray(time, dtype=float)
+    event = np.asarray(event, dtype=float)
+    order = np.sort(time)
+    at, deaths = np.unique(time[event > 0], return_counts=True)
+    at_risk = len(time) - np.searchsorted(order, at, side="left")
+    return at, np.cumsum(deaths / at_risk)
+
+
+def cumulative_hazard_at(time: np.ndarray, event: np.ndarray) -> np.ndarray:
+    """Each row's Nelson–Aalen cumulative hazard at its own follow-up time (ties included).
+
+    The predictor White & Royston (2009) advise for imputing covariates of a Cox model, with
+    the event indicator.
+
+    References
+    ----------
+    White IR, Royston P (2009). Imputing missing covariate values for the Cox model.
+    Stat Med 28:1982-1998.
+    """
+    at, hazard = nelson_aalen(time, event)
+    position = np.searchsorted(at, np.asarray(time, dtype=float), side="right") - 1
+    return np.where(position >= 0, hazard[np.clip(position, 0, None)] if len(hazard) else 0.0, 0.0)
+
+
+def kaplan_meier(time: np.ndarray, event: np.ndarray) -> pd.DataFrame:
+    """The Kaplan–Meier estimate at each distinct time: time, at_risk, events, censored, survival.
+
+    Reversing the roles of event and censoring (``event = 1 - event``) gives the reverse
+    Kaplan–Meier estimate of follow-up (Schemper & Smith 1996).
+
+    References
+    ----------
+    Kaplan EL, Meier P (1958). Nonparametric estimation from incomplete observations. JASA 53:457-481.
+    Schemper M, Smith TL (1996). A note on quantifying follow-up in studies of failure time.
+    Control Clin Trials 17:343-346.
+    """
+    time = np.asarray(time, dtype=float)
+    event = np.asarray(event, dtype=float) > 0
+    times = np.unique(time)
+    order = np.sort(time)
+    at_risk = len(time) - np.searchsorted(order, times, side="left")
+    events = np.bincount(np.searchsorted(times, time[event]), minlength=len(times))
+    totals = np.bincount(np.searchsorted(times, time), minlength=len(times))
+    survival = np.cumprod(1.0 - events / at_risk)
+    return pd.DataFrame({"time": times, "at_risk": at_risk, "events": events, "censored": totals - events,
+                         "survival": survival})

@@ -1,0 +1,283 @@
+"""Time-to-event outcomes (issue 14): family cox through params, check and the model strategies.
+
+References beside each check: statsmodels' proportional hazards regression (``PHReg``),
+fitted here from plain arrays, is the reference for every Cox fit.
+"""
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+from conftest import record_path, run_gapbook
+from statsmodels.duration.hazard_regression import PHReg
+
+from gapbook.cases import complete_case_analysis
+from gapbook.cli import main
+from gapbook.errors import InputError
+from gapbook.indicator import missing_category_analysis
+from gapbook.intake import load_study
+from gapbook.models import AnalysisModel
+from gapbook.params import Params, load_params
+from gapbook.pipeline import preflight
+from gapbook.stage import analysis_model
+from gapbook.survival import EventCoding, cumulative_hazard_at, kaplan_meier, nelson_aalen
+
+
+def cohort(n: int = 300, seed: int = 11) -> pd.DataFrame:
+    """A cohort of our own: Weibull event times, uniform censoring, whole-month times (many ties),
+    age missing more often after an event, stage partly unknown, a few missing times and statuses."""
+    rng = np.random.default_rng(seed)
+    arm = rng.choice(["control", "active"], n)
+    age = rng.normal(60, 10, n)
+    stage = rng.choice(["I", "II", "III"], n, p=[0.4, 0.4, 0.2])
+    lp = np.log(0.6) * (arm == "active") + 0.03 * (age - 60) + 0.5 * (stage == "III")
+    event_time = rng.weibull(1.3, n) * 24 * np.exp(-lp / 1.3)
+    censor_time = rng.uniform(6, 48, n)
+    months = np.ceil(np.minimum(event_time, censor_time))
+    status = np.where(event_time <= censor_time, 2, 1)
+    frame = pd.DataFrame({"pid": np.arange(1, n + 1), "arm": arm, "age": age.round(1), "stage": stage,
+                          "months": months, "status": status})
+    frame["age"] = frame["age"].astype(object)
+    frame.loc[rng.random(n) < 0.1 + 0.2 * (status == 2), "age"] = "NA"
+    frame.loc[rng.random(n) < 0.08, "stage"] = "unknown"
+    frame["months"] = frame["months"].astype(object)
+    frame.loc[[3, 50], "months"] = "lost"
+    frame["status"] = frame["status"].astype(object)
+    frame.loc[[7, 60, 61], "status"] = "-9"
+    return frame
+
+
+PARAMS = """\
+study: {name: Survival cohort}
+data: {path: cohort.csv, id: pid}
+variables:
+  stage: {type: ordinal, levels: [I, II, III]}
+missing:
+  reasons: {unknown: "not recorded", lost: "time not known", "-9": "status not ascertained"}
+analysis:
+  formula: "months ~ arm + age + C(stage)"
+  family: cox
+  event: {column: status, event: [2], censored: [1]}
+  exposure: arm
+"""
+
+
+def write_study(folder: Path, frame: pd.DataFrame | None = None, params: str = PARAMS) -> Path:
+    folder.mkdir(parents=True, exist_ok=True)
+    (cohort() if frame is None else frame).to_csv(folder / "cohort.csv", index=False)
+    (folder / "params.yaml").write_text(params)
+    return folder / "params.yaml"
+
+
+@pytest.fixture
+def study(tmp_path):
+    params = load_params(write_study(tmp_path / "study"))
+    return params, load_study(params)
+
+
+def phreg_by_hand(data: pd.DataFrame, ties: str) -> tuple[pd.Series, pd.Series]:
+    """Reference: statsmodels PHReg fitted from arrays built here, on the rows with every model value."""
+    rows = data[["months", "status", "arm", "age", "stage"]].dropna()
+    rows = rows[rows["status"].isin([1.0, 2.0])]
+    exog = pd.DataFrame({
+        "arm[T.control]": (rows["arm"].astype(str) == "control").astype(float),
+        "C(stage)[T.II]": (rows["stage"].astype(str) == "II").astype(float),
+        "C(stage)[T.III]": (rows["stage"].astype(str) == "III").astype(float),
+        "age": rows["age"].astype(float),
+    })
+    result = PHReg(rows["months"].to_numpy(float), exog.to_numpy(), status=(rows["status"] == 2).to_numpy(float),
+                   ties=ties).fit()
+    return pd.Series(result.params, index=exog.columns), pd.Series(result.bse, index=exog.columns)
+
+
+@pytest.mark.parametrize("ties", ["efron", "breslow"])
+def test_complete_case_cox_equals_statsmodels_phreg_on_the_same_rows(study, ties):
+    # Reference: statsmodels.duration.hazard_regression.PHReg (Cox 1972; Efron 1977; Breslow 1974)
+    params, data = study
+    model = AnalysisModel(formula="months ~ arm + age + C(stage)", family="cox", exposure="arm",
+                          event=EventCoding("status", event=(2,), censored=(1,)), ties=ties)
+    result = complete_case_analysis(data.data, model=model, reasons=data.reasons,
+                                    not_applicable=data.not_applicable)
+    estimates = result.estimates().set_index("term")
+    coefficients, errors = phreg_by_hand(data.data, ties)
+    assert sorted(estimates.index) == sorted(coefficients.index)  # statsmodels' own term names
+    np.testing.assert_allclose(estimates.loc[coefficients.index, "estimate"], coefficients, atol=1e-6)
+    np.testing.assert_allclose(estimates.loc[coefficients.index, "std_error"], errors, atol=1e-6)
+    np.testing.assert_allclose(estimates["exp_estimate"], np.exp(estimates["estimate"]), rtol=1e-12)
+    assert result.model_fit.nobs == len(data.data[["months", "age", "stage"]].dropna()
+                                         .join(data.data["status"]).dropna())
+    assert result.exposure_terms == ("arm[T.control]",)
+
+
+def test_the_two_ties_methods_differ_when_times_are_tied(study):
+    # whole months give many ties, so Efron's and Breslow's approximations must differ (Efron 1977)
+    _, data = study
+    fits = [complete_case_analysis(data.data, model=AnalysisModel(
+        formula="months ~ arm + age + C(stage)", family="cox", event=EventCoding("status", (2,), (1,)), ties=t))
+        .model_fit.coefficients for t in ("efron", "breslow")]
+    assert np.abs(fits[0] - fits[1]).max() > 1e-3
+
+
+def test_params_default_to_efron_and_read_the_event_coding(study):
+    params, _ = study
+    model = analysis_model(params)
+    assert model.ties == "efron" and model.event == EventCoding("status", event=(2,), censored=(1,))
+    plain = Params.from_dict({"data": {"path": "x.csv"}, "analysis": {"formula": "t ~ x", "family": "cox",
+                                                                       "event": "died"}})
+    assert analysis_model(plain).event == EventCoding("died", event=(1,), censored=(0,))
+
+
+def test_missing_time_or_event_is_missing_data_not_censoring(study):
+    params, data = study
+    result = complete_case_analysis(data.data, model=analysis_model(params), reasons=data.reasons,
+                                    not_applicable=data.not_applicable)
+    steps = result.flow.steps.set_index("variable")
+    assert steps.loc["months", "n_lacking"] == 2 and steps.loc["months", "reasons"] == "time not known 2"
+    assert steps.loc["status", "role"] == "event"
+    assert steps.loc["status", "n_lacking"] == 3 and steps.loc["status", "reasons"] == "status not ascertained 3"
+    # a row with an unknown status is left out, not counted as censored: the fit equals the fit
+    # without those rows (reference: PHReg on the rows with every value, as above)
+    coefficients, _ = phreg_by_hand(data.data, "efron")
+    fitted = result.estimates().set_index("term")["estimate"]
+    np.testing.assert_allclose(fitted.loc[coefficients.index], coefficients, atol=1e-6)
+
+
+def test_event_coded_as_text_or_zero_one_gives_the_same_fit(tmp_path):
+    frame = cohort()
+    words = frame.assign(status=frame["status"].map({2: "died", 1: "alive", "-9": "-9"}))
+    zero_one = frame.assign(status=frame["status"].map({2: 1, 1: 0, "-9": "-9"}))
+    fits = []
+    for name, table, event in (("coded", frame, "{column: status, event: [2], censored: [1]}"),
+                               ("words", words, "{column: status, event: [died], censored: [alive]}"),
+                               ("plain", zero_one, "status")):
+        text = PARAMS.replace("event: {column: status, event: [2], censored: [1]}", f"event: {event}")
+        params = load_params(write_study(tmp_path / name, table, text))
+        data = load_study(params)
+        fits.append(complete_case_analysis(data.data, model=analysis_model(params)).model_fit.coefficients)
+    np.testing.assert_allclose(fits[1], fits[0], atol=1e-10)
+    np.testing.assert_allclose(fits[2], fits[0], atol=1e-10)
+
+
+def test_missing_category_fits_the_cox_model_with_a_missing_level(study):
+    # Reference: PHReg on the same rows with the '(missing)' stage level and the age indicator built by hand
+    params, data = study
+    result = missing_category_analysis(data.data, model=analysis_model(params), types=data.types,
+                                       missing=data.missing, reasons=data.reasons,
+                                       not_applicable=data.not_applicable, indicator_for_continuous=True)
+    handling = result.prepared.handling.set_index("variable")
+    assert handling.loc["status", "handling"].startswith("rows dropped")
+    frame = data.data
+    keep = frame["months"].notna() & frame["status"].isin([1.0, 2.0])
+    rows = frame[keep]
+    stage = rows["stage"].astype(object).fillna("(missing)")
+    age_missing = rows["age"].isna().astype(float)
+    exog = pd.DataFrame({"arm[T.control]": (rows["arm"].astype(str) == "control").astype(float),
+                         "C(stage)[T.II]": (stage == "II").astype(float),
+                         "C(stage)[T.III]": (stage == "III").astype(float),
+                         "C(stage)[T.(missing)]": (stage == "(missing)").astype(float),
+                         "age": rows["age"].fillna(frame["age"].mean()),
+                         "age_missing": age_missing})
+    reference = PHReg(rows["months"].to_numpy(float), exog.to_numpy(float),
+                      status=(rows["status"] == 2).to_numpy(float), ties="efron").fit()
+    fitted = result.estimates().set_index("term")["estimate"]
+    np.testing.assert_allclose(fitted.loc[exog.columns], reference.params, atol=1e-6)
+    assert result.model_fit.nobs == int(keep.sum())
+
+
+# ---------------------------------------------------------------------------
+# what check refuses up front (exit 2, one line naming the key, row and id)
+
+def one_line(capsys, argv):
+    assert main([str(a) for a in argv]) == 2
+    _, err = capsys.readouterr()
+    lines = [line for line in err.splitlines() if line.strip()]
+    assert len(lines) == 1 and "Traceback" not in err, err
+    return lines[0]
+
+
+def test_check_refuses_a_follow_up_time_that_is_not_positive(tmp_path, capsys):
+    frame = cohort()
+    frame.loc[20, "months"] = 0
+    frame.loc[30, "months"] = -3
+    line = one_line(capsys, ["check", write_study(tmp_path, frame)])
+    assert "analysis.formula" in line and "data row 21 (id 21)" in line and "not positive in 2 row(s)" in line
+
+
+def test_check_refuses_an_event_value_outside_the_coding(tmp_path, capsys):
+    frame = cohort()
+    frame.loc[40, "status"] = 3
+    line = one_line(capsys, ["check", write_study(tmp_path, frame)])
+    assert "analysis.event" in line and "data row 41 (id 41)" in line and "neither an event value (2)" in line
+
+
+@pytest.mark.parametrize("analysis, needle", [
+    ("{formula: 'months ~ arm', family: cox}", "family cox needs analysis.event"),
+    ("{formula: 'months ~ arm', event: status}", "analysis.event is used only with family: cox"),
+    ("{formula: 'months ~ arm', family: cox, event: status, offset: age}", "family cox takes no offset"),
+    ("{formula: 'months ~ arm', family: cox, event: status, ties: exact}", "'exact' is not one of efron, breslow"),
+    ("{formula: 'months ~ arm', family: cox, event: {column: status, event: [1], censored: [1]}}",
+     "listed both as an event and as censored"),
+    ("{formula: 'months ~ arm', family: cox, event: statuz}", "analysis.event: 'statuz' is not a column"),
+])
+def test_check_refuses_an_inconsistent_time_to_event_model(tmp_path, capsys, analysis, needle):
+    text = PARAMS.split("analysis:")[0] + f"analysis: {analysis}\n"
+    assert needle in one_line(capsys, ["check", write_study(tmp_path, params=text)])
+
+
+def test_check_skips_the_stages_not_built_for_cox_with_a_reason(tmp_path):
+    lines = []
+    plan = preflight(load_params(write_study(tmp_path)), log=lines.append)
+    assert plan.stages == ("audit", "mechanism", "cases", "indicator", "report")
+    assert any(line.startswith("skipped: impute (family cox:") for line in lines)
+    with pytest.raises(InputError, match="stage 'impute' does not run with family cox"):
+        preflight(load_params(write_study(tmp_path)), only=["impute"])
+
+
+# ---------------------------------------------------------------------------
+# the estimators, against hand calculation
+
+def test_nelson_aalen_and_kaplan_meier_by_hand():
+    # Hand calculation (Nelson 1972; Kaplan & Meier 1958): times 2, 3+, 3, 5, 5, 8+ (+ censored)
+    time = np.array([2, 3, 3, 5, 5, 8.0])
+    event = np.array([1, 0, 1, 1, 1, 0])
+    at, hazard = nelson_aalen(time, event)
+    np.testing.assert_allclose(at, [2, 3, 5])
+    np.testing.assert_allclose(hazard, [1 / 6, 1 / 6 + 1 / 5, 1 / 6 + 1 / 5 + 2 / 3])
+    np.testing.assert_allclose(cumulative_hazard_at(time, event), [1 / 6, 11 / 30, 11 / 30, 31 / 30, 31 / 30, 31 / 30])
+    km = kaplan_meier(time, event)
+    np.testing.assert_allclose(km["survival"], [5 / 6, 5 / 6 * 4 / 5, 5 / 6 * 4 / 5 * 1 / 3, 5 / 6 * 4 / 5 * 1 / 3])
+    assert km["at_risk"].tolist() == [6, 5, 3, 1] and km["censored"].tolist() == [0, 1, 0, 1]
+
+
+def test_robust_standard_errors_are_lin_wei_sandwich_even_with_early_censoring():
+    # Reference: statsmodels PHReg.fit(groups=one per row), the Lin & Wei (1989) sandwich, on the
+    # rows that are at risk at some event time; rows censored before the first event add nothing
+    # to the partial likelihood or its score, so the covariance is the same with them.
+    rng = np.random.default_rng(5)
+    n = 200
+    frame = pd.DataFrame({"t": rng.exponential(size=n) + 0.01, "x": rng.normal(size=n),
+                          "d": rng.integers(0, 2, n).astype(float)})
+    first_event = frame.loc[frame["d"] == 1, "t"].min()
+    frame.loc[0, ["t", "d"]] = [first_event / 2, 0.0]  # censored before any event
+    model = AnalysisModel(formula="t ~ x", family="cox", event=EventCoding("d"), robust=True)
+    ours = model.fit(frame).std_errors()
+    at_risk = frame[frame["t"] >= first_event]
+    reference = PHReg(at_risk["t"].to_numpy(), at_risk[["x"]].to_numpy(), status=at_risk["d"].to_numpy(),
+                      ties="breslow").fit(groups=np.arange(len(at_risk)))
+    assert np.isfinite(ours).all()
+    plain = AnalysisModel(formula="t ~ x", family="cox", event=EventCoding("d"), ties="breslow", robust=True)
+    np.testing.assert_allclose(plain.fit(frame).std_errors(), reference.bse, rtol=1e-8)
+
+
+@pytest.mark.slow
+def test_a_cox_study_runs_end_to_end(tmp_path):
+    params = write_study(tmp_path / "study")
+    result = run_gapbook("run", params, "--out", tmp_path / "records", cwd=tmp_path / "study")
+    record = record_path(result)
+    assert "skipped: impute (family cox" in result.stdout + result.stderr
+    estimates = pd.read_csv(record / "tables" / "estimates.csv")
+    assert set(estimates["strategy"]) == {"complete_case", "missing_category"}
+    assert estimates["exp_estimate"].notna().all()
+    assert (record / "figures" / "strategy_comparison.png").is_file()
