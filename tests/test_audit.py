@@ -351,6 +351,11 @@ def test_user_errors_name_the_option(demo_study):
         audit_study(demo_study, threshold=1.5)
     with pytest.raises(InputError, match=r"^top_patterns: "):
         audit_study(demo_study, top_patterns=0)
+    for cap in (0, 100_001, 2.5, True):
+        with pytest.raises(InputError, match=r"^max_patterns: "):
+            audit_study(demo_study, max_patterns=cap)
+    with pytest.raises(InputError, match=r"audit\.max_patterns"):
+        Params.from_dict({"data": {"path": "d.csv"}, "audit": {"max_patterns": 100_001}})
     with pytest.raises(InputError, match=r"^by: 'age' has .* distinct values"):
         audit_study(demo_study, by=["age"])
 
@@ -430,3 +435,69 @@ def test_pattern_order_breaks_ties_as_documented():
     table = pattern_table(count_patterns(missing), ["a", "b", "c", "d"])
     assert table[["a", "b", "c", "d"]].values.tolist() == [[1, 1, 1, 0], [1, 0, 1, 1], [0, 1, 1, 1], [1, 1, 0, 0]]
     assert table["n_rows"].tolist() == [2, 1, 1, 1]
+
+
+# ---------------------------------------------------------------------------
+# the pattern cap (audit.max_patterns)
+
+def test_pattern_cap_by_hand(hand, tmp_path):
+    # Hand count (see test_participants_and_patterns_by_hand): patterns of 2, 2, 1 and 1 rows. A cap of 2
+    # lists the first two and folds the last two (1 + 1 = 2 rows of 6) into one remainder row.
+    capped = audit_study(load_study(_hand_params(), raw=_hand_raw()), threshold=0.20, by=["g"], max_patterns=2)
+    assert capped.patterns["n_rows"].tolist() == [2, 2, 2]
+    assert capped.patterns["pct_rows"].tolist() == pytest.approx([200 / 6] * 3)
+    assert capped.listed_patterns().equals(hand.patterns.head(2))
+    assert capped.unlisted_patterns() == (2, 2)
+    assert capped.patterns.iloc[2, 2:].isna().all()  # n_missing_variables and every variable column blank
+    text = write_csv(capped.patterns, tmp_path / "audit_patterns.csv").read_text()
+    assert text.splitlines()[-1] == "2,33.33333333,,,,,,"  # 2/6*100 in the fixed format %.10g
+    # Everything built from all the patterns is unchanged by the cap.
+    for name in ("audit_participants", "audit_comissingness", "audit_variables", "audit_by_group"):
+        assert capped.tables()[name].equals(hand.tables()[name]), name
+    assert capped.n_patterns == 4 and capped.summary.loc[0, "patterns_listed"] == 2
+    assert hand.summary.loc[0, "patterns_listed"] == 4 and hand.unlisted_patterns() == (0, 0)
+    assert "the other 2 patterns together (2 rows, 33.3 %)" in capped.sentences[-1]
+    assert not any("max_patterns" in sentence for sentence in hand.sentences)
+
+
+def test_a_million_rows_with_scattered_gaps_give_a_small_pattern_table(tmp_path):
+    # 1,000,000 rows x 20 variables, each cell missing with probability 0.3 independently: about 300,000
+    # distinct patterns, nearly one per three rows. The table must stay at max_patterns + 1 rows.
+    rng = np.random.default_rng(20261202)
+    gaps = rng.random((1_000_000, 20)) < 0.3
+    data = pd.DataFrame(np.where(gaps, np.nan, 1.0), columns=[f"v{j}" for j in range(20)])
+    result = audit_frame(data, types={c: "continuous" for c in data.columns}, max_patterns=1000)
+    # Reference: pandas' DataFrame.value_counts of the missingness frame counts the same patterns.
+    reference = pd.DataFrame(gaps, columns=data.columns).value_counts()
+    assert result.n_patterns == len(reference) > 250_000
+    assert len(result.patterns) == 1001
+    listed = result.listed_patterns()
+    # The listed patterns are the 1,000 most common (ties may be broken differently, counts may not).
+    assert listed["n_rows"].tolist() == sorted(reference.to_numpy(), reverse=True)[:1000]
+    keys = [tuple(1 - listed[c].to_numpy(dtype=int)) for c in data.columns]
+    assert [reference[tuple(bool(k) for k in key)] for key in zip(*keys)] == listed["n_rows"].tolist()
+    folded_patterns, folded_rows = result.unlisted_patterns()
+    assert folded_patterns == len(reference) - 1000
+    assert folded_rows == 1_000_000 - int(listed["n_rows"].sum()) == int(result.patterns["n_rows"].iloc[-1])
+    size = write_csv(result.patterns, tmp_path / "audit_patterns.csv").stat().st_size
+    assert size < 100_000  # about 50 bytes a row; the uncapped table was tens of MB
+    # The participants table still counts every row (binomial(20, 0.3) shape, summing to all rows).
+    assert int(result.participants["n_rows"].sum()) == 1_000_000
+
+
+def test_map_keeps_every_missing_cell_when_patterns_are_folded(demo_study):
+    # The remainder band is drawn with each variable's share missing among its rows, so the sliced map
+    # still holds every missing cell of the variables table.
+    from gapbook.plots.audit import _slice_shares, _sorted_patterns
+    capped = audit_study(demo_study, max_patterns=3)
+    assert capped.unlisted_patterns()[0] > 0
+    order, bits, counts = _sorted_patterns(capped)
+    assert len(counts) == 4 and counts.sum() == capped.n_rows
+    shares = _slice_shares(bits, counts, 100)
+    recovered = shares.sum(axis=0) * counts.sum() / 100
+    expected = capped.variables.set_index("variable").loc[order, "n_missing"].to_numpy()
+    assert np.allclose(recovered, expected)
+    import matplotlib.pyplot as plt
+    from gapbook.plots import audit as plots
+    for draw in (plots.missingness_map, plots.common_patterns):
+        plt.close(draw(capped))

@@ -106,6 +106,17 @@ def test_checklist_numbers_match_the_tables(demo):
     assert f"{summary.flow.n_complete:,} (" in summary.results_text
 
 
+def test_checklist_says_when_rarer_patterns_share_the_last_row(demo, tmp_path):
+    params, study, tables, _ = demo
+    capped = audit_study(study, max_patterns=5)
+    # As the report stage reads it back from the record: the remainder row's blanks are NaN.
+    path = tmp_path / "audit_patterns.csv"
+    capped.patterns.to_csv(path, index=False)
+    summary = summarise(params, study, dict(tables, audit_patterns=pd.read_csv(path)))
+    value = summary.checklist.items.set_index("item").loc["missingness patterns", "value"]
+    assert value == "the 5 most common patterns listed; the rarer ones share the last row"
+
+
 def test_small_counts_are_masked_and_zero_and_large_counts_kept():
     # Threshold rule of statistical disclosure control (common practice, no source): 1..min_cell-1 hidden.
     frame = pd.DataFrame({"variable": list("abcd"), "n": [100, 100, 100, 100], "n_missing": [0, 1, 4, 5],

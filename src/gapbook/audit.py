@@ -31,6 +31,7 @@ import pandas as pd
 
 from .errors import InputError, did_you_mean
 from .intake import Study
+from .params import DEFAULT_MAX_PATTERNS, MAX_PATTERNS_LISTED
 from .vocabulary import NOT_APPLICABLE, infer_type
 
 DEFAULT_THRESHOLD = 0.20  # common practice, no source
@@ -114,7 +115,10 @@ class AuditResult:
     ------
     variables : per variable counts (see module docstring for n and pct_missing).
     participants : distribution of the number of variables a row is missing.
-    patterns : one row per missingness pattern, most common first (1 = observed).
+    patterns : one row per missingness pattern, most common first (1 = observed), at most
+        ``max_patterns`` of them; when there are more, one last *remainder* row holds the rows
+        of all the rarer patterns, with n_missing_variables and the variable columns blank
+        (:func:`pattern_table`; :meth:`listed_patterns`, :meth:`unlisted_patterns`).
     comissingness : for each ordered pair of incomplete variables, the rows missing each and
         both, phi, P(B missing), P(B missing | A missing) and lift (:func:`comissingness`).
     comissingness_matrix : phi as a square matrix (incomplete variables only).
@@ -126,6 +130,7 @@ class AuditResult:
     dropout_order : variables from least to most missing (the order used for monotonicity).
     notes : the intake's notes (types inferred, and why), to show with the types table.
     engine : what counted the cells: "pandas" (in memory) or "duckdb" (over the file).
+    max_patterns : the most patterns the pattern table lists one per row.
     """
 
     variables: pd.DataFrame
@@ -152,6 +157,16 @@ class AuditResult:
     sentences: Tuple[str, ...] = ()
     notes: Tuple[str, ...] = ()
     engine: str = "pandas"
+    max_patterns: int = DEFAULT_MAX_PATTERNS
+
+    def listed_patterns(self) -> pd.DataFrame:
+        """The pattern table's rows that are one pattern each (the remainder row left out)."""
+        return self.patterns[self.patterns["n_missing_variables"].notna()]
+
+    def unlisted_patterns(self) -> Tuple[int, int]:
+        """(patterns, rows) folded into the remainder row; (0, 0) when every pattern is listed."""
+        listed = self.listed_patterns()
+        return self.n_patterns - len(listed), self.n_rows - int(listed["n_rows"].sum())
 
     def tables(self) -> Dict[str, pd.DataFrame]:
         """The tables to write, keyed by file name without ``.csv``."""
@@ -385,29 +400,52 @@ def patterns_from_words(words: np.ndarray, counts: np.ndarray, n_variables: int)
     return PatternCounts(bits, np.asarray(counts, dtype=np.int64))
 
 
-def pattern_table(patterns: PatternCounts, names: Sequence[str]) -> pd.DataFrame:
+def pattern_table(patterns: PatternCounts, names: Sequence[str], *,
+                  max_patterns: Optional[int] = None) -> pd.DataFrame:
     """One row per pattern: n_rows, pct_rows, n_missing_variables, then 0/1 per variable (1 = observed).
 
     Sorted by n_rows descending, then fewer missing variables first, then the pattern read
     left to right with observed before missing, so the order is fully determined.
 
+    With more than ``max_patterns`` patterns, the first ``max_patterns`` in that order are
+    listed and one remainder row follows: its n_rows and pct_rows are the rows of every
+    other pattern together, and its n_missing_variables and variable columns are blank (it
+    is no single pattern). A million rows with scattered gaps can have a pattern per row;
+    the cap keeps the table a readable size while the counts built from every pattern
+    (participants, co-missingness, monotonicity) stay exact.
+
     Parameters
     ----------
     patterns : from :func:`count_patterns` (already in pattern order).
     names : the variable names, in column order.
+    max_patterns : the most patterns listed one per row; None lists them all.
 
     Returns
     -------
-    DataFrame
+    DataFrame; n_missing_variables and the variable columns are nullable integers.
     """
     bits, counts = patterns.missing_bits, patterns.n_rows
     n_missing = bits.sum(axis=1, dtype=np.int64)
     order = np.lexsort((np.arange(len(counts)), n_missing, -counts))
     total = int(counts.sum())
+    folded = order[max_patterns:] if max_patterns is not None else order[:0]
+    order = order[:max_patterns] if max_patterns is not None else order
+    listed_rows = counts[order]
+    missing_listed = n_missing[order]
     observed = (1 - bits[order]).astype(np.int8)
-    head = pd.DataFrame({"n_rows": counts[order], "pct_rows": counts[order] / total * 100 if total else np.nan,
-                         "n_missing_variables": n_missing[order]})
-    body = pd.DataFrame(observed, columns=list(names))
+    if len(folded):
+        listed_rows = np.append(listed_rows, int(counts[folded].sum()))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        pct = listed_rows / total * 100 if total else np.full(len(listed_rows), np.nan)
+    head = pd.DataFrame({"n_rows": listed_rows.astype(np.int64), "pct_rows": pct,
+                         "n_missing_variables": pd.array(np.append(missing_listed, 0) if len(folded)
+                                                         else missing_listed, dtype="Int64")})
+    body = pd.DataFrame({j: pd.array(np.append(observed[:, j], 0) if len(folded) else observed[:, j], dtype="Int8")
+                         for j in range(len(names))})
+    body.columns = list(names)
+    if len(folded):  # the remainder row is no single pattern: nothing to say per variable
+        head.loc[len(order), "n_missing_variables"] = pd.NA
+        body.loc[len(order), :] = pd.NA
     return pd.concat([head, body], axis=1)
 
 
@@ -679,7 +717,8 @@ def by_group_table(counts: GroupCounts, names: Sequence[str]) -> pd.DataFrame:
 
 def audit_frame(data: pd.DataFrame, *, reasons: Optional[pd.DataFrame] = None,
                 types: Optional[Mapping[str, str]] = None, threshold: float = DEFAULT_THRESHOLD,
-                by: Sequence[str] = (), top_patterns: int = 15) -> AuditResult:
+                by: Sequence[str] = (), top_patterns: int = 15,
+                max_patterns: int = DEFAULT_MAX_PATTERNS) -> AuditResult:
     """Audit the missingness of a plain DataFrame (values, optionally with a frame of reasons).
 
     Parameters
@@ -693,12 +732,13 @@ def audit_frame(data: pd.DataFrame, *, reasons: Optional[pd.DataFrame] = None,
         (0.20 is common practice, no source).
     by : grouping variables for the by-group table.
     top_patterns : how many of the most common patterns the figures show.
+    max_patterns : the most patterns the pattern table lists one per row (the rest share a remainder row).
 
     Returns
     -------
     AuditResult (range_issues, extremes and types are empty/inferred for a plain frame).
     """
-    _check_options(threshold, top_patterns)
+    _check_options(threshold, top_patterns, max_patterns)
     if reasons is None:
         reasons = reasons_from_values(data)
     if list(reasons.columns) != list(data.columns) or len(reasons) != len(data):
@@ -709,11 +749,11 @@ def audit_frame(data: pd.DataFrame, *, reasons: Optional[pd.DataFrame] = None,
     types_table = pd.DataFrame({"variable": list(data.columns), "type": [types.get(c, "") for c in data.columns]})
     return _audit(data, reasons, dict(types), float(threshold), by, int(top_patterns),
                   _empty_review(["variable", "id", "value", "rule", "action"]),
-                  _empty_review(["variable", "id", "value", "median", "robust_z"]), types_table)
+                  _empty_review(["variable", "id", "value", "median", "robust_z"]), types_table, int(max_patterns))
 
 
 def audit_study(study: Study, *, threshold: float = DEFAULT_THRESHOLD, by: Sequence[str] = (),
-                top_patterns: int = 15) -> AuditResult:
+                top_patterns: int = 15, max_patterns: int = DEFAULT_MAX_PATTERNS) -> AuditResult:
     """Audit a study after intake: missing counts by reason, patterns, co-missingness, groups.
 
     Parameters
@@ -723,6 +763,7 @@ def audit_study(study: Study, *, threshold: float = DEFAULT_THRESHOLD, by: Seque
         no source).
     by : grouping variables, e.g. arm, clinic.
     top_patterns : how many of the most common patterns the figures show.
+    max_patterns : the most patterns the pattern table lists one per row (the rest share a remainder row).
 
     Returns
     -------
@@ -733,11 +774,11 @@ def audit_study(study: Study, *, threshold: float = DEFAULT_THRESHOLD, by: Seque
     Little RJA, Rubin DB (2019). Statistical Analysis with Missing Data, 3rd ed. Wiley
     (missingness patterns, monotone patterns).
     """
-    _check_options(threshold, top_patterns)
+    _check_options(threshold, top_patterns, max_patterns)
     by = _grouping_variables(by, study.data.columns)
     result = _audit(study.data, study.reasons, study.types, float(threshold), by, int(top_patterns),
                     study.range_issues.reset_index(drop=True), study.extreme_values.reset_index(drop=True),
-                    study.variables_table())
+                    study.variables_table(), int(max_patterns))
     return dataclasses.replace(result, notes=tuple(study.notes))
 
 
@@ -767,14 +808,15 @@ def count_missingness(data: pd.DataFrame, reasons: pd.DataFrame, by: Sequence[st
 
 def _audit(data: pd.DataFrame, reasons: pd.DataFrame, types: Mapping[str, str], threshold: float,
            by: Tuple[str, ...], top_patterns: int, range_issues: pd.DataFrame, extremes: pd.DataFrame,
-           types_table: pd.DataFrame) -> AuditResult:
+           types_table: pd.DataFrame, max_patterns: int) -> AuditResult:
     return audit_from_counts(count_missingness(data, reasons, by), types=types, threshold=threshold,
                              top_patterns=top_patterns, range_issues=range_issues, extremes=extremes,
-                             types_table=types_table)
+                             types_table=types_table, max_patterns=max_patterns)
 
 
 def audit_from_counts(counts: MissingnessCounts, *, types: Mapping[str, str], threshold: float, top_patterns: int,
-                      range_issues: pd.DataFrame, extremes: pd.DataFrame, types_table: pd.DataFrame) -> AuditResult:
+                      range_issues: pd.DataFrame, extremes: pd.DataFrame, types_table: pd.DataFrame,
+                      max_patterns: int = DEFAULT_MAX_PATTERNS) -> AuditResult:
     """Build every audit table from the counts (the one table builder for every engine).
 
     Parameters
@@ -784,6 +826,7 @@ def audit_from_counts(counts: MissingnessCounts, *, types: Mapping[str, str], th
     threshold : missing fraction above which a variable is flagged.
     top_patterns : how many of the most common patterns the figures show.
     range_issues, extremes, types_table : the intake's review lists and types table.
+    max_patterns : the most patterns the pattern table lists (the rest share one remainder row).
 
     Returns
     -------
@@ -793,7 +836,7 @@ def audit_from_counts(counts: MissingnessCounts, *, types: Mapping[str, str], th
     patterns = counts.patterns
     variables, reason_table = variable_table(counts.reasons, names, counts.n_rows, types, threshold)
     participants = participant_table(patterns)
-    pattern_frame = pattern_table(patterns, names)
+    pattern_frame = pattern_table(patterns, names, max_patterns=max_patterns)
     missing_counts = variables["n_missing"].to_numpy()
     order = dropout_order(missing_counts, names)
     order_index = [names.index(v) for v in order]
@@ -819,6 +862,7 @@ def audit_from_counts(counts: MissingnessCounts, *, types: Mapping[str, str], th
         "missing_cells": missing_cells_total, "applicable_cells": applicable_cells,
         "pct_missing_cells": missing_cells_total / applicable_cells * 100 if applicable_cells else float("nan"),
         "not_applicable_cells": int(variables["n_not_applicable"].sum()),
+        "patterns_listed": int(min(len(patterns.n_rows), max_patterns)),
     }])
     result = AuditResult(
         variables=variables, participants=participants, patterns=pattern_frame, comissingness=comissing_long,
@@ -826,7 +870,7 @@ def audit_from_counts(counts: MissingnessCounts, *, types: Mapping[str, str], th
         range_issues=range_issues, extremes=extremes, types=types_table,
         n_rows=n_rows, n_variables=n_vars, n_complete_rows=complete, n_patterns=int(len(patterns.n_rows)),
         monotone=monotone, pct_rows_in_dropout_order=in_order, dropout_order=order, threshold=threshold,
-        top_patterns=top_patterns, by=by,
+        top_patterns=top_patterns, by=by, max_patterns=max_patterns,
     )
     return dataclasses.replace(result, sentences=audit_sentences(result))
 
@@ -843,10 +887,21 @@ def audit_sentences(result: AuditResult) -> Tuple[str, ...]:
         f"{int(summary['over_threshold_variables'])} lack more than {result.threshold:.0%} of their values.",
         f"Of all cells that apply, {summary['pct_missing_cells']:.1f} % are missing.",
         f"The rows fall into {result.n_patterns:,} missingness patterns, which are {pattern_words}.",
-    )
+    ) + _remainder_sentence(result)
 
 
-def _check_options(threshold: float, top_patterns: int) -> None:
+def _remainder_sentence(result: AuditResult) -> Tuple[str, ...]:
+    folded_patterns, folded_rows = result.unlisted_patterns()
+    if not folded_patterns:
+        return ()
+    listed = result.n_patterns - folded_patterns
+    pct = folded_rows / result.n_rows * 100 if result.n_rows else float("nan")
+    return (f"The pattern table lists the {listed:,} most common patterns, one per row (max_patterns = "
+            f"{result.max_patterns:,}); its last row holds the other {folded_patterns:,} patterns together "
+            f"({folded_rows:,} rows, {pct:.1f} %), with the variable columns left blank.",)
+
+
+def _check_options(threshold: float, top_patterns: int, max_patterns: int = DEFAULT_MAX_PATTERNS) -> None:
     try:
         value = float(threshold)
     except (TypeError, ValueError):
@@ -856,6 +911,10 @@ def _check_options(threshold: float, top_patterns: int) -> None:
         raise InputError(f"{threshold} is outside 0 to 1; give a fraction, e.g. 0.20 for 20 %", option="threshold")
     if isinstance(top_patterns, bool) or not isinstance(top_patterns, (int, np.integer)) or top_patterns < 1:
         raise InputError(f"'{top_patterns}' must be a whole number of at least 1, e.g. 15", option="top_patterns")
+    if (isinstance(max_patterns, bool) or not isinstance(max_patterns, (int, np.integer))
+            or not 1 <= max_patterns <= MAX_PATTERNS_LISTED):
+        raise InputError(f"'{max_patterns}' must be a whole number from 1 to {MAX_PATTERNS_LISTED:,}, e.g. "
+                         f"{DEFAULT_MAX_PATTERNS}", option="max_patterns")
 
 
 def _grouping_variables(by, columns: Sequence[str]) -> Tuple[str, ...]:

@@ -13,7 +13,7 @@ from typing import Dict, List, Sequence
 import numpy as np
 import pandas as pd
 
-from .audit import (DEFAULT_THRESHOLD, AuditResult, GroupCounts, MissingnessCounts, _check_options,
+from .audit import (DEFAULT_MAX_PATTERNS, DEFAULT_THRESHOLD, AuditResult, GroupCounts, MissingnessCounts, _check_options,
                     _grouping_variables, audit_from_counts, group_codes, patterns_from_words)
 from .vocabulary import NOT_APPLICABLE
 from .intake_duckdb import ScannedColumn, ScannedStudy
@@ -99,7 +99,7 @@ def _group_counts(scanned: ScannedStudy, name: str, i: int, table: pd.DataFrame,
 
 
 def audit_scanned(scanned: ScannedStudy, *, threshold: float = DEFAULT_THRESHOLD, by: Sequence[str] = (),
-                  top_patterns: int = 15) -> AuditResult:
+                  top_patterns: int = 15, max_patterns: int = DEFAULT_MAX_PATTERNS) -> AuditResult:
     """Audit a study read by DuckDB: the same tables as :func:`gapbook.audit.audit_study`, counted in SQL.
 
     Parameters
@@ -108,12 +108,13 @@ def audit_scanned(scanned: ScannedStudy, *, threshold: float = DEFAULT_THRESHOLD
     threshold : missing fraction above which a variable is flagged (0.20 is common practice, no source).
     by : grouping variables.
     top_patterns : how many of the most common patterns the figures show.
+    max_patterns : the most patterns the pattern table lists one per row (the rest share a remainder row).
 
     Returns
     -------
     AuditResult
     """
-    _check_options(threshold, top_patterns)
+    _check_options(threshold, top_patterns, max_patterns)
     names = list(scanned.columns)
     by = _grouping_variables(by, names)
     reasons, groups = count_reasons_sql(scanned, by)
@@ -123,5 +124,5 @@ def audit_scanned(scanned: ScannedStudy, *, threshold: float = DEFAULT_THRESHOLD
     result = audit_from_counts(counts, types=types, threshold=float(threshold), top_patterns=int(top_patterns),
                                range_issues=scanned.range_issues.reset_index(drop=True),
                                extremes=scanned.extreme_values.reset_index(drop=True),
-                               types_table=scanned.variables_table())
+                               types_table=scanned.variables_table(), max_patterns=int(max_patterns))
     return dataclasses.replace(result, notes=tuple(scanned.notes), engine="duckdb")

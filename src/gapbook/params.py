@@ -47,7 +47,9 @@ MAX_JOBS = 256               # parallel workers
 MAX_REPLICATES = 10_000      # simulation replicates
 MAX_GRID = 101               # values in one delta grid (per variable, or per group)
 MAX_DELTA_VARIABLES = 20     # variables with a delta grid
-MAX_TOP_PATTERNS = 1_000     # missingness patterns listed
+MAX_TOP_PATTERNS = 1_000     # missingness patterns shown in the figures
+MAX_PATTERNS_LISTED = 100_000  # missingness patterns listed one per row in audit_patterns.csv (~10 MB)
+DEFAULT_MAX_PATTERNS = 1_000   # the rarer patterns share the table's last row
 MAX_EM_ITERATIONS = 100_000  # EM iterations for Little's test
 MAX_SEED = 2 ** 63 - 1
 MAX_LIST = 1_000             # markers, reasons, levels, predictors ... in one list
@@ -153,6 +155,7 @@ class AuditSection(_Section):
     threshold: float = Field(0.20, ge=0, le=1)
     by: List[str] = Field(default_factory=list)
     top_patterns: int = Field(15, ge=1, le=MAX_TOP_PATTERNS)
+    max_patterns: int = Field(DEFAULT_MAX_PATTERNS, ge=1, le=MAX_PATTERNS_LISTED)
 
     @field_validator("by", mode="before")
     @classmethod

@@ -486,7 +486,7 @@ def build_checklist(flow: ParticipantFlow, missing: MissingSummary, tables: Mapp
     patterns = tables.get("audit_patterns")
     items.append(ChecklistItem(
         "missingness patterns", "Sterne et al. 2009", "tables/audit_patterns.csv",
-        f"{len(patterns)} patterns listed" if patterns is not None else "audit stage not run"))
+        _patterns_listed(patterns) if patterns is not None else "audit stage not run"))
     mcar = tables.get("mcar_test")
     if mcar is not None and len(mcar):
         first = mcar.iloc[0]
@@ -536,6 +536,14 @@ def build_checklist(flow: ParticipantFlow, missing: MissingSummary, tables: Mapp
         simulation_phrase(performance) if performance is not None else "simulation stage not run"))
     table = pd.DataFrame([item.__dict__ for item in items], columns=["item", "guideline", "answered_in", "value"])
     return Checklist(items=table)
+
+
+def _patterns_listed(patterns: pd.DataFrame) -> str:
+    """How many patterns audit_patterns.csv lists; a last row with blank pattern columns holds the rarer ones."""
+    folded = patterns["n_missing_variables"].isna() if "n_missing_variables" in patterns else pd.Series(False)
+    if not folded.any():
+        return f"{len(patterns)} patterns listed"
+    return f"the {int((~folded).sum())} most common patterns listed; the rarer ones share the last row"
 
 
 def _suppress_reasons(text: str, min_cell: int) -> str:

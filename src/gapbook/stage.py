@@ -417,7 +417,8 @@ class StageContext:
         engine, why = (("pandas", "a follow-up design is read in memory") if self.params.is_followup
                        else choose_engine(self.params))
         section = self.params.audit
-        options = dict(threshold=section.threshold, by=section.by, top_patterns=section.top_patterns)
+        options = dict(threshold=section.threshold, by=section.by, top_patterns=section.top_patterns,
+                       max_patterns=section.max_patterns)
         with params_errors(self.params, "audit"):
             if engine == "duckdb":
                 with scan_study(self.params) as scanned:

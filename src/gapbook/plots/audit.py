@@ -25,16 +25,28 @@ MAP_SLICES = 400  # vertical resolution of the map: beyond this many rows, rows 
 
 
 def _sorted_patterns(result):
-    """Pattern bits (1 = missing) with columns in dropout order and rows sorted into a staircase."""
+    """Pattern bits (1 = missing) with columns in dropout order and rows sorted into a staircase.
+
+    The listed patterns come first; the patterns folded into the table's remainder row follow
+    as one last band whose entries are the share of its rows missing each variable (the
+    variables' missing counts less those of the listed patterns), so every missing cell is drawn.
+    """
     order = list(result.dropout_order)
-    observed = result.patterns[order].to_numpy(dtype=np.int8)
-    bits = 1 - observed
-    counts = result.patterns["n_rows"].to_numpy(dtype=np.int64)
+    listed = result.listed_patterns()
+    bits = 1.0 - listed[order].to_numpy(dtype=np.float64)
+    counts = listed["n_rows"].to_numpy(dtype=np.int64)
     n_missing = bits.sum(axis=1)
     # Fewer gaps first; among equals, gaps in the later (more often missing) columns first.
     keys = [bits[:, j] for j in range(bits.shape[1] - 1, -1, -1)] + [n_missing]
     rank = np.lexsort(keys) if bits.shape[1] else np.argsort(n_missing, kind="stable")
-    return order, bits[rank], counts[rank]
+    bits, counts = bits[rank], counts[rank]
+    _, folded_rows = result.unlisted_patterns()
+    if folded_rows:
+        missing = result.variables.set_index("variable").loc[order, "n_missing"].to_numpy(dtype=np.float64)
+        share = (missing - (bits * counts[:, None]).sum(axis=0)) / folded_rows
+        bits = np.vstack([bits, np.clip(share, 0.0, 1.0)])
+        counts = np.append(counts, folded_rows)
+    return order, bits, counts
 
 
 def _slice_shares(bits: np.ndarray, counts: np.ndarray, slices: int) -> np.ndarray:
@@ -73,6 +85,7 @@ def missingness_map(result, max_slices: int = MAP_SLICES):
     matplotlib Figure.
     """
     order, bits, counts = _sorted_patterns(result)
+    folded_patterns, _ = result.unlisted_patterns()
     total = int(counts.sum())
     n_variables = len(order)
     if n_variables > MAX_VARIABLES_SHOWN:  # the most missing variables (the right end of the order)
@@ -95,10 +108,12 @@ def missingness_map(result, max_slices: int = MAP_SLICES):
             axes.axhline(edge, color=BACKGROUND, linewidth=0.5)
     starts = np.concatenate([[0.0], edges])
     ends = np.concatenate([edges, [100.0]])
-    labelled = [(0.5 * (a + b), b - a) for a, b in zip(starts, ends) if b - a >= PATTERN_LABEL_SHARE]
+    labelled = [(0.5 * (a + b), f"{b - a:.0f} %") for a, b in zip(starts, ends) if b - a >= PATTERN_LABEL_SHARE]
+    if folded_patterns and labelled and ends[-1] - starts[-1] >= PATTERN_LABEL_SHARE:
+        labelled[-1] = (labelled[-1][0], f"{labelled[-1][1]}: {folded_patterns:,} rarer patterns")
     right = axes.twinx()
     right.set_ylim(100, 0)
-    right.set_yticks([c for c, _ in labelled], [f"{w:.0f} %" for _, w in labelled], fontsize=7)
+    right.set_yticks([c for c, _ in labelled], [text for _, text in labelled], fontsize=7)
     right.tick_params(length=0)
     right.spines[["top", "right", "left", "bottom"]].set_visible(False)
     right.set_ylabel("share of rows with that pattern", fontsize=8)
@@ -107,11 +122,14 @@ def missingness_map(result, max_slices: int = MAP_SLICES):
     axes.set_ylabel("rows, sorted by missingness pattern (% of rows)")
     axes.set_xlabel("variables, from least to most missing")
     shape = "monotone (dropout)" if result.monotone else "not monotone"
+    folded = (f"\nthe {folded_patterns:,} rarer patterns drawn as one band at the bottom, shaded by share missing"
+              if folded_patterns else "")
     axes.set_title(f"Where are the gaps, and do they line up across rows?\n{total:,} rows in "
-                   f"{result.n_patterns:,} patterns, {shape}{shown_of(len(order), n_variables)}", fontsize=10)
-    if slices < total:
+                   f"{result.n_patterns:,} patterns, {shape}{shown_of(len(order), n_variables)}{folded}", fontsize=10)
+    if slices < total or folded_patterns:
         bar = figure.colorbar(image, ax=[axes, right], fraction=0.04, location="bottom", aspect=40)
-        bar.set_label(f"share missing within each slice of {total / slices:,.0f} rows", fontsize=8)
+        bar.set_label(f"share missing within each slice of {total / slices:,.0f} rows" if slices < total
+                      else "share missing (the rarer patterns' band: share of its rows)", fontsize=8)
     else:
         axes.legend(handles=[Patch(color=scale("observed_to_missing")(0.0), label="observed or not applicable"),
                              Patch(color=MISSING, label="missing")],
@@ -316,7 +334,7 @@ def common_patterns(result, top: int = None):
     matplotlib Figure.
     """
     top = min(int(top or result.top_patterns), MAX_VARIABLES_SHOWN)  # the table lists them all
-    table = result.patterns.head(top)
+    table = result.listed_patterns().head(top)
     # Name the gaps in dropout order so the same variables always appear in the same order.
     order = list(result.dropout_order)
     labels = [_pattern_label([v for v in order if row[v] == 0]) for _, row in table.iterrows()]
