@@ -857,6 +857,55 @@ def _with_reason(reasons: pd.Series, where: np.ndarray, reason: str) -> pd.Serie
     return cat
 
 
+@dataclass(frozen=True)
+class ConditionCounts:
+    """How an ``applies_if`` condition came out over the rows: what its warnings are built from.
+
+    ``n_known`` rows where it is true or false (not unknown), ``n_true`` and ``n_false`` of
+    them; ``n_recorded`` cells of the variable holding a value as read, ``n_recorded_false``
+    of them in rows where the condition is false.
+    """
+
+    n_rows: int
+    n_known: int
+    n_true: int
+    n_false: int
+    n_recorded: int
+    n_recorded_false: int
+
+
+def applicability_warnings(label: str, name: str, text: str, counts: ConditionCounts,
+                           rows_note_of_recorded: Callable[[], str]) -> List[str]:
+    """The warnings about one ``applies_if`` condition (true for no row or every row, values set aside).
+
+    Parameters
+    ----------
+    label : the params file, for the messages.
+    name : the variable the condition belongs to.
+    text : the condition as written.
+    counts : how the condition came out (:class:`ConditionCounts`).
+    rows_note_of_recorded : gives the note naming the first rows that hold a value where the
+        condition is false (called only when that warning is given).
+
+    Returns
+    -------
+    list of str
+    """
+    key = f"variables.{name}.applies_if"
+    shown = one_line(text, 80)
+    out = []
+    if counts.n_known and not counts.n_true:
+        out.append(f"{label}: {key} '{shown}' is true for no row: every value of '{name}' is treated as not "
+                   f"applicable ({counts.n_recorded} recorded values set aside); check the condition's names "
+                   "and levels")
+    elif counts.n_known == counts.n_rows and not counts.n_false:
+        out.append(f"{label}: {key} '{shown}' is true for every row: no value of '{name}' is marked not applicable")
+    if counts.n_recorded_false and counts.n_true:
+        out.append(f"{label}: {key} '{shown}' is false for {counts.n_recorded_false} rows that hold a value of "
+                   f"'{name}' ({rows_note_of_recorded()}); those values are treated as not applicable")
+    return out
+
+
 def _apply_applicability(data: pd.DataFrame, reasons: pd.DataFrame, params: Params, label: str,
                          conditions: Optional[Mapping[str, Any]] = None, ids: Optional[pd.Series] = None,
                          warnings: Optional[List[str]] = None) -> Tuple[pd.DataFrame, pd.DataFrame]:
@@ -879,21 +928,14 @@ def _apply_applicability(data: pd.DataFrame, reasons: pd.DataFrame, params: Para
     for name, expression in conditions.items():
         result = expression.evaluate(as_read)
         not_applicable = result == 0
-        key = f"variables.{name}.applies_if"
-        shown = one_line(expression.text, 80)
-        known = ~np.isnan(result)
-        if known.any() and not (result == 1).any():
-            warnings.append(f"{params.label}: {key} '{shown}' is true for no row: every value of '{name}' is "
-                            f"treated as not applicable ({int(as_read[name].notna().sum())} recorded values set "
-                            "aside); check the condition's names and levels")
-        elif known.all() and not not_applicable.any():
-            warnings.append(f"{params.label}: {key} '{shown}' is true for every row: no value of '{name}' is "
-                            "marked not applicable")
         recorded = not_applicable & as_read[name].notna().to_numpy()
-        if recorded.any() and (result == 1).any():
-            rows = np.flatnonzero(recorded)
-            warnings.append(f"{params.label}: {key} '{shown}' is false for {len(rows)} rows that hold a value of "
-                            f"'{name}' ({_rows_note(rows, ids)}); those values are treated as not applicable")
+        rows = np.flatnonzero(recorded)
+        warnings.extend(applicability_warnings(
+            params.label, name, expression.text, ConditionCounts(
+                n_rows=len(result), n_known=int((~np.isnan(result)).sum()), n_true=int((result == 1).sum()),
+                n_false=int(not_applicable.sum()), n_recorded=int(as_read[name].notna().sum()),
+                n_recorded_false=len(rows)),
+            lambda: _rows_note(rows, ids)))
         if not_applicable.any():
             reasons[name] = _with_reason(reasons[name], not_applicable, NOT_APPLICABLE)
             data[name] = data[name].mask(not_applicable)

@@ -33,13 +33,16 @@ import numpy as np
 import pandas as pd
 
 from .errors import InputError
+from .expressions import Expression
+from .expressions_sql import SqlColumn, compile_condition, layered_select
 from .intake import (EXTREME_COLUMNS, IMPLAUSIBLE, MAD_TO_SD, RANGE_ACTIONS, RANGE_COLUMNS, ColumnDecision,
-                     DistinctCells, EveryValueNeeded, PlainNumbers, VariableInfo, _format_of, _refuse_markers_that_are_levels,
-                     _text_header, blank_id_error, check_declared_columns, check_expression_columns, clean_id,
-                     decide_column, duplicate_id_error, inferred_notes, marker_table, range_action, range_rule,
-                     read_table, rows_note, sha256_of, variables_table)
+                     ConditionCounts, DistinctCells, EveryValueNeeded, PlainNumbers, VariableInfo, _format_of,
+                     _refuse_markers_that_are_levels, _text_header, applicability_warnings, blank_id_error,
+                     check_declared_columns, check_expression_columns, clean_id, decide_column, duplicate_id_error,
+                     inferred_notes, marker_table, range_action, range_rule, read_table, rows_note, sha256_of,
+                     variables_table)
 from .params import Params, VariableSpec
-from .vocabulary import CATEGORICAL_TYPES, NUMERIC_TYPES
+from .vocabulary import CATEGORICAL_TYPES, NOT_APPLICABLE, NUMERIC_TYPES
 
 AUTO_DUCKDB_BYTES = 100 * 2**20  # data.engine auto: files larger than 100 MiB are read with DuckDB
 MEMORY_LIMIT = "1GB"  # DuckDB spills to its private temporary folder beyond this
@@ -61,8 +64,8 @@ def choose_engine(params: Params) -> Tuple[str, str]:
     """The engine that reads the params' data file, and why (one sentence for the page).
 
     ``data.engine: auto`` picks DuckDB for CSV, TSV and Parquet files larger than
-    ``AUTO_DUCKDB_BYTES`` and pandas otherwise; ``applies_if`` conditions keep a file on
-    pandas (the expression language is evaluated there).
+    ``AUTO_DUCKDB_BYTES`` and pandas otherwise (``applies_if`` conditions are compiled to
+    SQL, :mod:`gapbook.expressions_sql`).
 
     Parameters
     ----------
@@ -74,13 +77,9 @@ def choose_engine(params: Params) -> Tuple[str, str]:
     """
     declared = params.data.engine
     path = params.data_path
-    conditions = sorted(name for name, spec in params.variables.items() if spec.applies_if)
     if declared == "pandas":
         return "pandas", "data.engine is pandas"
     if declared == "duckdb":
-        if conditions:
-            raise InputError(f"{params.label}: data.engine duckdb cannot evaluate variables.{conditions[0]}.applies_if "
-                             "yet; set data.engine to pandas or auto")
         _duckdb_format(params)
         return "duckdb", "data.engine is duckdb"
     size = path.stat().st_size if path.is_file() else 0
@@ -90,9 +89,6 @@ def choose_engine(params: Params) -> Tuple[str, str]:
         _duckdb_format(params)
     except InputError:
         return "pandas", "data.engine auto: DuckDB does not read this file's format or text encoding"
-    if conditions:
-        return "pandas", (f"data.engine auto: the file is above {_mib(AUTO_DUCKDB_BYTES)}, but applies_if conditions "
-                          "are evaluated with pandas")
     return "duckdb", f"data.engine auto: the file ({size / 2**20:.0f} MiB) is above {_mib(AUTO_DUCKDB_BYTES)}"
 
 
@@ -257,13 +253,13 @@ def scan_study(params: Params) -> ScannedStudy:
         raise InputError(f"{label}: a column has no name in the header row; data.engine duckdb needs every column "
                          "named: name it in the file, or set data.engine to pandas")
     check_declared_columns(params, list(header.columns), label)
-    check_expression_columns(params, [c for c in header.columns if c != params.data.id])
+    conditions = check_expression_columns(params, [c for c in header.columns if c != params.data.id])
     _refuse_markers_that_are_levels(params)
     workdir = tempfile.mkdtemp(prefix="gapbook-duckdb-")  # private (0700) folder for the database and spills
     connection = _connect(workdir)
     cleanup = weakref.finalize(connection, _close, connection, workdir)
     try:
-        scanner = _Scanner(connection, params, path, fmt, list(header.columns), label)
+        scanner = _Scanner(connection, params, path, fmt, list(header.columns), label, conditions)
         study = scanner.scan()
     except duckdb.Error as exc:
         cleanup()
@@ -278,8 +274,10 @@ def scan_study(params: Params) -> ScannedStudy:
 class _Scanner:
     """The steps of :func:`scan_study`; holds the connection and the names of the SQL relations."""
 
-    def __init__(self, connection, params: Params, path: Path, fmt: str, names: List[str], label: str):
+    def __init__(self, connection, params: Params, path: Path, fmt: str, names: List[str], label: str,
+                 conditions: Mapping[str, Expression]):
         self.con = connection
+        self.conditions = dict(conditions)
         self.params = params
         self.path = path
         self.fmt = fmt
@@ -512,6 +510,8 @@ class _Scanner:
         implausible = (lo is not None or hi is not None) and range_action(self.params, name) == "missing"
         if implausible and IMPLAUSIBLE not in labels:
             labels.append(IMPLAUSIBLE)
+        if name in self.conditions and NOT_APPLICABLE not in labels:
+            labels.append(NOT_APPLICABLE)
         by_reason: Dict[int, List[Any]] = {}
         kept: List[int] = []
         for i, reason in enumerate(decision.reasons):
@@ -558,22 +558,70 @@ class _Scanner:
             if column.code_sql is not None:
                 parts.append(f"{column.code_sql} AS k0_{a}")
         self.con.execute(f"CREATE VIEW decided AS SELECT {', '.join(parts)} FROM cells")
+        bindings = self._condition_bindings(columns)
         final = ["rn", "id"]
         for column in columns.values():
             a = column.alias
-            final.append(f"r0_{a} AS r_{a}")
+            reason = f"r0_{a}"
+            if column.name in self.conditions:
+                # Outside the condition the cell is not applicable, whatever it holds; where the condition is
+                # unknown (an input missing) the cell stays as it is (Kleene: NOT NULL is NULL).
+                reason = f"(CASE WHEN NOT a_{a} THEN {column.label_code(NOT_APPLICABLE)} ELSE r0_{a} END)::SMALLINT"
+                final += [f"a_{a}", f"{'v0' if column.value_sql is not None else 'k0'}_{a} AS n0_{a}"]
+            final.append(f"{reason} AS r_{a}")
             if column.value_sql is not None:
-                final += [f"v0_{a}", f"CASE WHEN r0_{a} = -1 THEN v0_{a} END AS v_{a}"]
+                final += [f"v0_{a}", f"CASE WHEN {reason} = -1 THEN v0_{a} END AS v_{a}"]
             if column.code_sql is not None:
-                final.append(f"CASE WHEN r0_{a} = -1 THEN k0_{a} END AS k_{a}")
+                final.append(f"CASE WHEN {reason} = -1 THEN k0_{a} END AS k_{a}")
         # The decided rows are written once into DuckDB's own (compressed) storage: every later pass then
         # scans plain columns instead of evaluating the raw cells' expressions again (three times faster
         # over 3 million rows x 30 columns than passes over a view).
-        self.con.execute(f"CREATE TABLE study AS SELECT {', '.join(final)} FROM decided")
+        self.con.execute(f"CREATE TABLE study AS SELECT {', '.join(final)} FROM {layered_select('decided', bindings)}")
         if self.fmt != "parquet":
             self.con.execute("DROP VIEW IF EXISTS cells")
             self.con.execute("DROP VIEW raw")
             self.con.execute("DROP TABLE raw_table")
+
+    # -- applies_if --------------------------------------------------------------------------
+
+    def _condition_bindings(self, columns: Dict[str, ScannedColumn]) -> List[Tuple[str, str, int]]:
+        """Each condition compiled to SQL over the as-read values, as the binding ``a_<alias>`` (and its parts)."""
+        readable = {}
+        for name, column in columns.items():
+            if column.value_sql is not None:
+                readable[name] = SqlColumn(f"v0_{column.alias}")
+            else:
+                spec = self.params.variables.get(name, VariableSpec())
+                readable[name] = SqlColumn(f"k0_{column.alias}", categories=tuple(column.decision.categories),
+                                           ordered=spec.type == "ordinal")
+        bindings: List[Tuple[str, str, int]] = []
+        for name, expression in self.conditions.items():
+            a = columns[name].alias
+            compiled = compile_condition(expression, readable, connection=self.con, prefix=f"e{a}_")
+            bindings += list(compiled.bindings) + [(f"a_{a}", compiled.sql, compiled.layer + 1)]
+        return bindings
+
+    def _condition_warnings(self, columns: Dict[str, ScannedColumn]) -> List[str]:
+        """The same warnings as intake gives about each condition (true for no row or every row, values set aside)."""
+        if not self.conditions:
+            return []
+        parts = []
+        for name in self.conditions:
+            a = columns[name].alias
+            parts += [f"count(a_{a})", f"count(*) FILTER (WHERE a_{a})", f"count(*) FILTER (WHERE NOT a_{a})",
+                      f"count(n0_{a})", f"count(*) FILTER (WHERE NOT a_{a} AND n0_{a} IS NOT NULL)"]
+        row = self.con.execute(f"SELECT {', '.join(parts)} FROM study").fetchone()
+        out: List[str] = []
+        for j, (name, expression) in enumerate(self.conditions.items()):
+            a = columns[name].alias
+            counts = ConditionCounts(self.n_rows, *(int(v) for v in row[5 * j:5 * j + 5]))
+
+            def note(a=a) -> str:
+                found = self.con.execute(f"SELECT rn, id FROM study WHERE NOT a_{a} AND n0_{a} IS NOT NULL "
+                                         "ORDER BY rn LIMIT 3").fetchall()
+                return rows_note([r for r, _ in found], [self._id_value(r, i) for r, i in found])
+            out += applicability_warnings(self.params.label, name, expression.text, counts, note)
+        return out
 
     # -- review lists ------------------------------------------------------------------------
 
@@ -650,6 +698,7 @@ class _Scanner:
             decision, uniques = self._decide(name, summaries[name])
             columns[name] = self._column_sql(name, decision, uniques)
         self._create_relation(columns)
+        self.warnings.extend(self._condition_warnings(columns))
         issues = self._range_issues(columns)
         extremes = self._extremes(columns)
         infos = {name: c.info for name, c in columns.items()}
@@ -662,9 +711,13 @@ class _Scanner:
 # ---------------------------------------------------------------------------
 # exact medians in SQL
 
-def _numpy_median(low: float, high: float) -> float:
-    """The median from the two middle order statistics, with numpy's arithmetic (equal for odd counts)."""
-    return float(np.mean(np.array([low, high], dtype=float))) if low != high else float(low)
+def _numpy_median(middle: Sequence[float]) -> float:
+    """The median from the middle order statistic(s), with numpy's arithmetic: the mean of one value or of two.
+
+    (The mean of one value is not always the value itself: numpy's sum starts at +0.0, so a middle
+    value of -0.0 gives a median of 0.0.)
+    """
+    return float(np.mean(np.array(middle, dtype=float)))
 
 
 def _middle(counts_below: int, window: Mapping[float, int], n: int) -> Optional[float]:
@@ -679,7 +732,7 @@ def _middle(counts_below: int, window: Mapping[float, int], n: int) -> Optional[
         return None
     # The k-th smallest value is the first whose cumulative count exceeds k.
     low, high = values[np.searchsorted(ends, k1, side="right")], values[np.searchsorted(ends, k2, side="right")]
-    return _numpy_median(float(low), float(high))
+    return _numpy_median([float(low)] if k1 == k2 else [float(low), float(high)])
 
 
 def _robust_centres(con, relation: str, expressions: Sequence[str]) -> List[Optional[Tuple[float, float]]]:
