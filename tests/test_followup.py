@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import numpy as np
+import pandas as pd
 import pytest
 
 from gapbook.errors import InputError
@@ -33,7 +34,8 @@ def test_every_strategy_reported_at_every_visit_and_headline_at_the_last(trial):
     assert len(effects) == len(FOLLOWUP_STRATEGIES) * outcome.n_visits
     headline = analysis.headline()
     assert set(headline["visit"]) == {16} and list(headline["strategy"]) == list(FOLLOWUP_STRATEGIES)
-    assert set(analysis.tables()) == {"visit_effects", "visit_means", "visit_covariance"}
+    assert set(analysis.tables()) == {"visit_effects", "visit_means", "visit_covariance", "estimates"}
+    pd.testing.assert_frame_equal(analysis.tables()["estimates"], headline)
 
 
 def test_each_row_is_the_analysis_it_names(trial):

@@ -11,6 +11,9 @@ from gapbook.audit import AuditResult
 from gapbook.cases import AvailableCaseSummary, CompleteCaseResult, CompletenessBaseline, StrategyComparison
 from gapbook.demo import demo_params
 from gapbook.errors import InputError
+from gapbook.estimand import EstimandDescription
+from gapbook.followup import FollowupAnalysis
+from gapbook.followup_audit import FollowupAudit
 from gapbook.impute import ChainedImputation, ImputationPlan
 from gapbook.indicator import MissingCategoryResult
 from gapbook.little import LittleTest
@@ -24,7 +27,7 @@ from gapbook.stage import open_stage
 RESULTS = (AuditResult, MechanismResult, GroupComparison, LittleTest, MissingnessModels, CompleteCaseResult,
            AvailableCaseSummary, CompletenessBaseline, StrategyComparison, MissingCategoryResult, ImputationPlan,
            ChainedImputation, PooledResult, WaldTest, DeltaResult, StrategyAndDelta, SensitivityResult,
-           SimulationResult, ReportSummary, RecordSuppression)
+           SimulationResult, ReportSummary, RecordSuppression, FollowupAudit, FollowupAnalysis, EstimandDescription)
 
 
 @pytest.mark.parametrize("result", RESULTS, ids=lambda c: c.__name__)

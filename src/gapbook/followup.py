@@ -54,14 +54,29 @@ class FollowupAnalysis:
     sentences: Tuple[str, ...] = ()
 
     def tables(self) -> Dict[str, pd.DataFrame]:
-        return {"visit_effects": self.effects, "visit_means": self.means, "visit_covariance": self.covariance}
+        return {"visit_effects": self.effects, "visit_means": self.means, "visit_covariance": self.covariance,
+                "estimates": self.estimates()}
 
     def headline(self) -> pd.DataFrame:
-        """Rows for ``estimates.csv``: every strategy's exposure effect at the last planned visit."""
+        """Every strategy's exposure effect at the last planned visit (the trial's headline visit)."""
         rows = self.effects[self.effects["visit"] == self.last_visit]
         columns = ["strategy", "visit", "term", "estimate", "std_error", "ci_lower", "ci_upper", "p_value",
                    "n_used", "df"] + [c for c in ("fmi", "riv") if c in rows.columns]
         return rows[columns].reset_index(drop=True)
+
+    def estimates(self) -> pd.DataFrame:
+        """Rows for ``estimates.csv``: the headline rows, with their ``visit``."""
+        return self.headline()
+
+    def strategies(self) -> Tuple[str, ...]:
+        """The strategies run, in table order."""
+        return tuple(dict.fromkeys(self.effects["strategy"]))
+
+    def effect_grid(self) -> pd.DataFrame:
+        """Estimates as strategy (rows, one block per exposure term) by visit (columns)."""
+        grid = self.effects.pivot_table(index=["term", "strategy"], columns="visit", values="estimate", sort=False)
+        grid.columns = [label(v) for v in grid.columns]
+        return grid
 
 
 def _covariance_table(fit: MixedModelFit) -> pd.DataFrame:

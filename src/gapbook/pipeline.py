@@ -24,6 +24,7 @@ STAGES: Dict[str, str] = {
     "mechanism": "02_mechanism.ipynb",
     "cases": "03_cases.ipynb",
     "indicator": "04_indicator.ipynb",
+    "followup": "04b_followup.ipynb",   # after the case strategies; 04b keeps the later stages' file names
     "impute": "05_impute.ipynb",
     "sensitivity": "06_sensitivity.ipynb",
     "simulate": "07_simulate.ipynb",
@@ -34,16 +35,17 @@ STAGE_TITLES: Dict[str, str] = {
     "mechanism": "Mechanism: does missingness depend on what was observed?",
     "cases": "Complete cases and available cases",
     "indicator": "Missing category and missing indicator",
+    "followup": "Follow-up: the effect at every visit under every strategy",
     "impute": "Multiple imputation by chained equations",
     "sensitivity": "Sensitivity to data missing not at random",
     "simulate": "Bias simulation for a study like this one",
     "report": "Summary for reporting",
 }
-MODEL_STAGES = frozenset({"cases", "indicator", "impute", "sensitivity", "simulate"})
+MODEL_STAGES = frozenset({"cases", "indicator", "followup", "impute", "sensitivity", "simulate"})
 # Stages that analyse one row per participant: a follow-up study (a design section) skips them,
 # its rows being visits; FOLLOWUP_STAGES run only for a follow-up study.
 PARTICIPANT_ROW_STAGES = frozenset({"cases", "indicator", "impute", "sensitivity", "simulate"})
-FOLLOWUP_STAGES = frozenset()
+FOLLOWUP_STAGES = frozenset({"followup"})
 # Stages that cannot yet handle a model family, and why (skipped with that sentence, never run half-way).
 FAMILY_GAPS: Dict[str, Dict[str, str]] = {
     "cox": {
@@ -214,20 +216,26 @@ def check_model_up_front(params: Params, study: Any) -> Tuple[str, List[str]]:
     return found
 
 
-def check_followup_up_front(params: Params, study: Any, stages: Sequence[str]) -> None:
+def check_followup_up_front(params: Params, study: Any, stages: Sequence[str]) -> Tuple[str, ...]:
     """A follow-up study's rows against its design, and its model, before any stage.
 
     Refuses (exit 2, naming subject and visit) a row without a visit, a visit not in the
     plan, two rows for one visit, an arm that changes within a participant, a covariate that
     changes after baseline, a formula that cannot be built on the visit grid, and options
-    the imputation strategies cannot run with.
+    the imputation strategies cannot run with. Returns a note describing the design for ``check``.
     """
+    from .repeated import label
     from .stage import repeated_design, repeated_model_data
 
     repeated = repeated_design(params, study)
+    visits = ", ".join(map(label, repeated.visits))
+    described = f"follow-up design: {params.design.layout} layout, planned visits {visits}" + (
+        f" after baseline {label(repeated.baseline)}" if repeated.baseline is not None else "")
     if not params.analysis.formula:
-        return
+        return (described,)
     outcome = repeated_model_data(params, repeated, study.source or "data")
+    described += (f"; {outcome.n} participants, outcome {outcome.outcome_name}, arms "
+                  f"{', '.join(map(label, outcome.levels))}")
     if not outcome.observed.any():
         raise InputError(f"{params.label}: analysis.formula: the outcome '{outcome.outcome_name}' is observed at no "
                          "planned visit; check design.visits and the outcome's missing markers")
@@ -237,6 +245,9 @@ def check_followup_up_front(params: Params, study: Any, stages: Sequence[str]) -
     if imputing and any(s in FOLLOWUP_STAGES for s in stages) and params.imputation.m < 2:
         raise InputError(f"{params.label}: imputation.m is {params.imputation.m}; the follow-up imputation strategies "
                          "pool at least two imputed datasets: raise it (e.g. 20)")
+    if len(outcome.excluded):
+        described += f" ({len(outcome.excluded)} left out: a baseline covariate missing)"
+    return (described,)
 
 
 @dataclass(frozen=True)
@@ -320,12 +331,13 @@ def preflight(params: Params, *, only: Optional[Sequence[str]] = None, log: Opti
         if column not in data.columns:
             raise InputError(f"{params.label}: audit.by '{column}' is not a column{did_you_mean(column, data.columns)}")
     model = None
+    design_notes: Tuple[str, ...] = ()
     if params.is_followup:
-        check_followup_up_front(params, study, stages)
+        design_notes = check_followup_up_front(params, study, stages)
     elif model_stages:
         model = check_model_up_front(params, study)
     chosen = tuple(found[s] for s in stages)
-    notes = tuple(f"notebook {nb.file}: the study folder's copy, which differs from the kit's"
-                  for nb in chosen if nb.origin == STUDY and nb.differs_from_kit)
+    notes = design_notes + tuple(f"notebook {nb.file}: the study folder's copy, which differs from the kit's"
+                                 for nb in chosen if nb.origin == STUDY and nb.differs_from_kit)
     return Plan(params=params, data=data, study=study, stages=tuple(stages), notebooks=chosen, model=model,
                 notes=notes)

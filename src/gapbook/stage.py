@@ -48,6 +48,7 @@ if TYPE_CHECKING:  # the stage modules are imported where a stage is run, not wh
     from .report import RecordSuppression, ReportSummary
     from .sensitivity import SensitivityResult
     from .simulate import SimulationResult
+    from .estimand import EstimandDescription
     from .followup import FollowupAnalysis
     from .followup_audit import FollowupAudit
     from .repeated import RepeatedOutcome
@@ -379,6 +380,19 @@ class StageContext:
         with params_errors(self.params, "analysis"):
             return audit_followup(outcome, reasons=self.repeated.visit_reasons(outcome), alpha=self.params.analysis.alpha)
 
+    def estimand(self, analyses: Sequence[str] = ()) -> Optional["EstimandDescription"]:
+        """The ``estimand`` section as a table, with which of ``analyses`` targets each intercurrent event; None without one."""
+        from .estimand import describe_estimand
+
+        section = self.params.estimand
+        if section is None:
+            return None
+        with params_errors(self.params, "estimand"):
+            return describe_estimand(population=section.population, treatment=section.treatment,
+                                     variable=section.variable, summary=section.summary, primary=section.primary,
+                                     intercurrent_events=[(e.event, e.strategy) for e in section.intercurrent_events],
+                                     analyses=analyses)
+
     def followup(self) -> Optional["FollowupAnalysis"]:
         """Every follow-up strategy side by side (``analysis.repeated``, ``imputation.m``/``seed``); None without a design."""
         from .followup import DEFAULT_STRATEGIES, analyse_followup
@@ -533,6 +547,8 @@ class StageContext:
         from .report import REPORT_TABLES, summarise
 
         params = self.params
+        if params.is_followup and params.analysis.formula:
+            return self.followup_report()
         imp = params.imputation
         settings = ImputationSettings(m=imp.m, iterations=imp.iterations, seed=imp.seed, donors=imp.donors,
                                       n_jobs=imp.n_jobs, methods=dict(imp.methods), passive=dict(imp.passive),
@@ -543,6 +559,30 @@ class StageContext:
                              title=params.report.title or f"Missing data in {params.study.name}", model=model,
                              imputation=settings, threshold=params.audit.threshold, group=params.report.group,
                              min_cell=params.report.min_cell if params.report.suppress_small else 0)
+
+    def followup_report(self) -> "ReportSummary":
+        """The summary page of a follow-up study: participants through the visits, the estimand, every strategy."""
+        from .followup_report import FOLLOWUP_REPORT_TABLES, summarise_followup
+        from .repeated import label
+        from .report import missing_summary
+
+        params = self.params
+        tables = self.read_tables(FOLLOWUP_REPORT_TABLES)
+        outcome = self.repeated_outcome
+        section = params.analysis.repeated
+        estimates = tables.get("estimates")
+        ran = () if estimates is None else tuple(dict.fromkeys(estimates["strategy"]))
+        reference = section.reference if section is not None and section.reference is not None else outcome.reference
+        with params_errors(params, "report", "audit", "analysis"):
+            missing = missing_summary(self.study, threshold=params.audit.threshold,
+                                      audit_variables=tables.get("audit_variables"))
+            return summarise_followup(tables=tables, missing=missing,
+                                      title=params.report.title or f"Missing data in {params.study.name}",
+                                      formula=params.analysis.formula, exposure=params.analysis.exposure,
+                                      visits=outcome.visits, method=section.method if section else "reml",
+                                      m=params.imputation.m, seed=params.imputation.seed, reference=label(reference),
+                                      delta=section.delta if section else None, alpha=params.analysis.alpha,
+                                      estimand=self.estimand(ran))
 
     def suppression(self) -> Tuple[Optional["RecordSuppression"], Tuple[str, ...]]:
         """Small-count suppression of the record's count tables when ``report.suppress_small`` asks for it.

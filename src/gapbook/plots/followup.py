@@ -29,7 +29,7 @@ STRATEGY_TITLES = {"mixed_model": "mixed model (MAR)", "multiple_imputation": "i
                    "jump_to_reference": "jump to reference", "copy_reference": "copy reference",
                    "copy_increments_reference": "copy increments in reference",
                    "delta_adjusted": "own group + delta", COMPLETERS: "completers only",
-                   LAST_OBSERVATION: "last observation carried"}
+                   LAST_OBSERVATION: "last observation carried forward"}
 
 
 def _group_colour(groups: Sequence[Any], group: Any) -> str:
