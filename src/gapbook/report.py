@@ -30,6 +30,21 @@ COUNT_TABLES: Dict[str, Tuple[str, ...]] = {
     "flow_complete_case": ("n", "n_rows", "n_complete", "n_excluded"),
     "participant_flow": (),
     "descriptives": ("n", "n_missing", "count"),
+    # follow-up studies (their visit column holds whole numbers too, so the count columns are named)
+    "followup_completeness": ("n_participants", "n_observed"),
+    "followup_patterns": ("n",),
+    "followup_stopping_reasons": ("n",),
+    "followup_retention": ("n_at_risk", "n_left_after"),
+    "followup_leavers": ("n_leaving", "n_staying"),
+    "followup_profiles": ("n_cohort", "n"),
+}
+# A derived cell that would give a masked count away, masked with it: {table: {count column: derived}}.
+FOLLOWUP_LINKED: Dict[str, Dict[str, str]] = {
+    "followup_completeness": {"n_observed": "pct_observed"},
+    "followup_patterns": {"n": "pct"},
+    "followup_stopping_reasons": {"n": "pct_of_leavers"},
+    "followup_leavers": {"n_leaving": "mean_leaving"},
+    "followup_profiles": {"n": "mean"},
 }
 
 
@@ -151,6 +166,9 @@ def suppress_record_tables(tables: Mapping[str, Optional[pd.DataFrame]], *, min_
             reason_columns = [c for c in frame.columns if c not in known and pd.api.types.is_numeric_dtype(frame[c])]
             out[name] = suppress_small_counts(frame, min_cell=min_cell, columns=["n", "n_missing", *reason_columns],
                                               linked={"n_missing": "pct_missing"})
+        elif name in FOLLOWUP_LINKED or name == "followup_retention":
+            out[name] = suppress_small_counts(frame, min_cell=min_cell, columns=COUNT_TABLES[name],
+                                              linked=FOLLOWUP_LINKED.get(name))
         elif name == "audit_patterns":
             out[name] = suppress_small_counts(frame, min_cell=min_cell, columns=["n_rows"],
                                               linked={"n_rows": "pct_rows"})
