@@ -148,3 +148,11 @@ def test_long_layout_data_id_must_be_the_subject():
         Params.from_dict(body)
     body["data"]["id"] = "subject"
     assert Params.from_dict(body).subject_column == "subject"
+
+
+def test_imputation_strategies_need_two_imputations(study, capsys):
+    path = edit_params(study, "  m: 20", "  m: 1")
+    _, line = one_line(capsys, ["check", path])
+    assert "imputation.m is 1; the follow-up imputation strategies pool at least two" in line
+    # without the follow-up stage (or with only strategies that impute nothing) one imputation is no problem
+    assert main(["check", str(path), "--only", "audit"]) == 0

@@ -38,10 +38,14 @@ def _run_and_print(params, args: argparse.Namespace) -> int:
     return 0
 
 
+DEMO_STUDIES = ("trial", "followup")  # the one-visit trial; the follow-up trial with visits and dropout
+
+
 def cmd_demo(args: argparse.Namespace) -> int:
     from .demo import demo_params
+    from .followup_demo import followup_demo_params
 
-    return _run_and_print(demo_params(), args)
+    return _run_and_print(followup_demo_params() if args.study == "followup" else demo_params(), args)
 
 
 def cmd_run(args: argparse.Namespace) -> int:
@@ -134,7 +138,9 @@ def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(prog="gapbook", description="Analyse incomplete study data and keep a re-runnable record.")
     parser.add_argument("--version", action="version", version=f"gapbook {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
-    demo = sub.add_parser("demo", help="run every stage on the demo study")
+    demo = sub.add_parser("demo", help="run every stage on a demo study")
+    demo.add_argument("--study", choices=DEMO_STUDIES, default="trial",
+                      help="trial: one outcome per participant (default); followup: a trial with visits and dropout")
     _record_options(demo)
     demo.set_defaults(func=cmd_demo)
     new = sub.add_parser("new", help="scaffold a study folder (params file, notebooks, data/)")

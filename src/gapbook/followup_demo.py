@@ -32,11 +32,14 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 from importlib import resources
 from pathlib import Path
-from typing import Optional, Sequence, Tuple
+from typing import TYPE_CHECKING, Optional, Sequence, Tuple
 
 import numpy as np
 import pandas as pd
 from scipy.special import expit
+
+if TYPE_CHECKING:
+    from .params import Params
 
 WEEKS = (2, 4, 8, 12, 16)
 CONTROL_MEAN = (-2.0, -3.5, -5.0, -6.0, -6.5)
@@ -145,3 +148,10 @@ def followup_demo_files() -> Tuple[Path, Path]:
     """The shipped data file and params file of the follow-up demo."""
     folder = Path(str(resources.files("gapbook") / "data"))
     return folder / DEMO_CSV, folder / DEMO_PARAMS
+
+
+def followup_demo_params() -> "Params":
+    """The follow-up demo's params (``gapbook demo --study followup``), the data path pointing at the shipped CSV."""
+    from .params import load_params
+
+    return load_params(followup_demo_files()[1])
