@@ -185,3 +185,18 @@ def test_the_wide_layout_gives_the_same_mixed_model_as_the_long(tmp_path):
     # the reasons of the wide cells reach the follow-up audit as they do from the long file
     audit_wide, audit_long = wide_ctx.followup_audit(), long_ctx.followup_audit()
     pd.testing.assert_frame_equal(audit_wide.completeness, audit_long.completeness)
+
+
+def test_user_text_in_the_drafted_followup_text_is_shown_literally():
+    # DESIGN.md security: user text on a page is text, never markup (text.md_escape for Markdown).
+    from gapbook.followup_report import draft_followup_methods
+
+    hostile = "<script>alert(1)</script> ![x](http://example.invalid/x.png)"
+    described = describe_estimand(population=hostile, intercurrent_events=[(hostile, "hypothetical")],
+                                  analyses=["mixed_model"])
+    text = draft_followup_methods(formula="y ~ arm * C(visit)", exposure="<b>arm</b>", visits=["<i>1</i>", 2],
+                                  method="reml", strategies=["mixed_model"], m=5, seed=1, reference="[a](b)",
+                                  delta=None, reasons=["*bold*"], primary="mixed_model", estimand=described)
+    for markup in ("<script>", "<b>", "<i>", "](http", "*bold*"):
+        assert markup not in text, markup
+    assert "&lt;script&gt;" in text

@@ -14,7 +14,7 @@ target it (the vocabulary holds the strategies and that correspondence).
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Dict, Optional, Sequence, Tuple
+from typing import Callable, Dict, Optional, Sequence, Tuple
 
 import pandas as pd
 
@@ -80,23 +80,37 @@ def describe_estimand(*, population: Optional[str] = None, treatment: Optional[s
                             ("summary measure", summary)):
         if text:
             rows.append({"attribute": attribute, "description": text, "strategy": None, "targeted_by": None})
-    sentences = []
     run = list(analyses)
     for event, strategy in intercurrent_events:
         if strategy not in _BY_NAME:
             raise InputError(f"'{strategy}' is not an intercurrent-event strategy", option="intercurrent_events")
-        known = _BY_NAME[strategy]
-        targeting = [a for a in known.analyses if a in run]
+        targeting = [a for a in _BY_NAME[strategy].analyses if a in run]
         rows.append({"attribute": "intercurrent event", "description": event, "strategy": strategy,
                      "targeted_by": ";".join(targeting) or None})
+    sentences = estimand_sentences(intercurrent_events, primary=primary, analyses=run)
+    table = pd.DataFrame(rows, columns=list(ESTIMAND_COLUMNS))
+    return EstimandDescription(attributes=table, primary=primary, sentences=sentences)
+
+
+def estimand_sentences(intercurrent_events: Sequence[Tuple[str, str]], *, primary: Optional[str],
+                       analyses: Sequence[str], quote: Callable[[str], str] = str) -> Tuple[str, ...]:
+    """Which of ``analyses`` targets each intercurrent event's strategy, and what the primary analysis targets.
+
+    ``quote`` is applied to the event names (user text), e.g. :func:`gapbook.text.md_escape`
+    when the sentences go into Markdown unescaped as a whole.
+    """
+    sentences = []
+    run = list(analyses)
+    for event, strategy in intercurrent_events:
+        known = _BY_NAME[strategy]
+        targeting = [a for a in known.analyses if a in run]
         if targeting:
-            sentences.append(f"Intercurrent event '{event}', {known.title.lower()} strategy ({known.why}): targeted "
-                             f"here by {_phrase(targeting)}.")
+            sentences.append(f"Intercurrent event '{quote(event)}', {known.title.lower()} strategy ({known.why}): "
+                             f"targeted here by {_phrase(targeting)}.")
         else:
-            sentences.append(f"Intercurrent event '{event}', {known.title.lower()} strategy ({known.why}); no analysis "
-                             "run here targets it.")
-    strategies = {s for _, s in intercurrent_events}
-    if len(strategies) > 1:
+            sentences.append(f"Intercurrent event '{quote(event)}', {known.title.lower()} strategy ({known.why}); "
+                             "no analysis run here targets it.")
+    if len({s for _, s in intercurrent_events}) > 1:
         sentences.append("The intercurrent events use different strategies, so no single analysis here targets the "
                          "whole estimand: the primary analysis should treat each event as planned (e.g. "
                          "reference-based imputation after the events handled by treatment policy and imputation "
@@ -116,5 +130,4 @@ def describe_estimand(*, population: Optional[str] = None, treatment: Optional[s
         if strategy in run:
             sentences.append(f"{_phrase([strategy]).capitalize()} targets no estimand cleanly and is shown as a "
                              "comparison only.")
-    table = pd.DataFrame(rows, columns=list(ESTIMAND_COLUMNS))
-    return EstimandDescription(attributes=table, primary=primary, sentences=tuple(sentences))
+    return tuple(sentences)

@@ -16,9 +16,10 @@ from typing import Dict, List, Mapping, Optional, Sequence, Tuple
 import numpy as np
 import pandas as pd
 
-from .estimand import EstimandDescription
+from .estimand import EstimandDescription, estimand_sentences
 from .inference import format_p
 from .report import Checklist, ChecklistItem, MissingSummary, ParticipantFlow, ReportSummary, effect_phrase
+from .text import md_code, md_escape
 from .vocabulary import (INFORMATION_ANCHORING, INTERCURRENT_STRATEGIES, NOT_RECOMMENDED_STRATEGIES,
                          REFERENCE_BASED_VARIANCE, STRATEGY_PHRASES, cautions as page_cautions)
 
@@ -114,14 +115,17 @@ def draft_followup_methods(*, formula: str, exposure: str, visits: Sequence[obje
                            strategies: Sequence[str], m: int, seed: int, reference: Optional[str],
                            delta: object, reasons: Sequence[str], primary: str,
                            estimand: Optional[EstimandDescription]) -> str:
-    """A methods paragraph for a follow-up trial, filled with this run's choices."""
+    """A methods paragraph for a follow-up trial, filled with this run's choices (Markdown; user text escaped)."""
+    reasons = [md_escape(r) for r in reasons]
+    exposure, reference = md_escape(exposure), None if reference is None else md_escape(reference)
     sentences = [
         f"Missing outcomes were recorded with their reasons ({', '.join(reasons) or 'none recorded'}). Attendance "
-        f"at each of the {len(visits)} planned visits ({', '.join(map(_label, visits))}) was described by arm, as "
+        f"at each of the {len(visits)} planned visits ({', '.join(md_escape(_label(v)) for v in visits)}) was "
+        "described by arm, as "
         "monotone dropout against intermittent missed visits, as retention by arm (Kaplan-Meier estimates of the "
         "time to the last attended visit, with a log-rank test; Kaplan & Meier 1958; Mantel 1966), and by the "
         "outcomes of participants before they left."]
-    mixed = (f"a mixed model for repeated measures (`{formula}`) with an unstructured covariance between visits, "
+    mixed = (f"a mixed model for repeated measures ({md_code(formula)}) with an unstructured covariance between visits, "
              f"fitted by {'restricted ' if method == 'reml' else ''}maximum likelihood to every attended visit, with "
              "Satterthwaite degrees of freedom (Satterthwaite 1946; Fai & Cornelius 1996); it is valid if visits "
              "are missing at random and imputes nothing")
@@ -154,13 +158,14 @@ def draft_followup_methods(*, formula: str, exposure: str, visits: Sequence[obje
         attributes = estimand.attributes
         plain = attributes[attributes["attribute"] != "intercurrent event"]
         events = attributes[attributes["attribute"] == "intercurrent event"]
-        described = "; ".join(f"{r.attribute}: {r.description}" for r in plain.itertuples())
+        described = "; ".join(f"{r.attribute}: {md_escape(r.description)}" for r in plain.itertuples())
         titles = {s.name: s.title.lower() for s in INTERCURRENT_STRATEGIES}
-        handled = "; ".join(f"{r.description} ({titles.get(r.strategy, r.strategy)} strategy)"
+        handled = "; ".join(f"{md_escape(r.description)} ({titles.get(r.strategy, r.strategy)} strategy)"
                             for r in events.itertuples())
         sentences.append("The estimand (ICH E9(R1)) was stated before the analysis: " + described
                          + (f"; intercurrent events: {handled}" if handled else "") + ".")
-        sentences.extend(estimand.sentences)
+        sentences.extend(estimand_sentences(list(zip(events["description"], events["strategy"])),
+                                            primary=estimand.primary, analyses=strategies, quote=md_escape))
     return " ".join(sentences)
 
 
@@ -175,13 +180,13 @@ def draft_followup_results(*, flow: ParticipantFlow, patterns: Optional[pd.DataF
     sentences = []
     if len(last):
         row = last.iloc[0]
-        arms = "; ".join(f"{g} {_n(row[g])} of {_n(first[g])}" for g in groups)
+        arms = "; ".join(f"{md_escape(g)} {_n(row[g])} of {_n(first[g])}" for g in groups)
         sentences.append(f"Of {_n(first['all'])} participants, {_n(row['all'])} ({_pct(row['all'], first['all'])}) "
-                         f"attended the last planned visit ({_label(last_visit)})" + (f" ({arms})" if arms else "")
-                         + ".")
+                         f"attended the last planned visit ({md_escape(_label(last_visit))})"
+                         + (f" ({arms})" if arms else "") + ".")
     if patterns is not None and len(patterns):
         total = patterns.groupby("pattern", sort=False)["n"].sum()
-        words = ", ".join(f"{_n(n)} {pattern}" for pattern, n in total.items() if n > 0)
+        words = ", ".join(f"{_n(n)} {md_escape(pattern)}" for pattern, n in total.items() if n > 0)
         sentences.append(f"Follow-up patterns: {words}.")
     if retention_test is not None and len(retention_test):
         row = retention_test.iloc[0]
@@ -195,7 +200,8 @@ def draft_followup_results(*, flow: ParticipantFlow, patterns: Optional[pd.DataF
         for term, rows in headline.groupby("term", sort=False):
             parts = [f"{STRATEGY_PHRASES.get(r['strategy'], r['strategy'])} {effect_phrase(r, alpha)}"
                      for _, r in rows.iterrows()]
-            sentences.append(f"The effect ({term}) at visit {_label(last_visit)} was " + "; ".join(parts) + ".")
+            sentences.append(f"The effect ({md_escape(term)}) at visit {md_escape(_label(last_visit))} was "
+                             + "; ".join(parts) + ".")
         present = set(headline["strategy"])
         if present & set(REFERENCE_BASED):
             sentences.extend([REFERENCE_BASED_VARIANCE, INFORMATION_ANCHORING])
@@ -218,18 +224,19 @@ def followup_checklist(flow: ParticipantFlow, missing: MissingSummary, tables: M
     items: List[ChecklistItem] = [
         ChecklistItem("participants randomised, attending each visit and analysed, by arm", "CONSORT 13a, 16",
                       "tables/participant_flow.csv, tables/followup_completeness.csv",
-                      "; ".join(f"{r.description} {_n(r.all)}" for r in pd.concat([steps.iloc[:1], attended,
-                                                                                   analysed]).itertuples())),
+                      "; ".join(f"{md_escape(r.description)} {_n(r.all)}"
+                                for r in pd.concat([steps.iloc[:1], attended, analysed]).itertuples())),
         ChecklistItem("losses after randomisation with reasons, by arm", "CONSORT 13b",
                       "tables/followup_stopping_reasons.csv",
-                      "; ".join(f"{r.step[len('left: '):]} {_n(r.all)}" for r in left.itertuples()) or "none"),
+                      "; ".join(f"{md_escape(r.step[len('left: '):])} {_n(r.all)}" for r in left.itertuples())
+                      or "none"),
         ChecklistItem("retention by arm", "CONSORT 13b (common practice, no source, for the log-rank test)",
                       "tables/followup_retention.csv, tables/followup_retention_test.csv",
                       "not run" if test is None or not len(test) else
                       f"log-rank chi-square {float(test.iloc[0]['statistic']):.2f}, {format_p(test.iloc[0]['p_value'])}"),
         ChecklistItem("number missing for each variable", "STROBE 14b; Sterne et al. 2009",
                       "tables/audit_variables.csv (rows are visits)",
-                      "; ".join(f"{r.variable} {_n(r.n_missing)}" for r in missing.variables.itertuples()
+                      "; ".join(f"{md_escape(r.variable)} {_n(r.n_missing)}" for r in missing.variables.itertuples()
                                 if float(r.n_missing) > 0) or "none"),
         ChecklistItem("estimand: population, treatment, variable, intercurrent events and their strategies, summary",
                       "ICH E9(R1) (2019)", "tables/estimand.csv; params.yaml (estimand)",
