@@ -61,6 +61,8 @@ analysis:
   family: cox
   event: {column: status, event: [2], censored: [1]}
   exposure: arm
+imputation: {m: 5, iterations: 5}
+sensitivity: {m: 2}
 """
 
 
@@ -229,10 +231,10 @@ def test_check_refuses_an_inconsistent_time_to_event_model(tmp_path, capsys, ana
 def test_check_skips_the_stages_not_built_for_cox_with_a_reason(tmp_path):
     lines = []
     plan = preflight(load_params(write_study(tmp_path)), log=lines.append)
-    assert plan.stages == ("audit", "mechanism", "cases", "indicator", "report")
-    assert any(line.startswith("skipped: impute (family cox:") for line in lines)
-    with pytest.raises(InputError, match="stage 'impute' does not run with family cox"):
-        preflight(load_params(write_study(tmp_path)), only=["impute"])
+    assert plan.stages == ("audit", "mechanism", "cases", "indicator", "impute", "sensitivity", "report")
+    assert any(line.startswith("skipped: simulate (family cox:") for line in lines)
+    with pytest.raises(InputError, match="stage 'simulate' does not run with family cox"):
+        preflight(load_params(write_study(tmp_path)), only=["simulate"])
 
 
 # ---------------------------------------------------------------------------
@@ -276,8 +278,19 @@ def test_a_cox_study_runs_end_to_end(tmp_path):
     params = write_study(tmp_path / "study")
     result = run_gapbook("run", params, "--out", tmp_path / "records", cwd=tmp_path / "study")
     record = record_path(result)
-    assert "skipped: impute (family cox" in result.stdout + result.stderr
-    estimates = pd.read_csv(record / "tables" / "estimates.csv")
-    assert set(estimates["strategy"]) == {"complete_case", "missing_category"}
+    assert "skipped: simulate (family cox" in result.stdout + result.stderr
+    tables = record / "tables"
+    estimates = pd.read_csv(tables / "estimates.csv")
+    assert set(estimates["strategy"]) == {"complete_case", "missing_category", "multiple_imputation"}
     assert estimates["exp_estimate"].notna().all()
-    assert (record / "figures" / "strategy_comparison.png").is_file()
+    # the audit keeps censoring apart from missing data (counts: pandas on the file written above)
+    frame = cohort()
+    known = frame[(frame["months"] != "lost") & frame["status"].isin([1, 2])]  # time and status both known
+    audit = pd.read_csv(tables / "audit_time_to_event.csv").set_index("group")
+    assert audit.loc["all", "n_events"] == (known["status"] == 2).sum()
+    assert audit.loc["all", "n_censored"] == (known["status"] == 1).sum()
+    assert audit.loc["all", "n_time_missing"] == 2 and audit.loc["all", "n_event_missing"] == 3
+    assert (tables / "mechanism_time_to_event.csv").is_file()
+    assert pd.read_csv(tables / "sensitivity_delta.csv")["variable"].eq("age").all()  # the most incomplete covariate
+    for figure in ("strategy_comparison", "survival_by_exposure"):
+        assert (record / "figures" / f"{figure}.png").is_file()

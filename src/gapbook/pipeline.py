@@ -49,9 +49,6 @@ FOLLOWUP_STAGES = frozenset({"followup"})
 # Stages that cannot yet handle a model family, and why (skipped with that sentence, never run half-way).
 FAMILY_GAPS: Dict[str, Dict[str, str]] = {
     "cox": {
-        "impute": "imputation for a Cox model needs the event indicator and the Nelson-Aalen cumulative hazard "
-                  "as predictors, which this version does not build yet",
-        "sensitivity": "it rests on the imputation stage, not yet built for a Cox model",
         "simulate": "simulating follow-up times and censoring is not yet built for a Cox model",
     },
 }

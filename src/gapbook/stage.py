@@ -54,6 +54,7 @@ if TYPE_CHECKING:  # the stage modules are imported where a stage is run, not wh
     from .repeated import RepeatedOutcome
     from .repeated_intake import RepeatedStudy
     from .survival import EventCoding
+    from .time_to_event import TimeToEventAudit, TimeToEventMechanism
 
 __all__ = ["StageResult", "StageContext", "open_stage", "analysis_model", "params_errors", "write_csv",
            "merge_estimates", "CSV_FLOAT_FORMAT", "ESTIMATE_COLUMNS", "FIGURE_DPI", "repeated_design",
@@ -133,6 +134,7 @@ def analysis_model(params: Params) -> "AnalysisModel":
 def event_coding(params: Params) -> "Optional[EventCoding]":
     """``analysis.event`` as an :class:`~gapbook.survival.EventCoding` (None without a time-to-event model)."""
     from .survival import EventCoding
+    from .time_to_event import TimeToEventAudit, TimeToEventMechanism
 
     event = params.analysis.event
     if event is None:
@@ -441,6 +443,34 @@ class StageContext:
                 result = audit_study(self.study, **options)
         return dataclasses.replace(result, sentences=result.sentences + (f"Counted with {engine} ({why}).",))
 
+    def time_to_event_audit(self) -> "Optional[TimeToEventAudit]":
+        """Events, censoring, follow-up and missing times or statuses per exposure group (None unless family cox)."""
+        from .cases import exposure_column
+        from .time_to_event import audit_time_to_event
+
+        if not self.params.analysis.formula or self.params.analysis.event is None:
+            return None
+        model = self.model()
+        study = self.study
+        with params_errors(self.params, "analysis"):
+            time, _ = model.variables(list(study.data.columns))
+            return audit_time_to_event(study.data, time=time, event=model.event, reasons=study.reasons,
+                                       group=exposure_column(model, list(study.data.columns)))
+
+    def time_to_event_mechanism(self) -> "Optional[TimeToEventMechanism]":
+        """Log-rank comparison of rows with and without each incomplete model covariate (None unless family cox)."""
+        from .time_to_event import missingness_against_outcome
+
+        if not self.params.analysis.formula or self.params.analysis.event is None:
+            return None
+        model = self.model()
+        study = self.study
+        with params_errors(self.params, "mechanism", "analysis"):
+            time, used = model.variables(list(study.data.columns))
+            covariates = [c for c in used if c != model.event.column]
+            return missingness_against_outcome(study.data, time=time, event=model.event, variables=covariates,
+                                               missing=study.missing, alpha=self.params.mechanism.alpha)
+
     def mechanism(self) -> "MechanismResult":
         """The mechanism stage with the ``mechanism`` section."""
         from .mechanism import assess_study
@@ -526,8 +556,8 @@ class StageContext:
                             if isinstance(grid, DeltaGrid) else list(grid))
                  for variable, grid in section.delta.items()}
         with params_errors(self.params, "sensitivity", "imputation", "analysis"):
-            series = delta_series(self.study.data, outcome=plan.outcome, variable=section.variable, grids=grids,
-                                  types=self.study.types)
+            series = delta_series(self.study.data, outcome=plan.delta_default(), variable=section.variable,
+                                  grids=grids, types=self.study.types)
             return sensitivity_analysis(plan, series=series, m=section.m, estimates=self.read_table("estimates"))
 
     def simulation(self) -> "SimulationResult":

@@ -7,12 +7,14 @@ import math
 from dataclasses import dataclass, field
 from typing import Any, Dict, List, Mapping, Optional, Sequence, Tuple
 
+import numpy as np
 import pandas as pd
 
 from ..errors import InputError, did_you_mean
 from ..intake import Study
 from ..models import AnalysisModel
-from ..vocabulary import METHOD_WORDS
+from ..survival import EventCoding, cumulative_hazard_at
+from ..vocabulary import DELTA_METHODS, METHOD_WORDS
 from .engine import ChainedImputation, impute_chained
 from .preparation import choose_method, choose_predictors, passive_inputs
 
@@ -57,6 +59,7 @@ class ImputationPlan:
     model: AnalysisModel
     settings: ImputationSettings
     sentences: Tuple[str, ...] = ()
+    survival: Optional["SurvivalPredictors"] = None   # time-to-event models: what stands in for the time
 
     def incomplete_case_percent(self) -> float:
         """Percentage of rows with at least one analysis-model value to impute."""
@@ -76,8 +79,10 @@ class ImputationPlan:
         for name in columns:
             to_impute = int(self.impute_mask[name].sum())
             method = self.methods.get(name, "") if to_impute else ""
+            derived = self.survival.columns() if self.survival is not None else ()
             role = ("outcome" if name == self.outcome else "model" if name in self.model_columns
-                    else "auxiliary" if name in self.settings.auxiliary else "passive input")
+                    else "auxiliary" if name in self.settings.auxiliary
+                    else "survival predictor" if name in derived else "passive input")
             if method in ("", "passive"):
                 predictor_text = f"formula: {passive[name]}" if method == "passive" else ""
             else:
@@ -89,6 +94,22 @@ class ImputationPlan:
                          "n_left_missing": int((self.data[name].isna() & ~self.impute_mask[name]).sum()),
                          "predictors": predictor_text})
         return pd.DataFrame(rows)
+
+    def delta_default(self) -> str:
+        """The variable a delta shifts when the params name none: the outcome, or for a time-to-event model
+        (whose time is never imputed) the incomplete model covariate with the most values to impute.
+
+        Exits 2 (option ``variable``) when a time-to-event model has no covariate a delta can shift.
+        """
+        if self.survival is None:
+            return self.outcome
+        shiftable = [c for c in self.model_columns if c not in (self.outcome, self.survival.event.column)
+                     and self.impute_mask[c].any() and self.methods.get(c) in DELTA_METHODS]
+        if not shiftable:
+            raise InputError(f"a {self.model.family} model's follow-up time is not imputed, and no covariate of the "
+                             "model has values imputed by a method a delta can shift (pmm, normal, logistic); "
+                             "name one in sensitivity.delta", option="variable")
+        return max(shiftable, key=lambda c: int(self.impute_mask[c].sum()))
 
     def tables(self) -> Dict[str, pd.DataFrame]:
         """``imputation_settings`` (:meth:`variable_settings`)."""
@@ -108,6 +129,105 @@ class ImputationPlan:
             exclude_predictors={k: list(v) for k, v in s.exclude_predictors.items()}, progress=progress)
 
 
+@dataclass(frozen=True)
+class SurvivalPredictors:
+    """What stands in for the follow-up time in the imputation models of a time-to-event analysis.
+
+    Each incomplete covariate is imputed with the event indicator and the Nelson–Aalen
+    cumulative hazard at the participant's own time as predictors, never the raw time (nor the
+    event column as coded). Rows without a time or an event status have no cumulative hazard;
+    they are left out of the imputation, as they are out of every fit of the model.
+
+    References
+    ----------
+    White IR, Royston P (2009). Imputing missing covariate values for the Cox model. Stat Med 28:1982-1998.
+    """
+
+    time: str
+    event: EventCoding
+    keep: Tuple[bool, ...]
+    hazard_column: str
+    indicator_column: str
+
+    def columns(self) -> Tuple[str, str]:
+        """The two predictor columns added to the imputation data (event indicator, cumulative hazard)."""
+        return self.indicator_column, self.hazard_column
+
+    def types(self) -> Dict[str, str]:
+        return {self.indicator_column: "binary", self.hazard_column: "continuous"}
+
+    def n_left_out(self) -> int:
+        return int(len(self.keep) - sum(self.keep))
+
+    def phrase(self) -> str:
+        return (f"the event indicator ({self.indicator_column}) and the Nelson-Aalen cumulative hazard at each "
+                f"participant's time ({self.hazard_column}), not {self.time} itself (White & Royston 2009)")
+
+    def apply(self, data: pd.DataFrame, mask: pd.DataFrame,
+              settings: ImputationSettings) -> Tuple[pd.DataFrame, pd.DataFrame, ImputationSettings]:
+        """The imputation data with the two predictors added and the rows without follow-up left out, and the
+        settings that keep the time and the event column out of every imputation model."""
+        keep = np.array(self.keep, dtype=bool)
+        data = data.loc[keep].reset_index(drop=True)
+        mask = mask.loc[keep].reset_index(drop=True)
+        status = self.event.indicator(data)
+        data[self.indicator_column] = status
+        data[self.hazard_column] = cumulative_hazard_at(data[self.time].to_numpy(dtype=float), status)
+        mask[self.indicator_column] = False
+        mask[self.hazard_column] = False
+        hidden = [self.time, self.event.column]
+        exclude = {name: tuple(dict.fromkeys(list(settings.exclude_predictors.get(name, ())) + hidden))
+                   for name in data.columns}
+        predictors = {name: tuple(dict.fromkeys(list(listed) + list(self.columns())))
+                      for name, listed in settings.predictors.items()}
+        return data, mask, dataclasses.replace(settings, exclude_predictors=exclude, predictors=predictors)
+
+    def sentences(self) -> Tuple[str, ...]:
+        out = [f"Time to event: {self.time} and {self.event.column} enter the imputation models as {self.phrase()}; "
+               "the analysis model still uses the time and event status themselves."]
+        if self.n_left_out():
+            out.append(f"{self.n_left_out():,} rows without a follow-up time or event status are left out of the "
+                       "imputation and of the pooled analysis (they have no place on the cumulative hazard and "
+                       "every fit of the model leaves them out).")
+        return tuple(out)
+
+
+def _free_name(stem: str, taken: Sequence[str]) -> str:
+    name = stem
+    while name in taken:
+        name += "_"
+    return name
+
+
+def survival_predictors(data: pd.DataFrame, *, time: str, event: EventCoding) -> SurvivalPredictors:
+    """The event indicator and cumulative hazard predictors for imputing a Cox model's covariates.
+
+    Parameters
+    ----------
+    data : the imputation data (with the time and event columns).
+    time : the follow-up time column.
+    event : the event coding.
+
+    Returns
+    -------
+    SurvivalPredictors (apply it to the data, mask and settings).
+
+    References
+    ----------
+    White IR, Royston P (2009). Imputing missing covariate values for the Cox model. Stat Med 28:1982-1998.
+    """
+    status = event.indicator(data)
+    keep = data[time].notna().to_numpy() & ~np.isnan(status)
+    if not keep.any():
+        raise InputError(f"no row has both a follow-up time ('{time}') and an event status ('{event.column}')",
+                         option="formula")
+    taken = list(data.columns)
+    indicator = _free_name("event_indicator", taken)
+    hazard = _free_name("cumulative_hazard", taken + [indicator])
+    return SurvivalPredictors(time=time, event=event, keep=tuple(bool(k) for k in keep), hazard_column=hazard,
+                              indicator_column=indicator)
+
+
 def plan_sentences(plan: ImputationPlan) -> Tuple[str, ...]:
     """The plan in words: method, variables and how, passive variables, predictors, auxiliary ones, advice on m."""
     s = plan.settings
@@ -125,12 +245,17 @@ def plan_sentences(plan: ImputationPlan) -> Tuple[str, ...]:
         f"datasets, {s.iterations} iterations per chain, seed {s.seed}.",
         f"Variables imputed and how: {methods or 'nothing is missing'}.",
         f"Passive variables: {passive}.",
-        f"Predictors: every other variable in the imputation model, the outcome {plan.outcome} included"
+        (f"Predictors: every other variable in the imputation model, the outcome {plan.outcome} included"
+         if plan.survival is None else
+         "Predictors: every other variable in the imputation model, with the follow-up time and event column "
+         f"represented by {plan.survival.phrase()}")
         + (f"; own choices for {', '.join(custom)}" if custom else "") + ".",
         f"Auxiliary variables (in the imputation model, not the analysis model): {', '.join(s.auxiliary) or 'none'}.",
     ]
     if left:
         sentences.append(f"Left missing (not applicable, so not imputed): {', '.join(left)}.")
+    if plan.survival is not None:
+        sentences.extend(plan.survival.sentences())
     advice = (f"{plan.incomplete_case_percent():.1f} % of the rows lack at least one analysis-model value, so at least "
               f"{plan.advised_m()} imputations are advised (at least as many as the percentage of incomplete cases; "
               f"White, Royston & Wood 2011); this plan uses m = {s.m}.")
@@ -202,13 +327,19 @@ def plan_imputation(study: Study, *, model: AnalysisModel, m: int = 20, iteratio
         chosen.extend(settings.predictors[name])
     columns = list(dict.fromkeys(chosen))
     types = {c: study.types[c] for c in columns}
-    chosen_methods = {name: choose_method(name, types[name], settings.methods, settings.passive) for name in columns}
     mask = study.missing[columns].reset_index(drop=True)
     data = study.data[columns].reset_index(drop=True)
+    survival: Optional[SurvivalPredictors] = None
+    if model.is_time_to_event():
+        survival = survival_predictors(data, time=outcome, event=model.event)
+        data, mask, settings = survival.apply(data, mask, settings)
+        types.update(survival.types())
+        columns = list(data.columns)
+    chosen_methods = {name: choose_method(name, types[name], settings.methods, settings.passive) for name in columns}
     for name in columns:
         if mask[name].any() and chosen_methods[name] != "passive" and not (data[name].notna() & ~mask[name]).any():
             raise InputError(f"'{name}' has no observed values, so it cannot be imputed; remove it from the analysis "
                              "model or the auxiliary variables, or supply values")
     plan = ImputationPlan(data=data, types=types, methods=chosen_methods, impute_mask=mask, outcome=outcome,
-                          model_columns=tuple([outcome] + used), model=model, settings=settings)
+                          model_columns=tuple([outcome] + used), model=model, settings=settings, survival=survival)
     return dataclasses.replace(plan, sentences=plan_sentences(plan))
