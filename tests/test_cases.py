@@ -272,7 +272,7 @@ def test_comparison_on_ratio_scale_and_forest_plot(penguins):
     from gapbook.plots.cases import plot_strategy_comparison
     figure = plot_strategy_comparison(comparison, reference_value=0.0)
     axes = figure.axes[0]
-    assert axes.get_xscale() == "log"
+    assert axes.get_xscale() == "log" and axes.get_xlabel().startswith("odds ratio (log axis)")
     drawn = [line.get_xdata()[0] for line in axes.get_lines() if len(line.get_xdata()) == 1]  # point estimates
     assert np.allclose(drawn, table["exp_estimate"])
 

@@ -667,4 +667,8 @@ def open_stage(params: Union[None, str, Path, Dict[str, Any]] = None, out_dir: s
         resolved = Params.from_dict(params, source=params.get("source"))
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
+    # A stage notebook's tables are read whole on its page: no cell cut at 50 characters and no
+    # columns hidden in the middle (wide tables scroll on the page instead).
+    pd.set_option("display.max_colwidth", None)
+    pd.set_option("display.max_columns", None)
     return StageContext(params=resolved, out_dir=out)
