@@ -236,12 +236,33 @@ def test_mcar_variables_binary_codes_and_not_applicable(demo):
     assert len(chosen) == int((~study.not_applicable["insulin_dose"]).sum())
 
 
+def test_little_says_which_variables_it_left_out_and_why(demo, typed_penguins):
+    study, result = demo
+    row = result.mcar.as_row().iloc[0]
+    # The demo declares clinic and alcohol nominal, education ordinal; insulin_dose applies to some rows only.
+    assert row["variables_left_out"].split(",") == ["clinic", "education", "alcohol", "insulin_dose"]
+    assert set(row["variables"].split(",")).isdisjoint(row["variables_left_out"].split(","))
+    assert "clinic (nominal), education (ordinal) and alcohol (nominal) were left out" in row["note"]
+    assert "multivariate normal" in row["note"] and "insulin_dose was left out" in row["note"]
+    assert "Not in the test: clinic, education, alcohol, insulin_dose" in result.mcar.sentences[0]
+    # Penguins: species and island are nominal and never enter, even when complete.
+    penguin = mech.assess_mechanism(typed_penguins, types=PENGUIN_TYPES)
+    assert penguin.mcar.left_out == ("species", "island")
+    assert penguin.mcar.notes[0].startswith("species (nominal) and island (nominal) were left out")
+    # Variables chosen by hand: those not chosen are listed, with no category note.
+    chosen = mech.assess_mechanism(typed_penguins, types=PENGUIN_TYPES, variables=["bill_length_mm", "sex"])
+    assert chosen.mcar.as_row().iloc[0]["variables_left_out"] == (
+        "species,island,bill_depth_mm,flipper_length_mm,body_mass_g,year,torgersen")
+    assert "variables chosen in mechanism.variables" in chosen.mcar.notes[0]
+
+
 # ---------------------------------------------------------------------------
 # group comparisons
 
 def test_group_tests_equal_scipy(typed_penguins):
     frame = typed_penguins.drop(columns=["species"])
-    groups = mech.compare_groups(frame, types=PENGUIN_TYPES)
+    # sex is missing in 11 rows, 9 of which have the measurements: test from 2 rows up.
+    groups = mech.compare_groups(frame, types=PENGUIN_TYPES, min_missing=2)
     table = groups.comparisons.set_index(["incomplete_variable", "compared_variable"])
     sex_missing = frame["sex"].isna()
 
@@ -344,6 +365,42 @@ def test_too_few_missing_values_are_not_modelled(typed_penguins):
     fits = models.model_fit.set_index("incomplete_variable")
     assert fits.loc["bill_length_mm", "note"].startswith("not modelled: 2 missing")
     assert np.isnan(fits.loc["bill_length_mm", "auc"])
+
+
+def test_group_comparisons_obey_min_missing(typed_penguins):
+    frame = typed_penguins.drop(columns=["species"])
+    groups = mech.compare_groups(frame, types=PENGUIN_TYPES, min_missing=10)
+    table = groups.comparisons.set_index(["incomplete_variable", "compared_variable"])
+    # bill_length_mm is missing in 2 rows: no pair of it is tested, whatever the compared variable.
+    bill = table.loc["bill_length_mm"]
+    assert (bill["test"] == "not tested").all() and bill["p_value"].isna().all() and not bill["evidence"].any()
+    assert bill.loc["island", "note"].startswith("too few to compare: 2 rows where bill_length_mm is missing")
+    # sex: 9 missing rows have a bill length (too few at 10), 11 have an island (tested).
+    assert table.loc[("sex", "bill_length_mm"), "note"].startswith("too few to compare: 9 rows")
+    assert table.loc[("sex", "island"), "test"] == "chi-square test"
+    # Holm counts only the tests that ran (statsmodels multipletests on those).
+    tested = groups.comparisons["p_value"].notna()
+    holm = multipletests(groups.comparisons.loc[tested, "p_value"], method="holm")[1]
+    np.testing.assert_allclose(groups.comparisons.loc[tested, "p_adjusted"], holm, rtol=1e-12)
+    assert any(s.startswith("Missingness of bill_length_mm was not compared with the other variables: too few to "
+                            "compare (2 rows missing") for s in groups.sentences)
+
+
+def test_a_difference_over_a_few_rows_is_not_called_evidence():
+    # The 4 rows with the largest x lose y: Welch's test alone would call it evidence.
+    rng = np.random.default_rng(8)
+    x = rng.normal(size=300)
+    y = rng.normal(size=300)
+    y[np.argsort(x)[-4:]] = np.nan
+    frame = pd.DataFrame({"x": x, "y": y})
+    types = {"x": "continuous", "y": "continuous"}
+    loose = mech.compare_groups(frame, types=types, min_missing=2)
+    assert bool(loose.comparisons["evidence"].iloc[0])
+    strict = mech.assess_mechanism(frame, types=types, min_missing=10)
+    row = strict.groups.comparisons.iloc[0]
+    assert row["test"] == "not tested" and not row["evidence"] and "too few to compare" in row["note"]
+    assert not any("Evidence that missingness of y" in s for s in strict.sentences)
+    assert any("too few to compare (4 rows missing; at least 10 needed" in s for s in strict.sentences)
 
 
 # ---------------------------------------------------------------------------

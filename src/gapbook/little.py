@@ -238,6 +238,7 @@ class LittleTest:
     ``patterns`` has one row per missingness pattern used: n_rows, n_observed, the pattern's
     share of the statistic (``contribution``) and one 0/1 column per variable (1 = observed).
     ``notes`` explains variables left out, rows skipped, non-convergence or a singular covariance;
+    ``left_out`` names the variables of the data the test did not use (the notes say why);
     ``sentences`` the test in words (the mechanism stage writes them).
     """
 
@@ -252,6 +253,7 @@ class LittleTest:
     patterns: pd.DataFrame
     notes: Tuple[str, ...] = field(default_factory=tuple)
     sentences: Tuple[str, ...] = ()
+    left_out: Tuple[str, ...] = ()
 
     def tables(self) -> Dict[str, pd.DataFrame]:
         """``mcar_test`` (one row) and ``mcar_patterns`` (each pattern's part of the statistic)."""
@@ -262,7 +264,8 @@ class LittleTest:
         em = self.em
         return pd.DataFrame([{
             "statistic": self.statistic, "df": self.df, "p_value": self.p_value, "n_patterns": self.n_patterns,
-            "variables": ",".join(self.variables), "em_iterations": em.iterations if em else 0,
+            "variables": ",".join(self.variables), "variables_left_out": ",".join(self.left_out),
+            "em_iterations": em.iterations if em else 0,
             "em_converged": em.converged if em else False, "em_tolerance": em.tolerance if em else np.nan,
             "em_max_iterations": em.max_iterations if em else 0, "n_rows": self.n_rows,
             "n_rows_skipped": self.n_rows_skipped, "note": " ".join(self.notes),
@@ -270,7 +273,7 @@ class LittleTest:
 
 
 def little_mcar_test(data: pd.DataFrame, *, tolerance: float = 1e-8, max_iterations: int = 1000,
-                     notes: Sequence[str] = ()) -> LittleTest:
+                     notes: Sequence[str] = (), left_out: Sequence[str] = ()) -> LittleTest:
     """Little's test of missing completely at random for numeric variables.
 
     d^2 = sum_j n_j (ybar_j - mu_j)' Sigma_j^-1 (ybar_j - mu_j) over missingness patterns j,
@@ -284,6 +287,7 @@ def little_mcar_test(data: pd.DataFrame, *, tolerance: float = 1e-8, max_iterati
     data : numeric columns (binary as 0/1), NaN where missing.
     tolerance, max_iterations : passed to :func:`em_multivariate_normal`.
     notes : explanations from variable selection to carry in the result.
+    left_out : the names of the variables the selection left out, to carry in the result.
 
     Returns
     -------
@@ -306,19 +310,22 @@ def little_mcar_test(data: pd.DataFrame, *, tolerance: float = 1e-8, max_iterati
     empty_patterns = pd.DataFrame(columns=["n_rows", "n_observed", "contribution", *names])
     if len(names) == 0 or n_rows == 0:
         notes.append("No variable with observed values: Little's test was not computed.")
-        return LittleTest(np.nan, 0, np.nan, 0, names, n_rows, n_skipped, None, empty_patterns, tuple(notes))
+        return LittleTest(np.nan, 0, np.nan, 0, names, n_rows, n_skipped, None, empty_patterns, tuple(notes),
+                          left_out=tuple(left_out))
     try:
         em = em_multivariate_normal(data, tolerance=tolerance, max_iterations=max_iterations)
     except SingularCovariance as exc:
         notes.append(_singular_note(data, [names[k] for k in exc.args[0]]))
-        return LittleTest(np.nan, 0, np.nan, 0, names, n_rows, n_skipped, None, empty_patterns, tuple(notes))
+        return LittleTest(np.nan, 0, np.nan, 0, names, n_rows, n_skipped, None, empty_patterns, tuple(notes),
+                          left_out=tuple(left_out))
     if not em.converged:
         notes.append(f"EM did not converge in {em.max_iterations} iterations (tolerance {em.tolerance:g}); "
                      "the statistic uses the last estimates. Raise mechanism.em_max_iterations.")
     dependence = _dependence(em.covariance)
     if dependence:
         notes.append(_singular_note(data, dependence))
-        return LittleTest(np.nan, 0, np.nan, 0, names, n_rows, n_skipped, em, empty_patterns, tuple(notes))
+        return LittleTest(np.nan, 0, np.nan, 0, names, n_rows, n_skipped, em, empty_patterns, tuple(notes),
+                          left_out=tuple(left_out))
     mu = em.mean.to_numpy()
     sigma = em.covariance.to_numpy()
     patterns = group_patterns(values)
@@ -340,10 +347,11 @@ def little_mcar_test(data: pd.DataFrame, *, tolerance: float = 1e-8, max_iterati
     if df == 0:
         # One pattern with everything observed: the sample means are the ML means, d^2 = 0.
         notes.append("Only one missingness pattern: there is nothing to compare (statistic 0, df 0).")
-        return LittleTest(0.0, 0, np.nan, len(rows), names, n_rows, n_skipped, em, table, tuple(notes))
+        return LittleTest(0.0, 0, np.nan, len(rows), names, n_rows, n_skipped, em, table, tuple(notes),
+                          left_out=tuple(left_out))
     p_value = float(stats.chi2.sf(statistic, df))
     return LittleTest(float(statistic), int(df), p_value, len(rows), names, n_rows, n_skipped, em, table,
-                      tuple(notes))
+                      tuple(notes), left_out=tuple(left_out))
 
 
 def _dependence(covariance: pd.DataFrame) -> List[str]:

@@ -66,6 +66,12 @@ def _type_of(types: Mapping[str, str], column: str, values: pd.Series) -> str:
     return types.get(column) or infer_type(values)[0]
 
 
+def _listing(items: Sequence[str]) -> str:
+    """'a', 'a and b', 'a, b and c'."""
+    items = list(items)
+    return items[0] if len(items) == 1 else ", ".join(items[:-1]) + " and " + items[-1]
+
+
 def _level_text(level: Any) -> str:
     return f"{level:g}" if isinstance(level, (float, np.floating)) else str(level)
 
@@ -102,6 +108,7 @@ class GroupComparison:
     level_shares: pd.DataFrame
     alpha: float
     sentences: Tuple[str, ...] = ()
+    min_missing: int = 10
 
     def tables(self) -> Dict[str, pd.DataFrame]:
         """``mechanism_groups``."""
@@ -123,9 +130,21 @@ def _empty_row(v: str, w: str, n1: int, n0: int, note: str) -> Dict[str, Any]:
             "distribution_observed_group": "", "note": note}
 
 
-def _compare_continuous(v: str, w: str, x1: np.ndarray, x0: np.ndarray) -> Dict[str, Any]:
+def _too_few(n1: int, n0: int, min_missing: int) -> bool:
+    """Both groups hold values, but one has fewer than ``min_missing``: a difference there is mostly noise."""
+    return 0 < min(n1, n0) < min_missing
+
+
+def _too_few_note(v: str, w: str, n1: int, n0: int, min_missing: int) -> str:
+    return (f"too few to compare: {n1} rows where {v} is missing and {n0} where it is observed have a value of "
+            f"{w}; at least {min_missing} of each are needed (mechanism.min_missing)")
+
+
+def _compare_continuous(v: str, w: str, x1: np.ndarray, x0: np.ndarray, min_missing: int) -> Dict[str, Any]:
     n1, n0 = len(x1), len(x0)
-    if n1 < 2 or n0 < 2:
+    if _too_few(n1, n0, min_missing):
+        row = _empty_row(v, w, n1, n0, _too_few_note(v, w, n1, n0, min_missing))
+    elif n1 < 2 or n0 < 2:
         row = _empty_row(v, w, n1, n0, f"fewer than 2 values of {w} in a group")
     elif np.var(x1) == 0 and np.var(x0) == 0:
         row = _empty_row(v, w, n1, n0, f"{w} does not vary within either group")
@@ -157,14 +176,17 @@ def _shares_text(levels: Sequence[Any], counts: np.ndarray) -> str:
     return ", ".join(f"{_level_text(level)} {100 * c / total:.1f}%" for level, c in zip(levels, counts))
 
 
-def _compare_categorical(v: str, w: str, g1: pd.Series, g0: pd.Series, levels: Sequence[Any]) -> Dict[str, Any]:
+def _compare_categorical(v: str, w: str, g1: pd.Series, g0: pd.Series, levels: Sequence[Any],
+                         min_missing: int) -> Dict[str, Any]:
     c1 = np.array([(g1 == level).sum() for level in levels], dtype=float)
     c0 = np.array([(g0 == level).sum() for level in levels], dtype=float)
     n1, n0 = int(c1.sum()), int(c0.sum())
     keep = (c1 + c0) > 0
     kept_levels = [lv for lv, k in zip(levels, keep) if k]
     table = np.vstack([c1[keep], c0[keep]])
-    if n1 == 0 or n0 == 0:
+    if _too_few(n1, n0, min_missing):
+        row = _empty_row(v, w, n1, n0, _too_few_note(v, w, n1, n0, min_missing))
+    elif n1 == 0 or n0 == 0:
         row = _empty_row(v, w, n1, n0, f"no observed value of {w} in a group")
     elif table.shape[1] < 2:
         row = _empty_row(v, w, n1, n0, f"{w} takes one value in these rows")
@@ -191,7 +213,8 @@ def _compare_categorical(v: str, w: str, g1: pd.Series, g0: pd.Series, levels: S
 
 
 def compare_groups(data: pd.DataFrame, *, types: Mapping[str, str], missing: Optional[pd.DataFrame] = None,
-                   not_applicable: Optional[pd.DataFrame] = None, alpha: float = 0.05) -> GroupComparison:
+                   not_applicable: Optional[pd.DataFrame] = None, alpha: float = 0.05,
+                   min_missing: int = 10) -> GroupComparison:
     """Compare every variable between rows where each incomplete variable is missing and observed.
 
     Parameters
@@ -201,6 +224,10 @@ def compare_groups(data: pd.DataFrame, *, types: Mapping[str, str], missing: Opt
     missing : True where a value is missing (default: ``data.isna()``).
     not_applicable : True where a value does not apply; those rows belong to neither group.
     alpha : level at which a Holm-adjusted p-value counts as evidence.
+    min_missing : a pair is tested only when both groups hold at least this many values of
+        the compared variable; otherwise its row says "too few to compare" (no test, no
+        p-value, not counted in the Holm adjustment). The same threshold as the
+        missingness models; a difference over a handful of rows is mostly noise.
 
     Returns
     -------
@@ -237,12 +264,12 @@ def compare_groups(data: pd.DataFrame, *, types: Mapping[str, str], missing: Opt
             if kind in NUMERIC_TYPES:
                 numbers = values.to_numpy(dtype=float)
                 x1, x0 = numbers[is_missing & present], numbers[is_observed & present]
-                rows.append(_compare_continuous(v, w, x1, x0))
+                rows.append(_compare_continuous(v, w, x1, x0, min_missing))
                 quantile_parts.append(_quantile_frame(v, w, x1, x0))
             else:
                 levels = levels_of(values)
                 g1, g0 = values[is_missing & present], values[is_observed & present]
-                rows.append(_compare_categorical(v, w, g1, g0, levels))
+                rows.append(_compare_categorical(v, w, g1, g0, levels, min_missing))
                 share_parts.append(_share_frame(v, w, g1, g0, levels))
     table = pd.DataFrame(rows, columns=[c for c in GROUP_COLUMNS if c not in ("p_adjusted", "evidence")])
     table.insert(table.columns.get_loc("p_value") + 1, "p_adjusted", holm_adjust(table["p_value"].to_numpy()))
@@ -254,7 +281,8 @@ def compare_groups(data: pd.DataFrame, *, types: Mapping[str, str], missing: Opt
         columns=["incomplete_variable", "compared_variable", "group", "probability", "value"])
     shares = pd.concat(share_parts, ignore_index=True) if share_parts else pd.DataFrame(
         columns=["incomplete_variable", "compared_variable", "group", "level", "count", "share"])
-    groups = GroupComparison(comparisons=table, quantiles=quantiles, level_shares=shares, alpha=alpha)
+    groups = GroupComparison(comparisons=table, quantiles=quantiles, level_shares=shares, alpha=alpha,
+                             min_missing=min_missing)
     return dataclasses.replace(groups, sentences=tuple(group_sentences(groups)))
 
 
@@ -307,8 +335,10 @@ def mcar_test_data(data: pd.DataFrame, *, types: Mapping[str, str], not_applicab
     By default every continuous, count and binary variable with at least one observed
     value, except those with "not applicable" cells (their absence is structural, not
     missing) and those constant where observed. Binary text variables enter as 0/1 codes
-    (second level = 1). With ``variables`` given, those exactly; rows where any of them
-    does not apply are left out (with a note).
+    (second level = 1). Nominal and ordinal variables are never in the test (it rests on
+    a multivariate normal model). Every variable left out by default gets a note saying
+    why. With ``variables`` given, those exactly; rows where any of them does not apply
+    are left out (with a note).
 
     Raises InputError for unknown or unsuitable names in ``variables``.
     """
@@ -326,20 +356,32 @@ def mcar_test_data(data: pd.DataFrame, *, types: Mapping[str, str], not_applicab
                                  "and binary variables, so leave it out of mechanism.variables", option="variables")
             if data[name].notna().sum() == 0:
                 raise InputError(f"'{name}' has no observed values; leave it out", option="variables")
+        if len(chosen) < len(data.columns):
+            notes.append("The test uses the variables chosen in mechanism.variables; the others were not chosen.")
         rows = ~not_applicable[chosen].any(axis=1).to_numpy() if chosen else np.ones(len(data), dtype=bool)
         if not rows.all():
             notes.append(f"{int((~rows).sum())} rows where a test variable does not apply were left out.")
     else:
         chosen = []
         rows = np.ones(len(data), dtype=bool)
+        categories: List[str] = []
         for name in data.columns:
             kind = _type_of(types, name, data[name])
-            if kind not in NUMBER_CODED_TYPES or data[name].notna().sum() == 0:
+            if kind not in NUMBER_CODED_TYPES:
+                categories.append(f"{name} ({kind})")
+                continue
+            if data[name].notna().sum() == 0:
+                notes.append(f"{name} was left out because it has no observed values.")
                 continue
             if bool(not_applicable[name].any()):
                 notes.append(f"{name} was left out because it does not apply to every row.")
                 continue
             chosen.append(name)
+        if categories:
+            notes.insert(0, f"{_listing(categories)} {'was' if len(categories) == 1 else 'were'} left out: "
+                         "the test rests on a multivariate normal model, which takes numbers and 0/1 codes but not "
+                         "categories with more than two levels (the spacing of ordinal codes is arbitrary); the "
+                         "group comparisons cover them.")
     columns = {}
     for name in chosen:
         kind = _type_of(types, name, data[name])
@@ -599,12 +641,13 @@ def mcar_sentence(test: LittleTest, alpha: float = 0.05) -> str:
         reason = " ".join(test.notes) if test.notes else "it could not be computed."
         return f"Little's test gives no p-value. {reason}"
     numbers = f"d\u00b2 = {test.statistic:.2f}, df = {test.df}, {format_p(test.p_value)}; {test.n_patterns} patterns"
+    left_out = f" Not in the test: {', '.join(test.left_out)}; the notes to Little's test say why." if test.left_out else ""
     if test.p_value < alpha:
         return (f"Little's test gives evidence against missing completely at random (MCAR) for "
-                f"{', '.join(test.variables)} ({numbers}).")
+                f"{', '.join(test.variables)} ({numbers}).{left_out}")
     return (f"Little's test gives no evidence against MCAR ({numbers}). Absence of evidence is not proof: "
             "the test has limited power, and it only looks at the variables "
-            f"{', '.join(test.variables)}.")
+            f"{', '.join(test.variables)}.{left_out}")
 
 
 def _relation_text(row: pd.Series, variable: str) -> str:
@@ -626,7 +669,12 @@ def group_sentences(groups: GroupComparison) -> List[str]:
     for v, rows in table.groupby("incomplete_variable", sort=False):
         tested = rows[rows["p_adjusted"].notna()]
         if tested.empty:
-            sentences.append(f"Missingness of {v} could not be compared with other variables (too few rows).")
+            most = int(rows["n_missing_group"].max())
+            if 0 < most < groups.min_missing:
+                sentences.append(f"Missingness of {v} was not compared with the other variables: too few to compare "
+                                 f"({most} rows missing; at least {groups.min_missing} needed, mechanism.min_missing).")
+            else:
+                sentences.append(f"Missingness of {v} could not be compared with other variables (too few rows).")
             continue
         hits = tested[tested["evidence"]].sort_values("p_adjusted", kind="stable")
         if hits.empty:
@@ -701,7 +749,8 @@ def assess_mechanism(data: pd.DataFrame, *, types: Mapping[str, str], missing: O
     data, types, missing, not_applicable : as for :func:`compare_groups`.
     variables : Little's test variables (default: see :func:`mcar_test_data`).
     alpha : evidence level for adjusted p-values, Little's test and model CIs.
-    min_missing : the least number of missing (and observed) rows for a missingness model.
+    min_missing : the least number of missing (and observed) rows for a group comparison and
+        for a missingness model.
     em_tolerance, em_max_iterations : EM convergence settings for Little's test.
 
     Returns
@@ -712,9 +761,12 @@ def assess_mechanism(data: pd.DataFrame, *, types: Mapping[str, str], missing: O
     ----------
     Little RJA (1988). JASA 83:1198-1202.
     """
-    groups = compare_groups(data, types=types, missing=missing, not_applicable=not_applicable, alpha=alpha)
+    groups = compare_groups(data, types=types, missing=missing, not_applicable=not_applicable, alpha=alpha,
+                            min_missing=min_missing)
     frame, notes = mcar_test_data(data, types=types, not_applicable=not_applicable, variables=variables)
-    mcar = little_mcar_test(frame, tolerance=em_tolerance, max_iterations=em_max_iterations, notes=notes)
+    left_out = tuple(name for name in data.columns if name not in frame.columns)
+    mcar = little_mcar_test(frame, tolerance=em_tolerance, max_iterations=em_max_iterations, notes=notes,
+                            left_out=left_out)
     mcar = dataclasses.replace(mcar, sentences=(mcar_sentence(mcar, alpha),))
     models = missingness_models(data, types=types, missing=missing, not_applicable=not_applicable,
                                 min_missing=min_missing, alpha=alpha)
