@@ -93,8 +93,9 @@ def test_range_flags_or_sets_missing(csv_file):
 
 
 def test_robust_screen_matches_scipy_mad(tmp_path):
+    # A variable with negative values is screened on its own scale.
     rng = np.random.default_rng(4)
-    values = np.append(rng.normal(50, 5, 200).round(2), [120.0])
+    values = np.append(rng.normal(0, 5, 200).round(2), [70.0])
     path = tmp_path / "x.csv"
     pd.DataFrame({"pid": np.arange(201), "x": values}).to_csv(path, index=False)
     study = load_study(make_params(path, missing={"robust_z": 4}))
@@ -102,7 +103,31 @@ def test_robust_screen_matches_scipy_mad(tmp_path):
     scale = stats.median_abs_deviation(values, scale="normal")
     expected = np.flatnonzero(np.abs(values - np.median(values)) / scale > 4)
     assert study.extreme_values["id"].tolist() == [str(i) for i in expected]
-    assert 200 in expected
+    assert 200 in expected and (study.extreme_values["z_scale"] == "linear").all()
+
+
+def test_robust_screen_leaves_skewed_positive_values_alone_and_finds_real_outliers(tmp_path):
+    # A right-skewed laboratory value: log-normal, 313 patients (a bilirubin-like spread, sigma 0.9 on the log scale).
+    rng = np.random.default_rng(12)
+    values = np.exp(rng.normal(np.log(0.8), 0.9, 313)).round(3)
+    path = tmp_path / "lab.csv"
+    pd.DataFrame({"pid": np.arange(313), "bili": values}).to_csv(path, index=False)
+    study = load_study(make_params(path))
+    assert study.extreme_values.empty
+    # The same values on their own scale (reference: scipy MAD, cutoff 5) would list a long tail.
+    linear = np.abs(values - np.median(values)) / stats.median_abs_deviation(values, scale="normal")
+    assert (linear > 5).sum() >= 5
+    # Real errors are still found: values 1000 times and 1/1000 of the median (a unit or decimal point slip).
+    values[[7, 150]] = [np.median(values) * 1000, np.median(values) / 1000]
+    pd.DataFrame({"pid": np.arange(313), "bili": values}).to_csv(path, index=False)
+    study = load_study(make_params(path))
+    found = study.extreme_values
+    assert found["id"].tolist() == ["7", "150"] and (found["z_scale"] == "log").all()
+    # Reference: robust z of the logs with scipy's normal MAD (an odd count, so the same middle values).
+    logs = np.log(values)
+    z = (logs - np.median(logs)) / stats.median_abs_deviation(logs, scale="normal")
+    np.testing.assert_allclose(found["robust_z"], z[[7, 150]], rtol=1e-5)
+    assert found["robust_z"].iloc[0] > 5 and found["robust_z"].iloc[1] < -5
 
 
 def test_formats_read_alike(tmp_path, csv_file):

@@ -30,7 +30,7 @@ import numpy as np
 import pandas as pd
 
 from .errors import InputError, did_you_mean
-from .intake import Study
+from .intake import EXTREME_COLUMNS, RANGE_COLUMNS, Study
 from .params import DEFAULT_MAX_PATTERNS, MAX_PATTERNS_LISTED
 from .vocabulary import NOT_APPLICABLE, infer_type
 
@@ -748,8 +748,8 @@ def audit_frame(data: pd.DataFrame, *, reasons: Optional[pd.DataFrame] = None,
     by = _grouping_variables(by, data.columns)
     types_table = pd.DataFrame({"variable": list(data.columns), "type": [types.get(c, "") for c in data.columns]})
     return _audit(data, reasons, dict(types), float(threshold), by, int(top_patterns),
-                  _empty_review(["variable", "id", "value", "rule", "action"]),
-                  _empty_review(["variable", "id", "value", "median", "robust_z"]), types_table, int(max_patterns))
+                  _empty_review(list(RANGE_COLUMNS)), _empty_review(list(EXTREME_COLUMNS)), types_table,
+                  int(max_patterns))
 
 
 def audit_study(study: Study, *, threshold: float = DEFAULT_THRESHOLD, by: Sequence[str] = (),

@@ -1094,7 +1094,7 @@ def _looks_like_free_text(cells: DistinctCells, text_lookup: List[Optional[str]]
 
 
 RANGE_COLUMNS = ("variable", "id", "value", "rule", "action")
-EXTREME_COLUMNS = ("variable", "id", "value", "median", "robust_z")
+EXTREME_COLUMNS = ("variable", "id", "value", "median", "robust_z", "z_scale")
 RANGE_ACTIONS = {"missing": "set missing (implausible)", "flag": "flagged, kept"}
 
 
@@ -1140,15 +1140,66 @@ def _check_ranges(data: pd.DataFrame, reasons: pd.DataFrame, infos: Mapping[str,
     return data, reasons, table
 
 
+@dataclass(frozen=True)
+class RobustCentre:
+    """Where a variable's values sit and how far they spread, for the robust screen.
+
+    ``median`` is on the variable's own scale. ``log`` is True for a variable whose observed
+    values are all positive: its spread ``scale`` is then in natural-log units (the normal-
+    consistent MAD of log values), otherwise in the variable's units.
+    """
+
+    median: float
+    scale: float
+    log: bool
+
+
+def spread_values(values: np.ndarray, median: float, log: bool) -> np.ndarray:
+    """Distance of each value from the median: |value - median|, or the fold max(value/median, median/value).
+
+    The fold is the exponential of the distance on the log scale; it uses only division, so
+    SQL gives the same floating point numbers (the log is taken afterwards, in numpy).
+    """
+    if log:
+        return np.maximum(values / median, median / values)
+    return np.abs(values - median)
+
+
+def robust_centre(median: float, spread_median: float, log: bool) -> Optional[RobustCentre]:
+    """The centre from the median and the median of :func:`spread_values`; None when the spread is 0."""
+    scale = MAD_TO_SD * float(np.log(spread_median) if log else spread_median)
+    return RobustCentre(median=median, scale=scale, log=log) if scale > 0 else None
+
+
+def robust_z(values: np.ndarray, centre: RobustCentre) -> np.ndarray:
+    """Robust z of each value: signed distance from the median over the scale (on the log scale when ``log``)."""
+    with np.errstate(invalid="ignore", divide="ignore"):
+        if centre.log:
+            return np.sign(values - centre.median) * np.log(spread_values(values, centre.median, True)) / centre.scale
+        return (values - centre.median) / centre.scale
+
+
 def robust_screen(data: pd.DataFrame, infos: Mapping[str, VariableInfo], ids: pd.Series,
                   cutoff: float) -> pd.DataFrame:
-    """Values far from the median in MAD units, listed for review and never changed.
+    """Values far from the median in robust SD units, listed for review and never changed.
+
+    The robust z of a value is its distance from the median over the MAD scaled to the
+    normal SD (Hampel 1974; Leys et al. 2013). Laboratory values and most other positive
+    measurements are right-skewed (roughly log-normal): on their own scale the long right
+    tail would be listed as "far from the rest" although nothing is wrong with it. So for a
+    variable whose observed values are all positive the distance is taken on the log scale
+    (the fold change from the median), where such a variable is near symmetric; a value
+    100 times or 1/100 of the median still stands out. Variables with zero or negative
+    values keep the variable's own scale. ``z_scale`` in the list says which was used.
 
     References
     ----------
     Hampel FR (1974). The influence curve and its role in robust estimation. JASA 69:383-393.
     Leys C et al. (2013). Detecting outliers: do not use standard deviation around the mean,
     use absolute deviation around the median. J Exp Soc Psychol 49:764-766.
+    Limpert E, Stahel WA, Abbt M (2001). Log-normal distributions across the sciences: keys
+    and clues. BioScience 51:341-352 (why positive measurements are compared as ratios;
+    citation recalled from memory).
     """
     rows: List[Dict[str, Any]] = []
     for name, info in infos.items():
@@ -1159,13 +1210,14 @@ def robust_screen(data: pd.DataFrame, infos: Mapping[str, VariableInfo], ids: pd
         if observed.size < 3:
             continue
         median = float(np.median(observed))
-        scale = MAD_TO_SD * float(np.median(np.abs(observed - median)))
-        if scale <= 0:
+        log = bool(observed.min() > 0)
+        centre = robust_centre(median, float(np.median(spread_values(observed, median, log))), log)
+        if centre is None:
             continue
+        z = robust_z(column, centre)
         with np.errstate(invalid="ignore"):
-            z = (column - median) / scale
             flagged = np.abs(z) > cutoff
         for r in np.flatnonzero(flagged):
             rows.append({"variable": name, "id": ids.iloc[r], "value": column[r], "median": median,
-                         "robust_z": float(z[r])})
+                         "robust_z": float(z[r]), "z_scale": "log" if log else "linear"})
     return pd.DataFrame(rows, columns=list(EXTREME_COLUMNS))

@@ -35,12 +35,12 @@ import pandas as pd
 from .errors import InputError
 from .expressions import Expression
 from .expressions_sql import SqlColumn, compile_condition, layered_select
-from .intake import (EXTREME_COLUMNS, IMPLAUSIBLE, MAD_TO_SD, RANGE_ACTIONS, RANGE_COLUMNS, ColumnDecision,
-                     ConditionCounts, DistinctCells, EveryValueNeeded, PlainNumbers, VariableInfo, _format_of,
+from .intake import (EXTREME_COLUMNS, IMPLAUSIBLE, RANGE_ACTIONS, RANGE_COLUMNS, ColumnDecision, ConditionCounts,
+                     DistinctCells, EveryValueNeeded, PlainNumbers, RobustCentre, VariableInfo, _format_of,
                      _refuse_markers_that_are_levels, _text_header, applicability_warnings, blank_id_error,
                      check_declared_columns, check_expression_columns, clean_id, decide_column, duplicate_id_error,
-                     inferred_notes, marker_table, range_action, range_rule, read_table, rows_note, sha256_of,
-                     variables_table)
+                     inferred_notes, marker_table, range_action, range_rule, read_table, robust_centre, robust_z,
+                     rows_note, sha256_of, variables_table)
 from .params import Params, VariableSpec
 from .vocabulary import CATEGORICAL_TYPES, NOT_APPLICABLE, NUMERIC_TYPES
 
@@ -668,17 +668,17 @@ class _Scanner:
             return pd.DataFrame(columns=list(EXTREME_COLUMNS))
         # A slightly wider band in SQL; the cut itself is made below with intake's arithmetic.
         found = self.con.execute(" UNION ALL ".join(
-            f"SELECT {j} AS j, rn, id, v_{column.alias} AS v FROM study WHERE abs(v_{column.alias} - {literal(m)}) > "
-            f"{literal(cutoff * scale * (1 - 1e-9))}" for j, (column, (m, scale)) in enumerate(wanted))
+            f"SELECT {j} AS j, rn, id, v_{column.alias} AS v FROM study WHERE {_spread_sql(f'v_{column.alias}', centre)} > "
+            f"{literal(_band(cutoff, centre))}" for j, (column, centre) in enumerate(wanted))
             + " ORDER BY j, rn").fetchall()
         rows: List[Dict[str, Any]] = []
         for j, rn, ident, value in found:
-            column, (median, scale) = wanted[j]
-            with np.errstate(invalid="ignore"):
-                z = (np.float64(value) - median) / scale
+            column, centre = wanted[j]
+            z = robust_z(np.array([value], dtype=float), centre)[0]
             if np.abs(z) > cutoff:
                 rows.append({"variable": column.name, "id": self._id_value(rn, ident), "value": float(value),
-                             "median": median, "robust_z": float(z)})
+                             "median": centre.median, "robust_z": float(z),
+                             "z_scale": "log" if centre.log else "linear"})
         return pd.DataFrame(rows, columns=list(EXTREME_COLUMNS))
 
     # -- all steps ---------------------------------------------------------------------------
@@ -743,34 +743,50 @@ def _middle(counts_below: int, window: Mapping[float, int], n: int) -> Optional[
     return _numpy_median([float(low)] if k1 == k2 else [float(low), float(high)])
 
 
-def _robust_centres(con, relation: str, expressions: Sequence[str]) -> List[Optional[Tuple[float, float]]]:
-    """Median and MAD scale (``MAD_TO_SD`` x median absolute deviation) of each expression's non-NULL values.
+def _spread_sql(expression: str, centre: Any) -> str:
+    """:func:`gapbook.intake.spread_values` in SQL (division and abs only: the same floating point results)."""
+    median = literal(centre.median)
+    if centre.log:
+        return f"greatest({expression} / {median}, {median} / {expression})"
+    return f"abs({expression} - {median})"
+
+
+def _band(cutoff: float, centre: RobustCentre) -> float:
+    """A spread a little below the cut of |robust z| > cutoff, so the SQL filter keeps every flagged value."""
+    limit = cutoff * centre.scale
+    return float(np.exp(limit) if centre.log else limit) * (1 - 1e-9)
+
+
+def _robust_centres(con, relation: str, expressions: Sequence[str]) -> List[Optional[RobustCentre]]:
+    """Median and robust scale of each expression's non-NULL values (:class:`gapbook.intake.RobustCentre`).
 
     Exactly as :func:`gapbook.intake.robust_screen` computes them with numpy, in four passes
     over the rows whatever the number of columns: a reservoir sample guesses each median,
     a window of values around the guess gives the exact middle values, and the same for
-    the absolute deviations. None where there are fewer than 3 values or the scale is 0.
+    the spreads from the median (absolute deviations, or folds for an all-positive
+    variable). None where there are fewer than 3 values or the scale is 0.
     """
     if not expressions:
         return []
     guesses = con.execute("SELECT " + ", ".join(
-        f"count({e}), reservoir_quantile({e}, [{0.5 - _WINDOW}, 0.5, {0.5 + _WINDOW}], {_RESERVOIR})"
+        f"count({e}), min({e}), reservoir_quantile({e}, [{0.5 - _WINDOW}, 0.5, {0.5 + _WINDOW}], {_RESERVOIR})"
         for e in expressions) + f" FROM {relation}").fetchone()
-    counts = [int(guesses[2 * j]) for j in range(len(expressions))]
-    windows = [guesses[2 * j + 1] for j in range(len(expressions))]
+    counts = [int(guesses[3 * j]) for j in range(len(expressions))]
+    positive = [guesses[3 * j + 1] is not None and float(guesses[3 * j + 1]) > 0 for j in range(len(expressions))]
+    windows = [guesses[3 * j + 2] for j in range(len(expressions))]
     medians = _exact_middles(con, relation, expressions, counts, windows)
-    spreads = [f"abs({e} - {literal(m)})" if m is not None else "NULL::DOUBLE" for e, m in zip(expressions, medians)]
+    spreads = [_spread_sql(e, RobustCentre(median=m, scale=0.0, log=log)) if m is not None else "NULL::DOUBLE"
+               for e, m, log in zip(expressions, medians, positive)]
     guesses = con.execute("SELECT " + ", ".join(
         f"reservoir_quantile({s}, [{0.5 - _WINDOW}, 0.5, {0.5 + _WINDOW}], {_RESERVOIR})" for s in spreads)
         + f" FROM {relation}").fetchone()
-    mads = _exact_middles(con, relation, spreads, counts, list(guesses))
-    out: List[Optional[Tuple[float, float]]] = []
-    for n, median, mad in zip(counts, medians, mads):
-        if n < 3 or median is None or mad is None:
+    middles = _exact_middles(con, relation, spreads, counts, list(guesses))
+    out: List[Optional[RobustCentre]] = []
+    for n, median, middle, log in zip(counts, medians, middles, positive):
+        if n < 3 or median is None or middle is None:
             out.append(None)
             continue
-        scale = MAD_TO_SD * float(mad)
-        out.append((median, scale) if scale > 0 else None)
+        out.append(robust_centre(median, float(middle), log))
     return out
 
 
