@@ -191,7 +191,7 @@ def check_model_up_front(params: Params, study: Any) -> Tuple[str, List[str]]:
     """
     from .cases import check_model_data
     from .errors import AnalysisError
-    from .models import check_formula
+    from .models import check_formula, exposure_terms
     from .stage import analysis_model, params_errors
     from .survival import check_follow_up
 
@@ -207,10 +207,24 @@ def check_model_up_front(params: Params, study: Any) -> Tuple[str, List[str]]:
                              "drop it from the formula or check its missing markers")
     try:
         with params_errors(params, "analysis"):
-            model.fit(study.data)
+            fitted = model.fit(study.data)
     except AnalysisError:
-        pass
+        return found
+    with params_errors(params, "analysis"):
+        # Every model stage follows the exposure's terms: an exposure the formula lacks stops them all.
+        exposure_terms(fitted.terms, model.exposure)
     return found
+
+
+def check_sensitivity_up_front(params: Params, study: Any) -> None:
+    """Stop before any stage when the sensitivity stage could not shift what the params ask for.
+
+    The same function as the stage (:func:`gapbook.stage.sensitivity_series`): the imputation
+    plan and the delta series are built and checked, and no imputation runs.
+    """
+    from .stage import imputation_plan, sensitivity_series
+
+    sensitivity_series(params, study, imputation_plan(params, study))
 
 
 def check_followup_up_front(params: Params, study: Any, stages: Sequence[str]) -> Tuple[str, ...]:
@@ -333,6 +347,8 @@ def preflight(params: Params, *, only: Optional[Sequence[str]] = None, log: Opti
         design_notes = check_followup_up_front(params, study, stages)
     elif model_stages:
         model = check_model_up_front(params, study)
+        if "sensitivity" in stages:
+            check_sensitivity_up_front(params, study)
     chosen = tuple(found[s] for s in stages)
     notes = design_notes + tuple(f"notebook {nb.file}: the study folder's copy, which differs from the kit's"
                                  for nb in chosen if nb.origin == STUDY and nb.differs_from_kit)

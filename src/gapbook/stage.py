@@ -46,7 +46,7 @@ if TYPE_CHECKING:  # the stage modules are imported where a stage is run, not wh
     from .models import AnalysisModel
     from .pool import PooledResult, WaldTest
     from .report import RecordSuppression, ReportSummary
-    from .sensitivity import SensitivityResult
+    from .sensitivity import DeltaSeries, SensitivityResult
     from .simulate import SimulationResult
     from .estimand import EstimandDescription
     from .followup import FollowupAnalysis
@@ -57,7 +57,7 @@ if TYPE_CHECKING:  # the stage modules are imported where a stage is run, not wh
     from .time_to_event import TimeToEventAudit, TimeToEventMechanism
 
 __all__ = ["StageResult", "StageContext", "open_stage", "analysis_model", "params_errors", "write_csv",
-           "merge_estimates", "CSV_FLOAT_FORMAT", "ESTIMATE_COLUMNS", "FIGURE_DPI", "repeated_design",
+           "merge_estimates", "imputation_plan", "sensitivity_series", "CSV_FLOAT_FORMAT", "ESTIMATE_COLUMNS", "FIGURE_DPI", "repeated_design",
            "repeated_model_data"]
 
 CSV_FLOAT_FORMAT = "%.10g"
@@ -523,14 +523,7 @@ class StageContext:
 
     def imputation_plan(self) -> "ImputationPlan":
         """What to impute and how, from the ``imputation`` section and the analysis model."""
-        from .impute import plan_imputation
-
-        section = self.params.imputation
-        with params_errors(self.params, "imputation", "analysis", "sensitivity"):
-            return plan_imputation(self.study, model=self.model(), m=section.m, iterations=section.iterations,
-                                   seed=section.seed, donors=section.donors, n_jobs=section.n_jobs,
-                                   methods=section.methods, passive=section.passive, predictors=section.predictors,
-                                   exclude_predictors=section.exclude_predictors, auxiliary=section.auxiliary)
+        return imputation_plan(self.params, self.study)
 
     def impute(self, plan: "ImputationPlan") -> "ChainedImputation":
         """Run the plan (m chains); no progress bar on the page."""
@@ -549,16 +542,13 @@ class StageContext:
 
     def sensitivity(self, plan: "ImputationPlan") -> "SensitivityResult":
         """Delta adjustment over the ``sensitivity`` grids, tipping points and every analysis side by side."""
-        from .sensitivity import DeltaSpec, delta_series, sensitivity_analysis
+        from .sensitivity import sensitivity_analysis
 
-        section = self.params.sensitivity
-        grids = {variable: (DeltaSpec(values=grid.values, by=grid.by, groups=dict(grid.groups))
-                            if isinstance(grid, DeltaGrid) else list(grid))
-                 for variable, grid in section.delta.items()}
+        series = sensitivity_series(self.params, self.study, plan)
+        units = {name: spec.unit for name, spec in self.params.variables.items() if spec.unit}
         with params_errors(self.params, "sensitivity", "imputation", "analysis"):
-            series = delta_series(self.study.data, outcome=plan.delta_default(), variable=section.variable,
-                                  grids=grids, types=self.study.types)
-            return sensitivity_analysis(plan, series=series, m=section.m, estimates=self.read_table("estimates"))
+            return sensitivity_analysis(plan, series=series, m=self.params.sensitivity.m,
+                                        estimates=self.read_table("estimates"), units=units)
 
     def simulation(self) -> "SimulationResult":
         """The bias simulation with the ``simulation`` section."""
@@ -627,6 +617,35 @@ class StageContext:
                           f"tables outside the study team (threshold report.min_cell = {section.min_cell}).",)
         result = suppress_record_tables(self.read_tables(list(COUNT_TABLES)), min_cell=section.min_cell)
         return result, result.sentences
+
+
+def imputation_plan(params: Params, study: Study) -> "ImputationPlan":
+    """What to impute and how, from the ``imputation`` section and the analysis model (the stages and ``check``)."""
+    from .impute import plan_imputation
+
+    section = params.imputation
+    with params_errors(params, "imputation", "analysis", "sensitivity"):
+        return plan_imputation(study, model=analysis_model(params), m=section.m, iterations=section.iterations,
+                               seed=section.seed, donors=section.donors, n_jobs=section.n_jobs,
+                               methods=section.methods, passive=section.passive, predictors=section.predictors,
+                               exclude_predictors=section.exclude_predictors, auxiliary=section.auxiliary)
+
+
+def sensitivity_series(params: Params, study: Study, plan: "ImputationPlan") -> Tuple["DeltaSeries", ...]:
+    """The delta series the sensitivity stage will run, checked against the plan without imputing.
+
+    The stage and ``check`` (:func:`gapbook.pipeline.preflight`) both call it, so a variable
+    that cannot be shifted stops ``check`` as it would stop ``run``. Empty when the params
+    name no variable and every analysis-model variable is complete.
+    """
+    from .sensitivity import DeltaSpec, plan_series
+
+    section = params.sensitivity
+    grids = {variable: (DeltaSpec(values=grid.values, by=grid.by, groups=dict(grid.groups))
+                        if isinstance(grid, DeltaGrid) else list(grid))
+             for variable, grid in section.delta.items()}
+    with params_errors(params, "sensitivity", "imputation", "analysis"):
+        return plan_series(plan, study.data, variable=section.variable, grids=grids, types=study.types)
 
 
 def merge_estimates(existing: Optional[pd.DataFrame], rows: pd.DataFrame, path: Path) -> pd.DataFrame:

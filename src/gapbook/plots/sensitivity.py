@@ -14,7 +14,7 @@ import numpy as np
 
 from . import BACKGROUND, EMPHASIS, NEUTRAL, OBSERVED, REFERENCE
 from .palette import strategy_colour, strategy_marker
-from ..sensitivity import ALL_GROUPS, DeltaResult, StrategyAndDelta
+from ..sensitivity import ALL_GROUPS, DeltaResult, StrategyAndDelta, rounded_delta
 
 
 def delta_curve(result: DeltaResult, term: Optional[str] = None):
@@ -47,7 +47,10 @@ def delta_curve(result: DeltaResult, term: Optional[str] = None):
         for tip in tips.itertuples():
             if tip.found:
                 ax.axvline(tip.tipping_delta, color=EMPHASIS, lw=1.4)
-                ax.annotate(f"tipping point\ndelta = {tip.tipping_delta:.3g}", (tip.tipping_delta, 1.0),
+                se = getattr(tip, "monte_carlo_se", float("nan"))
+                precision = f"\n(MC SE {se:.1g})" if np.isfinite(se) else ""
+                ax.annotate(f"tipping point\ndelta = {rounded_delta(tip.tipping_delta, se)}{precision}",
+                            (tip.tipping_delta, 1.0),
                             xycoords=("data", "axes fraction"), xytext=(-4, -4), textcoords="offset points",
                             ha="right", va="top", fontsize=8, color=EMPHASIS)
             else:
