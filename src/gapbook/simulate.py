@@ -24,6 +24,7 @@ methods. Statistics in Medicine 38:2074-2102.
 from __future__ import annotations
 
 import dataclasses
+import math
 import sys
 import warnings
 from dataclasses import dataclass, field
@@ -698,7 +699,24 @@ def summary_sentences(result: SimulationResult, alpha: float = 0.05) -> List[str
             out.append(f"Under {mechanism}: no strategy showed bias or under-coverage beyond Monte Carlo error.")
     out.append(f"Based on {result.n_replicates} replicates of {result.design.n} rows; the mechanisms imposed here "
                "are illustrations, and the study's own mechanism cannot be verified from the data.")
+    out.append(precision_sentence(result.n_replicates, perf, alpha))
     return out
+
+
+def precision_sentence(replicates: int, perf: pd.DataFrame, alpha: float = 0.05) -> str:
+    """How precise the simulation is with this many replicates: the Monte Carlo SEs of coverage and bias.
+
+    At nominal coverage 1 - alpha the Monte Carlo SE of coverage is sqrt(c (1 - c) / R)
+    (Morris, White & Crowther 2019, Table 6); the bias MCSEs are the table's largest.
+    """
+    nominal = 1 - alpha
+    coverage_se = math.sqrt(nominal * (1 - nominal) / replicates)
+    bias_se = perf["bias_mcse"].max() if "bias_mcse" in perf.columns and len(perf) else float("nan")
+    bias = f" and bias to within about \u00b1{2 * bias_se:.2g} (twice the largest bias MCSE)" \
+        if math.isfinite(bias_se) else ""
+    return (f"Monte Carlo precision: with {replicates} replicates a coverage of {100 * nominal:g}% is estimated "
+            f"with a Monte Carlo SE of {100 * coverage_se:.1f} percentage points{bias}; more replicates "
+            "(simulation.replicates) narrow both, at a proportional cost in time.")
 
 
 # ---------------------------------------------------------------------------
