@@ -51,8 +51,7 @@ def test_delta_zero_reproduces_the_mar_imputation_exactly(masked_penguins):
     series = sensitivity.DeltaSeries("body_mass_g", sensitivity.ALL_GROUPS, None, (0.0,))
     shifted = evaluate(series, 0.0)
     mar = impute_chained(masked_penguins, **OPTIONS).analyse(model)
-    monte_carlo = ["monte_carlo_se", "ci_lower_mc_se", "ci_upper_mc_se"]
-    pd.testing.assert_frame_equal(shifted.drop(columns=monte_carlo).reset_index(drop=True),
+    pd.testing.assert_frame_equal(shifted.drop(columns=list(sensitivity.MONTE_CARLO_COLUMNS)).reset_index(drop=True),
                                   mar.estimates().reset_index(drop=True))
     # sqrt(B/m) from the per-imputation estimates (White, Royston & Wood 2011, Stat Med 30:377).
     per = mar.per_imputation().pivot(index="imputation", columns="term", values="estimate")

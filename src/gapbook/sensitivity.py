@@ -45,6 +45,7 @@ from .vocabulary import DELTA_METHODS, MAR_CAUTION
 
 ALL_GROUPS = "all"
 DELTA_COLUMNS: Tuple[str, ...] = ("variable", "group", "delta", "term", "estimate", "ci_lower", "ci_upper", "p_value")
+MONTE_CARLO_COLUMNS: Tuple[str, ...] = ("monte_carlo_se", "ci_lower_mc_se", "ci_upper_mc_se")  # see with_monte_carlo_se
 COMPARISON_COLUMNS: Tuple[str, ...] = ("analysis", "variable", "group", "delta", "term", "estimate", "ci_lower",
                                        "ci_upper", "p_value", "conclusion")
 TIPPING_COLUMNS: Tuple[str, ...] = ("variable", "group", "term", "side", "baseline_conclusion", "found",
