@@ -204,6 +204,7 @@ def _complete_case_slopes(depends_on: str, replicates: int = 200, n: int = 500, 
     return slopes
 
 
+@pytest.mark.slow
 def test_complete_cases_unbiased_when_missingness_depends_on_covariates_only():
     # Source: Little (1992) JASA 87:1227 and White & Carlin (2010) Stat Med 29:2920: complete-case
     # regression is unbiased when missingness of a covariate does not depend on the outcome given covariates.
@@ -213,6 +214,7 @@ def test_complete_cases_unbiased_when_missingness_depends_on_covariates_only():
     assert abs(slopes.mean() - 1.0) < 0.03
 
 
+@pytest.mark.slow
 def test_complete_cases_biased_when_missingness_depends_on_outcome():
     # Source: same references: when missingness depends on the outcome, complete-case regression is biased.
     slopes = _complete_case_slopes("outcome")

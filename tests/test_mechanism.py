@@ -161,6 +161,7 @@ def test_little_statistic_equals_formula_with_closed_form_estimates():
     assert test.p_value == pytest.approx(stats.chi2.sf(expected, 1), rel=1e-5)
 
 
+@pytest.mark.slow
 def test_little_p_values_are_uniform_under_mcar():
     rng = np.random.default_rng(19880101)
     covariance = np.array([[1, .5, .3, .2], [.5, 1, .4, .1], [.3, .4, 1, .3], [.2, .1, .3, 1]])
@@ -174,6 +175,7 @@ def test_little_p_values_are_uniform_under_mcar():
     assert stats.kstest(p_values, "uniform").pvalue > 0.01
 
 
+@pytest.mark.slow
 def test_little_rejects_under_mar():
     # Design: 4 correlated normals, n = 200; b is missing with probability logistic(-1 + a)
     # (MAR on the fully observed a), c is 10 % MCAR. Power found with this seed: 0.985 at

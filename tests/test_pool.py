@@ -3,10 +3,10 @@ published formulas and against statsmodels' own combining of the same per-imputa
 from __future__ import annotations
 
 import numpy as np
+import pandas as pd
 import pytest
 import statsmodels.api as sm
 import statsmodels.formula.api as smf
-from palmerpenguins import load_penguins
 from scipy import stats
 from statsmodels.imputation.mice import MICE
 
@@ -64,8 +64,8 @@ def test_barnard_rubin_df_published_formula():
     assert barnard_rubin_df(m, np.array([b]), np.array([t]), df_complete=1e9)[0] == pytest.approx(nu_m, rel=1e-6)
 
 
-def test_t_intervals_use_barnard_rubin_df():
-    fits = _penguin_fits(m=5)
+def test_t_intervals_use_barnard_rubin_df(penguins):
+    fits = _penguin_fits(penguins, m=5)
     pooled = pool_fits(fits)
     table = pooled.estimates().set_index("term")
     df = pooled.rubin.df
@@ -76,9 +76,9 @@ def test_t_intervals_use_barnard_rubin_df():
     assert np.all(df < fits[0].df_resid)
 
 
-def _penguin_fits(m: int, family: str = "gaussian"):
+def _penguin_fits(penguins: pd.DataFrame, m: int, family: str = "gaussian"):
     """m fits of one model to the penguins with sex filled by a seeded coin (a stand-in imputation)."""
-    data = load_penguins().dropna(subset=["body_mass_g", "flipper_length_mm"]).reset_index(drop=True)
+    data = penguins.dropna(subset=["body_mass_g", "flipper_length_mm"]).reset_index(drop=True)
     rng = np.random.default_rng(11)
     fits = []
     for _ in range(m):
@@ -92,9 +92,9 @@ def _penguin_fits(m: int, family: str = "gaussian"):
     return fits
 
 
-def test_pooling_equals_statsmodels_combine():
+def test_pooling_equals_statsmodels_combine(penguins):
     # statsmodels.imputation.mice.MICE.combine pools a list of fitted results with Rubin's rules
-    data = load_penguins().dropna(subset=["body_mass_g", "flipper_length_mm"]).reset_index(drop=True)
+    data = penguins.dropna(subset=["body_mass_g", "flipper_length_mm"]).reset_index(drop=True)
     rng = np.random.default_rng(5)
     ours, theirs = [], []
     for _ in range(6):
@@ -115,8 +115,8 @@ def test_pooling_equals_statsmodels_combine():
     assert np.allclose(pooled.rubin.lambda_, reference.frac_miss_info, rtol=1e-10)
 
 
-def test_odds_ratios_pooled_on_log_scale():
-    fits = _penguin_fits(m=5, family="binomial")
+def test_odds_ratios_pooled_on_log_scale(penguins):
+    fits = _penguin_fits(penguins, m=5, family="binomial")
     pooled = pool_fits(fits)
     table = pooled.estimates()
     log_mean = np.mean([f.coefficients for f in fits], axis=0)
@@ -212,19 +212,19 @@ def test_d1_by_hand_two_parameters():
     assert test.p_value == pytest.approx(stats.f.sf(d1, k, v1), rel=1e-10)
 
 
-def test_wald_for_categorical_exposure_terms():
-    pooled = pool_fits(_penguin_fits(m=5))
+def test_wald_for_categorical_exposure_terms(penguins):
+    pooled = pool_fits(_penguin_fits(penguins, m=5))
     test = pooled.wald("species")
     assert set(test.terms) == {"species[T.Chinstrap]", "species[T.Gentoo]"} and test.df_num == 2
     assert test.p_value < 1e-10  # Gentoo penguins are far heavier at a given flipper length (known from the data)
 
 
-def test_bad_pooling_input():
+def test_bad_pooling_input(penguins):
     with pytest.raises(InputError):
         pool_fits([])
     with pytest.raises(AnalysisError):
         wald_d1(ESTIMATES[:1], np.eye(2)[None], [0, 1])
-    fits = _penguin_fits(m=2)
-    other = fit_model(load_penguins(), formula="body_mass_g ~ flipper_length_mm")
+    fits = _penguin_fits(penguins, m=2)
+    other = fit_model(penguins, formula="body_mass_g ~ flipper_length_mm")
     with pytest.raises(AnalysisError):
         pool_fits([fits[0], other])

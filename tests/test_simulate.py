@@ -52,6 +52,7 @@ def test_performance_formulas_match_scipy_and_numpy():
     assert out["coverage_mcse"] == pytest.approx(np.sqrt(covered * (1 - covered) / 50))
 
 
+@pytest.mark.slow
 def test_monte_carlo_ses_equal_the_spread_over_repeated_simulation_studies():
     # Morris et al. (2019): the Monte Carlo SE of a performance measure is the SD of that measure
     # over independent repetitions of the whole simulation study. 600 repetitions of 100 replicates.
@@ -124,6 +125,7 @@ def test_fast_least_squares_equals_statsmodels(complete_penguins):
                                reference[["estimate", "std_error", "ci_lower", "ci_upper"]].to_numpy(), rtol=1e-9)
 
 
+@pytest.mark.slow
 def test_complete_case_unbiased_under_mcar_and_biased_under_outcome_mnar(complete_penguins):
     # Complete-case regression is unbiased when missingness does not depend on the outcome
     # (Little 1992, JASA 87:1227; White & Carlin 2010, Stat Med 29:2920) and attenuates the slope
@@ -141,6 +143,7 @@ def test_complete_case_unbiased_under_mcar_and_biased_under_outcome_mnar(complet
     assert result.n_failed == 0
 
 
+@pytest.mark.slow
 def test_imputation_coverage_near_nominal_under_mar(complete_penguins):
     # Rubin (1987): proper multiple imputation gives intervals with nominal coverage under MAR when
     # the imputation model holds the MAR driver. Missingness of the outcome depends on bill length, which
