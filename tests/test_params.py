@@ -55,12 +55,22 @@ def test_yaml_is_loaded_safely(tmp_path):
         load_params(write(tmp_path, "data: !!python/object/apply:os.system ['echo hi']\n"))
 
 
-def test_shipped_params_files_validate():
+def test_shipped_params_files_validate_and_point_at_their_data():
     from pathlib import Path
 
+    import pandas as pd
+
+    from gapbook.models import check_formula
+
     root = Path(__file__).resolve().parents[1]
-    for name in ("demo.yaml", "template.yaml"):
-        load_params(root / "params" / name)
+    demo = load_params(root / "params" / "demo.yaml")
+    assert demo.data_path.is_file(), demo.data_path
+    header = list(pd.read_csv(demo.data_path, nrows=0).columns)   # pandas reading the file's header
+    assert demo.data.id in header and set(demo.variables) <= set(header)
+    outcome, covariates = check_formula(demo.analysis.formula, header)
+    assert outcome in header and set(covariates) <= set(header)
+    template = load_params(root / "params" / "template.yaml")
+    assert template.audit.threshold == 0.20   # the default DESIGN.md documents (common practice, no source)
 
 
 def test_repository_demo_params_match_the_packaged_ones():
@@ -74,15 +84,28 @@ def test_repository_demo_params_match_the_packaged_ones():
     assert shown.model_dump(exclude={"source", "data"}) == packaged.model_dump(exclude={"source", "data"})
 
 
-def test_an_unknown_data_encoding_is_named_before_any_file_is_read():
-    import codecs
-    # Python's codec registry is the reference: it knows latin-1 and not latin-9x.
-    codecs.lookup("latin-1")
-    with pytest.raises(LookupError):
-        codecs.lookup("latin-9x")
-    assert Params.from_dict({"data": {"path": "x.csv", "encoding": "latin-1"}}).data.encoding == "latin-1"
+def test_an_unknown_data_encoding_is_named_before_any_file_is_read(tmp_path):
+    # The file does not exist: the encoding is refused when the params are read, before any file is opened.
     with pytest.raises(InputError, match=r"data.encoding: unknown text encoding.*'latin-9x'"):
-        Params.from_dict({"data": {"path": "x.csv", "encoding": "latin-9x"}})
+        Params.from_dict({"data": {"path": str(tmp_path / "absent.csv"), "encoding": "latin-9x"}})
+
+
+def test_a_declared_encoding_reads_the_file_as_pandas_does(tmp_path):
+    from gapbook.intake import load_study
+
+    # A Latin-1 file (as exported by older spreadsheet tools) with accented levels; the reference is
+    # pandas.read_csv with the same encoding.
+    import pandas as pd
+
+    path = tmp_path / "site.csv"
+    path.write_bytes("id,site,score\n1,Z\u00fcrich,3.5\n2,Gen\u00e8ve,\n3,Z\u00fcrich,4.0\n".encode("latin-1"))
+    study = load_study(Params.from_dict({"data": {"path": str(path), "id": "id", "encoding": "latin-1"}}))
+    reference = pd.read_csv(path, encoding="latin-1")
+    assert list(study.data["site"].astype(str)) == list(reference["site"])
+    assert study.data["score"].isna().tolist() == reference["score"].isna().tolist()
+    # Read as the default UTF-8 the same bytes are not text: one line naming the key to set.
+    with pytest.raises(InputError, match="set data.encoding"):
+        load_study(Params.from_dict({"data": {"path": str(path), "id": "id"}}))
 
 
 # ---------------------------------------------------------------------------

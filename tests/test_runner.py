@@ -33,9 +33,10 @@ def test_model_problems_stop_before_any_stage(tmp_path, formula, analysis, needl
         check_model_up_front(params, study)
 
 
-def test_a_fittable_model_passes(tmp_path):
+def test_a_fittable_model_passes_and_names_its_columns(tmp_path):
     params, study = study_with(tmp_path, "y ~ x + count")
-    check_model_up_front(params, study)
+    # the outcome and the right-hand-side columns as the formula writes them
+    assert check_model_up_front(params, study) == ("y", ["x", "count"])
 
 
 def test_stage_order_is_the_pipeline_order_whatever_the_order_asked(tmp_path):
