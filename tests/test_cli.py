@@ -10,14 +10,29 @@ from pathlib import Path
 import pandas as pd
 import pytest
 
+from gapbook.cli import main
 from gapbook.demo import demo_csv_path, demo_params_path
 
 ROOT = Path(__file__).resolve().parents[1]
 
 
 def gapbook(*args, cwd=None):
+    """The command in a subprocess, as a user runs it: for runs that start kernels and write records."""
     return subprocess.run([sys.executable, "-m", "gapbook.cli", *map(str, args)], capture_output=True, text=True,
                           cwd=cwd, timeout=600)
+
+
+@pytest.fixture
+def gapbook_here(capsys):
+    """``gapbook.cli.main`` called in this process: for refusals that stop before any stage starts.
+
+    Returns the same fields a finished subprocess has (returncode, stdout, stderr)."""
+    def call(*args):
+        capsys.readouterr()  # drop anything printed before this call
+        code = main([str(arg) for arg in args])
+        out, err = capsys.readouterr()
+        return subprocess.CompletedProcess(["gapbook", *map(str, args)], code, out, err)
+    return call
 
 
 def digest(path: Path) -> str:
@@ -44,8 +59,8 @@ def study(tmp_path):
     return tmp_path
 
 
-def test_check_accepts_the_demo(study):
-    result = gapbook("check", study / "params.yaml")
+def test_check_accepts_the_demo(study, gapbook_here):
+    result = gapbook_here("check", study / "params.yaml")
     assert result.returncode == 0, result.stderr
     assert result.stdout.strip().endswith("ok")
     assert "1200 rows" in result.stdout
@@ -63,35 +78,43 @@ def test_check_accepts_the_demo(study):
     (lambda p, d: p.write_text(p.read_text().replace("id: participant_id", "id: participant")),
      "did you mean 'participant_id'?"),
 ])
-def test_bad_input_exits_2_with_one_line_and_leaves_nothing(study, edit, needle):
+def test_bad_input_exits_2_with_one_line_and_leaves_nothing(study, edit, needle, gapbook_here):
     params, data = study / "params.yaml", study / "data" / "trial.csv"
     edit(params, data)
     before = {p: digest(p) for p in study.rglob("*") if p.is_file()}
     for args in (("check", params), ("run", params, "--out", study / "records", "--only", "audit")):
-        assert_user_error(gapbook(*args), needle)
+        assert_user_error(gapbook_here(*args), needle)
     after = {p: digest(p) for p in study.rglob("*") if p.is_file()}
     assert after == before  # input files untouched, no record (or partial record) left behind
     assert not (study / "records").exists() or not any((study / "records").iterdir())
 
 
-def test_unknown_stage_and_missing_record(study, tmp_path):
-    assert_user_error(gapbook("run", study / "params.yaml", "--only", "audti", "--out", tmp_path / "r"),
+def test_unknown_stage_and_missing_record(study, tmp_path, gapbook_here):
+    assert_user_error(gapbook_here("run", study / "params.yaml", "--only", "audti", "--out", tmp_path / "r"),
                       "did you mean 'audit'?")
-    assert_user_error(gapbook("verify", tmp_path), "not a gapbook record")
-    assert_user_error(gapbook("check", tmp_path / "none.yaml"), "params file not found")
+    assert_user_error(gapbook_here("verify", tmp_path), "not a gapbook record")
+    assert_user_error(gapbook_here("check", tmp_path / "none.yaml"), "params file not found")
 
 
-def test_new_scaffolds_a_study_folder(tmp_path):
-    result = gapbook("new", tmp_path / "mystudy")
+def test_an_error_the_user_causes_is_one_line_without_traceback_in_a_real_process(study):
+    # The in-process calls above check the wording; this one checks what a shell sees: exit status 2
+    # and a single line on standard error from the installed command's module.
+    params = study / "params.yaml"
+    params.write_text(params.read_text().replace("imputation:", "imputaton:"))
+    assert_user_error(gapbook("check", params), "did you mean 'imputation'?")
+
+
+def test_new_scaffolds_a_study_folder(tmp_path, gapbook_here):
+    result = gapbook_here("new", tmp_path / "mystudy")
     assert result.returncode == 0, result.stderr
     assert (tmp_path / "mystudy" / "params.yaml").is_file()
     assert (tmp_path / "mystudy" / "data").is_dir()
     assert sorted(p.name for p in (tmp_path / "mystudy" / "notebooks").glob("*.ipynb")) == \
         sorted(p.name for p in (ROOT / "notebooks").glob("*.ipynb"))
-    assert_user_error(gapbook("new", tmp_path / "mystudy"), "not empty")
+    assert_user_error(gapbook_here("new", tmp_path / "mystudy"), "not empty")
 
 
-def test_run_audit_then_verify_and_tamper(study):
+def test_run_audit_then_verify_and_tamper(study, gapbook_here):
     params, data = study / "params.yaml", study / "data" / "trial.csv"
     before = digest(data)
     # a relative --out, as a user types it, resolved against the working directory
@@ -131,7 +154,7 @@ def test_run_audit_then_verify_and_tamper(study):
     frame = pd.read_csv(table)
     frame.loc[0, "n_missing"] = frame.loc[0, "n_missing"] + 1
     frame.to_csv(table, index=False)
-    tampered = gapbook("verify", record)
+    tampered = gapbook_here("verify", record)   # refused before any re-run: no kernel needed
     assert tampered.returncode == 1
     assert "FAIL tables/audit_variables.csv: differs from its sha256" in tampered.stdout
     assert "nothing was re-run" in tampered.stdout
@@ -139,10 +162,10 @@ def test_run_audit_then_verify_and_tamper(study):
 
     data.write_text(data.read_text() + "")  # unchanged bytes: still verifiable
     data.write_text(data.read_text().replace("P1200", "P9999"))
-    assert_user_error(gapbook("verify", record), "data file changed")
+    assert_user_error(gapbook_here("verify", record), "data file changed")
 
 
-def test_without_a_model_the_missing_data_stages_still_run(tmp_path):
+def test_without_a_model_the_missing_data_stages_still_run(tmp_path, gapbook_here):
     data = tmp_path / "small.csv"
     pd.DataFrame({"id": range(1, 41), "x": [1.5, None] * 20, "g": ["a", "b", "?", "a"] * 10}).to_csv(data, index=False)
     params = tmp_path / "p.yaml"
@@ -157,15 +180,16 @@ def test_without_a_model_the_missing_data_stages_still_run(tmp_path):
     assert flow["in_file"] == 40 and flow["complete_all_variables"] == 10  # x missing in odd rows, g '?' in 3rd of 4
     assert "report" not in result.stdout.split("skipped:")[1].splitlines()[0]
     assert (record / "tables" / "report_text.md").is_file()
-    assert_user_error(gapbook("run", params, "--out", tmp_path / "out", "--only", "impute"), "needs analysis.formula")
+    assert_user_error(gapbook_here("run", params, "--out", tmp_path / "out", "--only", "impute"),
+                      "needs analysis.formula")
 
 
-def test_a_formula_that_does_not_parse_stops_the_run_before_any_stage(study):
+def test_a_formula_that_does_not_parse_stops_the_run_before_any_stage(study, gapbook_here):
     params = study / "params.yaml"
     text = params.read_text()
     assert 'formula: "hba1c_12m ~ arm +' in text
     params.write_text(text.replace('formula: "hba1c_12m ~ arm +', 'formula: "hba1c_12m ~ (arm +'))
-    result = gapbook("run", params, "--out", study / "records")
+    result = gapbook_here("run", params, "--out", study / "records")
     assert_user_error(result, "analysis.formula")
     assert "is not a valid formula" in result.stderr
     assert "audit" not in result.stdout  # no stage ran
