@@ -18,7 +18,7 @@ import re
 import unicodedata
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Callable, Dict, List, Mapping, Optional, Sequence, Tuple
+from typing import Any, Callable, Dict, List, Mapping, Optional, Sequence, Tuple, Union
 
 import numpy as np
 import pandas as pd
@@ -28,6 +28,12 @@ from .expressions import CONDITION, parse_expression
 from .params import Params, VariableSpec
 from .vocabulary import BLANK, CATEGORICAL_TYPES, IMPLAUSIBLE, NOT_APPLICABLE, NUMERIC_TYPES, infer_type
 from .text import one_line
+
+__all__ = ["MAD_TO_SD", "FREE_TEXT_LEVEL", "VariableInfo", "Study", "variables_table", "inferred_notes",
+           "levels_of", "sha256_of", "read_raw", "read_table", "marker_table", "rows_note", "load_study",
+           "read_study", "check_expression_columns", "check_declared_columns", "clean_id", "blank_id_error",
+           "duplicate_id_error", "PlainNumbers", "DistinctCells", "ColumnDecision", "EveryValueNeeded",
+           "decide_column", "RANGE_COLUMNS", "EXTREME_COLUMNS", "RANGE_ACTIONS", "range_action", "range_rule"]
 
 MAD_TO_SD = 1.4826  # consistency constant of the MAD for the normal distribution (Hampel 1974)
 MAX_NAME_LENGTH = 256         # characters in a column name
@@ -108,7 +114,18 @@ class Study:
 
 
 def variables_table(infos: Mapping[str, VariableInfo]) -> pd.DataFrame:
-    """One row per variable: type, whether declared or inferred, and why."""
+    """One row per variable: type, whether declared or inferred, and why.
+
+    Parameters
+    ----------
+    infos : mapping of str to VariableInfo
+        ``study.variables``.
+
+    Returns
+    -------
+    DataFrame
+        variable, type, source (declared or inferred), levels, why.
+    """
     rows = [
         {"variable": v.name, "type": v.type, "source": "declared" if v.declared else "inferred",
          "levels": f"{v.n_distinct} distinct texts (not shown)" if v.free_text else _levels_text(v.levels),
@@ -119,12 +136,34 @@ def variables_table(infos: Mapping[str, VariableInfo]) -> pd.DataFrame:
 
 
 def inferred_notes(infos: Mapping[str, VariableInfo]) -> Tuple[str, ...]:
-    """One line per variable whose type was inferred, for the user to check."""
+    """One line per variable whose type was inferred, for the user to check.
+
+    Parameters
+    ----------
+    infos : mapping of str to VariableInfo
+        ``study.variables``.
+
+    Returns
+    -------
+    tuple of str
+        One sentence per inferred variable.
+    """
     return tuple(f"{v.name}: type inferred as {v.type} ({v.reason})" for v in infos.values() if not v.declared)
 
 
 def levels_of(column: pd.Series) -> Tuple[Any, ...]:
-    """A column's levels in order: a Categorical's categories, else its distinct observed values sorted."""
+    """A column's levels in order: a Categorical's categories, else its distinct observed values sorted.
+
+    Parameters
+    ----------
+    column : Series
+        A study column.
+
+    Returns
+    -------
+    tuple
+        The levels, reference first.
+    """
     if isinstance(column.dtype, pd.CategoricalDtype):
         return tuple(column.cat.categories)
     values = column.dropna().unique()
@@ -146,6 +185,18 @@ def _levels_text(levels: Optional[Tuple[Any, ...]], shown: int = 12) -> str:
 # reading files
 
 def sha256_of(path: Path) -> str:
+    """The SHA-256 digest of a file read in 1 MiB blocks (a large data file is never held whole).
+
+    Parameters
+    ----------
+    path : Path
+        The file.
+
+    Returns
+    -------
+    str
+        64 hexadecimal digits.
+    """
     digest = hashlib.sha256()
     with open(path, "rb") as handle:
         for block in iter(lambda: handle.read(1 << 20), b""):
@@ -172,6 +223,26 @@ def read_raw(path: Path, fmt: str = "auto", sheet: Any = None, encoding: str = "
     The header is read as written (pandas would rename a repeated ``x`` to ``x.1``): a
     repeated, empty or unsafe column name stops with exit 2 naming the column; see
     :func:`check_header`. Columns in ``ignore`` are left out before any check.
+
+    Parameters
+    ----------
+    path : Path
+        The data file.
+    fmt : str
+        ``auto`` (from the suffix), ``csv``, ``tsv``, ``xlsx`` or ``parquet``.
+    sheet : str or int, optional
+        The Excel sheet.
+    encoding : str
+        The text encoding of a CSV/TSV file.
+    delimiter : str, optional
+        The field separator of a text file; default from the format.
+    ignore : tuple of str
+        Columns left out.
+
+    Returns
+    -------
+    DataFrame
+        Every cell as written (text for text files).
     """
     raw, _ = read_table(path, fmt, sheet, encoding, delimiter=delimiter, ignore=ignore)
     return raw
@@ -183,6 +254,17 @@ def read_table(path: Path, fmt: str = "auto", sheet: Any = None, encoding: str =
     """:func:`read_raw` and the warnings it found (an unnamed empty column left out).
 
     ``nrows`` reads only the first rows of a text or Parquet file (e.g. to learn its header).
+
+    Parameters
+    ----------
+    path, fmt, sheet, encoding, delimiter, ignore :
+        As for :func:`read_raw`.
+    nrows : int, optional
+        Read only this many rows.
+
+    Returns
+    -------
+    (raw, warnings) : DataFrame and list of str
     """
     if not path.is_file():
         raise InputError(f"{path}: data file not found; check data.path (it is relative to the params file)")
@@ -417,7 +499,20 @@ class MarkerTable:
 
 
 def marker_table(params: Params, column: str) -> MarkerTable:
-    """Global markers and reasons, overridden by the column's own (or replaced, with ``use_global: false``)."""
+    """Global markers and reasons, overridden by the column's own (or replaced, with ``use_global: false``).
+
+    Parameters
+    ----------
+    params : Params
+        The params' ``missing`` section is read.
+    column : str
+        The column the markers apply to.
+
+    Returns
+    -------
+    MarkerTable
+        Marker text -> reason label and reason code -> label for that column, with where each was declared.
+    """
     text: Dict[str, str] = {}
     numbers: Dict[float, str] = {}
     origins_text: Dict[str, str] = {}
@@ -465,7 +560,20 @@ def _rows_note(rows: np.ndarray, ids: pd.Series, limit: int = 3) -> str:
 
 
 def rows_note(rows: Sequence[int], ids: Sequence[Any]) -> str:
-    """'data rows 3, 7 (ids P3, P7)' for 0-based rows and their ids (error messages)."""
+    """'data rows 3, 7 (ids P3, P7)' for 0-based rows and their ids (error messages).
+
+    Parameters
+    ----------
+    rows : sequence of int
+        0-based row positions (at most the first three are named).
+    ids : sequence
+        The ids of those rows.
+
+    Returns
+    -------
+    str
+        The note, with 1-based data row numbers.
+    """
     text = ", ".join(str(int(r) + 1) for r in rows)
     id_text = ", ".join(str(i) for i in ids)
     return f"data rows {text} (ids {id_text})"
@@ -522,11 +630,60 @@ def load_study(params: Params, raw: Optional[pd.DataFrame] = None) -> Study:
                  warnings=tuple(warnings))
 
 
+def read_study(path: Union[str, Path], *, id: Optional[str] = None,
+               variables: Optional[Mapping[str, Mapping[str, Any]]] = None,
+               missing: Optional[Mapping[str, Any]] = None, **data: Any) -> Study:
+    """Read a study file without a params file, for a one-off question in a notebook.
+
+    The options are the params file's sections written as keyword arguments, checked by the
+    same schema (an error names the section key, e.g. ``data.id`` for ``id``).
+
+    Parameters
+    ----------
+    path : str or Path
+        The data file (CSV, TSV, Excel or Parquet); a relative path is taken from the working
+        folder.
+    id : str, optional
+        The participant identifier column, kept apart from the variables.
+    variables : mapping, optional
+        Per column, as the params' ``variables`` section: ``type``, ``levels``, ``range``,
+        ``applies_if``, ``label``.
+    missing : mapping, optional
+        As the params' ``missing`` section: ``markers``, ``reasons`` (code -> label) and
+        per-column ``columns``.
+    **data
+        Other keys of the params' ``data`` section: ``format``, ``sheet``, ``encoding``,
+        ``delimiter``, ``decimal``, ``thousands``, ``ignore``.
+
+    Returns
+    -------
+    Study
+        As :func:`load_study` gives it: values, reasons, types and the range checks.
+    """
+    section: Dict[str, Any] = {"path": str(Path(path).expanduser().resolve()), **data}
+    if id is not None:
+        section["id"] = id
+    params = Params.from_dict({"data": section, "variables": dict(variables or {}), "missing": dict(missing or {})})
+    return load_study(params)
+
+
 def check_expression_columns(params: Params, columns: List[str]) -> Dict[str, Any]:
     """Every column an ``applies_if`` or ``passive`` expression names exists; returns the parsed conditions.
 
     (The expressions' grammar was checked when the params were read; this is the part that
     needs the data's columns, so ``check`` finds what ``run`` would refuse.)
+
+    Parameters
+    ----------
+    params : Params
+        The params whose ``applies_if`` and ``passive`` expressions are checked.
+    columns : list of str
+        The data's columns.
+
+    Returns
+    -------
+    dict
+        {variable: parsed ``applies_if`` expression}.
     """
     conditions = {}
     for name, spec in params.variables.items():
@@ -559,7 +716,17 @@ def _refuse_markers_that_are_levels(params: Params) -> None:
 
 
 def check_declared_columns(params: Params, columns: Sequence[str], label: str) -> None:
-    """Every column the params name (data.id, variables, missing.columns) must be in the file."""
+    """Every column the params name (data.id or design.subject, variables, missing.columns) must be in the file.
+
+    Parameters
+    ----------
+    params : Params
+        The params naming columns.
+    columns : sequence of str
+        The file's columns.
+    label : str
+        The file's name for the message (exit 2 naming the key and the nearest column).
+    """
     id_column = params.subject_column or params.data.id
     if id_column is not None and id_column not in columns:
         key = "design.subject" if params.design is not None and params.design.subject else "data.id"
@@ -577,15 +744,58 @@ def check_declared_columns(params: Params, columns: Sequence[str], label: str) -
 
 
 def clean_id(value: Any) -> Any:
-    """An id cell as intake keeps it: None when empty, text stripped, numbers as they are."""
+    """An id cell as intake keeps it: None when empty, text stripped, numbers as they are.
+
+    Parameters
+    ----------
+    value : object
+        A raw id cell.
+
+    Returns
+    -------
+    object
+        None, stripped text or the number.
+    """
     return None if _is_empty(value) else (str(value).strip() if isinstance(value, str) else value)
 
 
 def blank_id_error(label: str, id_column: str, row: int) -> InputError:
+    """The error for a row without an id (exit 2, naming the file, column and row).
+
+    Parameters
+    ----------
+    label : str
+        The data file's name.
+    id_column : str
+        The id column.
+    row : int
+        The 0-based row (named 1-based).
+
+    Returns
+    -------
+    InputError
+    """
     return InputError(f"{label}: id column '{id_column}' is empty at data row {row + 1}; every row needs an id")
 
 
 def duplicate_id_error(label: str, id_column: str, first: Any, rows: Sequence[int]) -> InputError:
+    """The error for an id given to more than one row (exit 2, naming the rows).
+
+    Parameters
+    ----------
+    label : str
+        The data file's name.
+    id_column : str
+        The id column.
+    first : object
+        The repeated id.
+    rows : sequence of int
+        The 0-based rows holding it (the first three are named).
+
+    Returns
+    -------
+    InputError
+    """
     where = ", ".join(str(int(r) + 1) for r in rows[:3])
     return InputError(f"{label}: duplicate id '{first}' in column '{id_column}' (data rows {where}); "
                       "ids must be unique")
@@ -1099,12 +1309,36 @@ RANGE_ACTIONS = {"missing": "set missing (implausible)", "flag": "flagged, kept"
 
 
 def range_action(params: Params, name: str) -> str:
-    """What intake does with a value outside the plausible range: 'missing' or 'flag'."""
+    """What intake does with a value outside the plausible range: 'missing' or 'flag'.
+
+    Parameters
+    ----------
+    params : Params
+        The params (the variable's ``out_of_range``, else ``missing.out_of_range``).
+    name : str
+        The variable.
+
+    Returns
+    -------
+    str
+        ``missing`` or ``flag``.
+    """
     spec = params.variables.get(name)
     return spec.out_of_range if spec and spec.out_of_range else params.missing.out_of_range
 
 
 def range_rule(lo: Optional[float], hi: Optional[float]) -> str:
+    """The plausible range as a reader sees it, e.g. ``outside [18, 100]``.
+
+    Parameters
+    ----------
+    lo, hi : float or None
+        The bounds (None: open on that side).
+
+    Returns
+    -------
+    str
+    """
     return f"outside [{'' if lo is None else f'{lo:g}'}, {'' if hi is None else f'{hi:g}'}]"
 
 
