@@ -34,6 +34,10 @@ from .intake import EXTREME_COLUMNS, RANGE_COLUMNS, Study
 from .params import DEFAULT_MAX_PATTERNS, MAX_PATTERNS_LISTED
 from .vocabulary import NOT_APPLICABLE, infer_type
 
+__all__ = ["DEFAULT_THRESHOLD", "GroupCounts", "MissingnessCounts", "AuditResult", "reason_slug", "count_patterns",
+           "patterns_from_words", "pattern_table", "is_monotone", "rows_in_dropout_order", "group_codes",
+           "audit_frame", "audit_study", "audit_from_counts"]
+
 DEFAULT_THRESHOLD = 0.20  # common practice, no source
 UNSPECIFIED = "unspecified"  # reason given to NaN cells of a plain frame that carries no reasons
 GROUP_MISSING = "(missing)"

@@ -18,6 +18,8 @@ from .audit import (DEFAULT_MAX_PATTERNS, DEFAULT_THRESHOLD, AuditResult, GroupC
 from .vocabulary import NOT_APPLICABLE
 from .intake_duckdb import ScannedColumn, ScannedStudy
 
+__all__ = ["audit_scanned"]
+
 
 def _missing_sql(column: ScannedColumn) -> str:
     """True where the cell is missing (a reason other than not applicable)."""

@@ -24,6 +24,11 @@ from .inference import standardised_difference
 from .intake import levels_of
 from .models import AnalysisModel, ModelFit, add_ratio_columns, exposure_terms, formula_columns, scale_sentence
 from .vocabulary import CATEGORICAL_TYPES, NUMBER_CODED_TYPES, STRATEGY_TITLES, infer_type, ratio_name
+
+__all__ = ["CompleteCaseFlow", "exposure_column", "complete_case_flow", "CompleteCaseResult", "check_model_data",
+           "require_rows", "complete_case_analysis", "is_categorical", "pairwise_correlations",
+           "AvailableCaseSummary", "available_case_summary", "CompletenessBaseline", "completeness_baseline",
+           "StrategyComparison", "compare_strategies"]
 FLOW_COLUMNS = ("step", "variable", "role", "n_excluded", "n_not_applicable", "n_lacking", "reasons", "n_remaining")
 
 
@@ -60,7 +65,20 @@ def _roles(outcome: str, covariates: Sequence[str], model: AnalysisModel, column
 
 
 def exposure_column(model: AnalysisModel, columns: Sequence[str]) -> Optional[str]:
-    """The data column behind the exposure (a column name or a term such as ``arm[T.sms]``)."""
+    """The data column behind the exposure (a column name or a term such as ``arm[T.sms]``).
+
+    Parameters
+    ----------
+    model : AnalysisModel
+        The model; its ``exposure`` is read.
+    columns : sequence of str
+        The data's columns.
+
+    Returns
+    -------
+    str or None
+        The column; without an exposure the first covariate (None when there is none).
+    """
     _, covariates = model.variables(columns)
     if model.exposure is None:
         return covariates[0] if covariates else None
@@ -152,7 +170,19 @@ class CompleteCaseResult:
 
 
 def check_model_data(data: pd.DataFrame, model: AnalysisModel) -> Tuple[str, List[str]]:
-    """The outcome and covariates after checking that the outcome has observed values (exit 2 otherwise)."""
+    """The outcome and covariates after checking that the outcome has observed values (exit 2 otherwise).
+
+    Parameters
+    ----------
+    data : DataFrame
+        The analysis frame.
+    model : AnalysisModel
+        The model.
+
+    Returns
+    -------
+    (outcome, covariates) : str and list of str
+    """
     outcome, covariates = model.variables(list(data.columns))
     if data[outcome].notna().sum() == 0:
         raise InputError(f"the outcome '{outcome}' has no observed values; "
@@ -161,7 +191,13 @@ def check_model_data(data: pd.DataFrame, model: AnalysisModel) -> Tuple[str, Lis
 
 
 def require_rows(flow: CompleteCaseFlow) -> None:
-    """Exit 2, naming the variable lacking most often, when no row is left to fit the model to."""
+    """Exit 2, naming the variable lacking most often, when no row is left to fit the model to.
+
+    Parameters
+    ----------
+    flow : CompleteCaseFlow
+        The rows lost per variable.
+    """
     if flow.n_used > 0:
         return
     lacking = flow.steps[flow.steps["step"] == "excluded"].sort_values("n_lacking", ascending=False, kind="stable")
@@ -205,7 +241,19 @@ def complete_case_analysis(data: pd.DataFrame, *, model: AnalysisModel, reasons:
 # available cases: every value of every variable
 
 def is_categorical(column: pd.Series, declared: Optional[str] = None) -> bool:
-    """Whether a column is summarised by counts: its declared type, else the inferred one, is categorical."""
+    """Whether a column is summarised by counts: its declared type, else the inferred one, is categorical.
+
+    Parameters
+    ----------
+    column : Series
+        The column.
+    declared : str, optional
+        Its declared type.
+
+    Returns
+    -------
+    bool
+    """
     return (declared or infer_type(column)[0]) in CATEGORICAL_TYPES
 
 
@@ -286,6 +334,15 @@ def pairwise_correlations(data: pd.DataFrame, *, complete: Optional[pd.Series] =
     -------
     DataFrame: variable_1, variable_2, correlation, n_pairwise, and when ``complete`` is
     given correlation_complete_case, n_complete.
+
+    Parameters
+    ----------
+    data : DataFrame
+        The analysis frame.
+    complete : Series of bool, optional
+        The complete-case rows, for the comparison columns.
+    variables : sequence of str, optional
+        The numeric variables; default every numeric column.
     """
     names = list(variables) if variables is not None else list(data.columns)
     values = data[names].astype(float)

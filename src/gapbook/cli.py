@@ -16,6 +16,8 @@ from typing import List, Optional, Sequence
 from . import __version__
 from .errors import AnalysisError, InputError
 
+__all__ = ["main"]
+
 TEMPLATE_NAME = "params_template.yaml"
 
 
@@ -173,6 +175,19 @@ def _on_sigterm(signum, frame):  # pragma: no cover - exercised through a subpro
 
 
 def main(argv: Optional[Sequence[str]] = None) -> int:
+    """Run the ``gapbook`` command: demo, new, check, run or verify.
+
+    Parameters
+    ----------
+    argv : sequence of str, optional
+        The arguments after ``gapbook``; default the process's own.
+
+    Returns
+    -------
+    int
+        The exit code: 0 success, 2 a user error (one line on standard error), 1 an analysis
+        failure, 130/143 when stopped by an interrupt or SIGTERM.
+    """
     parser = build_parser()
     args = parser.parse_args(argv)
     if not getattr(args, "func", None):

@@ -36,6 +36,8 @@ import pandas as pd
 
 from .params import Params, load_params
 
+__all__ = ["TRUE_ARM_EFFECT", "data_dir", "demo_csv_path", "demo_params_path", "demo_params"]
+
 DEMO_SEED = 20261202
 DEMO_N = 1200
 TRUE_ARM_EFFECT = -0.40
@@ -101,24 +103,62 @@ def generate_demo(n: int = DEMO_N, seed: int = DEMO_SEED) -> pd.DataFrame:
 
 
 def data_dir() -> Path:
+    """The folder of files shipped with the package.
+
+    Returns
+    -------
+    Path
+        ``gapbook/data`` in the installed package (demo data, demo params, params template).
+    """
     return Path(str(resources.files("gapbook") / "data"))
 
 
 def demo_csv_path() -> Path:
+    """The shipped demo trial's data file.
+
+    Returns
+    -------
+    Path
+        ``demo_trial.csv``: 1,200 participants as :func:`generate_demo` writes them, markers included.
+    """
     return data_dir() / "demo_trial.csv"
 
 
 def demo_params_path() -> Path:
+    """The shipped demo trial's params file.
+
+    Returns
+    -------
+    Path
+        ``demo_params.yaml``, whose ``data.path`` is the demo CSV beside it.
+    """
     return data_dir() / "demo_params.yaml"
 
 
 def write_demo_csv(path: Optional[Path] = None) -> Path:
-    """Regenerate the shipped demo CSV (used when the generator changes)."""
+    """Regenerate the shipped demo CSV (used when the generator changes).
+
+    Parameters
+    ----------
+    path : Path, optional
+        Where to write; default the shipped file itself.
+
+    Returns
+    -------
+    Path
+        The file written.
+    """
     path = path or demo_csv_path()
     generate_demo().to_csv(path, index=False, lineterminator="\n")
     return path
 
 
 def demo_params() -> Params:
-    """The demo study's params, with the data path pointing at the shipped CSV."""
+    """The demo study's params, with the data path pointing at the shipped CSV.
+
+    Returns
+    -------
+    Params
+        Validated as any params file is.
+    """
     return load_params(demo_params_path())

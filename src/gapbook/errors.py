@@ -36,12 +36,38 @@ class AnalysisError(Exception):
 
 
 def nearest(word: str, choices: Iterable[str]) -> str | None:
-    """The valid word closest to ``word``, or None when nothing is close."""
+    """The valid word closest to ``word``, or None when nothing is close.
+
+    Parameters
+    ----------
+    word : str
+        What the user wrote.
+    choices : iterable of str
+        The valid words.
+
+    Returns
+    -------
+    str or None
+        The closest valid word by difflib's ratio, if close enough.
+    """
     found = difflib.get_close_matches(str(word), [str(c) for c in choices], n=1, cutoff=0.6)
     return found[0] if found else None
 
 
 def did_you_mean(word: str, choices: Iterable[str]) -> str:
-    """A ``; did you mean 'x'?`` suffix for an error message, or an empty string."""
+    """A ``; did you mean 'x'?`` suffix for an error message, or an empty string.
+
+    Parameters
+    ----------
+    word : str
+        What the user wrote.
+    choices : iterable of str
+        The valid words.
+
+    Returns
+    -------
+    str
+        The suffix, or ``""`` when no valid word is close.
+    """
     best = nearest(word, choices)
     return f"; did you mean '{best}'?" if best else ""

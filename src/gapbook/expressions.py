@@ -50,6 +50,9 @@ import pandas as pd
 
 from .errors import InputError, did_you_mean
 
+__all__ = ["FORMULA_NAMESPACE", "MAX_LENGTH", "MAX_DEPTH", "ExpressionError", "Expression", "parse_expression",
+           "parse_formula", "formula_environment", "ColumnAliases"]
+
 #: Functions an expression may call: name -> (numpy function, number of arguments).
 FUNCTIONS: Dict[str, Tuple[Any, int]] = {
     "log": (np.log, 1), "log2": (np.log2, 1), "log10": (np.log10, 1), "log1p": (np.log1p, 1),

@@ -29,6 +29,8 @@ from .repeated import RepeatedOutcome, label
 from .repeated_imputation import DELTA_STRATEGY, RULE_STRATEGY, draw_posteriors, impute_repeated
 from .vocabulary import FOLLOWUP_STRATEGY_NAMES, INFORMATION_ANCHORING, REFERENCE_BASED_VARIANCE
 
+__all__ = ["FOLLOWUP_STRATEGIES", "FollowupAnalysis", "analyse_followup"]
+
 # Every strategy of the stage, in the order tables and figures show them (the vocabulary's list).
 FOLLOWUP_STRATEGIES: Tuple[str, ...] = FOLLOWUP_STRATEGY_NAMES
 STRATEGY_RULE = {strategy: rule for rule, strategy in RULE_STRATEGY.items()}

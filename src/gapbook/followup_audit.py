@@ -27,6 +27,8 @@ from scipy import stats
 from .repeated import RepeatedOutcome, last_observed_index
 from .vocabulary import REASON_NOT_GIVEN
 
+__all__ = ["PATTERN_LABELS", "classify_follow_up", "FollowupAudit", "audit_followup"]
+
 PATTERN_LABELS = ("complete", "monotone dropout", "intermittent", "intermittent and dropout", "no visit attended")
 ALL_GROUPS = "all"
 

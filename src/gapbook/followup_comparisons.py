@@ -20,6 +20,9 @@ from .mixed_model import fit_mixed_model
 from .repeated import RepeatedOutcome, label
 from .vocabulary import COMPLETERS_CAUTION, LAST_OBSERVATION_CAUTION
 
+__all__ = ["COMPLETERS", "LAST_OBSERVATION", "NOT_RECOMMENDED", "completers", "carry_last_observation_forward",
+           "comparison_effects"]
+
 COMPLETERS = "completers"
 LAST_OBSERVATION = "last_observation"
 NOT_RECOMMENDED: Dict[str, str] = {COMPLETERS: COMPLETERS_CAUTION, LAST_OBSERVATION: LAST_OBSERVATION_CAUTION}

@@ -41,6 +41,9 @@ from scipy.special import expit
 if TYPE_CHECKING:
     from .params import Params
 
+__all__ = ["EFFECT", "FollowupTrial", "simulate_followup_trial", "followup_demo_frame",
+           "followup_demo_files", "followup_demo_params"]
+
 WEEKS = (2, 4, 8, 12, 16)
 CONTROL_MEAN = (-2.0, -3.5, -5.0, -6.0, -6.5)
 EFFECT = (-1.0, -2.0, -3.0, -3.5, -4.0)

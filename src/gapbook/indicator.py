@@ -35,6 +35,9 @@ from .expressions import ColumnAliases, parse_formula
 from .intake import levels_of
 from .models import AnalysisModel, ModelFit, exposure_terms, scale_sentence
 
+__all__ = ["MISSING_LEVEL", "INDICATOR_WARNING", "prepare_missing_category", "MissingCategoryResult",
+           "missing_category_analysis"]
+
 MISSING_LEVEL = "(missing)"
 INDICATOR_SUFFIX = "_missing"
 
@@ -231,10 +234,15 @@ def missing_category_analysis(data: pd.DataFrame, *, model: AnalysisModel, types
                               constant: Union[str, float] = "mean") -> MissingCategoryResult:
     """Fit the analysis model after :func:`prepare_missing_category`; rows for ``estimates.csv``.
 
-    Parameters are those of :func:`prepare_missing_category`, plus ``reasons`` and
-    ``not_applicable`` (``study.reasons``, ``study.not_applicable``) for the flow table of
-    the rows that are still dropped (missing outcome or exposure, not-applicable cells,
-    continuous covariates without the indicator).
+    Parameters
+    ----------
+    data, model, types, missing, indicator_for_continuous, label, constant :
+        as for :func:`prepare_missing_category`.
+    reasons : optional frame of reason labels (``study.reasons``) for the flow table of the
+        rows still dropped (missing outcome or exposure, continuous covariates without the
+        indicator).
+    not_applicable : optional boolean frame (``study.not_applicable``); those cells are not
+        missing and are left alone.
 
     Returns
     -------

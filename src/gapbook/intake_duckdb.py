@@ -44,6 +44,8 @@ from .intake import (EXTREME_COLUMNS, IMPLAUSIBLE, RANGE_ACTIONS, RANGE_COLUMNS,
 from .params import Params, VariableSpec
 from .vocabulary import CATEGORICAL_TYPES, NOT_APPLICABLE, NUMERIC_TYPES
 
+__all__ = ["WHITESPACE", "choose_engine", "ScannedColumn", "ScannedStudy", "scan_study"]
+
 AUTO_DUCKDB_BYTES = 100 * 2**20  # data.engine auto: files larger than 100 MiB are read with DuckDB
 MEMORY_LIMIT = "1GB"  # DuckDB spills to its private temporary folder beyond this
 PLAIN_NUMBER = r"[+-]?([0-9]+[.]?[0-9]*|[.][0-9]+)([eE][+-]?[0-9]+)?"

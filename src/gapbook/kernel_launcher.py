@@ -12,9 +12,15 @@ from __future__ import annotations
 import sys
 from pathlib import Path
 
+__all__ = ["main"]
+
 
 def main() -> None:
     # As ipykernel's own launcher: do not import modules from the working directory.
+    """Start an IPython kernel for a run's private kernelspec (no fork pipe, no TCP).
+
+    The kernel reads its connection file from the command line as ipykernel's launcher does.
+    """
     if sys.path and (sys.path[0] == "" or Path(sys.path[0]) == Path.cwd()):
         del sys.path[0]
     from ipykernel import kernelapp

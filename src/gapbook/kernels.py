@@ -28,6 +28,8 @@ from typing import Any, List
 from .errors import AnalysisError
 from .record import OWNER_FILE, owned_by_dead_process
 
+__all__ = ["KERNEL_NAME", "scratch_folder", "PrivateKernels"]
+
 KERNEL_NAME = "gapbook-python"
 FOLDER_PREFIX = "gapbook-kernels-"
 SCRATCH_PREFIX = "gapbook-verify-"  # verify's re-run folder, cleaned up the same way
@@ -66,7 +68,13 @@ def remove_stale_folders() -> List[Path]:
 
 
 def scratch_folder() -> Path:
-    """A private scratch folder that records its owner, so a later run removes it if this process dies."""
+    """A private scratch folder that records its owner, so a later run removes it if this process dies.
+
+    Returns
+    -------
+    Path
+        A new 0700 folder under the system's temporary folder.
+    """
     folder = Path(tempfile.mkdtemp(prefix=f"{SCRATCH_PREFIX}{os.getpid()}-"))
     (folder / OWNER_FILE).write_text(f"{os.getpid()}\n")
     return folder

@@ -38,6 +38,10 @@ from .inference import format_p, standardised_difference, standardised_differenc
 from .little import LittleTest, little_mcar_test
 from .vocabulary import MAR_CAUTION, NUMBER_CODED_TYPES, NUMERIC_TYPES, PLAN_CAUTION, SENSITIVITY_POINTER, infer_type
 
+__all__ = ["GroupComparison", "compare_groups", "mcar_test_data", "MissingnessModels", "fit_missingness_model",
+           "missingness_models", "mcar_sentence", "model_sentences", "MechanismResult", "assess_mechanism",
+           "assess_study"]
+
 QUANTILE_GRID = np.linspace(0.0, 1.0, 101)
 MIN_EXPECTED_COUNT = 5.0  # Cochran (1954): chi-square is unreliable below 5 expected per cell
 

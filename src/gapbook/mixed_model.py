@@ -40,6 +40,8 @@ from .inference import wald_inference
 from .little import pattern_rows
 from .repeated import RepeatedOutcome, label
 
+__all__ = ["STRATEGY", "design_crossproducts", "MixedModelFit", "VISIT_EFFECT_COLUMNS", "fit_mixed_model"]
+
 METHODS = ("reml", "ml")
 STRATEGY = "mixed_model"
 LOG_2PI = math.log(2 * math.pi)

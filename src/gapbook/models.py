@@ -23,6 +23,9 @@ from .inference import wald_inference
 from .survival import EventCoding, check_follow_up, cox_model, fit_cox_model
 from .vocabulary import FAMILY_NAMES, TIME_TO_EVENT_FAMILIES, effect_scale, has_ratio_scale
 
+__all__ = ["ModelFit", "add_ratio_columns", "formula_columns", "check_formula", "fit_model", "exposure_terms",
+           "AnalysisModel"]
+
 
 @dataclass(frozen=True)
 class ModelFit:
@@ -310,6 +313,7 @@ def fit_model(data: pd.DataFrame, *, formula: str, family: str = "gaussian", rob
     offset : column whose log is the offset of a poisson model (person-time), or None.
     event : cox only: the event column and its coding.
     ties : cox only: ``efron`` or ``breslow``.
+    alpha : one minus the confidence level of the Wald intervals.
 
     Returns
     -------

@@ -29,6 +29,8 @@ from .inference import format_estimate, format_p, format_p_cell
 from .vocabulary import (STRATEGY_ASSUMPTIONS, STRATEGY_PHRASES, STRATEGY_TITLES, cautions, effect_scale,
                          has_ratio_scale)
 
+__all__ = ["parameters_summary", "notebook_to_html", "effect_table", "write_index"]
+
 # The figure that answers "what is the effect under each strategy" (saved by the imputation stage,
 # or by the missing-category stage when imputation did not run).
 EFFECT_FIGURE = "strategy_comparison"
@@ -193,7 +195,17 @@ def readable_cells(table_html: str) -> str:
 
 
 def parameters_summary(params: Any) -> List[Tuple[str, str]]:
-    """The injected parameters as a reader needs them: study, data file relative to the params file, key settings."""
+    """The injected parameters as a reader needs them: study, data file relative to the params file, key settings.
+
+    Parameters
+    ----------
+    params : dict or Params
+        The injected params.
+
+    Returns
+    -------
+    list of (label, value)
+    """
     rows: List[Tuple[str, str]] = [("study", str(params.study.name))]
     data = Path(params.data.path).expanduser()
     if data.is_absolute() and params.source:
@@ -257,6 +269,24 @@ def render_notebook(notebook: Any, *, title: str, parameters: Sequence[Tuple[str
 
 
 def notebook_to_html(notebook_path: Path, target: Path, *, title: str, parameters: Sequence[Tuple[str, str]]) -> Path:
+    """Render an executed notebook as one offline HTML page (outputs only, text escaped).
+
+    Parameters
+    ----------
+    notebook_path : Path
+        The executed notebook.
+    target : Path
+        The HTML file to write.
+    title : str
+        The page title.
+    parameters : sequence of (label, value)
+        The settings shown at the top (from :func:`parameters_summary`).
+
+    Returns
+    -------
+    Path
+        ``target``.
+    """
     import nbformat
 
     notebook = nbformat.read(notebook_path, as_version=4)
@@ -334,7 +364,26 @@ def effect_table(estimates: pd.DataFrame, *, family: str, exposure: Optional[str
     """The exposure's rows of ``estimates.csv`` under every strategy, on the ratio scale for ratio families.
 
     ``labels`` names the strategies for reading (the stages' ``strategy_comparison.csv`` has them).
-    Each row says what the strategy assumes about why values are missing."""
+    Each row says what the strategy assumes about why values are missing.
+
+    Parameters
+    ----------
+    estimates : DataFrame
+        ``estimates.csv``.
+    family : str
+        The model family.
+    exposure : str, optional
+        The exposure column or term.
+    alpha : float
+        One minus the confidence level.
+    labels : mapping of str to str, optional
+        Strategy -> label.
+
+    Returns
+    -------
+    EffectTable or None
+        None when the estimates have no term but the intercept.
+    """
     labels = {**STRATEGY_TITLES, **(labels or {})}
     from .errors import InputError
     from .models import exposure_terms
@@ -418,7 +467,28 @@ def _report_sections(folder: Path) -> Tuple[str, Optional[str]]:
 def write_index(folder: Path, *, params: Any, pages: Sequence[Tuple[str, str, float]], started: str,
                 data_sha256: str, error: Optional[Dict[str, Any]] = None) -> Path:
     """``report/index.html``: the answer first (effect under every strategy, with its figure), then the
-    participant flow, the drafted methods and results, the stage pages, and the cautions once."""
+    participant flow, the drafted methods and results, the stage pages, and the cautions once.
+
+    Parameters
+    ----------
+    folder : Path
+        The record folder.
+    params : dict
+        The resolved params.
+    pages : sequence of (stage, file, seconds)
+        The stage pages written.
+    started : str
+        The run's start, as shown.
+    data_sha256 : str
+        The data file's digest.
+    error : dict, optional
+        The failing stage and message of an incomplete run.
+
+    Returns
+    -------
+    Path
+        ``report/index.html``.
+    """
     title = params.report.title or params.study.name
     parts = [f"<h1>{html.escape(title)}</h1>",
              f'<p class="muted">Study <b>{html.escape(params.study.name)}</b> &middot; data file '

@@ -21,6 +21,8 @@ from .vocabulary import (COVARIANCE_STRUCTURES, FAMILY_NAMES, FOLLOWUP_STRATEGY_
                          INTERCURRENT_STRATEGY_NAMES, LAYOUTS, TIES_METHODS, TIME_TO_EVENT_FAMILIES, VARIABLE_TYPES)
 from .expressions import CONDITION, VALUE, ExpressionError, parse_expression, parse_formula
 
+__all__ = ["VariableSpec", "DeltaGrid", "Params", "load_params"]
+
 DATA_FORMATS: Tuple[str, ...] = ("auto", "csv", "tsv", "xlsx", "parquet")
 # pydantic checks a value against a Literal; the Literals are built from the vocabulary's tuples.
 VariableType = Literal.__getitem__(VARIABLE_TYPES)
@@ -463,7 +465,18 @@ class Params(_Section):
 
 
 def load_params(path: Union[str, Path]) -> Params:
-    """Read and validate a params YAML file (safe loading only)."""
+    """Read and validate a params YAML file (safe loading only).
+
+    Parameters
+    ----------
+    path : str or Path
+        The params file; a relative ``data.path`` in it is taken from the file's folder.
+
+    Returns
+    -------
+    Params
+        The resolved params; an unknown key or bad value exits 2 naming it.
+    """
     path = Path(path)
     if not path.is_file():
         raise InputError(f"{path}: params file not found; give the path to a YAML file (see 'gapbook new DIR')")

@@ -19,6 +19,9 @@ from typing import Any, Callable, Dict, List, Mapping, Optional, Sequence, Tuple
 from .errors import InputError, did_you_mean
 from .params import Params
 
+__all__ = ["STAGES", "STAGE_TITLES", "sha256_file", "kit_notebooks_dir", "StageNotebook", "resolve_stages",
+           "check_model_up_front", "Plan", "preflight"]
+
 STAGES: Dict[str, str] = {
     "audit": "01_audit.ipynb",
     "mechanism": "02_mechanism.ipynb",
@@ -58,11 +61,29 @@ Log = Callable[[str], None]
 
 
 def sha256_file(path: Path) -> str:
+    """The SHA-256 digest of a file, as hexadecimal text.
+
+    Parameters
+    ----------
+    path : Path
+        The file.
+
+    Returns
+    -------
+    str
+        64 hexadecimal digits.
+    """
     return hashlib.sha256(Path(path).read_bytes()).hexdigest()
 
 
 def kit_notebooks_dir() -> Path:
-    """The installed kit's notebooks: inside the package (a wheel), else the source checkout's ``notebooks/``."""
+    """The installed kit's notebooks: inside the package (a wheel), else the source checkout's ``notebooks/``.
+
+    Returns
+    -------
+    Path
+        The folder holding one ``NN_<stage>.ipynb`` per stage.
+    """
     packaged = Path(__file__).resolve().parent / "notebooks"
     if any(packaged.glob("*.ipynb")):
         return packaged
@@ -128,6 +149,22 @@ def resolve_stages(only: Optional[Sequence[str]], params: Optional[Params] = Non
 
     Without ``--only``, stages that need the analysis model are skipped (and said so) when
     the params have no ``analysis.formula``: describing the missing data needs no model.
+
+    Parameters
+    ----------
+    only : sequence of str, optional
+        The stages asked for (``--only``); default every stage.
+    params : Params, optional
+        The params; without ``analysis.formula`` the model stages are skipped.
+    log : callable, optional
+        Receives the line naming skipped stages.
+    available : sequence of str, optional
+        The stages there are notebooks for; default those the installed kit has.
+
+    Returns
+    -------
+    list of str
+        Stage names in pipeline order.
     """
     if available is None:
         available = [s for s in STAGES if (kit_notebooks_dir() / STAGES[s]).is_file()]
@@ -188,6 +225,18 @@ def check_model_up_front(params: Params, study: Any) -> Tuple[str, List[str]]:
     or an impossible offset would otherwise surface in the middle of a run. A complete-case
     fit is cheap next to the stages; analysis failures are left for the stages to explain.
     Returns the outcome and the right-hand-side columns.
+
+    Parameters
+    ----------
+    params : Params
+        The params; errors name ``analysis.<key>`` and the params file.
+    study : Study
+        The study after intake.
+
+    Returns
+    -------
+    (outcome, columns) : tuple of str and list of str
+        The outcome and the right-hand-side columns as the formula writes them.
     """
     from .cases import check_model_data
     from .errors import AnalysisError
@@ -330,6 +379,24 @@ def preflight(params: Params, *, only: Optional[Sequence[str]] = None, log: Opti
     Raises :class:`~gapbook.errors.InputError` (exit 2, one line) for anything the user
     can fix. ``notebooks`` maps stage names to the notebooks to run instead of the study
     folder's or the kit's (``verify`` uses it for the kit's or a trusted record's copies).
+
+    Parameters
+    ----------
+    params : Params
+        The resolved params.
+    only : sequence of str, optional
+        The stages asked for; default every stage the params allow.
+    log : callable, optional
+        Receives one line per finding (skipped stages, warnings).
+    notebooks : mapping of str to Path, optional
+        Notebooks to run in place of the kit's or the study folder's.
+    notebook_origin : str
+        What the manifest calls an override notebook that differs from the kit's (``record``).
+
+    Returns
+    -------
+    Plan
+        The stages, their notebooks, the data check and the params, ready for the runner.
     """
     found = stage_notebooks(params, notebooks, notebook_origin)
     stages = resolve_stages(only, params, log, available=list(found))

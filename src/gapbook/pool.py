@@ -20,6 +20,8 @@ from .errors import AnalysisError, InputError
 from .inference import format_df, format_p, wald_inference
 from .models import ModelFit, add_ratio_columns, exposure_terms, scale_sentence
 
+__all__ = ["barnard_rubin_df", "rubin_pool", "WaldTest", "wald_d1", "PooledResult", "pool_fits"]
+
 STRATEGY = "multiple_imputation"  # the vocabulary's name for this strategy (gapbook.vocabulary.STRATEGIES)
 
 

@@ -33,6 +33,10 @@ from . import __version__
 from .errors import InputError
 from .pipeline import STAGES
 
+__all__ = ["MANIFEST", "OWNER_FILE", "SOURCE_NOTEBOOKS", "record_name", "owned_by_dead_process", "RecordFolder",
+           "Manifest", "build_manifest", "write_json", "read_manifest", "Check", "check_files",
+           "check_params_agree", "compare_tables", "same_environment", "compare_figures"]
+
 PACKAGES = ("numpy", "pandas", "scipy", "statsmodels", "matplotlib", "seaborn", "pydantic", "PyYAML", "joblib",
             "papermill", "nbconvert", "nbformat", "nbclient", "ipykernel", "pyarrow", "openpyxl", "formulaic", "patsy")
 MANIFEST = "manifest.json"
@@ -73,6 +77,20 @@ def package_versions() -> Dict[str, Optional[str]]:
 
 
 def record_name(study_name: str, when: datetime) -> str:
+    """A record folder's name: the study name as a slug and the start time.
+
+    Parameters
+    ----------
+    study_name : str
+        The params' ``study.name``.
+    when : datetime
+        The run's start.
+
+    Returns
+    -------
+    str
+        ``<slug>-YYYYMMDD-HHMMSS``.
+    """
     return f"{slug(study_name)}-{when.strftime('%Y%m%d-%H%M%S')}"
 
 
@@ -90,7 +108,17 @@ def pid_alive(pid: int) -> bool:
 
 
 def owned_by_dead_process(folder: Path) -> bool:
-    """True when ``folder`` belongs to this user and the pid written in it is no longer running."""
+    """True when ``folder`` belongs to this user and the pid written in it is no longer running.
+
+    Parameters
+    ----------
+    folder : Path
+        A scratch or temporary record folder.
+
+    Returns
+    -------
+    bool
+    """
     try:
         if folder.is_symlink() or folder.lstat().st_uid != os.getuid():
             return False
@@ -288,7 +316,36 @@ def build_manifest(*, status: str, params_body: Dict[str, Any], data_path: Path,
                    record_final: Path, stages: Sequence[Dict[str, Any]], folder: Path, started: datetime,
                    ended: datetime, kernel: Optional[Dict[str, str]], error: Optional[Dict[str, Any]] = None
                    ) -> Dict[str, Any]:
-    """The manifest of a record whose every other file is already written in ``folder``."""
+    """The manifest of a record whose every other file is already written in ``folder``.
+
+    Parameters
+    ----------
+    status : str
+        ``complete`` or ``incomplete``.
+    params_body : dict
+        The resolved params as written to ``params.yaml``.
+    data_path : Path
+        The data file.
+    data_sha256 : str
+        Its digest.
+    record_final : Path
+        The record's final place (the data path is stored relative to it).
+    stages : sequence of dict
+        One entry per stage run (name, notebook, seconds).
+    folder : Path
+        The folder holding the record's files, all of which get a digest.
+    started, ended : datetime
+        The run's start and end.
+    kernel : dict, optional
+        The kernel's name and interpreter.
+    error : dict, optional
+        The failing stage and its message, for an incomplete record.
+
+    Returns
+    -------
+    dict
+        The manifest body, valid for :class:`Manifest`.
+    """
     try:
         relative = os.path.relpath(data_path, record_final)
     except ValueError:  # another drive (Windows): only the absolute path holds
@@ -317,6 +374,15 @@ def build_manifest(*, status: str, params_body: Dict[str, Any], data_path: Path,
 
 
 def write_json(path: Path, body: Dict[str, Any]) -> None:
+    """Write a JSON file the one way records write them (indented, UTF-8, final newline).
+
+    Parameters
+    ----------
+    path : Path
+        The file.
+    body : dict
+        What to write; values JSON does not know are written as text.
+    """
     path.write_text(json.dumps(body, indent=2, sort_keys=False, default=str) + "\n", encoding="utf-8")
 
 
@@ -334,7 +400,17 @@ def _schema_problem(exc: ValidationError, path: Path) -> str:
 
 
 def read_manifest(record: Path) -> Manifest:
-    """The record's manifest, validated; a missing, unreadable or malformed one exits 2 naming the key."""
+    """The record's manifest, validated; a missing, unreadable or malformed one exits 2 naming the key.
+
+    Parameters
+    ----------
+    record : Path
+        The record folder.
+
+    Returns
+    -------
+    Manifest
+    """
     path = Path(record) / MANIFEST
     if not Path(record).is_dir() or not path.is_file():
         raise InputError(f"{record}: not a gapbook record (no {MANIFEST}); give the folder that 'run' printed")
@@ -372,7 +448,20 @@ class Check:
 
 
 def check_files(record: Path, manifest: Manifest) -> List[Check]:
-    """Every file's sha256 against the manifest, and the files the manifest does not list."""
+    """Every file's sha256 against the manifest, and the files the manifest does not list.
+
+    Parameters
+    ----------
+    record : Path
+        The record folder.
+    manifest : Manifest
+        Its manifest.
+
+    Returns
+    -------
+    list of Check
+        One failed check per file that differs, is missing, or is not listed.
+    """
     record = Path(record)
     failures: List[Check] = []
     present = set(record_files(record))
@@ -390,6 +479,20 @@ def check_files(record: Path, manifest: Manifest) -> List[Check]:
 
 
 def check_params_agree(record: Path, manifest: Manifest) -> List[Check]:
+    """``params.yaml`` must say what the manifest's params say.
+
+    Parameters
+    ----------
+    record : Path
+        The record folder.
+    manifest : Manifest
+        Its manifest.
+
+    Returns
+    -------
+    list of Check
+        Empty when they agree, else one failed check.
+    """
     import yaml
 
     path = Path(record) / "params.yaml"
@@ -439,7 +542,20 @@ def compare_text(recorded: Path, rerun: Path) -> Check:
 
 
 def compare_tables(record: Path, rerun: Path) -> List[Check]:
-    """Every table (and the drafted report text) of the record against the re-run."""
+    """Every table (and the drafted report text) of the record against the re-run.
+
+    Parameters
+    ----------
+    record : Path
+        The record folder.
+    rerun : Path
+        The re-executed record.
+
+    Returns
+    -------
+    list of Check
+        One per table: same bytes, or same values within 1e-9.
+    """
     recorded = {p.name: p for p in (Path(record) / "tables").iterdir() if p.suffix in (".csv", ".md")}
     fresh = {p.name for p in (Path(rerun) / "tables").iterdir() if p.suffix in (".csv", ".md")}
     checks = [(compare_table if n.endswith(".csv") else compare_text)(recorded[n], Path(rerun) / "tables" / n)
@@ -449,14 +565,38 @@ def compare_tables(record: Path, rerun: Path) -> List[Check]:
 
 
 def same_environment(manifest: Manifest) -> bool:
-    """Whether this machine has the platform and package versions the record was made with."""
+    """Whether this machine has the platform and package versions the record was made with.
+
+    Parameters
+    ----------
+    manifest : Manifest
+        The record's manifest.
+
+    Returns
+    -------
+    bool
+    """
     return manifest.platform == platform.platform() and manifest.packages == package_versions()
 
 
 def compare_figures(record: Path, rerun: Path, *, strict: bool) -> List[Check]:
     """Figures byte for byte. Rendering depends on fonts and library versions, so a difference
     fails only when ``strict`` (same platform and package versions as the record), and only for
-    PNG: an SVG twin carries ids matplotlib may draw at random, and its PNG is checked."""
+    PNG: an SVG twin carries ids matplotlib may draw at random, and its PNG is checked.
+
+    Parameters
+    ----------
+    record : Path
+        The record folder.
+    rerun : Path
+        The re-executed record.
+    strict : bool
+        Whether a differing PNG fails.
+
+    Returns
+    -------
+    list of Check
+    """
     checks = []
     recorded = {p.name: p for p in (Path(record) / "figures").glob("*") if p.is_file()}
     for name in sorted(recorded):

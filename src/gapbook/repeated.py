@@ -26,6 +26,8 @@ from .errors import AnalysisError, InputError, did_you_mean
 from .expressions import formula_environment
 from .models import check_formula, exposure_terms
 
+__all__ = ["label", "last_observed_index", "RepeatedOutcome", "repeated_outcome", "wide_to_long"]
+
 MAX_SHOWN = 3   # subjects named in one error message
 
 

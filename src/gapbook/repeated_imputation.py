@@ -52,6 +52,8 @@ from .little import pattern_rows
 from .repeated import RepeatedOutcome, label
 from .vocabulary import INFORMATION_ANCHORING, REFERENCE_BASED_VARIANCE
 
+__all__ = ["RULE_STRATEGY", "DELTA_STRATEGY", "draw_group_parameters", "draw_posteriors", "impute_repeated"]
+
 RULES = ("mar", "jump_to_reference", "copy_reference", "copy_increments_reference")
 # The strategy label each rule gets in visit_effects.csv.
 RULE_STRATEGY = {"mar": "multiple_imputation", "jump_to_reference": "jump_to_reference",

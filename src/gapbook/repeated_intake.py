@@ -25,6 +25,8 @@ from .errors import InputError, did_you_mean
 from .repeated import RepeatedOutcome, label, repeated_outcome, wide_to_long
 from .vocabulary import LAYOUTS, NO_RECORD
 
+__all__ = ["repeated_study"]
+
 
 def _as_number(value: Any) -> Optional[float]:
     try:

@@ -22,6 +22,9 @@ from .models import AnalysisModel, check_formula, exposure_terms
 from .inference import format_estimate, format_p
 from .vocabulary import STRATEGY_PHRASES, cautions as page_cautions, effect_scale, has_ratio_scale
 
+__all__ = ["COUNT_TABLES", "RecordSuppression", "suppress_small_counts", "suppress_record_tables", "ReportSummary",
+           "REPORT_TABLES", "summarise"]
+
 # Count columns of the record's tables that small-count suppression masks, by table.
 COUNT_TABLES: Dict[str, Tuple[str, ...]] = {
     "audit_variables": ("n", "n_missing"),

@@ -29,6 +29,8 @@ from .kernels import KERNEL_NAME, PrivateKernels, scratch_folder
 from .params import Params
 from .pipeline import RECORD, STAGE_TITLES, Plan, StageNotebook, kit_notebooks_dir, preflight, sha256_file
 
+__all__ = ["run_study", "verify_record"]
+
 Log = Callable[[str], None]
 
 
@@ -122,6 +124,24 @@ def run_study(plan: Plan, out_root: Path, log: Log = print, name: Optional[str] 
     A stage that fails leaves the finished stages under ``<name>-incomplete`` (its manifest
     says which stage failed and why) and re-raises the stage's error with that path, so
     the exit code stays 2 for a user error and 1 for an analysis failure.
+
+    Parameters
+    ----------
+    plan : Plan
+        From :func:`gapbook.pipeline.preflight`.
+    out_root : Path
+        The folder the record is created in (never overwritten).
+    log : callable
+        Receives one line per stage.
+    name : str, optional
+        The record's name; default the study name and start time.
+    with_pages : bool
+        Render each notebook and the landing page as HTML.
+
+    Returns
+    -------
+    Path
+        The record folder.
     """
     params = plan.params
     for note in plan.notes:
@@ -247,7 +267,24 @@ def _notebooks_to_run(record: Path, manifest: rec.Manifest, trust: bool) -> Dict
 
 def verify_record(record: Path, log: Log = print, *, data: Optional[Path] = None,
                   trust_record_notebooks: bool = False) -> VerifyResult:
-    """Check every file of a record against its manifest, then re-execute it and compare every table."""
+    """Check every file of a record against its manifest, then re-execute it and compare every table.
+
+    Parameters
+    ----------
+    record : Path
+        The record folder.
+    log : callable
+        Receives one line per check.
+    data : Path, optional
+        The data file when it was moved apart from the record (same SHA-256 required).
+    trust_record_notebooks : bool
+        Run the record's own notebooks instead of the installed kit's.
+
+    Returns
+    -------
+    VerifyResult
+        The integrity failures, then every table and figure check.
+    """
     record = Path(record).expanduser().absolute()
     manifest = rec.read_manifest(record)
     if manifest.status != "complete":

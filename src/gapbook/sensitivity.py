@@ -43,6 +43,10 @@ from .models import AnalysisModel, exposure_terms
 from .pool import PooledResult, rubin_pool
 from .vocabulary import DELTA_METHODS, MAR_CAUTION
 
+__all__ = ["ALL_GROUPS", "DeltaSeries", "DeltaSpec", "delta_series", "imputation_evaluator", "interval",
+           "find_tipping_point", "tipping_statement", "DeltaResult", "delta_analysis", "StrategyAndDelta",
+           "compare_with_deltas", "SensitivityResult", "sensitivity_analysis"]
+
 ALL_GROUPS = "all"
 DELTA_COLUMNS: Tuple[str, ...] = ("variable", "group", "delta", "term", "estimate", "ci_lower", "ci_upper", "p_value")
 MONTE_CARLO_COLUMNS: Tuple[str, ...] = ("monte_carlo_se", "ci_lower_mc_se", "ci_upper_mc_se")  # see with_monte_carlo_se

@@ -38,6 +38,10 @@ from .errors import AnalysisError, InputError, did_you_mean
 from .expressions import FORMULA_NAMESPACE, formula_environment
 from .models import AnalysisModel, exposure_terms
 
+__all__ = ["MECHANISMS", "SIMULATION_ITERATIONS", "performance", "design_from_data", "simulate_complete",
+           "impose_missing", "Replicate", "least_squares_for", "CompleteCaseStrategy", "default_strategies",
+           "SimulationResult", "run_simulation", "simulate_study"]
+
 MECHANISMS: Tuple[str, ...] = ("MCAR", "MAR", "MNAR")
 PERFORMANCE_COLUMNS: Tuple[str, ...] = ("mechanism", "strategy", "term", "n_rep", "true_value", "bias", "bias_mcse",
                                         "emp_se", "emp_se_mcse", "model_se", "coverage", "coverage_mcse")

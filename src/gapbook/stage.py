@@ -77,7 +77,20 @@ class StageResult(Protocol):
 
 
 def write_csv(frame: pd.DataFrame, path: Path) -> Path:
-    """Write a table the one way gapbook writes tables (fixed float format, '\\n' line ends)."""
+    """Write a table the one way gapbook writes tables (fixed float format, '\\n' line ends).
+
+    Parameters
+    ----------
+    frame : DataFrame
+        The table; its index is not written.
+    path : Path
+        The file to write.
+
+    Returns
+    -------
+    Path
+        ``path``, so reruns with the same inputs write the same bytes.
+    """
     path.parent.mkdir(parents=True, exist_ok=True)
     frame.to_csv(path, index=False, float_format=CSV_FLOAT_FORMAT, lineterminator="\n")
     return path
@@ -108,6 +121,18 @@ def params_errors(params: Params, *sections: str) -> Iterator[None]:
     ``sections`` are the params sections whose keys the options are, in order of precedence
     (e.g. ``"mechanism", "analysis"``: ``alpha`` is ``mechanism.alpha``). The message then
     names the params file and the key: ``study.yaml: imputation.auxiliary: 'x' is not a column``.
+
+    Parameters
+    ----------
+    params : Params
+        The params the options were read from (its file names the error).
+    *sections : str
+        The params sections, in order of precedence.
+
+    Yields
+    ------
+    None
+        The body runs inside; an ``InputError`` raised there is re-raised with the params key.
     """
     try:
         yield
@@ -119,7 +144,18 @@ def params_errors(params: Params, *sections: str) -> Iterator[None]:
 
 
 def analysis_model(params: Params) -> "AnalysisModel":
-    """The ``analysis`` section as an :class:`~gapbook.models.AnalysisModel`; exits 2 without a formula."""
+    """The ``analysis`` section as an :class:`~gapbook.models.AnalysisModel`; exits 2 without a formula.
+
+    Parameters
+    ----------
+    params : Params
+        The resolved params.
+
+    Returns
+    -------
+    AnalysisModel
+        Formula, family, exposure, offset, robust and alpha as the params give them.
+    """
     from .models import AnalysisModel
 
     section = params.analysis
@@ -649,7 +685,22 @@ def sensitivity_series(params: Params, study: Study, plan: "ImputationPlan") -> 
 
 
 def merge_estimates(existing: Optional[pd.DataFrame], rows: pd.DataFrame, path: Path) -> pd.DataFrame:
-    """``estimates.csv`` with ``rows`` in place of their strategies' rows, in the vocabulary's strategy order."""
+    """``estimates.csv`` with ``rows`` in place of their strategies' rows, in the vocabulary's strategy order.
+
+    Parameters
+    ----------
+    existing : DataFrame or None
+        The rows ``estimates.csv`` already holds, if any.
+    rows : DataFrame
+        The rows of one or more strategies.
+    path : Path
+        The ``estimates.csv`` to write.
+
+    Returns
+    -------
+    DataFrame
+        The merged rows as written.
+    """
     strategies = set(rows["strategy"])
     parts = [rows] if existing is None else [existing[~existing["strategy"].isin(strategies)], rows]
     table = pd.concat([p for p in parts if len(p)], ignore_index=True)

@@ -18,6 +18,8 @@ import html
 import re
 from typing import Any
 
+__all__ = ["one_line", "html_escape", "md_escape", "md_code", "plot_escape"]
+
 # CommonMark lets any ASCII punctuation be backslash-escaped; these are the ones that
 # format (emphasis, links, headings, lists, tables, code, maths in Jupyter's renderer).
 _MARKDOWN_PUNCTUATION = re.compile(r"([\\`*_{}\[\]()#+\-.!|~^$:])")

@@ -133,7 +133,18 @@ RATIO_WORDS: Dict[str, str] = {f.name: f.ratio_words for f in FAMILIES if f.rati
 
 
 def ratio_name(family: str) -> Optional[str]:
-    """The ratio column stem of a family (``odds_ratio``, ``rate_ratio``), or None for an identity link."""
+    """The ratio column stem of a family (``odds_ratio``, ``rate_ratio``), or None for an identity link.
+
+    Parameters
+    ----------
+    family : str
+        One of :data:`FAMILIES`.
+
+    Returns
+    -------
+    str or None
+        The stem of the ratio columns (``<stem>``, ``<stem>_ci_lower``, ``<stem>_ci_upper``).
+    """
     return RATIO_NAMES.get(family)
 
 
@@ -212,7 +223,18 @@ COVARIANCE_STRUCTURES: Tuple[str, ...] = ("unstructured",)
 
 
 def strategy_rank(name: str) -> int:
-    """Position of a strategy in table order; unknown strategies come after the known ones."""
+    """Position of a strategy in table order; unknown strategies come after the known ones.
+
+    Parameters
+    ----------
+    name : str
+        A strategy name as ``estimates.csv`` writes it.
+
+    Returns
+    -------
+    int
+        Its place in :data:`STRATEGY_NAMES`, or the number of known strategies.
+    """
     return STRATEGY_NAMES.index(name) if name in STRATEGY_NAMES else len(STRATEGY_NAMES)
 
 
@@ -313,5 +335,16 @@ CAUTIONS: Tuple[str, ...] = (f"{MAR_CAUTION} {SENSITIVITY_POINTER}", PLAN_CAUTIO
 
 
 def cautions(with_model: bool = True) -> Tuple[str, ...]:
-    """The cautions a page carries; without an analysis model there is no imputation to point to."""
+    """The cautions a page carries; without an analysis model there is no imputation to point to.
+
+    Parameters
+    ----------
+    with_model : bool
+        Whether the page reports an analysis model (adds the pointer to the sensitivity analyses).
+
+    Returns
+    -------
+    tuple of str
+        The cautions, in the order a page shows them.
+    """
     return CAUTIONS if with_model else (MAR_CAUTION, PLAN_CAUTION, REPORTING_CAUTION)

@@ -18,6 +18,8 @@ from matplotlib.patches import Patch
 from . import EMPHASIS, GRID, MAX_VARIABLES_SHOWN, MISSING, NEUTRAL, OBSERVED, REFERENCE, new_figure, shown_of
 from .palette import BACKGROUND, REASON_SHADES, reason_shades, scale
 
+__all__ = ["MAX_TOGETHER", "missingness_map", "missing_share", "missing_together", "common_patterns"]
+
 MAX_TOGETHER = 20  # the most incomplete variables the co-missingness view shows; the rest are named as left out
 PATTERN_RULES = 60          # at most this many patterns get a rule between their bands
 PATTERN_LABEL_SHARE = 3.0   # patterns with at least this % of rows get their share written at the right

@@ -12,6 +12,8 @@ from .palette import strategy_colour, strategy_marker
 from ..cases import CompleteCaseFlow, CompletenessBaseline, StrategyComparison
 from ..vocabulary import effect_scale
 
+__all__ = ["plot_flow", "plot_completeness_differences", "plot_strategy_comparison"]
+
 
 def plot_flow(flow: CompleteCaseFlow):
     """Rows lost to each model variable: dark for the rows counted there first, light for every row lacking it.

@@ -23,6 +23,8 @@ from ..followup_audit import FollowupAudit
 from ..followup_comparisons import COMPLETERS, LAST_OBSERVATION
 from ..repeated import label
 
+__all__ = ["plot_retention", "plot_completeness", "plot_profiles", "plot_means", "plot_last_visit_effects"]
+
 # One colour per exposure group, in level order: the reference group in the dark neutral tone.
 GROUP_COLOURS = GROUPS
 STRATEGY_TITLES = {"mixed_model": "mixed model (MAR)", "multiple_imputation": "imputation (MAR)",

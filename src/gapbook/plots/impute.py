@@ -21,6 +21,8 @@ from ..vocabulary import CATEGORICAL_TYPES
 from . import BACKGROUND, EMPHASIS, GRID, IMPUTED, NEUTRAL, OBSERVED, REFERENCE, UNTESTED
 from .palette import blend
 
+__all__ = ["plot_chain_convergence", "plot_observed_vs_imputed", "plot_missing_information"]
+
 
 def plot_chain_convergence(convergence: ChainConvergence):
     """Have the chains forgotten their starting values, and from which iteration?

@@ -24,6 +24,8 @@ from ..inference import format_p
 from ..little import LittleTest
 from ..mechanism import GroupComparison, MissingnessModels
 
+__all__ = ["relation_overview", "strongest_relations", "pattern_contributions", "missingness_odds_ratios"]
+
 SMD_CAP = 0.5          # colour saturates here; |SMD| >= 0.1 is often read as a meaningful imbalance (Austin 2009)
 
 

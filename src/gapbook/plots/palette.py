@@ -23,6 +23,11 @@ from typing import Dict, Mapping, Sequence, Tuple
 
 from matplotlib.colors import Colormap, LinearSegmentedColormap, to_rgb
 
+__all__ = ["OBSERVED", "MISSING", "IMPUTED", "NOT_APPLICABLE", "REFERENCE", "EMPHASIS", "NEUTRAL", "UNTESTED",
+           "GRID", "BACKGROUND", "STRATEGY_COLOURS", "STRATEGY_MARKERS", "GROUPS", "REASON_SHADES",
+           "MIN_DIFFERENCE", "DISTINGUISHABLE", "roles", "strategy_colour", "strategy_marker", "reason_shades",
+           "blend", "scale", "text_on"]
+
 # ---------------------------------------------------------------------------
 # the data's roles
 

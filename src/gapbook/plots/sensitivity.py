@@ -16,6 +16,8 @@ from . import BACKGROUND, EMPHASIS, NEUTRAL, OBSERVED, REFERENCE
 from .palette import strategy_colour, strategy_marker
 from ..sensitivity import ALL_GROUPS, DeltaResult, StrategyAndDelta, rounded_delta
 
+__all__ = ["delta_curve", "analyses_side_by_side"]
+
 
 def delta_curve(result: DeltaResult, term: Optional[str] = None):
     """Estimate and CI of one exposure term against delta, one panel per delta series.

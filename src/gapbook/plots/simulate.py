@@ -15,6 +15,8 @@ from . import REFERENCE
 from .palette import strategy_colour, strategy_marker
 from ..simulate import SimulationResult
 
+__all__ = ["performance_panels"]
+
 
 def performance_panels(result: SimulationResult, term: Optional[str] = None, alpha: float = 0.05):
     """Bias (top) and coverage (bottom) per strategy, one column per mechanism, with +/- 2 Monte Carlo SEs."""
