@@ -11,12 +11,12 @@ kit's notebooks are the ones installed with the package (the wheel carries them 
 """
 from __future__ import annotations
 
-import hashlib
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Callable, Dict, List, Mapping, Optional, Sequence, Tuple
 
 from .errors import InputError, did_you_mean
+from .intake import sha256_of as sha256_file  # the one file digest, shared with intake and record
 from .params import Params
 
 __all__ = ["STAGES", "STAGE_TITLES", "sha256_file", "kit_notebooks_dir", "StageNotebook", "resolve_stages",
@@ -58,22 +58,6 @@ FAMILY_GAPS: Dict[str, Dict[str, str]] = {
 KIT, STUDY, RECORD = "kit", "study", "record"
 
 Log = Callable[[str], None]
-
-
-def sha256_file(path: Path) -> str:
-    """The SHA-256 digest of a file, as hexadecimal text.
-
-    Parameters
-    ----------
-    path : Path
-        The file.
-
-    Returns
-    -------
-    str
-        64 hexadecimal digits.
-    """
-    return hashlib.sha256(Path(path).read_bytes()).hexdigest()
 
 
 def kit_notebooks_dir() -> Path:

@@ -31,6 +31,7 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_valida
 
 from . import __version__
 from .errors import InputError
+from .intake import sha256_of as sha256_file  # the one file digest, shared with intake and the pipeline
 from .pipeline import STAGES
 
 __all__ = ["MANIFEST", "OWNER_FILE", "SOURCE_NOTEBOOKS", "record_name", "owned_by_dead_process", "RecordFolder",
@@ -51,14 +52,6 @@ SHA256 = r"^[0-9a-f]{64}$"
 
 def sha256_bytes(data: bytes) -> str:
     return hashlib.sha256(data).hexdigest()
-
-
-def sha256_file(path: Path) -> str:
-    digest = hashlib.sha256()
-    with open(path, "rb") as handle:
-        for block in iter(lambda: handle.read(1 << 20), b""):
-            digest.update(block)
-    return digest.hexdigest()
 
 
 def slug(text: str) -> str:
