@@ -40,7 +40,7 @@ from ..convergence import ChainConvergence, chain_convergence
 from ..errors import AnalysisError, InputError, did_you_mean
 from ..models import AnalysisModel
 from ..pool import PooledResult, pool_fits
-from ..vocabulary import CATEGORICAL_TYPES, IMPUTATION_METHODS, VARIABLE_TYPES, infer_type
+from ..vocabulary import CATEGORICAL_TYPES, IMPUTATION_METHODS, NUMERIC_TYPES, VARIABLE_TYPES, infer_type
 from .numerics import (augmentation, cholesky, gram_rows, linear_draw, multinomial_terms, newton, ordinal_terms,
                        pmm_match, predict_rows)
 from ..intake import levels_of
@@ -259,7 +259,22 @@ class Chain:
 
 
 def run_chain(problem: Problem, chain: int, seed: np.random.SeedSequence):
-    """Run one chain to the end; returns its imputed values per variable and its convergence rows."""
+    """Run one chain to the end; returns its imputed values per variable and its convergence rows.
+
+    Parameters
+    ----------
+    problem : Problem
+        The prepared imputation problem.
+    chain : int
+        The chain's number (for the convergence rows).
+    seed : numpy.random.SeedSequence
+        The chain's own seed, spawned from the run's.
+
+    Returns
+    -------
+    (imputed, trace) : dict and list of dict
+        {variable: imputed values} and one convergence row per iteration and variable.
+    """
     state = Chain(problem, np.random.Generator(np.random.PCG64(seed)))
     state.start()
     trace: List[Dict[str, Any]] = []
@@ -481,7 +496,7 @@ def impute_chained(data: pd.DataFrame, *, m: int = 20, iterations: int = 10, see
                              f"{did_you_mean(str(kind), VARIABLE_TYPES)}", option=f"types.{name}")
     full_types = {c: type_map.get(c) or infer_type(data[c])[0] for c in columns}
     for name, kind in full_types.items():
-        if kind in ("continuous", "count") and not pd.api.types.is_numeric_dtype(data[name].dtype):
+        if kind in NUMERIC_TYPES and not pd.api.types.is_numeric_dtype(data[name].dtype):
             raise InputError(f"'{name}' holds text, so it cannot be {kind}; "
                              "declare it binary, nominal or ordinal", option=f"types.{name}")
     method_map = check_names(methods, columns, "methods")
@@ -541,6 +556,24 @@ def impute_chained(data: pd.DataFrame, *, m: int = 20, iterations: int = 10, see
 
 
 def run_chains(problem: Problem, children: List[np.random.SeedSequence], n_jobs: int, progress: bool):
+    """Run every chain, one after another or in parallel (joblib), in chain order.
+
+    Parameters
+    ----------
+    problem : Problem
+        The prepared imputation problem.
+    children : list of numpy.random.SeedSequence
+        One seed per chain; the results do not depend on ``n_jobs``.
+    n_jobs : int
+        Worker processes (1: in this process).
+    progress : bool
+        Show a progress bar.
+
+    Returns
+    -------
+    list of tuple
+        :func:`run_chain`'s result for each chain, in chain order.
+    """
     from tqdm import tqdm
 
     bar = tqdm(total=len(children), desc="imputation chains", disable=not progress, leave=False)

@@ -18,7 +18,7 @@ import pandas as pd
 from ..errors import InputError, did_you_mean
 from ..expressions import VALUE, Expression, ExpressionError, parse_expression
 from ..intake import levels_of
-from ..vocabulary import ALLOWED_METHODS, CATEGORICAL_TYPES, DEFAULT_METHOD, DELTA_METHODS
+from ..vocabulary import ALLOWED_METHODS, CATEGORICAL_TYPES, DEFAULT_METHOD, DELTA_METHODS, NUMERIC_TYPES
 
 __all__ = ["Variable", "Problem", "choose_method", "choose_predictors", "check_names", "passive_inputs",
            "evaluate_passive", "prepare", "delta_shifts"]
@@ -68,7 +68,21 @@ class Problem:
 
 
 def check_names(mapping: Optional[Mapping[str, Any]], columns: Sequence[str], option: str) -> Dict[str, Any]:
-    """The mapping as a dict, after checking that every key is a column (exit 2 naming ``option.<key>``)."""
+    """The mapping as a dict, after checking that every key is a column (exit 2 naming ``option.<key>``).
+
+    Parameters
+    ----------
+    mapping : mapping, optional
+        {column: setting}.
+    columns : sequence of str
+        The columns there are.
+    option : str
+        The option's name for the message.
+
+    Returns
+    -------
+    dict
+    """
     mapping = dict(mapping or {})
     for name in mapping:
         if name not in columns:
@@ -82,6 +96,19 @@ def passive_inputs(formula: str, columns: Sequence[str], variable: str) -> Tuple
 
     The formula is checked by the expression language (:mod:`gapbook.expressions`): column
     names, numbers, arithmetic, comparisons and the listed functions only.
+
+    Parameters
+    ----------
+    formula : str
+        The passive formula.
+    columns : sequence of str
+        The data's columns.
+    variable : str
+        The passive variable (named in errors).
+
+    Returns
+    -------
+    tuple of str
     """
     try:
         parsed = _passive(formula, "", tuple(columns))
@@ -97,6 +124,17 @@ def evaluate_passive(formula: str, values: Dict[str, np.ndarray]) -> np.ndarray:
 
     Computed by the expression language's own evaluator over the checked tree (numpy,
     NaN where an input is missing); nothing is given to Python's ``eval``.
+
+    Parameters
+    ----------
+    formula : str
+        The passive formula.
+    values : dict of str to ndarray
+        Its inputs' values for the rows.
+
+    Returns
+    -------
+    ndarray
     """
     return _passive(formula, "imputation.passive", None).evaluate(values)
 
@@ -114,6 +152,22 @@ def choose_method(name: str, variable_type: str, methods: Mapping[str, str], pas
 
     Exits 2 (option ``methods.<name>``) when the method does not suit the variable's type or
     contradicts ``passive``.
+
+    Parameters
+    ----------
+    name : str
+        The variable.
+    variable_type : str
+        Its type.
+    methods : mapping of str to str
+        The methods asked for.
+    passive : mapping of str to str
+        The passive formulas.
+
+    Returns
+    -------
+    str
+        One of :data:`gapbook.vocabulary.IMPUTATION_METHODS`.
     """
     method = methods.get(name) or ("passive" if name in passive else DEFAULT_METHOD[variable_type])
     if name in passive and method != "passive":
@@ -130,7 +184,23 @@ def choose_method(name: str, variable_type: str, methods: Mapping[str, str], pas
 def choose_predictors(name: str, columns: Sequence[str], predictors: Mapping[str, Sequence[str]],
                       exclude: Mapping[str, Sequence[str]], passive_in: Mapping[str, Sequence[str]]) -> List[str]:
     """The predictors of one variable: those listed for it, else every other column (a passive
-    variable never predicts its own inputs), less the excluded ones; exits 2 on unknown names."""
+    variable never predicts its own inputs), less the excluded ones; exits 2 on unknown names.
+
+    Parameters
+    ----------
+    name : str
+        The variable.
+    columns : sequence of str
+        The imputation model's columns.
+    predictors, exclude : mapping of str to sequence of str
+        The predictors listed, and those excluded, per variable.
+    passive_in : mapping of str to sequence of str
+        Each passive variable's inputs.
+
+    Returns
+    -------
+    list of str
+    """
     if name in predictors:
         chosen = list(predictors[name])
         for p in chosen:
@@ -169,7 +239,7 @@ def prepare(data: pd.DataFrame, types: Dict[str, str], methods: Dict[str, str], 
     passive_in = {v: passive_inputs(f, columns, v) for v, f in passive.items()}
     for v, inputs in passive_in.items():
         for name in inputs:
-            if types[name] not in ("continuous", "count"):
+            if types[name] not in NUMERIC_TYPES:
                 raise InputError(f"'{name}' is {types[name]}; passive formulas take numbers", option=f"passive.{v}")
             if name in passive:
                 raise InputError(f"'{name}' is itself passive; write the formula from "
@@ -265,7 +335,23 @@ def prepare(data: pd.DataFrame, types: Dict[str, str], methods: Dict[str, str], 
 
 def delta_shifts(data: pd.DataFrame, variables: Dict[str, Variable], delta: Dict[str, Any],
                  delta_by: Dict[str, str]) -> Dict[str, Any]:
-    """Per variable, the shift of each imputed value: a float, or (group column, {level position: shift})."""
+    """Per variable, the shift of each imputed value: a float, or (group column, {level position: shift}).
+
+    Parameters
+    ----------
+    data : DataFrame
+        The imputation frame.
+    variables : dict of str to Variable
+        The prepared variables.
+    delta : dict
+        {variable: shift, or {group level: shift}}.
+    delta_by : dict of str to str
+        {variable: group column} for the per-group shifts.
+
+    Returns
+    -------
+    dict
+    """
     out: Dict[str, Any] = {}
     for name, shift in delta.items():
         variable = variables[name]
