@@ -244,7 +244,18 @@ def reasons_from_values(data: pd.DataFrame, label: str = UNSPECIFIED) -> pd.Data
 
 
 def reason_slug(label: str) -> str:
-    """The column-name form of a reason: lower case, every non-alphanumeric character as '_'."""
+    """The column-name form of a reason: lower case, every non-alphanumeric character as '_'.
+
+    Parameters
+    ----------
+    label : str
+        A reason label, e.g. ``lost to follow-up``.
+
+    Returns
+    -------
+    str
+        E.g. ``lost_to_follow_up`` (the audit's column is ``reason_<slug>``).
+    """
     return re.sub(r"[^a-z0-9]", "_", str(label).lower())
 
 

@@ -74,6 +74,15 @@ def split_chains(draws: np.ndarray) -> np.ndarray:
     """Each chain cut into its first and second half: (M, N) -> (2M, N // 2).
 
     With an odd N the middle draw is dropped, so both halves have the same length.
+
+    Parameters
+    ----------
+    draws : ndarray, shape (M, N)
+        M chains of N draws.
+
+    Returns
+    -------
+    ndarray, shape (2M, N // 2)
     """
     draws = np.asarray(draws, dtype=np.float64)
     half = draws.shape[1] // 2
@@ -84,6 +93,16 @@ def rank_normalise(draws: np.ndarray) -> np.ndarray:
     """Normal scores of the ranks of all draws pooled: ``Phi^-1((r - 3/8) / (S + 1/4))``.
 
     Ties share their average rank. S is the number of draws.
+
+    Parameters
+    ----------
+    draws : ndarray
+        Draws of any shape.
+
+    Returns
+    -------
+    ndarray
+        The normal scores, same shape.
 
     References
     ----------
@@ -136,6 +155,16 @@ def rhat_by_iteration(draws: np.ndarray) -> np.ndarray:
     """R-hat at every iteration t, on iterations 1..t: (chains, iterations) -> (iterations, 2) of bulk, folded.
 
     Rows before :data:`FIRST_ITERATION` are NaN.
+
+    Parameters
+    ----------
+    draws : ndarray, shape (chains, iterations)
+        One imputed summary per chain and iteration.
+
+    Returns
+    -------
+    ndarray, shape (iterations, 2)
+        Bulk and folded R-hat.
     """
     draws = np.asarray(draws, dtype=np.float64)
     out = np.full((draws.shape[1], 2), np.nan)

@@ -72,7 +72,17 @@ def pattern_rows(observed: np.ndarray) -> Tuple[np.ndarray, List[np.ndarray]]:
 
 
 def group_patterns(values: np.ndarray) -> MissingnessPatterns:
-    """Group the rows of a numeric matrix (NaN = missing) by pattern; rows with nothing observed are dropped."""
+    """Group the rows of a numeric matrix (NaN = missing) by pattern; rows with nothing observed are dropped.
+
+    Parameters
+    ----------
+    values : ndarray, shape (n, p)
+        The numeric matrix.
+
+    Returns
+    -------
+    MissingnessPatterns
+    """
     observed = ~np.isnan(values)
     keep = observed.any(axis=1)
     values, observed = values[keep], observed[keep]

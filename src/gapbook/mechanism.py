@@ -345,6 +345,21 @@ def mcar_test_data(data: pd.DataFrame, *, types: Mapping[str, str], not_applicab
     are left out (with a note).
 
     Raises InputError for unknown or unsuitable names in ``variables``.
+
+    Parameters
+    ----------
+    data : DataFrame
+        The study's values.
+    types : mapping of str to str
+        Each column's type.
+    not_applicable : DataFrame of bool, optional
+        The not-applicable cells.
+    variables : sequence of str, optional
+        The variables to test.
+
+    Returns
+    -------
+    (frame, notes) : DataFrame and tuple of str
     """
     not_applicable = _not_applicable_frame(data, not_applicable)
     notes: List[str] = []
@@ -472,6 +487,13 @@ def fit_missingness_model(data: pd.DataFrame, *, variable: str, predictors: Sequ
     variable : the incomplete variable (for labels).
     predictors : the columns to use (Categorical columns enter as dummies, first level reference).
     indicator : True where ``variable`` is missing, aligned with ``data``.
+    alpha : one minus the confidence level of the odds ratios' intervals.
+
+    Returns
+    -------
+    (terms, summary) : DataFrame and dict
+        One row per term (odds ratio, interval, p-value); the rows used and missing, and
+        the likelihood-ratio test and AUC when the model could be fitted.
 
     References
     ----------
@@ -640,7 +662,19 @@ def discrimination_words(auc: float) -> str:
 
 
 def mcar_sentence(test: LittleTest, alpha: float = 0.05) -> str:
-    """Little's test in words: evidence against MCAR, or no evidence against it (never 'the data are MCAR')."""
+    """Little's test in words: evidence against MCAR, or no evidence against it (never 'the data are MCAR').
+
+    Parameters
+    ----------
+    test : LittleTest
+        Little's test.
+    alpha : float
+        The evidence level.
+
+    Returns
+    -------
+    str
+    """
     if not np.isfinite(test.p_value):
         reason = " ".join(test.notes) if test.notes else "it could not be computed."
         return f"Little's test gives no p-value. {reason}"
@@ -692,7 +726,17 @@ def group_sentences(groups: GroupComparison) -> List[str]:
 
 
 def model_sentences(models: MissingnessModels) -> List[str]:
-    """One sentence per missingness model: evidence from the likelihood-ratio test and discrimination (AUC)."""
+    """One sentence per missingness model: evidence from the likelihood-ratio test and discrimination (AUC).
+
+    Parameters
+    ----------
+    models : MissingnessModels
+        The fitted missingness models.
+
+    Returns
+    -------
+    list of str
+    """
     sentences = []
     alpha = models.alpha
     for _, row in models.model_fit.iterrows():

@@ -265,7 +265,19 @@ def _fit_generating_model(frame: pd.DataFrame, model: AnalysisModel, outcome: st
 
 
 def simulate_complete(design: SimulationDesign, rng: np.random.Generator) -> pd.DataFrame:
-    """One complete replicate dataset: resampled covariate rows and an outcome drawn from the model."""
+    """One complete replicate dataset: resampled covariate rows and an outcome drawn from the model.
+
+    Parameters
+    ----------
+    design : SimulationDesign
+        The simulation design.
+    rng : numpy.random.Generator
+        The replicate's generator.
+
+    Returns
+    -------
+    DataFrame
+    """
     rows = rng.integers(0, len(design.pool), size=design.n)
     frame = design.pool.iloc[rows].reset_index(drop=True)
     linear = design.linear_predictor[rows]
@@ -412,7 +424,18 @@ class LeastSquares:
 
 
 def least_squares_for(design: "SimulationDesign") -> Optional[LeastSquares]:
-    """The fast path when the model is gaussian without robust SEs and patsy names the terms as statsmodels does."""
+    """The fast path when the model is gaussian without robust SEs and patsy names the terms as statsmodels does.
+
+    Parameters
+    ----------
+    design : SimulationDesign
+        The simulation design.
+
+    Returns
+    -------
+    LeastSquares or None
+        None when the general fit (statsmodels) is needed.
+    """
     model = design.model
     if model.family != "gaussian" or model.robust:
         return None

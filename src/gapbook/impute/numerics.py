@@ -32,7 +32,22 @@ def gather(design: np.ndarray, rows: np.ndarray, columns: Optional[np.ndarray] =
     The design is column-major, so taking rows column by column reads each column in
     order; with mode "clip" (the rows are always valid) ``np.take`` writes straight into
     ``out`` instead of through a buffer: together about 3.5 times faster than
-    two-dimensional fancy indexing."""
+    two-dimensional fancy indexing.
+
+    Parameters
+    ----------
+    design : ndarray
+        The column-major design matrix.
+    rows : ndarray of int
+        The rows to take.
+    columns : ndarray of int, optional
+        The columns to take; default all.
+
+    Returns
+    -------
+    ndarray
+        The block, Fortran order.
+    """
     if columns is None:
         columns = np.arange(design.shape[1])
     out = np.empty((len(rows), len(columns)), order="F")
@@ -42,7 +57,20 @@ def gather(design: np.ndarray, rows: np.ndarray, columns: Optional[np.ndarray] =
 
 
 def gram_rows(design: np.ndarray, rows: np.ndarray) -> np.ndarray:
-    """X[rows]' X[rows], gathered in blocks so no full copy of the design is made."""
+    """X[rows]' X[rows], gathered in blocks so no full copy of the design is made.
+
+    Parameters
+    ----------
+    design : ndarray
+        The design matrix.
+    rows : ndarray of int
+        The rows.
+
+    Returns
+    -------
+    ndarray
+        The cross-product matrix over those rows.
+    """
     width = design.shape[1]
     out = np.zeros((width, width))
     for start in range(0, len(rows), CHUNK_ROWS):
@@ -52,7 +80,24 @@ def gram_rows(design: np.ndarray, rows: np.ndarray) -> np.ndarray:
 
 
 def predict_rows(design: np.ndarray, rows: np.ndarray, columns: np.ndarray, coef: np.ndarray) -> np.ndarray:
-    """X[rows, columns] @ coef, in row blocks."""
+    """X[rows, columns] @ coef, in row blocks.
+
+    Parameters
+    ----------
+    design : ndarray
+        The design matrix.
+    rows : ndarray of int
+        The rows.
+    columns : ndarray of int
+        The predictors' columns.
+    coef : ndarray
+        Coefficients (a vector, or one column per category).
+
+    Returns
+    -------
+    ndarray
+        The linear predictors.
+    """
     coef = np.asarray(coef)
     out = np.empty((len(rows),) + coef.shape[1:])
     for start in range(0, len(rows), CHUNK_ROWS):
@@ -61,7 +106,18 @@ def predict_rows(design: np.ndarray, rows: np.ndarray, columns: np.ndarray, coef
 
 
 def cholesky(matrix: np.ndarray) -> np.ndarray:
-    """Lower Cholesky factor, with a growing ridge if the matrix is numerically singular."""
+    """Lower Cholesky factor, with a growing ridge if the matrix is numerically singular.
+
+    Parameters
+    ----------
+    matrix : ndarray
+        A symmetric positive (semi-)definite matrix.
+
+    Returns
+    -------
+    ndarray
+        L with L @ L.T = matrix (plus the ridge when one was needed).
+    """
     size = matrix.shape[0]
     ridge = 1e-9 * max(float(np.mean(np.abs(np.diag(matrix)))), 1e-12)
     for _ in range(12):
@@ -77,6 +133,23 @@ def linear_draw(gram_observed: np.ndarray, y_column: int, predictor_columns: np.
                 rng: np.random.Generator) -> Tuple[np.ndarray, np.ndarray, float]:
     """Least squares and one draw of (beta, sigma) from the posterior of a Bayesian linear regression
     with the usual noninformative prior.
+
+    Parameters
+    ----------
+    gram_observed : ndarray
+        The cross-product matrix over the observed rows (outcome column included).
+    y_column : int
+        The outcome's column.
+    predictor_columns : ndarray of int
+        The predictors' columns.
+    n_fit : int
+        The observed rows.
+    rng : numpy.random.Generator
+        The chain's generator.
+
+    Returns
+    -------
+    (beta_hat, beta_draw, sigma_draw) : ndarray, ndarray, float
 
     References
     ----------
@@ -103,7 +176,18 @@ def stable_argsort(values: np.ndarray) -> np.ndarray:
     integers is faster than an argsort of floats); the positions are read back from the
     low bits. Values whose kept high bits collide (equal to about 1e-10 relative, a few
     pairs in a million) are put in exact order, ties by position, so the result is the
-    stable argsort's, bit for bit."""
+    stable argsort's, bit for bit.
+
+    Parameters
+    ----------
+    values : ndarray
+        Finite floats.
+
+    Returns
+    -------
+    ndarray of int
+        The positions in stable sorted order.
+    """
     n = len(values)
     shift = max(int(n - 1).bit_length(), 1)
     if n < 2 or shift > 40 or not np.all(np.isfinite(values)):
@@ -130,7 +214,17 @@ def stable_argsort(values: np.ndarray) -> np.ndarray:
 
 
 def sorted_order(values: np.ndarray) -> Tuple[np.ndarray, np.ndarray]:
-    """``np.argsort(values, kind="stable")`` and the sorted values."""
+    """``np.argsort(values, kind="stable")`` and the sorted values.
+
+    Parameters
+    ----------
+    values : ndarray
+        Finite floats.
+
+    Returns
+    -------
+    (order, sorted_values) : ndarray
+    """
     order = stable_argsort(values)
     return order, values[order]
 
@@ -139,6 +233,24 @@ def pmm_match(predicted_observed: np.ndarray, predicted_missing: np.ndarray, don
               rng: np.random.Generator, order: Optional[Tuple[np.ndarray, np.ndarray]] = None) -> np.ndarray:
     """For each missing row, the position (in the observed rows) of a donor drawn from its k nearest
     observed predictions (type-1 matching: observed predictions use beta_hat, missing ones the draw).
+
+    Parameters
+    ----------
+    predicted_observed : ndarray
+        Predictions for the observed rows (from beta_hat).
+    predicted_missing : ndarray
+        Predictions for the missing rows (from the drawn beta).
+    donors : int
+        k, the nearest observed rows to draw from.
+    rng : numpy.random.Generator
+        The chain's generator.
+    order : (ndarray, ndarray), optional
+        The sort order and sorted values of ``predicted_observed``, when already known.
+
+    Returns
+    -------
+    ndarray of int
+        A donor position per missing row.
 
     References
     ----------
@@ -176,6 +288,22 @@ def augmentation(gram_observed: np.ndarray, predictor_columns: np.ndarray, n_fit
     means), one per outcome category, with total weight (p + 1) spread evenly. Means and
     SDs are those of the current completed data (all rows), read off the kept
     cross-product matrix, so no extra pass over the rows is needed.
+
+    Parameters
+    ----------
+    gram_observed : ndarray
+        The cross-product matrix of the completed design, intercept column first.
+    predictor_columns : ndarray of int
+        The predictors' columns in the design.
+    n_fit : int
+        The rows the fit uses.
+    n_classes : int
+        The outcome's categories.
+
+    Returns
+    -------
+    (x, y, w) : ndarray
+        The pseudo-records' predictors, categories and weights.
 
     References
     ----------
@@ -225,7 +353,27 @@ def multinomial_terms(x: np.ndarray, y: np.ndarray, w: Optional[np.ndarray], bet
                       x_low: Optional[np.ndarray] = None):
     """Log-likelihood, gradient and information of a baseline-category logit on one block of rows
     (``w``: row weights, None for the data rows, which all weigh 1; ``x_low``: the same block in
-    float32, for the information matrix)."""
+    float32, for the information matrix).
+
+    Parameters
+    ----------
+    x : ndarray
+        The block's predictors (intercept included).
+    y : ndarray of int
+        The block's categories.
+    w : ndarray, optional
+        Row weights.
+    beta : ndarray
+        The current coefficients, (K - 1) x p flattened.
+    n_classes : int
+        K, the categories.
+    x_low : ndarray, optional
+        ``x`` in float32.
+
+    Returns
+    -------
+    (loglik, gradient, information) : float, ndarray, ndarray
+    """
     q = x.shape[1]
     x_low = low(x, x_low)
     k1 = n_classes - 1
@@ -284,6 +432,25 @@ def ordinal_terms(x: np.ndarray, y: np.ndarray, w: Optional[np.ndarray], params:
 
     Parameters are (theta_0..theta_{K-2}, b): P(Y <= k | x) = expit(theta_k - x'b), with x
     excluding the intercept. Sums over the rows of one category use ``np.bincount``.
+
+    Parameters
+    ----------
+    x : ndarray
+        The block's predictors (no intercept).
+    y : ndarray of int
+        The block's categories.
+    w : ndarray, optional
+        Row weights.
+    params : ndarray
+        Cut points then slopes.
+    n_classes : int
+        K, the categories.
+    x_low : ndarray, optional
+        ``x`` in float32.
+
+    Returns
+    -------
+    (loglik, gradient, information) : float, ndarray, ndarray
 
     References
     ----------
@@ -347,6 +514,31 @@ def newton(terms, design: np.ndarray, rows: np.ndarray, y: np.ndarray, columns: 
 
     ``start`` None means a cold start: with many rows, the fit first converges on an evenly
     spaced subset of rows, so the passes over all rows start near the optimum.
+
+    Parameters
+    ----------
+    terms : callable
+        :func:`multinomial_terms` or :func:`ordinal_terms`.
+    design : ndarray
+        The design matrix.
+    rows : ndarray of int
+        The observed rows of the variable.
+    y : ndarray of int
+        Their categories.
+    columns : ndarray of int
+        The predictors' columns.
+    augment : (x, y, w)
+        The pseudo-records of :func:`augmentation`.
+    start : ndarray, optional
+        The previous iteration's estimate (a warm start).
+    n_classes : int
+        The categories.
+    ordered : bool
+        Proportional-odds model.
+
+    Returns
+    -------
+    (estimate, information) : ndarray
     """
     if start is None:
         start = cold_start(n_classes, len(columns), y, ordered)
@@ -409,7 +601,24 @@ def newton(terms, design: np.ndarray, rows: np.ndarray, y: np.ndarray, columns: 
 
 
 def cold_start(n_classes: int, n_columns: int, y: np.ndarray, ordered: bool) -> np.ndarray:
-    """Zero slopes; for the ordinal model, cut points at the logits of the cumulative shares."""
+    """Zero slopes; for the ordinal model, cut points at the logits of the cumulative shares.
+
+    Parameters
+    ----------
+    n_classes : int
+        The outcome's categories.
+    n_columns : int
+        The predictors (without the intercept for the ordinal model).
+    y : ndarray of int
+        The observed categories (0-based).
+    ordered : bool
+        Proportional-odds model (else baseline-category logit).
+
+    Returns
+    -------
+    ndarray
+        The starting parameter vector.
+    """
     if not ordered:
         return np.zeros((n_classes - 1) * n_columns)
     shares = np.bincount(y, minlength=n_classes).cumsum()[:-1] / max(len(y), 1)

@@ -36,14 +36,40 @@ MAX_FIGURE_INCHES = 30.0  # no figure side is ever larger, whatever a plot asks 
 
 
 def new_figure(width: float = 7.0, height: float = 4.0):
-    """A figure and axes with gapbook's settings (each side at most ``MAX_FIGURE_INCHES``)."""
+    """A figure and axes with gapbook's settings (each side at most ``MAX_FIGURE_INCHES``).
+
+    Parameters
+    ----------
+    width, height : float
+        Inches.
+
+    Returns
+    -------
+    (figure, axes)
+    """
     size = (min(float(width), MAX_FIGURE_INCHES), min(float(height), MAX_FIGURE_INCHES))
     figure, axes = plt.subplots(figsize=size, layout="constrained")
     return figure, axes
 
 
 def shown_of(shown: int, total: int, what: str = "variables", chosen: str = "with the most missing") -> str:
-    """'' when everything is shown, else ' (the 40 with the most missing of 2,000 variables)'."""
+    """'' when everything is shown, else ' (the 40 with the most missing of 2,000 variables)'.
+
+    Parameters
+    ----------
+    shown : int
+        How many are drawn.
+    total : int
+        How many there are.
+    what : str
+        What they are.
+    chosen : str
+        How the drawn ones were chosen.
+
+    Returns
+    -------
+    str
+    """
     if shown >= total:
         return ""
     return f" (the {shown:,} {chosen} of {total:,} {what})"

@@ -20,6 +20,15 @@ def plot_flow(flow: CompleteCaseFlow):
 
     The gap between the two bars is the overlap with earlier variables; the title gives
     the rows used out of the rows in the file.
+
+    Parameters
+    ----------
+    flow : CompleteCaseFlow
+        The rows lost per model variable.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
     """
     steps = flow.steps[flow.steps["step"] == "excluded"]
     names = list(steps["variable"])[::-1]
@@ -46,6 +55,17 @@ def plot_completeness_differences(baseline: CompletenessBaseline, threshold: flo
 
     ``threshold`` draws the often-used |SMD| = 0.1 guide lines (common practice, no source;
     see Austin 2009, Stat Med 28:3083, for the statistic itself).
+
+    Parameters
+    ----------
+    baseline : CompletenessBaseline
+        The complete-case comparison.
+    threshold : float
+        Where the guide lines go.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
     """
     table = baseline.differences
     n_rows = len(table)
@@ -109,6 +129,19 @@ def plot_strategy_comparison(comparison: StrategyComparison, reference_value: Op
     linear axis with the null at 0. The numbers are printed beside each row so the figure
     stands alone. ``reference_value`` (on the coefficient scale) marks a known truth, e.g.
     in a simulation or the demo study.
+
+    Parameters
+    ----------
+    comparison : StrategyComparison
+        The exposure's rows under each strategy.
+    reference_value : float, optional
+        A known true value to mark.
+    reference_label : str
+        Its label.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
     """
     table = comparison.comparison
     ratio = comparison.ratio_name

@@ -152,6 +152,17 @@ def plot_observed_vs_imputed(imputation: ChainedImputation, bins: int = 30):
     each level among observed and among imputed values, with the range of the imputed share
     over the m imputations. Differences are expected when data are missing at random (the
     missing cases differ from the observed ones); they are a prompt to check, not an error.
+
+    Parameters
+    ----------
+    imputation : ChainedImputation
+        The imputations.
+    bins : int
+        Histogram bins for numeric variables.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
     """
     names = list(imputation.imputed)
     columns = min(3, max(len(names), 1))
@@ -197,7 +208,17 @@ def plot_observed_vs_imputed(imputation: ChainedImputation, bins: int = 30):
 
 def plot_missing_information(pooled: PooledResult):
     """Per model term: the fraction of missing information, beside the share of the total
-    variance that comes from between-imputation spread (``between_share``)."""
+    variance that comes from between-imputation spread (``between_share``).
+
+    Parameters
+    ----------
+    pooled : PooledResult
+        The pooled multiple-imputation fit.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
     table = pooled.variances()
     figure, ax = plt.subplots(figsize=(7.0, 0.35 * len(table) + 1.3), layout="constrained")
     y = np.arange(len(table))[::-1]

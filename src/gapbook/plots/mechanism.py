@@ -35,6 +35,17 @@ def relation_overview(groups: GroupComparison, annotate: Optional[bool] = None):
     Colour is the absolute standardised difference between rows where the row variable
     is missing and rows where it is observed; a dot marks a Holm-adjusted p-value below
     alpha; a grey cell was not tested (too few rows, or no variation).
+
+    Parameters
+    ----------
+    groups : GroupComparison
+        The missing-versus-observed comparisons.
+    annotate : bool, optional
+        Write the values in the cells; default when the grid is small.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
     """
     table = groups.comparisons
     rows = list(dict.fromkeys(table["incomplete_variable"]))
@@ -117,6 +128,19 @@ def strongest_relations(groups: GroupComparison, top: int = 6, columns: int = 3)
     A numeric compared variable is shown as two cumulative distributions (rows where the
     incomplete variable is missing vs observed, group means as dashed lines); a categorical
     one as the share of each level in the two groups.
+
+    Parameters
+    ----------
+    groups : GroupComparison
+        The missing-versus-observed comparisons.
+    top : int
+        How many relations to show.
+    columns : int
+        Panels per row.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
     """
     chosen = groups.strongest(top)
     if chosen.empty:
@@ -187,6 +211,17 @@ def pattern_contributions(test: LittleTest, top: int = 15):
     Under MCAR a pattern's part is roughly chi-square with as many df as it has observed
     variables (less a share for estimating the mean), so a bar far beyond its tick points to
     the pattern whose rows differ most from what the ML mean predicts (Little 1988).
+
+    Parameters
+    ----------
+    test : LittleTest
+        Little's test.
+    top : int
+        How many patterns to show (the largest parts).
+
+    Returns
+    -------
+    matplotlib.figure.Figure
     """
     patterns = test.patterns
     if patterns.empty or not np.isfinite(test.statistic):
@@ -225,7 +260,19 @@ def _wrap(text: str, width: int) -> str:
 
 
 def missingness_odds_ratios(models: MissingnessModels, top: int = 3):
-    """Odds ratios (with CIs, log scale) of being missing, for the models with the smallest LR p-values."""
+    """Odds ratios (with CIs, log scale) of being missing, for the models with the smallest LR p-values.
+
+    Parameters
+    ----------
+    models : MissingnessModels
+        The fitted missingness models.
+    top : int
+        How many models to show.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
     fits = models.model_fit[np.isfinite(models.model_fit["lr_p_value"].astype(float))]
     if fits.empty:
         figure, axes = new_figure(6, 2)

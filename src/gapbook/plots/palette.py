@@ -90,7 +90,12 @@ DISTINGUISHABLE: Tuple[Tuple[str, ...], ...] = (
 
 
 def roles() -> Dict[str, str]:
-    """Every named colour of the palette, role -> hex (strategies, groups and reason shades included)."""
+    """Every named colour of the palette, role -> hex (strategies, groups and reason shades included).
+
+    Returns
+    -------
+    dict of str to str
+    """
     named = {"observed": OBSERVED, "missing": MISSING, "imputed": IMPUTED, "not_applicable": NOT_APPLICABLE,
              "reference": REFERENCE, "emphasis": EMPHASIS, "neutral": NEUTRAL, "untested": UNTESTED,
              "grid": GRID, "background": BACKGROUND}
@@ -101,7 +106,18 @@ def roles() -> Dict[str, str]:
 
 
 def strategy_colour(strategy: str) -> str:
-    """The colour of a strategy (delta-adjusted rows such as ``delta_adjusted_...`` share one); NEUTRAL if unknown."""
+    """The colour of a strategy (delta-adjusted rows such as ``delta_adjusted_...`` share one); NEUTRAL if unknown.
+
+    Parameters
+    ----------
+    strategy : str
+        A strategy name.
+
+    Returns
+    -------
+    str
+        A hex colour.
+    """
     if strategy in STRATEGY_COLOURS:
         return STRATEGY_COLOURS[strategy]
     if str(strategy).startswith("delta_adjusted"):
@@ -110,7 +126,18 @@ def strategy_colour(strategy: str) -> str:
 
 
 def strategy_marker(strategy: str) -> str:
-    """The marker of a strategy, so strategies differ by shape as well as colour ('o' if unknown)."""
+    """The marker of a strategy, so strategies differ by shape as well as colour ('o' if unknown).
+
+    Parameters
+    ----------
+    strategy : str
+        A strategy name.
+
+    Returns
+    -------
+    str
+        A matplotlib marker.
+    """
     if str(strategy).startswith("delta_adjusted"):
         return STRATEGY_MARKERS["delta_adjusted"]
     return STRATEGY_MARKERS.get(strategy, "o")
@@ -122,12 +149,37 @@ def group_colours(levels: Sequence) -> Dict:
 
 
 def reason_shades(k: int) -> Tuple[str, ...]:
-    """k shades for k missing reasons, on the missing side of the palette (cycling after eight)."""
+    """k shades for k missing reasons, on the missing side of the palette (cycling after eight).
+
+    Parameters
+    ----------
+    k : int
+        The number of reasons.
+
+    Returns
+    -------
+    tuple of str
+        Hex colours.
+    """
     return tuple(REASON_SHADES[i % len(REASON_SHADES)] for i in range(int(k)))
 
 
 def blend(colour: str, toward: str = BACKGROUND, weight: float = 0.5) -> Tuple[float, float, float]:
-    """A colour moved ``weight`` of the way toward another (a lighter tint toward the background)."""
+    """A colour moved ``weight`` of the way toward another (a lighter tint toward the background).
+
+    Parameters
+    ----------
+    colour : str
+        A hex colour.
+    toward : str
+        The hex colour to move toward.
+    weight : float
+        0 keeps ``colour``, 1 gives ``toward``.
+
+    Returns
+    -------
+    (r, g, b) : floats in 0..1
+    """
     a, b = to_rgb(colour), to_rgb(toward)
     return tuple((1 - weight) * x + weight * y for x, y in zip(a, b))
 
@@ -147,11 +199,34 @@ _SCALES: Mapping[str, Tuple[str, ...]] = {
 
 
 def scale(name: str) -> Colormap:
-    """A named colour scale of the palette: ``observed_to_missing``, ``magnitude`` or ``ratio``."""
+    """A named colour scale of the palette: ``observed_to_missing``, ``magnitude`` or ``ratio``.
+
+    Parameters
+    ----------
+    name : str
+        The scale's name.
+
+    Returns
+    -------
+    matplotlib.colors.Colormap
+    """
     colours = _SCALES[name]
     return LinearSegmentedColormap.from_list(f"gapbook_{name}", list(colours)).with_extremes(bad=BACKGROUND)
 
 
 def text_on(value: float, dark_above: float = 0.6) -> str:
-    """Text colour over a cell whose scale position (0..1) is ``value``: background on dark cells."""
+    """Text colour over a cell whose scale position (0..1) is ``value``: background on dark cells.
+
+    Parameters
+    ----------
+    value : float
+        The cell's position on its colour scale, 0..1.
+    dark_above : float
+        From which position a cell counts as dark.
+
+    Returns
+    -------
+    str
+        A hex colour.
+    """
     return BACKGROUND if value > dark_above else REFERENCE

@@ -24,6 +24,17 @@ def delta_curve(result: DeltaResult, term: Optional[str] = None):
 
     The null is a dashed line; the tipping point (when reached) a vertical line with its
     value; root-search evaluations are hollow points, grid deltas filled ones.
+
+    Parameters
+    ----------
+    result : DeltaResult
+        The delta-adjusted analyses.
+    term : str, optional
+        The exposure term; default the first.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
     """
     term = term or result.terms[0]
     table = result.curves[result.curves["term"] == term]
@@ -69,7 +80,19 @@ def delta_curve(result: DeltaResult, term: Optional[str] = None):
 
 
 def analyses_side_by_side(comparison: StrategyAndDelta, term: Optional[str] = None):
-    """Intervals of the exposure effect under every strategy and delta, top to bottom, with the null."""
+    """Intervals of the exposure effect under every strategy and delta, top to bottom, with the null.
+
+    Parameters
+    ----------
+    comparison : StrategyAndDelta
+        The strategies' and the deltas' rows.
+    term : str, optional
+        The exposure term; default the first.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
     table = comparison.comparison
     term = term or table["term"].iloc[0]
     part = table[table["term"] == term].reset_index(drop=True)

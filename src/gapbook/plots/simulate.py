@@ -19,7 +19,21 @@ __all__ = ["performance_panels"]
 
 
 def performance_panels(result: SimulationResult, term: Optional[str] = None, alpha: float = 0.05):
-    """Bias (top) and coverage (bottom) per strategy, one column per mechanism, with +/- 2 Monte Carlo SEs."""
+    """Bias (top) and coverage (bottom) per strategy, one column per mechanism, with +/- 2 Monte Carlo SEs.
+
+    Parameters
+    ----------
+    result : SimulationResult
+        The simulation.
+    term : str, optional
+        The exposure term; default the first.
+    alpha : float
+        One minus the nominal coverage.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
     perf = result.performance
     term = term or perf["term"].iloc[0]
     perf = perf[perf["term"] == term]
