@@ -211,6 +211,18 @@ def repeated_design(params: Params, study: Study) -> "RepeatedStudy":
 
     Exits 2 naming subject and visit for a row without a visit, a visit not in the plan or two
     rows for one visit.
+
+    Parameters
+    ----------
+    params : Params
+        The resolved params (``design`` and ``data`` sections).
+    study : Study
+        The study after intake.
+
+    Returns
+    -------
+    RepeatedStudy
+        One row per participant per planned visit.
     """
     from .repeated_intake import repeated_study
 
@@ -234,6 +246,19 @@ def repeated_model_data(params: Params, repeated: "RepeatedStudy", data_label: s
 
     An exposure (arm) that changes within a participant, a post-baseline covariate, a
     formula that cannot be built on the visit grid, or a reference group that is not an arm.
+
+    Parameters
+    ----------
+    params : Params
+        The resolved params (``analysis`` and ``design`` sections).
+    repeated : RepeatedStudy
+        From :func:`repeated_design`.
+    data_label : str
+        The data file's name for messages.
+
+    Returns
+    -------
+    RepeatedOutcome
     """
     section = params.analysis
     if not section.formula:

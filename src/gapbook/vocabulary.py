@@ -286,7 +286,18 @@ INTERCURRENT_STRATEGY_NAMES: Tuple[str, ...] = tuple(s.name for s in INTERCURREN
 
 
 def targeting_strategies(intercurrent: str) -> Tuple[str, ...]:
-    """The follow-up analyses that target an estimand using the given intercurrent-event strategy."""
+    """The follow-up analyses that target an estimand using the given intercurrent-event strategy.
+
+    Parameters
+    ----------
+    intercurrent : str
+        An intercurrent-event strategy's name (ICH E9(R1)).
+
+    Returns
+    -------
+    tuple of str
+        The follow-up strategies that target it; an unknown name raises KeyError.
+    """
     for strategy in INTERCURRENT_STRATEGIES:
         if strategy.name == intercurrent:
             return strategy.analyses
