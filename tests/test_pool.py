@@ -128,10 +128,10 @@ def test_odds_ratios_pooled_on_log_scale(penguins):
 
 
 @pytest.mark.parametrize("family", ["gaussian", "binomial"])
-def test_barnard_rubin_df_use_n_minus_p_for_every_family(family):
+def test_barnard_rubin_df_use_n_minus_p_for_every_family(family, penguins):
     # Barnard & Rubin (1999) Biometrika 86:948, eqs. 2-3, by hand, with nu_com = n - p for every family
     # (for a GLM, n - p as the complete-data df is common practice, no source).
-    fits = _penguin_fits(m=5, family=family)
+    fits = _penguin_fits(penguins, m=5, family=family)
     pooled = pool_fits(fits)
     n, p, m = fits[0].nobs, len(fits[0].terms), 5
     nu_com = n - p
