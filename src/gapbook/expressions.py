@@ -600,6 +600,11 @@ def formula_environment() -> Any:
     Pass it as ``eval_env`` to statsmodels' formula functions (which accept the mapping
     :data:`FORMULA_NAMESPACE` too) and to patsy's ``dmatrices``/``dmatrix``, so that a
     formula never sees the caller's variables.
+
+    Returns
+    -------
+    patsy.EvalEnvironment
+        An environment holding :data:`FORMULA_NAMESPACE` only.
     """
     import patsy
 

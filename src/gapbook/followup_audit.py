@@ -39,6 +39,15 @@ def classify_follow_up(observed: np.ndarray) -> np.ndarray:
     complete: every planned visit attended; monotone dropout: attended visits form an
     unbroken run from the first visit, then none; intermittent: a visit missed before the
     last attended one, the last planned visit attended; intermittent and dropout: both.
+
+    Parameters
+    ----------
+    observed : ndarray of bool, shape (participants, visits)
+        Whether each planned visit's outcome was observed.
+
+    Returns
+    -------
+    ndarray of str
     """
     observed = np.asarray(observed, dtype=bool)
     t = observed.shape[1]

@@ -29,7 +29,17 @@ NOT_RECOMMENDED: Dict[str, str] = {COMPLETERS: COMPLETERS_CAUTION, LAST_OBSERVAT
 
 
 def completers(outcome: RepeatedOutcome) -> RepeatedOutcome:
-    """Only the participants whose outcome was observed at the last planned visit."""
+    """Only the participants whose outcome was observed at the last planned visit.
+
+    Parameters
+    ----------
+    outcome : RepeatedOutcome
+        The repeated-measures data.
+
+    Returns
+    -------
+    RepeatedOutcome
+    """
     kept = ~np.isnan(outcome.values[:, -1])
     if not kept.any():
         raise AnalysisError(f"no participant attended the last planned visit ({label(outcome.visits[-1])}); "
@@ -42,6 +52,16 @@ def carry_last_observation_forward(outcome: RepeatedOutcome) -> RepeatedOutcome:
 
     Before the first observed visit the baseline outcome is carried when the plan has a
     baseline visit and it was measured; participants with nothing to carry are left out.
+
+    Parameters
+    ----------
+    outcome : RepeatedOutcome
+        The repeated-measures data.
+
+    Returns
+    -------
+    RepeatedOutcome
+        The same shape with the carried values filled in.
     """
     values = outcome.values.copy()
     start = outcome.baseline if outcome.baseline is not None else np.full(outcome.n, np.nan)
@@ -63,6 +83,18 @@ def comparison_effects(outcome: RepeatedOutcome, *, alpha: float = 0.05) -> pd.D
     Both use the mixed model for repeated measures (on complete data with the same
     regressors at every visit it is least squares visit by visit), so they differ from the
     primary analysis only in which data they feed it.
+
+    Parameters
+    ----------
+    outcome : RepeatedOutcome
+        The repeated-measures data.
+    alpha : float
+        One minus the confidence level.
+
+    Returns
+    -------
+    DataFrame
+        The ``visit_effects.csv`` rows of strategies ``completers`` and ``last_observation``.
     """
     frames = []
     for strategy, data in ((COMPLETERS, completers(outcome)), (LAST_OBSERVATION,

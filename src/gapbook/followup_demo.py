@@ -79,7 +79,34 @@ def simulate_followup_trial(*, n_per_arm: int = 150, weeks: Sequence[int] = WEEK
                             baseline_slope: float = BASELINE_SLOPE,
                             dropout_intercept: Optional[dict] = None, dropout_slope: float = DROPOUT_SLOPE,
                             intermittent: float = INTERMITTENT, seed: Optional[int] = SEED) -> FollowupTrial:
-    """Simulate the follow-up trial described in the module docstring (defaults: the demo)."""
+    """Simulate the follow-up trial described in the module docstring (defaults: the demo).
+
+    Parameters
+    ----------
+    n_per_arm : int
+        Participants per arm.
+    weeks : sequence of int
+        The planned visits.
+    control_mean, effect, sd : sequence of float
+        Per visit: the control arm's mean change, the active arm's effect, the error SD.
+    correlation : float
+        rho in the errors' correlation rho^|i - j|.
+    baseline_slope : float
+        The change per point of baseline above 50.
+    dropout_intercept : dict, optional
+        {arm: a}, the intercept of the log-odds of leaving before each visit after the first;
+        default the demo's (-2.4 control, -2.7 active).
+    dropout_slope : float
+        The slope of that log-odds on (last observed change + 4) / 4 (missing at random).
+    intermittent : float
+        The chance of missing one visit and coming back (missing completely at random).
+    seed : int, optional
+        The seed of the ``numpy.random.Generator``.
+
+    Returns
+    -------
+    FollowupTrial
+    """
     rng = np.random.default_rng(seed)
     t = len(weeks)
     intercepts = dict(DROPOUT_INTERCEPT if dropout_intercept is None else dropout_intercept)

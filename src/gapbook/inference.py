@@ -123,13 +123,32 @@ def format_p(p: object) -> str:
 
     Three decimals throughout, the precision a reader of a p-value can use (common
     practice, no source).
+
+    Parameters
+    ----------
+    p : float or None
+        The p-value.
+
+    Returns
+    -------
+    str
     """
     cell = format_p_cell(p)
     return "p not available" if not cell else f"p {cell}" if cell.startswith("<") else f"p = {cell}"
 
 
 def format_p_cell(p: object) -> str:
-    """A p-value for a table cell: '< 0.001', '0.012', '0.831'; empty when missing (see :func:`format_p`)."""
+    """A p-value for a table cell: '< 0.001', '0.012', '0.831'; empty when missing (see :func:`format_p`).
+
+    Parameters
+    ----------
+    p : float or None
+        The p-value.
+
+    Returns
+    -------
+    str
+    """
     value = _as_float(p)
     if value is None or not math.isfinite(value):
         return ""
@@ -154,6 +173,15 @@ def format_df(df: object) -> str:
 
     A df such as 38782635.2 carries no information beyond 'large' (the t reference is then
     the normal one), so it is printed as such.
+
+    Parameters
+    ----------
+    df : float or None
+        Degrees of freedom.
+
+    Returns
+    -------
+    str
     """
     value = _as_float(df)
     if value is None or math.isnan(value):
@@ -169,6 +197,17 @@ def format_estimate(value: object, digits: int = 3) -> str:
     """An estimate or interval end for reading: ``digits`` significant digits with trailing zeros kept
     (1.00, 0.500, -0.426, 12.3), whole units from 100 up (1,234), 'n/a' when missing, 'infinite' for a
     diverged ratio. Three significant digits suit an effect and its interval (common practice, no source).
+
+    Parameters
+    ----------
+    value : float or None
+        The number.
+    digits : int
+        Significant digits.
+
+    Returns
+    -------
+    str
     """
     number = _as_float(value)
     if number is None or math.isnan(number):

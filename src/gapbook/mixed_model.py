@@ -66,6 +66,15 @@ def design_crossproducts(design: np.ndarray) -> np.ndarray:
 
     The part of the complete-data statistics that does not depend on the outcome; imputed
     datasets share it, so it is computed once for all of them.
+
+    Parameters
+    ----------
+    design : ndarray, shape (n, T, p)
+        Each participant's design rows at the T planned visits.
+
+    Returns
+    -------
+    ndarray, shape (T, T, p, p)
     """
     n, t, p = design.shape
     flat = design.reshape(n, t * p)

@@ -117,6 +117,19 @@ def add_ratio_columns(frame: pd.DataFrame, family: str) -> pd.DataFrame:
 
     The log-scale columns stay as they are (they join with statsmodels); the ratio is the
     exponential of the estimate and of each interval end, never an average of ratios.
+
+    Parameters
+    ----------
+    frame : DataFrame
+        ``estimates.csv`` rows (estimate, ci_lower, ci_upper).
+    family : str
+        The model family.
+
+    Returns
+    -------
+    DataFrame
+        ``frame`` with ``<ratio>``, ``<ratio>_ci_lower``, ``<ratio>_ci_upper`` added for
+        binomial and poisson models, unchanged otherwise.
     """
     if has_ratio_scale(family):
         with np.errstate(over="ignore"):  # a diverged fit's ratio is inf, and says so in ``converged``
@@ -132,6 +145,17 @@ def formula_columns(formula: str, columns: Sequence[str]) -> List[str]:
 
     A text search only (nothing is parsed or evaluated); the analysis formula itself is
     checked by :func:`check_formula`.
+
+    Parameters
+    ----------
+    formula : str
+        Formula text or a term name.
+    columns : sequence of str
+        The data's columns.
+
+    Returns
+    -------
+    list of str
     """
     found: List[Tuple[int, str]] = []
     for column in columns:
@@ -424,7 +448,19 @@ def _fit_cox(data: pd.DataFrame, *, formula: str, family: str, robust: bool, alp
 
 
 def exposure_terms(terms: Sequence[str], exposure: Optional[str]) -> List[str]:
-    """The model terms that belong to the exposure (a variable name or an exact term name)."""
+    """The model terms that belong to the exposure (a variable name or an exact term name).
+
+    Parameters
+    ----------
+    terms : sequence of str
+        The model's term names.
+    exposure : str, optional
+        The exposure.
+
+    Returns
+    -------
+    list of str
+    """
     if exposure is None:
         return [t for t in terms if t != "Intercept"][:1]
     if exposure in terms:

@@ -38,7 +38,17 @@ def _shown(values: Sequence[Any]) -> str:
 
 
 def label(value: Any) -> str:
-    """A subject or visit as a user wrote it (numpy scalars as plain numbers)."""
+    """A subject or visit as a user wrote it (numpy scalars as plain numbers).
+
+    Parameters
+    ----------
+    value : object
+        A subject or visit.
+
+    Returns
+    -------
+    str
+    """
     if isinstance(value, np.generic):
         value = value.item()
     if isinstance(value, float) and value.is_integer():
@@ -47,7 +57,16 @@ def label(value: Any) -> str:
 
 
 def last_observed_index(observed: np.ndarray) -> np.ndarray:
-    """Per row, the position of the last True cell, or -1 when there is none."""
+    """Per row, the position of the last True cell, or -1 when there is none.
+
+    Parameters
+    ----------
+    observed : ndarray of bool, shape (rows, visits)
+
+    Returns
+    -------
+    ndarray of int
+    """
     observed = np.asarray(observed, dtype=bool)
     t = observed.shape[1]
     flipped = np.argmax(observed[:, ::-1], axis=1)
@@ -387,6 +406,11 @@ def wide_to_long(data: pd.DataFrame, *, subject: str, outcome_columns: Sequence[
     visits : the visit labels, in the same order.
     outcome, visit : names of the outcome and visit columns of the result.
     keep : participant-level columns repeated on every row (arm, baseline covariates).
+
+    Returns
+    -------
+    DataFrame
+        subject, visit, outcome and the kept columns, one row per participant per visit.
     """
     if len(outcome_columns) != len(visits):
         raise InputError("design.visits: give one outcome column per planned visit")

@@ -364,6 +364,11 @@ def draw_posteriors(outcome: RepeatedOutcome, *, m: int = 20, seed: Optional[int
     m : number of draws (one per imputed dataset).
     seed : seed of the ``numpy.random.SeedSequence`` everything is drawn from.
     burn_in, thin : data augmentation iterations before the first draw and between draws.
+
+    Returns
+    -------
+    ArmPosteriors
+        m draws of each group's coefficients and covariance.
     """
     if m < 2:
         raise InputError("imputation.m: at least two imputed datasets are needed to pool; raise m")

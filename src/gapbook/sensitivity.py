@@ -185,6 +185,11 @@ def imputation_evaluator(data: pd.DataFrame, *, model: AnalysisModel,
     model : the analysis model.
     impute_options : keyword arguments of ``gapbook.impute.impute_chained`` (m, iterations,
         seed, methods, predictors, passive, types, impute_mask, ...); the same seed for every delta.
+
+    Returns
+    -------
+    callable
+        ``evaluate(series, delta)`` giving the pooled ``estimates.csv`` rows.
     """
     from .impute import impute_chained
 
@@ -257,7 +262,20 @@ def plan_evaluator(plan: ImputationPlan, *, m: Optional[int] = None, iterations:
 
 
 def interval(table: pd.DataFrame, alpha: float) -> pd.DataFrame:
-    """CI at level 1 - alpha and p-value from estimate, std_error and df (normal when df is missing or infinite)."""
+    """CI at level 1 - alpha and p-value from estimate, std_error and df (normal when df is missing or infinite).
+
+    Parameters
+    ----------
+    table : DataFrame
+        Rows with estimate, std_error and (optionally) df.
+    alpha : float
+        One minus the confidence level.
+
+    Returns
+    -------
+    DataFrame
+        ``table`` with ci_lower, ci_upper and p_value.
+    """
     df = table["df"].to_numpy(dtype=float) if "df" in table.columns else None
     lower, upper, p = wald_inference(table["estimate"].to_numpy(dtype=float), table["std_error"].to_numpy(dtype=float),
                                      df, alpha)
@@ -465,6 +483,29 @@ def tipping_statement(point: TippingPoint, *, variable: str, group: str, by: Opt
     E.g. 'The conclusion (arm[T.sms] below the null) holds unless the missing values of
     hba1c_12m in the arm = sms group only (...) are on average 0.8 % higher than imputed under
     missing at random (Monte Carlo SE 0.03 with m = 30).'
+
+    Parameters
+    ----------
+    point : TippingPoint
+        The tipping point found (or not), with its Monte Carlo SE.
+    variable : str
+        The variable shifted.
+    group : str
+        The group whose missing values are shifted (or all).
+    by : str, optional
+        The grouping column.
+    variable_type : str
+        The shifted variable's type (units or log-odds).
+    exposure_label : str
+        The exposure as a reader names it.
+    unit : str, optional
+        The variable's unit (``variables.<name>.unit``).
+    m : int, optional
+        The imputations per grid point, named with the Monte Carlo SE.
+
+    Returns
+    -------
+    str
     """
     where = _shifted_values(variable, group, by)
     direction = "higher" if point.side == "positive" else "lower"

@@ -30,6 +30,17 @@ def one_line(text: Any, limit: int = 0) -> str:
     """``text`` on one printable line: control and format characters shown as ``\\xNN``/``\\uNNNN``.
 
     ``limit`` > 0 cuts the result to that many characters (ending in ``...``).
+
+    Parameters
+    ----------
+    text : object
+        Any value; it is converted with ``str``.
+    limit : int
+        The most characters kept (0: no limit).
+
+    Returns
+    -------
+    str
     """
     out = []
     for ch in str(text):
@@ -44,12 +55,32 @@ def one_line(text: Any, limit: int = 0) -> str:
 
 
 def html_escape(text: Any) -> str:
-    """``text`` safe inside HTML element content and quoted attribute values."""
+    """``text`` safe inside HTML element content and quoted attribute values.
+
+    Parameters
+    ----------
+    text : object
+        Any value; it is converted with ``str``.
+
+    Returns
+    -------
+    str
+    """
     return html.escape(str(text), quote=True)
 
 
 def md_escape(text: Any) -> str:
-    """``text`` safe inside Markdown: shown literally, never as markup, on one line."""
+    """``text`` safe inside Markdown: shown literally, never as markup, on one line.
+
+    Parameters
+    ----------
+    text : object
+        Any value; it is converted with ``str``.
+
+    Returns
+    -------
+    str
+    """
     flat = _LINE_BREAKS.sub(" ", str(text))
     flat = one_line(flat)  # any control character left is shown escaped, not passed through
     # punctuation first, entities second: an entity's own '#' must not be escaped
@@ -58,7 +89,17 @@ def md_escape(text: Any) -> str:
 
 
 def md_code(text: Any) -> str:
-    """``text`` as inline code in Markdown (for expressions and formulas), shown literally."""
+    """``text`` as inline code in Markdown (for expressions and formulas), shown literally.
+
+    Parameters
+    ----------
+    text : object
+        Any value; it is converted with ``str``.
+
+    Returns
+    -------
+    str
+    """
     flat = one_line(_LINE_BREAKS.sub(" ", str(text)))
     # A code span cannot hold a backtick run of its own length; entities are not decoded inside it,
     # so the text is HTML-escaped as an HTML <code> element instead.
@@ -66,5 +107,15 @@ def md_code(text: Any) -> str:
 
 
 def plot_escape(text: Any) -> str:
-    """``text`` for a matplotlib title, label or tick label: ``$`` never starts mathtext."""
+    """``text`` for a matplotlib title, label or tick label: ``$`` never starts mathtext.
+
+    Parameters
+    ----------
+    text : object
+        Any value; it is converted with ``str``.
+
+    Returns
+    -------
+    str
+    """
     return one_line(_LINE_BREAKS.sub(" ", str(text))).replace("$", r"\$")

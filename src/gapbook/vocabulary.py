@@ -152,12 +152,33 @@ def has_ratio_scale(family: str) -> bool:
     """Whether a family's coefficients are log ratios, reported also exponentiated (``exp_estimate``...).
 
     A family joins the rule by naming its ratio in :data:`FAMILIES` (e.g. a hazard ratio for cox).
+
+    Parameters
+    ----------
+    family : str
+        The model family.
+
+    Returns
+    -------
+    bool
     """
     return family in RATIO_NAMES
 
 
 def effect_scale(family: str, *, exponentiated: bool) -> str:
-    """The scale of an estimate in words: 'odds ratio', 'log odds ratio', or 'difference in the outcome'."""
+    """The scale of an estimate in words: 'odds ratio', 'log odds ratio', or 'difference in the outcome'.
+
+    Parameters
+    ----------
+    family : str
+        The model family.
+    exponentiated : bool
+        Whether the estimate is on the ratio scale (``exp_estimate``).
+
+    Returns
+    -------
+    str
+    """
     words = RATIO_WORDS.get(family)
     if words is None:
         return "difference in the outcome (model coefficient)"

@@ -55,7 +55,17 @@ def _visit_axis(axes, visits: Sequence[Any]) -> np.ndarray:
 
 
 def plot_retention(audit: FollowupAudit):
-    """Share of each group still attending after each visit (Kaplan-Meier of the time to the last visit)."""
+    """Share of each group still attending after each visit (Kaplan-Meier of the time to the last visit).
+
+    Parameters
+    ----------
+    audit : FollowupAudit
+        The follow-up audit.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
     figure, axes = new_figure(6.5, 3.8)
     table = audit.retention
     groups = _groups(table)
@@ -81,7 +91,17 @@ def plot_retention(audit: FollowupAudit):
 
 
 def plot_completeness(audit: FollowupAudit):
-    """Percent of each group with the outcome observed at each visit."""
+    """Percent of each group with the outcome observed at each visit.
+
+    Parameters
+    ----------
+    audit : FollowupAudit
+        The follow-up audit.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
     table = audit.completeness
     groups = _groups(table)
     visits = list(dict.fromkeys(table["visit"]))
@@ -106,7 +126,17 @@ def plot_completeness(audit: FollowupAudit):
 
 
 def plot_profiles(audit: FollowupAudit):
-    """Mean outcome at each visit for participants grouped by the visit at which they were last seen."""
+    """Mean outcome at each visit for participants grouped by the visit at which they were last seen.
+
+    Parameters
+    ----------
+    audit : FollowupAudit
+        The follow-up audit.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
     table = audit.profiles.dropna(subset=["mean"])
     groups = _groups(table) if len(table) else []
     figure, axes_grid = plt.subplots(1, max(len(groups), 1), figsize=(4.2 * max(len(groups), 1), 3.8),
@@ -139,7 +169,19 @@ def plot_profiles(audit: FollowupAudit):
 
 
 def plot_means(audit: FollowupAudit, analysis: FollowupAnalysis):
-    """Observed means of attenders (points) and the mixed model's means with intervals (lines, bands)."""
+    """Observed means of attenders (points) and the mixed model's means with intervals (lines, bands).
+
+    Parameters
+    ----------
+    audit : FollowupAudit
+        The follow-up audit (observed means).
+    analysis : FollowupAnalysis
+        The follow-up analyses (model means).
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
     figure, axes = new_figure(6.5, 4.0)
     means = analysis.means
     groups = _groups(means)
@@ -165,7 +207,17 @@ def plot_means(audit: FollowupAudit, analysis: FollowupAnalysis):
 
 
 def plot_last_visit_effects(analysis: FollowupAnalysis):
-    """The exposure effect at the last visit under every strategy, comparisons set apart in grey."""
+    """The exposure effect at the last visit under every strategy, comparisons set apart in grey.
+
+    Parameters
+    ----------
+    analysis : FollowupAnalysis
+        The follow-up analyses.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
     rows = analysis.headline()
     terms = list(dict.fromkeys(rows["term"]))
     figure, axes = new_figure(7.0, 0.42 * len(rows) + 1.6)
