@@ -182,6 +182,18 @@ def fit_cox_model(model: Any, *, robust: bool = False) -> Any:
     never at risk at an event time, so their score residual is 0, which is what is used here.
     The score residuals are statsmodels' (Breslow's form, whichever ties method is fitted).
 
+    Parameters
+    ----------
+    model : statsmodels PHReg
+        The unfitted model.
+    robust : bool
+        Use the Lin & Wei sandwich covariance.
+
+    Returns
+    -------
+    PHRegResults
+        statsmodels' fit, with the robust covariance when asked.
+
     References
     ----------
     Lin DY, Wei LJ (1989). The robust inference for the proportional hazards model. JASA 84:1074-1078.
@@ -205,6 +217,17 @@ def nelson_aalen(time: np.ndarray, event: np.ndarray) -> Tuple[np.ndarray, np.nd
     H(t) = sum over event times s <= t of d(s) / n(s), with d the events at s and n the
     number at risk just before s (rows with time >= s).
 
+    Parameters
+    ----------
+    time : ndarray
+        Each row's follow-up time.
+    event : ndarray
+        1 where the row's follow-up ended with the event, 0 where it was censored.
+
+    Returns
+    -------
+    (times, hazard) : ndarray
+
     References
     ----------
     Nelson W (1972). Theory and applications of hazard plotting for censored failure data.
@@ -225,6 +248,18 @@ def cumulative_hazard_at(time: np.ndarray, event: np.ndarray) -> np.ndarray:
     The predictor White & Royston (2009) advise for imputing covariates of a Cox model, with
     the event indicator.
 
+    Parameters
+    ----------
+    time : ndarray
+        Each row's follow-up time.
+    event : ndarray
+        1 where the row's follow-up ended with the event, 0 where it was censored.
+
+    Returns
+    -------
+    ndarray
+        One value per row.
+
     References
     ----------
     White IR, Royston P (2009). Imputing missing covariate values for the Cox model.
@@ -240,6 +275,17 @@ def kaplan_meier(time: np.ndarray, event: np.ndarray) -> pd.DataFrame:
 
     Reversing the roles of event and censoring (``event = 1 - event``) gives the reverse
     Kaplan–Meier estimate of follow-up (Schemper & Smith 1996).
+
+    Parameters
+    ----------
+    time : ndarray
+        Each row's follow-up time.
+    event : ndarray
+        1 where the row's follow-up ended with the event, 0 where it was censored.
+
+    Returns
+    -------
+    DataFrame
 
     References
     ----------
