@@ -37,6 +37,8 @@ import numpy as np
 from .errors import InputError
 from .expressions import _COMPARE, _NUMBER_COMPARE, FUNCTIONS, Expression, _Evaluator, _shown, _Value
 
+__all__ = ["SqlColumn", "CompiledCondition", "compile_condition", "layered_select"]
+
 NAN = "'nan'::DOUBLE"
 _FUNCTION_PREFIX = "gapbook_np_"
 _counter = itertools.count()
@@ -372,7 +374,20 @@ def compile_condition(expression: Expression, columns: Mapping[str, SqlColumn], 
 
 
 def layered_select(source: str, bindings: Sequence[Tuple[str, str, int]]) -> str:
-    """A relation of ``source``'s columns and every binding, each layer computed over the ones below."""
+    """A relation of ``source``'s columns and every binding, each layer computed over the ones below.
+
+    Parameters
+    ----------
+    source : str
+        The SQL of the relation the bindings are computed over.
+    bindings : sequence of (name, sql, layer)
+        The bindings of :class:`CompiledCondition`.
+
+    Returns
+    -------
+    str
+        The SQL of the relation with one more column per binding.
+    """
     relation = source
     for layer in sorted({b[2] for b in bindings}):
         columns = ", ".join(f"{sql} AS {name}" for name, sql, at in bindings if at == layer)
