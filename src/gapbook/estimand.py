@@ -21,6 +21,8 @@ import pandas as pd
 from .errors import InputError
 from .vocabulary import INTERCURRENT_STRATEGIES, NOT_RECOMMENDED_STRATEGIES, STRATEGY_PHRASES
 
+__all__ = ["ESTIMAND_COLUMNS", "EstimandDescription", "describe_estimand", "estimand_sentences"]
+
 ESTIMAND_COLUMNS = ("attribute", "description", "strategy", "targeted_by")
 _BY_NAME = {s.name: s for s in INTERCURRENT_STRATEGIES}
 
@@ -98,6 +100,22 @@ def estimand_sentences(intercurrent_events: Sequence[Tuple[str, str]], *, primar
 
     ``quote`` is applied to the event names (user text), e.g. :func:`gapbook.text.md_escape`
     when the sentences go into Markdown unescaped as a whole.
+
+    Parameters
+    ----------
+    intercurrent_events : (event, strategy) pairs from the estimand block.
+    primary : the strategy named as the primary analysis, or None.
+    analyses : the strategies this run estimated.
+    quote : applied to each event name before it enters a sentence.
+
+    Returns
+    -------
+    tuple of str
+        One sentence per intercurrent event, then one for the primary analysis.
+
+    References
+    ----------
+    ICH E9(R1) addendum on estimands and sensitivity analysis in clinical trials (2019).
     """
     sentences = []
     run = list(analyses)

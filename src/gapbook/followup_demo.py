@@ -154,7 +154,17 @@ def simulate_followup_trial(*, n_per_arm: int = 150, weeks: Sequence[int] = WEEK
 
 
 def followup_demo_frame(trial: Optional[FollowupTrial] = None) -> pd.DataFrame:
-    """The trial as a data manager would send it: long layout, reason codes in ``chg``, no rows after loss."""
+    """The trial as a data manager would send it: long layout, reason codes in ``chg``, no rows after loss.
+
+    Parameters
+    ----------
+    trial : a simulated trial; None simulates the demo's with its fixed seed.
+
+    Returns
+    -------
+    pandas.DataFrame
+        One row per participant per attended visit (and a reason-coded row at the visit of loss).
+    """
     trial = simulate_followup_trial() if trial is None else trial
     reasons = trial.reasons.ravel()
     values = trial.data["chg"].to_numpy()
@@ -175,13 +185,25 @@ def write_followup_csv(path: Path) -> Path:
 
 
 def followup_demo_files() -> Tuple[Path, Path]:
-    """The shipped data file and params file of the follow-up demo."""
+    """The shipped data file and params file of the follow-up demo.
+
+    Returns
+    -------
+    (Path, Path)
+        The CSV file and the params file inside the installed package.
+    """
     folder = Path(str(resources.files("gapbook") / "data"))
     return folder / DEMO_CSV, folder / DEMO_PARAMS
 
 
 def followup_demo_params() -> "Params":
-    """The follow-up demo's params (``gapbook demo --study followup``), the data path pointing at the shipped CSV."""
+    """The follow-up demo's params (``gapbook demo --study followup``), the data path pointing at the shipped CSV.
+
+    Returns
+    -------
+    Params
+        The validated params of the follow-up demo.
+    """
     from .params import load_params
 
     return load_params(followup_demo_files()[1])

@@ -26,6 +26,8 @@ from .vocabulary import (INFORMATION_ANCHORING, INTERCURRENT_STRATEGIES, NOT_REC
 FOLLOWUP_REPORT_TABLES: Tuple[str, ...] = (
     "followup_completeness", "followup_patterns", "followup_retention_test", "followup_stopping_reasons",
     "followup_leavers", "visit_effects", "estimates", "estimand", "audit_variables", "mcar_test")
+__all__ = ["FOLLOWUP_REPORT_TABLES", "followup_flow", "draft_followup_methods", "draft_followup_results", "followup_checklist", "summarise_followup"]
+
 REFERENCE_BASED = ("jump_to_reference", "copy_reference", "copy_increments_reference")
 IMPUTED = ("multiple_imputation",) + REFERENCE_BASED + ("delta_adjusted",)
 
@@ -115,7 +117,32 @@ def draft_followup_methods(*, formula: str, exposure: str, visits: Sequence[obje
                            strategies: Sequence[str], m: int, seed: int, reference: Optional[str],
                            delta: object, reasons: Sequence[str], primary: str,
                            estimand: Optional[EstimandDescription]) -> str:
-    """A methods paragraph for a follow-up trial, filled with this run's choices (Markdown; user text escaped)."""
+    """A methods paragraph for a follow-up trial, filled with this run's choices (Markdown; user text escaped).
+
+    Parameters
+    ----------
+    formula, exposure : the long-format analysis formula and the arm column.
+    visits : the planned visits in order.
+    method : ``reml`` or ``ml`` for the mixed model.
+    strategies : the strategies estimated.
+    m, seed : imputations and seed of the imputation strategies.
+    reference : the reference arm of reference-based imputation.
+    delta : the delta of the delta-adjusted strategy (None when not run).
+    reasons : reasons for stopping found in the data.
+    primary : the primary strategy.
+    estimand : the estimand block, when params give one.
+
+    Returns
+    -------
+    str
+        The paragraph in Markdown.
+
+    References
+    ----------
+    Carpenter JR, Roger JH, Kenward MG (2013). Analysis of longitudinal trials with protocol
+    deviation: a framework for relevant, accessible assumptions, and inference via multiple
+    imputation. J Biopharm Stat 23:1352-1371.
+    """
     reasons = [md_escape(r) for r in reasons]
     exposure, reference = md_escape(exposure), None if reference is None else md_escape(reference)
     sentences = [
@@ -172,7 +199,22 @@ def draft_followup_methods(*, formula: str, exposure: str, visits: Sequence[obje
 def draft_followup_results(*, flow: ParticipantFlow, patterns: Optional[pd.DataFrame],
                            retention_test: Optional[pd.DataFrame], estimates: Optional[pd.DataFrame],
                            alpha: float, last_visit: object) -> str:
-    """A results paragraph on attendance, dropout and the effect at the last visit under every strategy."""
+    """A results paragraph on attendance, dropout and the effect at the last visit under every strategy.
+
+    Parameters
+    ----------
+    flow : participants through the visits by arm.
+    patterns : monotone against intermittent missing visits (None when not computed).
+    retention_test : the log-rank test of retention by arm (None when not computed).
+    estimates : the headline rows of ``estimates.csv``.
+    alpha : the significance level of the intervals.
+    last_visit : the last planned visit.
+
+    Returns
+    -------
+    str
+        The paragraph in Markdown.
+    """
     steps = flow.steps
     groups = [c for c in steps.columns if c not in ("step", "description", "all")]
     first = steps.iloc[0]
@@ -212,7 +254,21 @@ def draft_followup_results(*, flow: ParticipantFlow, patterns: Optional[pd.DataF
 
 def followup_checklist(flow: ParticipantFlow, missing: MissingSummary, tables: Mapping[str, Optional[pd.DataFrame]],
                        *, primary: str, estimand: Optional[EstimandDescription]) -> Checklist:
-    """The reporting items of a follow-up trial, where the record answers them, and the answer."""
+    """The reporting items of a follow-up trial, where the record answers them, and the answer.
+
+    Parameters
+    ----------
+    flow : participants through the visits by arm.
+    missing : the record's missing-data summary.
+    tables : the record's tables by name (None for a stage that did not run).
+    primary : the primary strategy.
+    estimand : the estimand block, when params give one.
+
+    Returns
+    -------
+    Checklist
+        One row per reporting item.
+    """
     steps = flow.steps
     attended = steps[steps["step"].str.startswith("attended: ")]
     left = steps[steps["step"].str.startswith("left: ")]

@@ -36,7 +36,17 @@ AUDIT_COLUMNS = ("group", "n", "n_events", "n_censored", "n_time_missing", "n_ev
 
 
 def km_median(curve: pd.DataFrame, level: float = 0.5) -> float:
-    """The first time at which a Kaplan–Meier curve drops to ``level`` or below (NaN when it never does)."""
+    """The first time at which a Kaplan–Meier curve drops to ``level`` or below (NaN when it never does).
+
+    Parameters
+    ----------
+    curve : a Kaplan–Meier curve with ``time`` and ``survival`` columns.
+    level : the survival probability (0.5 for the median).
+
+    Returns
+    -------
+    float
+    """
     reached = curve.loc[curve["survival"] <= level + 1e-12, "time"]
     return float(reached.iloc[0]) if len(reached) else float("nan")
 

@@ -8,12 +8,27 @@ from .palette import GROUPS
 from ..time_to_event import ALL, TimeToEventAudit
 
 
+__all__ = ["plot_survival_by_group"]
+
 def plot_survival_by_group(audit: TimeToEventAudit):
     """Kaplan–Meier survival per exposure group (overall when there are no groups), from the audit's curves.
 
     Each curve is a step line with a short vertical tick at every time a row was censored,
     so the reader sees where information thins out; the legend gives each group's rows and
     events, and the number still at risk at a few times is written under the axis.
+
+    Parameters
+    ----------
+    audit : the time-to-event audit (its Kaplan–Meier curves by group).
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+
+    References
+    ----------
+    Kaplan EL, Meier P (1958). Nonparametric estimation from incomplete observations.
+    J Am Stat Assoc 53:457-481.
     """
     groups = [g for g in audit.groups() if g != ALL] or [ALL]
     figure, axes = new_figure(7.5, 4.6)
