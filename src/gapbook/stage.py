@@ -681,7 +681,19 @@ class StageContext:
 
 
 def imputation_plan(params: Params, study: Study) -> "ImputationPlan":
-    """What to impute and how, from the ``imputation`` section and the analysis model (the stages and ``check``)."""
+    """What to impute and how, from the ``imputation`` section and the analysis model (the stages and ``check``).
+
+    Parameters
+    ----------
+    params : Params
+        The study's params.
+    study : Study
+        The study after intake.
+
+    Returns
+    -------
+    ImputationPlan
+    """
     from .impute import plan_imputation
 
     section = params.imputation
@@ -698,6 +710,19 @@ def sensitivity_series(params: Params, study: Study, plan: "ImputationPlan") -> 
     The stage and ``check`` (:func:`gapbook.pipeline.preflight`) both call it, so a variable
     that cannot be shifted stops ``check`` as it would stop ``run``. Empty when the params
     name no variable and every analysis-model variable is complete.
+
+    Parameters
+    ----------
+    params : Params
+        The study's params.
+    study : Study
+        The study after intake.
+    plan : ImputationPlan
+        The imputation plan the series are checked against.
+
+    Returns
+    -------
+    tuple of DeltaSeries
     """
     from .sensitivity import DeltaSpec, plan_series
 
