@@ -5,13 +5,14 @@ elements are counted with the standard library's html.parser.
 """
 from __future__ import annotations
 
+import re
 from html.parser import HTMLParser
 
 import mistune
 import pytest
 
 from gapbook.errors import InputError
-from gapbook.text import html_escape, md_code, md_escape, one_line, plot_escape
+from gapbook.text import html_escape, md_code, md_escape, one_line, plot_escape, show_invisible
 
 HOSTILE = [
     "<script>alert(1)</script>",
@@ -72,3 +73,31 @@ def test_one_line_and_plot_text():
     assert one_line("x" * 50, limit=10) == "xxxxxxx..."
     assert plot_escape("cost $5 to $10") == r"cost \$5 to \$10"
     assert "\n" not in str(InputError("col\nname")) and "\x1b" not in str(InputError("\x1b[2J"))
+
+
+class _Text(HTMLParser):
+    def __init__(self) -> None:
+        super().__init__(convert_charrefs=True)
+        self.text: list = []
+
+    def handle_data(self, data):
+        self.text.append(data)
+
+
+@pytest.mark.parametrize("escape", [True, False], ids=["raw-html-escaped", "raw-html-allowed"])
+@pytest.mark.parametrize("text", HOSTILE + ["1. first", "+ plus", "= under", "> quote", "a@b.org", "hba1c_12m"])
+def test_markdown_escaped_text_reads_exactly_as_written(text, escape):
+    """Pages render with raw HTML escaped (pages.py), Jupyter with raw HTML allowed: in both the reader
+    sees the characters that were written (line breaks as spaces, control characters as escapes)."""
+    rendered = mistune.create_markdown(escape=escape, plugins=["table", "strikethrough"])(md_escape(text))
+    assert _tags(rendered) == ["p"], rendered
+    parser = _Text()
+    parser.feed(rendered)
+    expected = one_line(re.sub(r"[\r\n]+", " ", text))
+    assert "".join(parser.text).strip() == expected.strip()
+
+
+def test_invisible_characters_are_shown_not_obeyed():
+    assert show_invisible("dose\u202egm\u2066x\u2069\x1b[2J\nnext\tcol") == "dose\\u202egm\\u2066x\\u2069\\x1b[2J\nnext\tcol"
+    assert show_invisible("Persian \u200c joiner and emoji \u200d kept") == "Persian \u200c joiner and emoji \u200d kept"
+    assert html_escape("<b>\u202e</b>") == "&lt;b&gt;\\u202e&lt;/b&gt;"

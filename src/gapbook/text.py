@@ -8,6 +8,8 @@ from a params file or a data file; on a page they are text, never markup. Use:
   and Markdown/maths punctuation is backslash-escaped, so ``<script>`` stays visible text
   and ``*x*``, ``[a](b)`` or ``$x$`` do not format;
 - :func:`html_escape` for text put into HTML (the landing page, HTML tables);
+- :func:`show_invisible` over a whole page: bidirectional controls in a table cell that came
+  from the data are shown, not obeyed;
 - :func:`plot_escape` for text put into matplotlib titles, labels and tick labels (a ``$``
   would otherwise start mathtext, and an unbalanced one stops the figure);
 - :func:`one_line` for text put into a one-line message (control characters escaped).
@@ -18,12 +20,25 @@ import html
 import re
 from typing import Any
 
-__all__ = ["one_line", "html_escape", "md_escape", "md_code", "plot_escape"]
+__all__ = ["one_line", "show_invisible", "html_escape", "md_escape", "md_code", "plot_escape"]
 
-# CommonMark lets any ASCII punctuation be backslash-escaped; these are the ones that
-# format (emphasis, links, headings, lists, tables, code, maths in Jupyter's renderer).
-_MARKDOWN_PUNCTUATION = re.compile(r"([\\`*_{}\[\]()#+\-.!|~^$:])")
+# CommonMark lets any ASCII punctuation be backslash-escaped. Escaped everywhere: what formats
+# inside a line (code, emphasis, links and images, strikethrough, maths in Jupyter's renderer,
+# table cells, autolinked e-mail addresses) and raw HTML and entities ('<', '>', '&'). Backslash
+# escapes rather than entities: a renderer that escapes raw HTML itself (pages.py) shows an entity
+# as typed ("&lt;"), while every CommonMark renderer shows '\<' as '<'.
+_INLINE_PUNCTUATION = re.compile(r"([\\`*\[\]~$|{}^@<>&])")
+# '_' emphasises only at a word's edge (CommonMark's flanking rules): 'hba1c_12m' stays as it is.
+_EDGE_UNDERSCORE = re.compile(r"(?<![0-9A-Za-z])_|_(?![0-9A-Za-z])")
+# What formats only at the start of a line: headings, list items, setext underlines, numbered items.
+_LINE_START = re.compile(r"^(\s*)([#+=-]|\d+(?=[.)]))")
+# Autolinks (GFM): 'www.' and 'scheme://' become links in Jupyter's renderer.
+_AUTOLINK = re.compile(r"(?i)(www)\.|(?<=[a-z0-9])(:)(?=//)")
 _LINE_BREAKS = re.compile(r"[\r\n\t\v\f\x85\u2028\u2029]+")
+# Characters that are no markup but change what a reader sees: bidirectional embeddings,
+# overrides, isolates and marks (they can reorder a table cell or a sentence, Unicode UAX #9),
+# and C0/C1 control characters other than tab and line breaks.
+_INVISIBLE = re.compile("[\u202a-\u202e\u2066-\u2069\u200e\u200f\u061c\x00-\x08\x0b\x0c\x0e-\x1f\x7f-\x9f]")
 
 
 def one_line(text: Any, limit: int = 0) -> str:
@@ -54,8 +69,10 @@ def one_line(text: Any, limit: int = 0) -> str:
     return flat if not limit or len(flat) <= limit else flat[: max(limit - 3, 0)] + "..."
 
 
-def html_escape(text: Any) -> str:
-    """``text`` safe inside HTML element content and quoted attribute values.
+def show_invisible(text: Any) -> str:
+    """``text`` with bidirectional controls and control characters shown as ``\\uNNNN``/``\\xNN``.
+
+    Line breaks and tabs are kept, so it serves whole pages and preformatted blocks.
 
     Parameters
     ----------
@@ -66,11 +83,34 @@ def html_escape(text: Any) -> str:
     -------
     str
     """
-    return html.escape(str(text), quote=True)
+    def visible(match: "re.Match[str]") -> str:
+        code = ord(match.group(0))
+        return f"\\x{code:02x}" if code < 0x100 else f"\\u{code:04x}"
+
+    return _INVISIBLE.sub(visible, str(text))
+
+
+def html_escape(text: Any) -> str:
+    """``text`` safe inside HTML element content and quoted attribute values (invisible controls shown).
+
+    Parameters
+    ----------
+    text : object
+        Any value; it is converted with ``str``.
+
+    Returns
+    -------
+    str
+    """
+    return html.escape(show_invisible(text), quote=True)
 
 
 def md_escape(text: Any) -> str:
     """``text`` safe inside Markdown: shown literally, never as markup, on one line.
+
+    Only what can format is escaped, so the Markdown source stays readable (``tables/report_text.md``
+    is edited by people): punctuation that formats inside a line, the start-of-line markers of
+    headings and lists, and autolinks.
 
     Parameters
     ----------
@@ -83,13 +123,19 @@ def md_escape(text: Any) -> str:
     """
     flat = _LINE_BREAKS.sub(" ", str(text))
     flat = one_line(flat)  # any control character left is shown escaped, not passed through
-    # punctuation first, entities second: an entity's own '#' must not be escaped
-    escaped = _MARKDOWN_PUNCTUATION.sub(r"\\\1", flat)
-    return html.escape(escaped, quote=False).replace('"', "&quot;")
+    escaped = _INLINE_PUNCTUATION.sub(r"\\\1", flat)
+    escaped = _EDGE_UNDERSCORE.sub(r"\\_", escaped)
+    escaped = _AUTOLINK.sub(lambda m: "www\\." if m.group(1) else "\\:", escaped)
+    escaped = _LINE_START.sub(lambda m: m.group(1) + ("\\" + m.group(2) if not m.group(2).isdigit()
+                                                      else m.group(2) + "\\"), escaped)
+    return escaped
 
 
 def md_code(text: Any) -> str:
-    """``text`` as inline code in Markdown (for expressions and formulas), shown literally.
+    """``text`` as an inline code span in Markdown (for expressions and formulas), shown literally.
+
+    Inside a code span nothing is markup (CommonMark 6.1), so only the fence needs care: it is one
+    backtick longer than the longest run of backticks in the text, with a space inside each end.
 
     Parameters
     ----------
@@ -101,9 +147,9 @@ def md_code(text: Any) -> str:
     str
     """
     flat = one_line(_LINE_BREAKS.sub(" ", str(text)))
-    # A code span cannot hold a backtick run of its own length; entities are not decoded inside it,
-    # so the text is HTML-escaped as an HTML <code> element instead.
-    return f"<code>{html.escape(flat, quote=True)}</code>"
+    runs = [len(run) for run in re.findall(r"`+", flat)]
+    fence = "`" * (max(runs, default=0) + 1)
+    return f"{fence} {flat} {fence}"
 
 
 def plot_escape(text: Any) -> str:
