@@ -20,6 +20,7 @@ from .intake import Study
 from .impute import ImputationSettings
 from .models import AnalysisModel, check_formula, exposure_terms
 from .inference import format_estimate, format_p
+from .text import md_escape
 from .vocabulary import STRATEGY_PHRASES, cautions as page_cautions, effect_scale, has_ratio_scale
 
 __all__ = ["COUNT_TABLES", "RecordSuppression", "suppress_small_counts", "suppress_record_tables", "ReportSummary",
@@ -613,7 +614,10 @@ def simulation_phrase(performance: pd.DataFrame) -> str:
 
 def draft_methods(flow: ParticipantFlow, missing: MissingSummary, tables: Mapping[str, Optional[pd.DataFrame]], *,
                   model: Optional[AnalysisModel], imputation: Optional[ImputationSettings]) -> str:
-    """A methods paragraph on the handling of missing data, filled with this run's choices."""
+    """A methods paragraph on the handling of missing data, filled with this run's choices.
+
+    Plain text holding user text (variable names, reason labels, the formula): escape it where it
+    becomes Markdown (:meth:`ReportSummary.drafted_markdown`)."""
     estimates = tables.get("estimates")
     strategies = [] if estimates is None else list(dict.fromkeys(estimates["strategy"]))
     reasons = sorted({part.rsplit(" ", 1)[0] for text in missing.variables["reasons"] if text
@@ -627,7 +631,7 @@ def draft_methods(flow: ParticipantFlow, missing: MissingSummary, tables: Mappin
                          "(Little 1988), and participants with and without missing values were compared.")
     if model is None:
         return " ".join(sentences)
-    sentences.append(f"The analysis model was `{model.formula}` ({model.family} family"
+    sentences.append(f"The analysis model was {model.formula} ({model.family} family"
                      + (", robust standard errors" if model.robust else "") + ").")
     if "multiple_imputation" in strategies and imputation is not None:
         imp = imputation
@@ -669,7 +673,9 @@ def draft_methods(flow: ParticipantFlow, missing: MissingSummary, tables: Mappin
 
 def draft_results(flow: ParticipantFlow, missing: MissingSummary, tables: Mapping[str, Optional[pd.DataFrame]], *,
                   model: Optional[AnalysisModel], terms: Sequence[str], min_cell: int = 0) -> str:
-    """A results paragraph on missing data and the exposure effect, with this run's numbers."""
+    """A results paragraph on missing data and the exposure effect, with this run's numbers.
+
+    Plain text holding user text, like :func:`draft_methods`."""
     scope = "of the analysis model " if model is not None else ""
     share = _fmt(100 * flow.n_complete / flow.n_rows, 1) if flow.n_rows else "n/a"
     sentences = [f"Of {_fmt(flow.n_rows)} participants, {_fmt(flow.n_complete)} "
@@ -733,12 +739,27 @@ class ReportSummary:
         return {"participant_flow": self.flow.steps, "report_missing": self.missing.variables,
                 "report_checklist": self.checklist.items}
 
+    # Titles, the checklist's values and the drafted paragraphs are plain text that quotes the params and
+    # the data (names, labels, reasons, levels); they become Markdown only here, escaped (md_escape).
+    def title_markdown(self, level: int = 2) -> str:
+        """The title as a Markdown heading of ``level``."""
+        return f"{'#' * level} {md_escape(self.title)}"
+
+    def checklist_markdown(self) -> str:
+        """The checklist as a Markdown list: item, guideline, where the record answers it, the answer."""
+        return "\n".join(f"- **{row.item}** ({row.guideline}). *Where:* {md_escape(row.answered_in)}. "
+                         f"{md_escape(row.value)}" for row in self.checklist.items.itertuples())
+
+    def drafted_markdown(self, level: int = 3) -> str:
+        """The drafted methods and results paragraphs under Markdown headings of ``level``."""
+        heading = "#" * level
+        return (f"{heading} Methods (draft, edit before use)\n\n{md_escape(self.methods_text)}\n\n"
+                f"{heading} Results (draft, edit before use)\n\n{md_escape(self.results_text)}")
+
     def markdown(self) -> str:
         """The drafted text as markdown (what ``report_text.md`` holds)."""
-        lines = [f"# {self.title}", "", "## Methods (draft, edit before use)", "", self.methods_text, "",
-                 "## Results (draft, edit before use)", "", self.results_text, "", "## Reporting checklist", ""]
-        for row in self.checklist.items.itertuples():
-            lines.append(f"- **{row.item}** ({row.guideline}); {row.answered_in}: {row.value}")
+        lines = [self.title_markdown(1), "", self.drafted_markdown(2), "", "## Reporting checklist", "",
+                 self.checklist_markdown()]
         lines += ["", "## Cautions", ""] + [f"- {c}" for c in self.cautions]
         if self.not_run:
             lines += ["", "Stages whose tables were not found in this record: " + ", ".join(self.not_run) + "."]
