@@ -26,6 +26,7 @@ import pandas as pd
 
 from . import __version__
 from .inference import format_estimate, format_p, format_p_cell
+from .text import show_invisible
 from .vocabulary import (STRATEGY_ASSUMPTIONS, STRATEGY_PHRASES, STRATEGY_TITLES, cautions, effect_scale,
                          has_ratio_scale)
 
@@ -89,6 +90,9 @@ def _markdown(text: str) -> str:
 
 
 def _page(title: str, body: str, *, back: bool = True) -> str:
+    # Bidirectional controls and control characters from the params or the data (in headings, tables
+    # rendered in the kernel, sentences) are shown as escapes, never obeyed: they reorder what a reader sees.
+    title, body = show_invisible(title), show_invisible(body)
     nav = '<nav><a href="index.html">&larr; Summary of this record</a></nav>\n' if back else ""
     return (f'<!DOCTYPE html>\n<html lang="en">\n<head>\n<meta charset="utf-8">\n'
             f'<meta name="viewport" content="width=device-width, initial-scale=1">\n'
