@@ -16,7 +16,9 @@ from __future__ import annotations
 
 import hashlib
 import json
+import re
 import sys
+from html.parser import HTMLParser
 from pathlib import Path
 from typing import Any, Callable, Dict, List, Optional
 
@@ -285,3 +287,186 @@ def test_one_case_through_the_installed_command(tmp_path):
     assert result.returncode == 2 and "Traceback" not in result.stderr + result.stdout
     assert not files["canary"].exists() and _sha(files["data"]) == before
     assert not (tmp_path / "records").exists() or not any((tmp_path / "records").iterdir())
+
+
+# ---------------------------------------------------------------------------
+# Pages never carry live markup from users' text (issue 9 §4): one full run of every stage on a
+# small study whose every user-supplied string is hostile, then every page parsed.
+
+SCRIPT = "<script>alert(1)</script>"
+IMG = "<img src=x onerror=alert(2)>"
+JS_LINK = "[click](javascript:alert(3))"
+JS_IMAGE = "![pic](javascript:alert(4))"
+COMMENT = "<!-- hidden -->"
+CELL = "</td></tr></table><b>x</b>"
+TICKS = "`tick`"
+MATHS = "$x^2$"
+BIDI = "\u202eevil\u202c"  # right-to-left override ... pop
+MARKUP = [SCRIPT, IMG, JS_LINK, JS_IMAGE, COMMENT, CELL, TICKS, MATHS]
+
+
+def _hostile_study(folder: Path) -> Path:
+    """A two-arm study whose column headers, level names, labels, reason labels, marker text, ids,
+    study name and report title all carry markup (headers without quotes or control characters,
+    which intake refuses, see ``header_*`` above)."""
+    rng = np.random.default_rng(7)
+    n = 120
+    arm, y, z, site = f"arm {IMG}", f"y {COMMENT} {MATHS}", f"z {JS_IMAGE}", f"site {CELL}"
+    arms = [f"ctl {SCRIPT}", f"sms {JS_LINK}"]
+    sites = [f"s1 {TICKS}", f"s2 {MATHS}", f"s3 {CELL}"]
+    given = rng.choice(arms, n)
+    age = rng.normal(50, 10, n).round(1)
+    zz = (rng.normal(0, 1, n) + 0.02 * age).round(2)
+    outcome = (1 + 0.5 * (given == arms[1]) + 0.05 * age + 0.3 * zz + rng.normal(0, 1, n)).round(2)
+    frame = pd.DataFrame({"pid": [f"P{i:03d}{IMG}" for i in range(n)], arm: given, "age": age.astype(str),
+                          z: zz.astype(str), site: rng.choice(sites, n), y: outcome.astype(str)})
+    lost = rng.random(n) < 0.15 + 0.2 * (age > 55)
+    frame.loc[lost, y] = np.where(rng.random(lost.sum()) < 0.5, "-9", f"nm {SCRIPT}")
+    frame.loc[rng.random(n) < 0.12, z] = "-8"
+    frame.loc[rng.random(n) < 0.05, "age"] = ""
+    frame.loc[3, "age"] = "250"  # outside the range: listed for review with its (hostile) id
+    frame.to_csv(folder / "study.csv", index=False)
+    params = {
+        "study": {"name": f"Study {SCRIPT} {BIDI} {JS_LINK}"},
+        "data": {"path": "study.csv", "id": "pid"},
+        "variables": {
+            arm: {"type": "binary", "levels": arms, "label": f"Arm {IMG} {JS_IMAGE}"},
+            "age": {"type": "continuous", "range": [18, 100], "label": f"Age {SCRIPT} {MATHS} {BIDI}"},
+            z: {"type": "continuous", "label": f"Z {CELL} {TICKS}"},
+            site: {"type": "nominal", "levels": sites, "label": f"Site {COMMENT}"},
+            y: {"type": "continuous", "label": f"Outcome {JS_LINK} {MATHS}"},
+        },
+        "missing": {"markers": ["", f"nm {SCRIPT}"],
+                    "reasons": {-9: f"lost {IMG} {JS_LINK}", -8: f"not done {CELL} {TICKS} {MATHS} {BIDI}"}},
+        "audit": {"by": [arm, site]},
+        "analysis": {"formula": f'Q("{y}") ~ Q("{arm}") + age + Q("{z}") + C(Q("{site}"))', "exposure": arm},
+        # small on purpose: the pages, not the statistics, are under test here
+        "imputation": {"m": 3, "iterations": 3, "seed": 11},
+        "sensitivity": {"delta": {y: [0.0, 1.0]}, "m": 2},
+        "simulation": {"replicates": 4, "m": 2, "n_jobs": 1, "seed": 12},
+        "report": {"title": f"Report {IMG} {SCRIPT} {JS_LINK} {COMMENT} {MATHS} {BIDI}", "group": arm},
+    }
+    path = folder / "params.yaml"
+    path.write_text(yaml.safe_dump(params, allow_unicode=True, sort_keys=False), encoding="utf-8")
+    return path
+
+
+@pytest.fixture(scope="module")
+def hostile_record(tmp_path_factory) -> Path:
+    from conftest import record_path, run_gapbook
+
+    folder = tmp_path_factory.mktemp("hostile-pages")
+    params = _hostile_study(folder)
+    before = _sha(folder / "study.csv")
+    result = run_gapbook("run", params, "--out", folder / "records")
+    assert "Traceback" not in result.stdout + result.stderr
+    record = record_path(result)
+    assert _sha(folder / "study.csv") == before
+    return record
+
+
+# Elements no user text may become, and the text of elements that only markup in users' text makes
+FORBIDDEN = {"script", "iframe", "frame", "object", "embed", "svg", "math", "form", "input", "button", "base",
+             "link", "audio", "video", "source", "template", "textarea", "select"}
+FROM_MARKUP = {("b", "x"), ("code", "tick"), ("a", "click"), ("img", "pic")}
+
+
+class _Live(HTMLParser):
+    """Everything in a page that is live markup rather than text."""
+
+    def __init__(self, page: Path, record: Path):
+        super().__init__(convert_charrefs=True)
+        self.page, self.record, self.findings, self.text, self._open = page, record, [], [], []
+
+    def handle_starttag(self, tag, attrs):
+        where = f"{self.page.name}:{self.getpos()[0]}"
+        values = dict(attrs)
+        if tag in FORBIDDEN:
+            self.findings.append((where, tag))
+        for key, value in attrs:
+            if key.startswith("on"):
+                self.findings.append((where, f"{tag} {key}"))
+            if value and re.search(r"javascript:|vbscript:|#harmful-link", value, re.IGNORECASE):
+                self.findings.append((where, f"{tag} {key}={value}"))
+        if tag == "img":
+            source = values.get("src") or ""
+            if not source.startswith(("data:image/png;base64,", "data:image/svg+xml;base64,")):
+                inside = (self.page.parent / source).resolve()
+                if not (source.startswith("../figures/") and inside.is_file()):
+                    self.findings.append((where, f"img src={source}"))
+        if tag == "a":
+            target = values.get("href") or ""
+            inside = (self.page.parent / target).resolve()
+            if re.match(r"[a-z][a-z0-9+.-]*:|/|#", target, re.IGNORECASE) or not inside.is_file() \
+                    or self.record.resolve() not in inside.parents:
+                self.findings.append((where, f"a href={target}"))
+        if tag in ("img",) and (tag, values.get("alt")) in FROM_MARKUP:
+            self.findings.append((where, f"img alt={values.get('alt')}"))
+        if tag not in ("img", "meta", "br", "hr", "col", "input", "link", "source"):
+            self._open.append([tag, ""])
+
+    def handle_endtag(self, tag):
+        while self._open:
+            name, text = self._open.pop()
+            if (name, text.strip()) in FROM_MARKUP:
+                self.findings.append((f"{self.page.name}:{self.getpos()[0]}", f"<{name}>{text}"))
+            if name == tag:
+                break
+
+    def handle_data(self, data):
+        self.text.append(data)
+        if self._open:
+            self._open[-1][1] += data
+
+    def handle_comment(self, data):
+        self.findings.append((f"{self.page.name}:{self.getpos()[0]}", f"<!--{data}-->"))
+
+
+def _live_markup(page: Path, record: Path, markup: Optional[str] = None):
+    parser = _Live(page, record)
+    parser.feed(page.read_text(encoding="utf-8") if markup is None else markup)
+    parser.close()
+    return parser.findings, "".join(parser.text)
+
+
+@pytest.mark.slow
+def test_pages_never_carry_live_markup_from_user_text(hostile_record):
+    pages = sorted((hostile_record / "report").glob("*.html"))
+    assert len(pages) == 9  # the landing page and one page per stage: every stage ran
+    texts = {}
+    for page in pages:
+        findings, text = _live_markup(page, hostile_record)
+        assert not findings, findings[:10]
+        assert "\u202e" not in text and "\u202c" not in text, page.name  # bidi controls shown escaped
+        texts[page.name] = text
+    # the hostile strings did reach the pages, as text (so the checks above are not vacuous)
+    everything = "\n".join(texts.values())
+    for markup in MARKUP:
+        assert markup in everything, markup
+    assert "Report " + IMG in texts["index.html"] and "Report " + IMG in texts["08_report.html"]
+    assert f"lost {IMG} {JS_LINK}" in texts["08_report.html"]  # a reason label, in the checklist
+    assert f"lost {IMG} [click](java" in texts["01_audit.html"]  # ... and in the audit's reasons table
+    assert "\\u202e" in texts["index.html"]
+
+
+@pytest.mark.slow
+def test_notebook_markdown_outputs_are_text_in_any_renderer(hostile_record):
+    """JupyterLab renders a notebook's Markdown outputs with raw HTML allowed; rendered that way
+    (mistune without escaping) no user text becomes an element, and no '$' opens maths."""
+    import mistune
+
+    render = mistune.create_markdown(escape=False, plugins=["table", "strikethrough"])
+    shown = 0
+    for path in sorted((hostile_record / "notebooks").glob("*.ipynb")):
+        notebook = json.loads(path.read_text(encoding="utf-8"))
+        for cell in notebook["cells"]:
+            for output in cell.get("outputs", []):
+                markdown = output.get("data", {}).get("text/markdown")
+                if markdown is None:
+                    continue
+                source = "".join(markdown) if isinstance(markdown, list) else markdown
+                shown += 1
+                findings, _ = _live_markup(path, hostile_record, render(source))
+                assert not findings, (path.name, source[:300], findings[:5])
+                assert not re.search(r"(?<!\\)\$", re.sub(r"`+[^`]*`+", "", source)), (path.name, source[:300])
+    assert shown > 20
