@@ -325,6 +325,11 @@ def _hostile_study(folder: Path) -> Path:
     frame.loc[rng.random(n) < 0.12, z] = "-8"
     frame.loc[rng.random(n) < 0.05, "age"] = ""
     frame.loc[3, "age"] = "250"  # outside the range: listed for review with its (hostile) id
+    # two legitimate inputs that warn, quoting names, ids and a marker: a dose recorded where it does not
+    # apply, and a marker that blanks most of a column
+    frame[f"on {IMG}"] = np.where(np.arange(n) % 2 == 0, "yes", "no")
+    frame[f"dose {SCRIPT}"] = (10 + np.arange(n) % 7).astype(str)
+    frame[f"smoker {JS_LINK}"] = np.where(np.arange(n) % 3 == 0, "yes", f"no {JS_IMAGE}")
     frame.to_csv(folder / "study.csv", index=False)
     params = {
         "study": {"name": f"Study {SCRIPT} {BIDI} {JS_LINK}"},
@@ -335,8 +340,9 @@ def _hostile_study(folder: Path) -> Path:
             z: {"type": "continuous", "label": f"Z {CELL} {TICKS}"},
             site: {"type": "nominal", "levels": sites, "label": f"Site {COMMENT}"},
             y: {"type": "continuous", "label": f"Outcome {JS_LINK} {MATHS}"},
+            f"dose {SCRIPT}": {"type": "continuous", "applies_if": f"`on {IMG}` == 'yes'"},
         },
-        "missing": {"markers": ["", f"nm {SCRIPT}"],
+        "missing": {"markers": ["", f"nm {SCRIPT}", f"no {JS_IMAGE}"],
                     "reasons": {-9: f"lost {IMG} {JS_LINK}", -8: f"not done {CELL} {TICKS} {MATHS} {BIDI}"}},
         "audit": {"by": [arm, site]},
         "analysis": {"formula": f'Q("{y}") ~ Q("{arm}") + age + Q("{z}") + C(Q("{site}"))', "exposure": arm},
@@ -447,6 +453,11 @@ def test_pages_never_carry_live_markup_from_user_text(hostile_record):
     assert f"lost {IMG} {JS_LINK}" in texts["08_report.html"]  # a reason label, in the checklist
     assert f"lost {IMG} [click](java" in texts["01_audit.html"]  # ... and in the audit's reasons table
     assert "\\u202e" in texts["index.html"]
+    # intake's warnings are on the audit page, as text, naming files by name only (a record travels)
+    assert f"is false for 60 rows that hold a value of 'dose {SCRIPT}'" in texts["01_audit.html"]
+    assert f"ids P001{IMG}, P003{IMG}" in texts["01_audit.html"]
+    assert f"the missing marker 'no {JS_IMAGE}'" in texts["01_audit.html"]
+    assert not [name for name, text in texts.items() if str(hostile_record.parent.parent) in text]
 
 
 @pytest.mark.slow

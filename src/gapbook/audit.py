@@ -133,6 +133,8 @@ class AuditResult:
     monotone : whether the patterns are monotone (a dropout design), 1 = yes, 0 = no.
     dropout_order : variables from least to most missing (the order used for monotonicity).
     notes : the intake's notes (types inferred, and why), to show with the types table.
+    warnings : what intake found legitimate but worth a look (printed by ``check`` and ``run``),
+        to show on the audit page.
     engine : what counted the cells: "pandas" (in memory) or "duckdb" (over the file).
     max_patterns : the most patterns the pattern table lists one per row.
     """
@@ -160,6 +162,7 @@ class AuditResult:
     by: Tuple[str, ...]
     sentences: Tuple[str, ...] = ()
     notes: Tuple[str, ...] = ()
+    warnings: Tuple[str, ...] = ()
     engine: str = "pandas"
     max_patterns: int = DEFAULT_MAX_PATTERNS
 
@@ -794,7 +797,7 @@ def audit_study(study: Study, *, threshold: float = DEFAULT_THRESHOLD, by: Seque
     result = _audit(study.data, study.reasons, study.types, float(threshold), by, int(top_patterns),
                     study.range_issues.reset_index(drop=True), study.extreme_values.reset_index(drop=True),
                     study.variables_table(), int(max_patterns))
-    return dataclasses.replace(result, notes=tuple(study.notes))
+    return dataclasses.replace(result, notes=tuple(study.notes), warnings=tuple(study.warnings))
 
 
 def count_missingness(data: pd.DataFrame, reasons: pd.DataFrame, by: Sequence[str] = ()) -> MissingnessCounts:

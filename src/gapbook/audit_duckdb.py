@@ -127,4 +127,5 @@ def audit_scanned(scanned: ScannedStudy, *, threshold: float = DEFAULT_THRESHOLD
                                range_issues=scanned.range_issues.reset_index(drop=True),
                                extremes=scanned.extreme_values.reset_index(drop=True),
                                types_table=scanned.variables_table(), max_patterns=int(max_patterns))
-    return dataclasses.replace(result, notes=tuple(scanned.notes), engine="duckdb")
+    return dataclasses.replace(result, notes=tuple(scanned.notes), warnings=tuple(scanned.warnings),
+                               engine="duckdb")

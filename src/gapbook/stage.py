@@ -502,7 +502,16 @@ class StageContext:
                     result = audit_scanned(scanned, **options)
             else:
                 result = audit_study(self.study, **options)
-        return dataclasses.replace(result, sentences=result.sentences + (f"Counted with {engine} ({why}).",))
+        return dataclasses.replace(result, sentences=result.sentences + (f"Counted with {engine} ({why}).",),
+                                   warnings=tuple(self._file_names(w) for w in result.warnings))
+
+    def _file_names(self, message: str) -> str:
+        """A message with the data and params files named by their names, not by where they are on this machine
+        (a record travels)."""
+        for path in (self.params.data_path, self.params.source):
+            if path:
+                message = message.replace(str(path), Path(path).name)
+        return message
 
     def time_to_event_audit(self) -> "Optional[TimeToEventAudit]":
         """Events, censoring, follow-up and missing times or statuses per exposure group (None unless family cox)."""
