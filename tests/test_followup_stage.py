@@ -197,6 +197,13 @@ def test_user_text_in_the_drafted_followup_text_is_shown_literally():
     text = draft_followup_methods(formula="y ~ arm * C(visit)", exposure="<b>arm</b>", visits=["<i>1</i>", 2],
                                   method="reml", strategies=["mixed_model"], m=5, seed=1, reference="[a](b)",
                                   delta=None, reasons=["*bold*"], primary="mixed_model", estimand=described)
-    for markup in ("<script>", "<b>", "<i>", "](http", "*bold*"):
-        assert markup not in text, markup
-    assert "&lt;script&gt;" in text
+    import mistune
+
+    # read as Jupyter renders it (raw HTML allowed) and as the pages do (raw HTML escaped): no element
+    # from the user's text, and the text reads as written
+    for escape in (True, False):
+        shown = mistune.create_markdown(escape=escape)(text)
+        for markup in ("<script", "<b>", "<i>", "<img", "<a ", "<em>"):
+            assert markup not in shown, (markup, escape)
+        assert "&lt;script&gt;alert(1)&lt;/script&gt; ![x](http://example.invalid/x.png)" in shown
+        assert "(*bold*)" in shown
