@@ -34,6 +34,7 @@ import numpy as np
 import pandas as pd
 from scipy import optimize, special
 
+from .compute import cluster_workers, run_tasks
 from .errors import AnalysisError, InputError, did_you_mean
 from .expressions import FORMULA_NAMESPACE, formula_environment
 from .models import AnalysisModel, exposure_terms
@@ -664,16 +665,10 @@ def run_simulation(design: SimulationDesign, strategies: Mapping[str, Strategy],
 
     bar = tqdm(total=replicates, desc="replicates", file=sys.stderr, mininterval=1.0, disable=not progress)
     rows: List[dict] = []
-    if n_jobs == 1:
-        for task in tasks:
-            rows.extend(run_replicate(*task))
-            bar.update(1)
-    else:
-        from joblib import Parallel, delayed
-        runner = Parallel(n_jobs=n_jobs, return_as="generator", batch_size=max(1, replicates // (8 * n_jobs)))
-        for chunk in runner(delayed(run_replicate)(*task) for task in tasks):
-            rows.extend(chunk)
-            bar.update(1)
+    workers = cluster_workers() or n_jobs
+    for chunk in run_tasks(run_replicate, tasks, n_jobs=n_jobs, batch_size=max(1, replicates // (8 * workers)),
+                           on_result=lambda _: bar.update(1)):
+        rows.extend(chunk)
     bar.close()
     table = pd.DataFrame(rows)
     order = {name: i for i, name in enumerate(strategies)}

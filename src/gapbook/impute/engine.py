@@ -36,6 +36,7 @@ import pandas as pd
 from scipy import linalg
 from scipy.special import expit
 
+from ..compute import run_tasks
 from ..convergence import ChainConvergence, chain_convergence
 from ..errors import AnalysisError, InputError, did_you_mean
 from ..models import AnalysisModel
@@ -556,16 +557,16 @@ def impute_chained(data: pd.DataFrame, *, m: int = 20, iterations: int = 10, see
 
 
 def run_chains(problem: Problem, children: List[np.random.SeedSequence], n_jobs: int, progress: bool):
-    """Run every chain, one after another or in parallel (joblib), in chain order.
+    """Run one chain per seed child where :mod:`gapbook.compute` says (here, local processes, or a Dask cluster).
 
     Parameters
     ----------
     problem : Problem
         The prepared imputation problem.
     children : list of numpy.random.SeedSequence
-        One seed per chain; the results do not depend on ``n_jobs``.
+        One seed per chain; the results do not depend on ``n_jobs`` or where the chains run.
     n_jobs : int
-        Worker processes (1: in this process).
+        Local worker processes (1: in this process); ignored on a cluster.
     progress : bool
         Show a progress bar.
 
@@ -578,18 +579,8 @@ def run_chains(problem: Problem, children: List[np.random.SeedSequence], n_jobs:
 
     bar = tqdm(total=len(children), desc="imputation chains", disable=not progress, leave=False)
     try:
-        if n_jobs == 1 or len(children) == 1:
-            results = []
-            for chain, child in enumerate(children):
-                results.append(run_chain(problem, chain, child))
-                bar.update(1)
-            return results
-        from joblib import Parallel, delayed
-        runner = Parallel(n_jobs=n_jobs, return_as="generator")
-        results = []
-        for result in runner(delayed(run_chain)(problem, chain, child) for chain, child in enumerate(children)):
-            results.append(result)
-            bar.update(1)
-        return results
+        jobs = 1 if len(children) == 1 else n_jobs
+        return run_tasks(run_chain, ((problem, chain, child) for chain, child in enumerate(children)), n_jobs=jobs,
+                         on_result=lambda _: bar.update(1))
     finally:
         bar.close()
