@@ -14,6 +14,7 @@ from pathlib import Path
 from typing import List, Optional, Sequence
 
 from . import __version__
+from .compute import LOCAL
 from .errors import AnalysisError, InputError
 
 __all__ = ["main"]
@@ -35,6 +36,8 @@ def _run_and_print(params, args: argparse.Namespace) -> int:
     from .runner import run_study
 
     plan = preflight(params, only=_stages(args.only), log=_print)
+    if params.compute.cluster != LOCAL:  # before any data leaves this machine, say where it goes
+        _print(f"compute: {plan.compute}")
     record = run_study(plan, Path(args.out), log=_print)
     _print(str(record))
     return 0
@@ -83,6 +86,7 @@ def cmd_check(args: argparse.Namespace) -> int:
         _print(f"model: {params.analysis.family} model of {outcome}{follow_up} on {', '.join(used)}")
     origins = {nb.origin for nb in plan.notebooks}
     _print(f"stages: {', '.join(plan.stages)} ({' and '.join(sorted(origins))} notebooks)")
+    _print(f"compute: {plan.compute}")
     _print("ok")
     return 0
 

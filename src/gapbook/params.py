@@ -16,6 +16,7 @@ from typing import Annotated, Any, Dict, List, Literal, Optional, Tuple, Union
 import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
+from .compute import LOCAL, check_cluster_address
 from .errors import InputError, did_you_mean
 from .vocabulary import (COVARIANCE_STRUCTURES, FAMILY_NAMES, FOLLOWUP_STRATEGY_NAMES, IMPUTATION_METHODS,
                          INTERCURRENT_STRATEGY_NAMES, LAYOUTS, TIES_METHODS, TIME_TO_EVENT_FAMILIES, VARIABLE_TYPES)
@@ -370,6 +371,18 @@ class EstimandSection(_Section):
     primary: Optional[FollowupStrategy] = None
 
 
+class ComputeSection(_Section):
+    cluster: str = LOCAL
+
+    @field_validator("cluster")
+    @classmethod
+    def _address(cls, value: str) -> str:
+        try:
+            return check_cluster_address(value)
+        except InputError as exc:
+            raise ValueError(exc.message) from None
+
+
 class ReportSection(_Section):
     title: Optional[Text] = None
     min_cell: int = Field(5, ge=0)
@@ -379,7 +392,7 @@ class ReportSection(_Section):
 
 SECTIONS: Tuple[str, ...] = (
     "study", "data", "design", "variables", "missing", "audit", "mechanism", "estimand", "analysis",
-    "imputation", "sensitivity", "simulation", "report",
+    "imputation", "sensitivity", "simulation", "report", "compute",
 )
 
 
@@ -399,6 +412,7 @@ class Params(_Section):
     sensitivity: SensitivitySection = Field(default_factory=SensitivitySection)
     simulation: SimulationSection = Field(default_factory=SimulationSection)
     report: ReportSection = Field(default_factory=ReportSection)
+    compute: ComputeSection = Field(default_factory=ComputeSection)
     source: Optional[str] = None
 
     @model_validator(mode="before")

@@ -55,6 +55,7 @@ FAMILY_GAPS: Dict[str, Dict[str, str]] = {
         "simulate": "simulating follow-up times and censoring is not yet built for a Cox model",
     },
 }
+CLUSTER_STAGES = ("impute", "sensitivity", "simulate")  # their parallel tasks run where compute.cluster says
 KIT, STUDY, RECORD = "kit", "study", "record"
 
 Log = Callable[[str], None]
@@ -354,6 +355,7 @@ class Plan:
     notebooks: Tuple[StageNotebook, ...]
     model: Optional[Tuple[str, List[str]]] = None  # outcome and right-hand-side columns, when checked
     notes: Tuple[str, ...] = field(default_factory=tuple)
+    compute: str = ""  # where the parallel work runs and what leaves this machine (check and run print it)
 
 
 def preflight(params: Params, *, only: Optional[Sequence[str]] = None, log: Optional[Log] = None,
@@ -404,4 +406,17 @@ def preflight(params: Params, *, only: Optional[Sequence[str]] = None, log: Opti
     notes = design_notes + tuple(f"notebook {nb.file}: the study folder's copy, which differs from the kit's"
                                  for nb in chosen if nb.origin == STUDY and nb.differs_from_kit)
     return Plan(params=params, data=data, study=study, stages=tuple(stages), notebooks=chosen, model=model,
-                notes=notes)
+                notes=notes, compute=where_stages_compute(params, stages))
+
+
+def where_stages_compute(params: Params, stages: Sequence[str]) -> str:
+    """Where the stages' parallel work runs (``compute.cluster``) and what leaves this machine; never connects."""
+    from .compute import LOCAL, where_work_runs
+
+    cluster = params.compute.cluster
+    sending = [s for s in stages if s in CLUSTER_STAGES]
+    if cluster == LOCAL:
+        return where_work_runs(LOCAL)
+    if not sending:
+        return f"this machine: none of these stages sends work to compute.cluster {cluster}"
+    return f"{where_work_runs(cluster)} (stages {', '.join(sending)})"

@@ -24,10 +24,12 @@ import yaml
 
 from . import pages
 from . import record as rec
+from .compute import LOCAL
 from .errors import AnalysisError, InputError
 from .kernels import KERNEL_NAME, PrivateKernels, scratch_folder
 from .params import Params
 from .pipeline import RECORD, STAGE_TITLES, Plan, StageNotebook, kit_notebooks_dir, preflight, sha256_file
+from .text import one_line
 
 __all__ = ["run_study", "verify_record"]
 
@@ -297,7 +299,16 @@ def verify_record(record: Path, log: Log = print, *, data: Optional[Path] = None
     data_path = _locate_data(record, manifest, data)
     body = dict(manifest.params)
     body["data"] = {**body.get("data", {}), "path": str(data_path)}
+    # A record received from elsewhere must not send its data to a host it names: verify always
+    # re-runs on this machine (the results are the same bytes wherever the tasks ran).
+    compute = body.get("compute")
+    cluster = compute.get("cluster", LOCAL) if isinstance(compute, dict) else LOCAL
+    if isinstance(compute, dict):
+        body["compute"] = {**compute, "cluster": LOCAL}
     params = Params.from_dict(body, source=str(record / "params.yaml"))
+    log("verify: re-running on this machine" + (f", not on the record's compute.cluster {one_line(cluster, limit=100)}"
+                                                  if cluster != LOCAL else "")
+        + " (results are the same bytes wherever the work runs)")
     notebooks = _notebooks_to_run(record, manifest, trust_record_notebooks)
     plan = preflight(params, only=manifest.stage_names(), notebooks=notebooks, notebook_origin=RECORD)
     scratch = scratch_folder()

@@ -595,9 +595,17 @@ class StageContext:
         """What to impute and how, from the ``imputation`` section and the analysis model."""
         return imputation_plan(self.params, self.study)
 
+    @contextlib.contextmanager
+    def on_cluster(self) -> Iterator[None]:
+        """Run the parallel tasks inside this block where ``compute.cluster`` says (this machine or a Dask cluster)."""
+        from .compute import on_cluster
+
+        with params_errors(self.params, "compute"), on_cluster(self.params.compute.cluster):
+            yield
+
     def impute(self, plan: "ImputationPlan") -> "ChainedImputation":
-        """Run the plan (m chains); no progress bar on the page."""
-        with params_errors(self.params, "imputation", "analysis", "sensitivity"):
+        """Run the plan (m chains, on ``compute.cluster``); no progress bar on the page."""
+        with self.on_cluster(), params_errors(self.params, "imputation", "analysis", "sensitivity"):
             return plan.run()
 
     def pool(self, imputation: "ChainedImputation") -> "PooledResult":
@@ -611,22 +619,23 @@ class StageContext:
             return pooled.wald(self.model().exposure)
 
     def sensitivity(self, plan: "ImputationPlan") -> "SensitivityResult":
-        """Delta adjustment over the ``sensitivity`` grids, tipping points and every analysis side by side."""
+        """Delta adjustment over the ``sensitivity`` grids, tipping points and every analysis side by side (imputations
+        on ``compute.cluster``)."""
         from .sensitivity import sensitivity_analysis
 
         series = sensitivity_series(self.params, self.study, plan)
         units = {name: spec.unit for name, spec in self.params.variables.items() if spec.unit}
-        with params_errors(self.params, "sensitivity", "imputation", "analysis"):
+        with self.on_cluster(), params_errors(self.params, "sensitivity", "imputation", "analysis"):
             return sensitivity_analysis(plan, series=series, m=self.params.sensitivity.m,
                                         estimates=self.read_table("estimates"), units=units)
 
     def simulation(self) -> "SimulationResult":
-        """The bias simulation with the ``simulation`` section."""
+        """The bias simulation with the ``simulation`` section (replicates on ``compute.cluster``)."""
         from .simulate import simulate_study
 
         section = self.params.simulation
         study = self.study
-        with params_errors(self.params, "simulation", "analysis"):
+        with self.on_cluster(), params_errors(self.params, "simulation", "analysis"):
             return simulate_study(study.data, model=self.model(), missing=study.missing, types=study.types,
                                   mar_on=section.mar_on, replicates=section.replicates, seed=section.seed,
                                   n_jobs=section.n_jobs, m=section.m)
