@@ -188,3 +188,15 @@ def test_run_says_where_work_goes_and_verify_reruns_here(tmp_path):
     assert checked.returncode == 0, checked.stdout + checked.stderr
     assert (f"verify: re-running on this machine, not on the record's compute.cluster tcp://127.0.0.1:{port}"
             in checked.stdout)
+
+
+def test_a_worker_running_chains_imports_neither_pandas_nor_the_models():
+    # What a worker unpickles to run a chain (the function and the prepared problem) must not
+    # pull in pandas or statsmodels: each worker would carry them (about 180 MB) for nothing.
+    import subprocess
+    import sys
+
+    code = ("import sys, gapbook.impute.chains, gapbook.impute.problem; "
+            "print(sorted({m.split('.')[0] for m in sys.modules} & {'pandas', 'statsmodels', 'patsy', 'pydantic'}))")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
+    assert out.strip() == "[]"

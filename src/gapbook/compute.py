@@ -2,7 +2,7 @@
 
 The imputation chains (and so every imputation of the sensitivity grid) and the simulation
 replicates are independent tasks, each drawing from its own child of one
-``numpy.random.SeedSequence``. :func:`run_tasks` runs such a list of tasks and returns the
+``numpy.random.SeedSequence``. :func:`iterate_tasks` runs such tasks and yields the
 results in task order: in this process (one job), in local worker processes (joblib's
 process backend), or, inside :func:`on_cluster`, on the workers of a Dask cluster through
 joblib's Dask backend. Because no task's randomness depends on which worker runs it or
@@ -23,7 +23,8 @@ from typing import Any, Callable, Iterable, Iterator, List, Optional, Sequence
 
 from .errors import InputError
 
-__all__ = ["LOCAL", "check_cluster_address", "where_work_runs", "on_cluster", "run_tasks", "cluster_workers"]
+__all__ = ["LOCAL", "check_cluster_address", "where_work_runs", "on_cluster", "iterate_tasks", "run_tasks",
+           "cluster_workers"]
 
 LOCAL = "local"
 CONNECT_TIMEOUT = 10  # seconds to reach the scheduler (or to see a worker) before the stage stops
@@ -72,7 +73,7 @@ def where_work_runs(address: str) -> str:
 
 @contextlib.contextmanager
 def on_cluster(address: str, *, timeout: float = CONNECT_TIMEOUT) -> Iterator[Optional[Any]]:
-    """Within this block, :func:`run_tasks` runs on the Dask cluster at ``address`` (``local``: no change).
+    """Within this block, :func:`iterate_tasks` runs on the Dask cluster at ``address`` (``local``: no change).
 
     Connects a ``distributed.Client`` to an existing scheduler (it never starts one) and
     closes it on leaving. Raises ``InputError`` when the address is not valid or the
@@ -104,9 +105,9 @@ def cluster_workers() -> int:
     return 0 if client is None else int(sum(client.nthreads().values()))
 
 
-def run_tasks(function: Callable[..., Any], tasks: Iterable[Sequence[Any]], *, n_jobs: int = 1,
-              batch_size: Any = 1, on_result: Optional[Callable[[Any], None]] = None) -> List[Any]:
-    """``[function(*task) for task in tasks]``, in task order, run where this context says.
+def iterate_tasks(function: Callable[..., Any], tasks: Iterable[Sequence[Any]], *, n_jobs: int = 1,
+                  batch_size: Any = 1) -> Iterator[Any]:
+    """``function(*task)`` for each task, yielded in task order as the results arrive, run where this context says.
 
     Parameters
     ----------
@@ -115,20 +116,17 @@ def run_tasks(function: Callable[..., Any], tasks: Iterable[Sequence[Any]], *, n
     n_jobs : local worker processes (1 runs in this process); inside :func:`on_cluster` every
         worker thread of the cluster is used and ``n_jobs`` is not.
     batch_size : tasks sent to a worker at a time (joblib's ``batch_size``).
-    on_result : called with each result as it arrives (e.g. to move a progress bar).
 
-    Returns
-    -------
-    The results, in the order of ``tasks``.
+    Yields
+    ------
+    The results, in the order of ``tasks``; a caller that keeps only what it needs of each
+    holds one result at a time, not all of them.
     """
     client = _CLIENT.get()
-    results: List[Any] = []
     if client is None and n_jobs == 1:
         for task in tasks:
-            results.append(function(*task))
-            if on_result is not None:
-                on_result(results[-1])
-        return results
+            yield function(*task)
+        return
     from joblib import Parallel, delayed, parallel_config
 
     if client is None:
@@ -138,13 +136,15 @@ def run_tasks(function: Callable[..., Any], tasks: Iterable[Sequence[Any]], *, n
     with backend:
         runner = Parallel(n_jobs=n_jobs if client is None else -1, return_as="generator", batch_size=batch_size)
         try:
-            for result in runner(delayed(function)(*task) for task in tasks):
-                results.append(result)
-                if on_result is not None:
-                    on_result(result)
+            yield from runner(delayed(function)(*task) for task in tasks)
         except TimeoutError as exc:
             if client is not None and "no worker" in str(exc):
                 raise InputError(f"the Dask cluster at {client.scheduler.address} has no worker after "
                                  f"{CONNECT_TIMEOUT} s; start its workers or run locally", option="cluster") from None
             raise
-    return results
+
+
+def run_tasks(function: Callable[..., Any], tasks: Iterable[Sequence[Any]], *, n_jobs: int = 1,
+              batch_size: Any = 1) -> List[Any]:
+    """``[function(*task) for task in tasks]`` run where this context says (see :func:`iterate_tasks`)."""
+    return list(iterate_tasks(function, tasks, n_jobs=n_jobs, batch_size=batch_size))

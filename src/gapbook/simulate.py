@@ -34,7 +34,7 @@ import numpy as np
 import pandas as pd
 from scipy import optimize, special
 
-from .compute import cluster_workers, run_tasks
+from .compute import cluster_workers, iterate_tasks
 from .errors import AnalysisError, InputError, did_you_mean
 from .expressions import FORMULA_NAMESPACE, formula_environment
 from .models import AnalysisModel, exposure_terms
@@ -666,9 +666,9 @@ def run_simulation(design: SimulationDesign, strategies: Mapping[str, Strategy],
     bar = tqdm(total=replicates, desc="replicates", file=sys.stderr, mininterval=1.0, disable=not progress)
     rows: List[dict] = []
     workers = cluster_workers() or n_jobs
-    for chunk in run_tasks(run_replicate, tasks, n_jobs=n_jobs, batch_size=max(1, replicates // (8 * workers)),
-                           on_result=lambda _: bar.update(1)):
+    for chunk in iterate_tasks(run_replicate, tasks, n_jobs=n_jobs, batch_size=max(1, replicates // (8 * workers))):
         rows.extend(chunk)
+        bar.update(1)
     bar.close()
     table = pd.DataFrame(rows)
     order = {name: i for i, name in enumerate(strategies)}

@@ -1,7 +1,7 @@
-"""Preparing an imputation problem: the design matrix every chain starts from, the
-variables with their methods and predictors, passive formulas and delta shifts.
+"""Preparing an imputation problem: the variables with their values, codes, methods and
+predictors, the design matrix every chain starts from, passive formulas and delta shifts.
 
-The problem is built once and shared read-only by every chain (:mod:`.engine`).
+The problem is built once and shared read-only by every chain (:mod:`.chains`).
 Passive formulas are checked and computed by the expression language
 (:mod:`gapbook.expressions`); :func:`evaluate_passive` is the one place a formula is
 evaluated, by that language's own evaluator.
@@ -9,7 +9,6 @@ evaluated, by that language's own evaluator.
 from __future__ import annotations
 
 import functools
-from dataclasses import dataclass
 from typing import Any, Dict, List, Mapping, Optional, Sequence, Tuple
 
 import numpy as np
@@ -19,52 +18,10 @@ from ..errors import InputError, did_you_mean
 from ..expressions import VALUE, Expression, ExpressionError, parse_expression
 from ..intake import levels_of
 from ..vocabulary import ALLOWED_METHODS, CATEGORICAL_TYPES, DEFAULT_METHOD, DELTA_METHODS, NUMERIC_TYPES
+from .problem import Problem, Variable, row_indices
 
-__all__ = ["Variable", "Problem", "choose_method", "choose_predictors", "check_names", "passive_inputs",
-           "evaluate_passive", "prepare", "delta_shifts"]
-
-
-# ---------------------------------------------------------------------------
-# the prepared problem (built once, shared read-only by every chain)
-
-@dataclass(frozen=True)
-class Variable:
-    """One column as the engine sees it."""
-
-    name: str
-    type: str
-    method: str                      # "" for a complete variable that is only a predictor
-    columns: np.ndarray              # its columns in the design matrix
-    center: float                    # numbers: observed mean (design holds (x - center) / scale)
-    scale: float
-    levels: Tuple[Any, ...]          # categories as stored in the data (categorical types)
-    used_levels: np.ndarray          # positions (in levels) of the observed levels; the first is the reference
-    fit_rows: np.ndarray             # rows where observed (its own model is fitted here)
-    impute_rows: np.ndarray          # rows to impute
-    other_rows: np.ndarray           # rows not observed: impute_rows and not-to-impute missing rows, sorted
-    predictor_columns: np.ndarray    # design columns of its predictors, intercept first
-    predictors: Tuple[str, ...]
-    passive_formula: str = ""
-    passive_inputs: Tuple[str, ...] = ()
-
-    @property
-    def categorical(self) -> bool:
-        return self.type in CATEGORICAL_TYPES
-
-
-@dataclass(frozen=True)
-class Problem:
-    """Everything a chain needs: the starting design, the variables, visit order and options."""
-
-    design: np.ndarray               # (n, P) Fortran order; column 0 is the intercept
-    codes: Dict[str, np.ndarray]     # categorical: index into used_levels per row (-1 where not observed)
-    variables: Dict[str, Variable]
-    visit_order: Tuple[str, ...]     # incomplete, non-passive variables
-    passive_order: Tuple[str, ...]
-    iterations: int
-    donors: int
-    delta_rows: Dict[str, Any]       # variable -> shift per imputed row (array), scalar, or (group, lookup)
-    originals: Dict[str, np.ndarray]  # numbers on their own scale (donor values are copied from here, exactly)
+__all__ = ["choose_method", "choose_predictors", "check_names", "passive_inputs", "evaluate_passive", "prepare",
+           "delta_shifts"]
 
 
 def check_names(mapping: Optional[Mapping[str, Any]], columns: Sequence[str], option: str) -> Dict[str, Any]:
@@ -219,7 +176,7 @@ def choose_predictors(name: str, columns: Sequence[str], predictors: Mapping[str
 def prepare(data: pd.DataFrame, types: Dict[str, str], methods: Dict[str, str], predictors: Dict[str, List[str]],
             exclude: Dict[str, List[str]], passive: Dict[str, str], mask: pd.DataFrame, iterations: int,
             donors: int, delta: Dict[str, Any], delta_by: Dict[str, str]) -> Problem:
-    """Build the design matrix, the variables (method, rows, predictors) and the visit order once.
+    """Build the variables (values, codes, method, rows, predictors, design columns) and the visit order once.
 
     Parameters
     ----------
@@ -248,13 +205,16 @@ def prepare(data: pd.DataFrame, types: Dict[str, str], methods: Dict[str, str], 
     # design layout: intercept, then one block per variable
     blocks: Dict[str, np.ndarray] = {}
     centers, scales, levels, used, fit_rows_all, codes = {}, {}, {}, {}, {}, {}
+    index = row_indices(n)
+    all_rows = np.arange(n, dtype=index)  # every complete variable shares this one array
+    no_rows = np.zeros(0, dtype=index)
     originals: Dict[str, np.ndarray] = {}
     width = 1
     for name in columns:
         column = data[name]
         is_masked = mask[name].to_numpy(dtype=bool)
         observed = column.notna().to_numpy() & ~is_masked
-        fit_rows_all[name] = np.flatnonzero(observed)
+        fit_rows_all[name] = all_rows if observed.all() else np.flatnonzero(observed).astype(index)
         if types[name] in CATEGORICAL_TYPES:
             lv = levels_of(column)
             position = {value: i for i, value in enumerate(lv)}
@@ -267,7 +227,7 @@ def prepare(data: pd.DataFrame, types: Dict[str, str], methods: Dict[str, str], 
             internal = np.full(len(lv), -1, dtype=np.int64)
             internal[present] = np.arange(len(present))
             local = np.where(code >= 0, internal[np.maximum(code, 0)], -1)
-            codes[name] = local
+            codes[name] = local.astype(np.int8 if len(lv) < 100 else np.int16 if len(lv) < 30_000 else np.int64)
             k = max(len(present) - 1, 0)
             blocks[name] = np.arange(width, width + k)
             width += k
@@ -284,29 +244,24 @@ def prepare(data: pd.DataFrame, types: Dict[str, str], methods: Dict[str, str], 
             blocks[name] = np.array([width])
             width += 1
 
-    design = np.zeros((n, width), order="F")
-    design[:, 0] = 1.0
     for name in columns:
-        fit_rows = fit_rows_all[name]
-        cols = blocks[name]
-        if types[name] in CATEGORICAL_TYPES:
-            local = codes[name]
-            for j, col in enumerate(cols):
-                design[:, col] = (local == j + 1)
-        else:
+        if types[name] not in CATEGORICAL_TYPES:
             values = data[name].to_numpy(dtype=float, na_value=np.nan)
             # Not-to-impute missing cells count as 0 on the original scale (see module docstring).
-            filled = np.where(np.isnan(values), 0.0, values)
-            design[:, cols[0]] = (filled - centers[name]) / scales[name]
-            originals[name] = filled
+            # A complete column is used as it is (often the data's own memory; chains never write it).
+            gaps = np.isnan(values)
+            originals[name] = np.where(gaps, 0.0, values) if gaps.any() else values
 
     variables: Dict[str, Variable] = {}
     visit, passive_order = [], []
     for name in columns:
         is_masked = mask[name].to_numpy(dtype=bool)
-        impute_rows = np.flatnonzero(is_masked)
+        impute_rows = np.flatnonzero(is_masked).astype(index)
         fit_rows = fit_rows_all[name]
-        other_rows = np.setdiff1d(np.arange(n), fit_rows, assume_unique=True)
+        if fit_rows is all_rows:
+            other_rows = no_rows
+        else:
+            other_rows = np.setdiff1d(all_rows, fit_rows, assume_unique=True)
         method = choose_method(name, types[name], methods, passive)
         if len(impute_rows) == 0:
             method_used = "passive" if name in passive else ""
@@ -321,6 +276,7 @@ def prepare(data: pd.DataFrame, types: Dict[str, str], methods: Dict[str, str], 
             name=name, type=types[name], method=method_used, columns=blocks[name], center=centers[name],
             scale=scales[name], levels=levels[name], used_levels=used[name], fit_rows=fit_rows,
             impute_rows=impute_rows, other_rows=other_rows, predictor_columns=pred_cols, predictors=tuple(chosen),
+            categorical=types[name] in CATEGORICAL_TYPES,
             passive_formula=passive.get(name, ""), passive_inputs=passive_in.get(name, ()))
         if len(impute_rows):
             (passive_order if method_used == "passive" else visit).append(name)
@@ -328,7 +284,7 @@ def prepare(data: pd.DataFrame, types: Dict[str, str], methods: Dict[str, str], 
             raise InputError(f"{name}: the column has no observed values, so it cannot be imputed")
 
     shifts = delta_shifts(data, variables, delta, delta_by)
-    return Problem(design=design, codes=codes, variables=variables, visit_order=tuple(visit),
+    return Problem(n_rows=n, width=width, codes=codes, variables=variables, visit_order=tuple(visit),
                    passive_order=tuple(passive_order), iterations=iterations, donors=donors, delta_rows=shifts,
                    originals=originals)
 
