@@ -40,6 +40,16 @@ def check_cluster_address(value: str) -> str:
 
     Accepted forms are ``tcp://host:port`` and ``host:port`` (host a name, an IPv4 address or
     an IPv6 address in brackets; port 1 to 65535). Anything else raises ``InputError``.
+
+    Parameters
+    ----------
+    value : str
+        The ``compute.cluster`` setting.
+
+    Returns
+    -------
+    str
+        ``local``, or the address as ``tcp://host:port``.
     """
     text = str(value).strip()
     if text == LOCAL:
@@ -63,7 +73,17 @@ def check_cluster_address(value: str) -> str:
 
 
 def where_work_runs(address: str) -> str:
-    """One line saying where the parallel tasks run and what leaves this machine (for ``check`` and ``run``)."""
+    """One line saying where the parallel tasks run and what leaves this machine (for ``check`` and ``run``).
+
+    Parameters
+    ----------
+    address : str
+        ``local`` or a checked scheduler address.
+
+    Returns
+    -------
+    str
+    """
     if address == LOCAL:
         return "this machine: imputation chains, sensitivity grid and simulation replicates run in local processes"
     return (f"the Dask cluster at {address}: the imputation chains, the sensitivity grid and the simulation "
@@ -78,6 +98,18 @@ def on_cluster(address: str, *, timeout: float = CONNECT_TIMEOUT) -> Iterator[Op
     Connects a ``distributed.Client`` to an existing scheduler (it never starts one) and
     closes it on leaving. Raises ``InputError`` when the address is not valid or the
     scheduler cannot be reached within ``timeout`` seconds.
+
+    Parameters
+    ----------
+    address : str
+        ``local`` or a Dask scheduler address.
+    timeout : float
+        Seconds to wait for the scheduler.
+
+    Returns
+    -------
+    iterator
+        Yields the ``distributed.Client`` (None for ``local``) once, as a context manager.
     """
     address = check_cluster_address(address)
     if address == LOCAL:
@@ -100,7 +132,12 @@ def on_cluster(address: str, *, timeout: float = CONNECT_TIMEOUT) -> Iterator[Op
 
 
 def cluster_workers() -> int:
-    """Threads across the workers of the cluster in use (0 outside :func:`on_cluster` or with no worker)."""
+    """Threads across the workers of the cluster in use (0 outside :func:`on_cluster` or with no worker).
+
+    Returns
+    -------
+    int
+    """
     client = _CLIENT.get()
     return 0 if client is None else int(sum(client.nthreads().values()))
 
@@ -146,5 +183,22 @@ def iterate_tasks(function: Callable[..., Any], tasks: Iterable[Sequence[Any]], 
 
 def run_tasks(function: Callable[..., Any], tasks: Iterable[Sequence[Any]], *, n_jobs: int = 1,
               batch_size: Any = 1) -> List[Any]:
-    """``[function(*task) for task in tasks]`` run where this context says (see :func:`iterate_tasks`)."""
+    """``[function(*task) for task in tasks]`` run where this context says (see :func:`iterate_tasks`).
+
+    Parameters
+    ----------
+    function : callable
+        Called once per task with the task's items as arguments.
+    tasks : iterable of sequences
+        The arguments of each task; each carries its own seed, so results do not depend on where it runs.
+    n_jobs : int
+        Local worker processes (1: in this process); ignored on a cluster.
+    batch_size : int or "auto"
+        Tasks sent to a worker at a time (joblib's ``batch_size``).
+
+    Returns
+    -------
+    list
+        The results in task order.
+    """
     return list(iterate_tasks(function, tasks, n_jobs=n_jobs, batch_size=batch_size))

@@ -244,7 +244,27 @@ class Chain:
 
 
 def run_chain(problem: Problem, chain: int, seed: np.random.SeedSequence):
-    """Run one chain to the end; returns its imputed values per variable and its convergence rows."""
+    """Run one chain to the end; returns its imputed values per variable and its convergence rows.
+
+    Parameters
+    ----------
+    problem : Problem
+        The prepared imputation problem.
+    chain : int
+        The chain's number (recorded in its convergence rows).
+    seed : numpy.random.SeedSequence
+        The chain's own seed.
+
+    Returns
+    -------
+    (dict, list)
+        Imputed values per variable, and one convergence row per variable and iteration.
+
+    References
+    ----------
+    van Buuren S, Brand JPL, Groothuis-Oudshoorn CGM, Rubin DB (2006). Fully conditional
+    specification in multivariate imputation. J Stat Comput Simul 76:1049-1064.
+    """
     state = Chain(problem, np.random.Generator(np.random.PCG64(seed)))
     state.start()
     trace: List[Dict[str, Any]] = []

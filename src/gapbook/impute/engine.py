@@ -331,7 +331,24 @@ def impute_chained(data: pd.DataFrame, *, m: int = 20, iterations: int = 10, see
 def run_chains(problem: Problem, children: List[np.random.SeedSequence], n_jobs: int,
                progress: bool) -> Iterator[Tuple[Dict[str, np.ndarray], List[Dict[str, Any]]]]:
     """Each chain's imputed values and trace, in chain order, as they arrive, run where :mod:`gapbook.compute` says
-    (this process, local processes or a Dask cluster)."""
+    (this process, local processes or a Dask cluster).
+
+    Parameters
+    ----------
+    problem : Problem
+        The prepared imputation problem.
+    children : list of numpy.random.SeedSequence
+        One seed per chain; the results do not depend on ``n_jobs`` or where the chains run.
+    n_jobs : int
+        Local worker processes (1: in this process); ignored on a cluster.
+    progress : bool
+        Show a progress bar.
+
+    Returns
+    -------
+    iterator of (dict, list)
+        :func:`run_chain`'s result for each chain, in chain order.
+    """
     from tqdm import tqdm
 
     bar = tqdm(total=len(children), desc="imputation chains", disable=not progress, leave=False)

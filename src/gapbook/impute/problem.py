@@ -70,6 +70,15 @@ def initial_design(problem: Problem) -> np.ndarray:
     the original scale), categories dummy-coded against their first observed level (a
     missing code is the reference). Cells to impute hold these starting values until the
     chain's first draw replaces them.
+
+    Parameters
+    ----------
+    problem : Problem
+        The prepared imputation problem.
+
+    Returns
+    -------
+    numpy.ndarray
     """
     design = np.zeros((problem.n_rows, problem.width), order="F")
     design[:, 0] = 1.0
@@ -84,5 +93,15 @@ def initial_design(problem: Problem) -> np.ndarray:
 
 
 def row_indices(n: int) -> np.dtype:
-    """The integer type of row indices for n rows: 32-bit where it suffices (half the memory of 64-bit)."""
+    """The integer type of row indices for n rows: 32-bit where it suffices (half the memory of 64-bit).
+
+    Parameters
+    ----------
+    n : int
+        The number of rows.
+
+    Returns
+    -------
+    numpy.dtype
+    """
     return np.dtype(np.int32) if n < 2 ** 31 else np.dtype(np.int64)
