@@ -15,11 +15,12 @@ import numpy as np
 from . import BACKGROUND, EMPHASIS, NEUTRAL, OBSERVED, REFERENCE
 from .palette import strategy_colour, strategy_marker
 from ..sensitivity import ALL_GROUPS, DeltaResult, StrategyAndDelta, rounded_delta
+from ..vocabulary import effect_scale
 
 __all__ = ["delta_curve", "analyses_side_by_side"]
 
 
-def delta_curve(result: DeltaResult, term: Optional[str] = None):
+def delta_curve(result: DeltaResult, term: Optional[str] = None, *, family: str):
     """Estimate and CI of one exposure term against delta, one panel per delta series.
 
     The null is a dashed line; the tipping point (when reached) a vertical line with its
@@ -31,6 +32,9 @@ def delta_curve(result: DeltaResult, term: Optional[str] = None):
         The delta-adjusted analyses.
     term : str, optional
         The exposure term; default the first.
+    family : str
+        The analysis model's family; the axis names the scale of the estimate (e.g. log odds
+        ratio for a binomial model), since the curves are on the model's coefficient scale.
 
     Returns
     -------
@@ -72,14 +76,14 @@ def delta_curve(result: DeltaResult, term: Optional[str] = None):
         shifted = f"{variable}" + ("" if group == ALL_GROUPS else f" in group {group}")
         ax.set_title(f"shift of imputed {shifted}", fontsize=10)
         ax.set_xlabel("delta (added to imputed values)")
-    axes[0][0].set_ylabel(f"{term} estimate")
+    axes[0][0].set_ylabel(f"{term}\n{effect_scale(family, exponentiated=False)}")
     axes[0][-1].legend(fontsize=8, loc="best", frameon=False)
     figure.suptitle("How far does the exposure effect move if missing values differ from the MAR imputation, "
                     "and where does the conclusion tip?", fontsize=11)
     return figure
 
 
-def analyses_side_by_side(comparison: StrategyAndDelta, term: Optional[str] = None):
+def analyses_side_by_side(comparison: StrategyAndDelta, term: Optional[str] = None, *, family: str):
     """Intervals of the exposure effect under every strategy and delta, top to bottom, with the null.
 
     Parameters
@@ -88,6 +92,9 @@ def analyses_side_by_side(comparison: StrategyAndDelta, term: Optional[str] = No
         The strategies' and the deltas' rows.
     term : str, optional
         The exposure term; default the first.
+    family : str
+        The analysis model's family; the axis names the scale of the estimate (e.g. log odds
+        ratio for a binomial model), since the curves are on the model's coefficient scale.
 
     Returns
     -------
@@ -113,6 +120,7 @@ def analyses_side_by_side(comparison: StrategyAndDelta, term: Optional[str] = No
         if conclusion != first:  # named in the emphasis colour, not only drawn in it
             label.set_color(EMPHASIS)
             label.set_fontweight("bold")
-    ax.set_xlabel(f"{term} estimate and interval (bold: conclusion differs from the first row)")
+    ax.set_xlabel(f"{term}, {effect_scale(family, exponentiated=False)}: estimate and interval "
+                  "(bold: conclusion differs from the first row)")
     ax.set_title("Does the conclusion change between the analyses?", fontsize=11)
     return figure

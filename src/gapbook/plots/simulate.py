@@ -14,11 +14,12 @@ import numpy as np
 from . import REFERENCE
 from .palette import strategy_colour, strategy_marker
 from ..simulate import SimulationResult
+from ..vocabulary import effect_scale
 
 __all__ = ["performance_panels"]
 
 
-def performance_panels(result: SimulationResult, term: Optional[str] = None, alpha: float = 0.05):
+def performance_panels(result: SimulationResult, term: Optional[str] = None, alpha: float = 0.05, *, family: str):
     """Bias (top) and coverage (bottom) per strategy, one column per mechanism, with +/- 2 Monte Carlo SEs.
 
     Parameters
@@ -29,6 +30,9 @@ def performance_panels(result: SimulationResult, term: Optional[str] = None, alp
         The exposure term; default the first.
     alpha : float
         One minus the nominal coverage.
+    family : str
+        The analysis model's family; the axis names the scale of the estimate (e.g. log odds
+        ratio for a binomial model), since bias is on the model's coefficient scale.
 
     Returns
     -------
@@ -59,7 +63,7 @@ def performance_panels(result: SimulationResult, term: Optional[str] = None, alp
             ax.set_xlim(-0.6, len(strategies) - 0.4)
         top.set_xticklabels([])
         bottom.set_xticklabels([s.replace("_", "\n") for s in strategies], fontsize=8)
-    axes[0][0].set_ylabel(f"bias of {term}")
+    axes[0][0].set_ylabel(f"bias of {term}\n({effect_scale(family, exponentiated=False)})")
     axes[1][0].set_ylabel(f"coverage of {int(round(100 * (1 - alpha)))}% CI (%)")
     figure.suptitle(f"In {result.n_replicates} simulated studies like this one, which strategy is biased and "
                     "which intervals cover the truth?\n(bars: 2 Monte Carlo SEs)", fontsize=11)
