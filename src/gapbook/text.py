@@ -41,6 +41,12 @@ _LINE_BREAKS = re.compile(r"[\r\n\t\v\f\x85\u2028\u2029]+")
 _INVISIBLE = re.compile("[\u202a-\u202e\u2066-\u2069\u200e\u200f\u061c\x00-\x08\x0b\x0c\x0e-\x1f\x7f-\x9f]")
 
 
+def _shown_as_escape(ch: str) -> str:
+    """A character written as its Python escape (``\\xNN`` below 256, else ``\\uNNNN``)."""
+    code = ord(ch)
+    return f"\\x{code:02x}" if code < 0x100 else f"\\u{code:04x}"
+
+
 def one_line(text: Any, limit: int = 0) -> str:
     """``text`` on one printable line: control and format characters shown as ``\\xNN``/``\\uNNNN``.
 
@@ -61,10 +67,8 @@ def one_line(text: Any, limit: int = 0) -> str:
     for ch in str(text):
         if ch.isprintable() or ch == " ":
             out.append(ch)
-        elif ord(ch) < 0x100:
-            out.append(f"\\x{ord(ch):02x}")
         else:
-            out.append(f"\\u{ord(ch):04x}")
+            out.append(_shown_as_escape(ch))
     flat = "".join(out)
     return flat if not limit or len(flat) <= limit else flat[: max(limit - 3, 0)] + "..."
 
@@ -83,11 +87,7 @@ def show_invisible(text: Any) -> str:
     -------
     str
     """
-    def visible(match: "re.Match[str]") -> str:
-        code = ord(match.group(0))
-        return f"\\x{code:02x}" if code < 0x100 else f"\\u{code:04x}"
-
-    return _INVISIBLE.sub(visible, str(text))
+    return _INVISIBLE.sub(lambda match: _shown_as_escape(match.group(0)), str(text))
 
 
 def html_escape(text: Any) -> str:
