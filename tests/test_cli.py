@@ -130,6 +130,10 @@ def test_run_audit_then_verify_and_tamper(study, gapbook_here):
                 "ended", "gapbook_version"):
         assert key in manifest
     assert manifest["data"]["sha256"] == before
+    # the versions that can change a number or where the work ran: the data engines and the cluster client too
+    from importlib import metadata
+    for package in ("numpy", "statsmodels", "pyarrow", "duckdb", "dask", "distributed"):
+        assert manifest["packages"][package] == metadata.version(package)
     for name in ("audit_variables", "audit_patterns"):
         assert (record / "tables" / f"{name}.csv").is_file()
     variables = pd.read_csv(record / "tables" / "audit_variables.csv")

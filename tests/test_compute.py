@@ -165,6 +165,10 @@ def test_imputation_sensitivity_and_simulation_on_a_cluster_are_byte_identical(c
             assert tables[key].to_csv().encode() == tables2[key].to_csv().encode(), key
     assert simulation.replicates.to_csv() == simulation2.replicates.to_csv()
     assert sensitivity.sentences == sensitivity2.sentences
+    # the page says where the replicates ran, and nothing else differs
+    assert "replicates run in 2 local worker process(es)" in simulation.sentences[0]
+    assert "replicates run in the Dask cluster's 2 worker thread(s)" in simulation2.sentences[0]
+    assert simulation.sentences[1:] == simulation2.sentences[1:]
 
 
 def test_run_says_where_work_goes_and_verify_reruns_here(tmp_path):

@@ -24,7 +24,7 @@ from typing import Any, Callable, Iterable, Iterator, List, Optional, Sequence
 from .errors import InputError
 
 __all__ = ["LOCAL", "check_cluster_address", "where_work_runs", "on_cluster", "iterate_tasks", "run_tasks",
-           "cluster_workers"]
+           "cluster_workers", "workers_phrase"]
 
 LOCAL = "local"
 CONNECT_TIMEOUT = 10  # seconds to reach the scheduler (or to see a worker) before the stage stops
@@ -140,6 +140,25 @@ def cluster_workers() -> int:
     """
     client = _CLIENT.get()
     return 0 if client is None else int(sum(client.nthreads().values()))
+
+
+def workers_phrase(n_jobs: int) -> str:
+    """Where the tasks of this context run, in words for a page: local workers, or the cluster's worker threads.
+
+    Parameters
+    ----------
+    n_jobs : int
+        The stage's setting for local worker processes (not used on a cluster).
+
+    Returns
+    -------
+    str
+        For example ``2 local worker process(es)`` or ``the Dask cluster's 8 worker thread(s)``.
+    """
+    client = _CLIENT.get()
+    if client is None:
+        return f"{n_jobs} local worker process(es)" if n_jobs > 1 else "one process (n_jobs = 1)"
+    return f"the Dask cluster's {cluster_workers()} worker thread(s)"
 
 
 def iterate_tasks(function: Callable[..., Any], tasks: Iterable[Sequence[Any]], *, n_jobs: int = 1,

@@ -38,8 +38,11 @@ __all__ = ["MANIFEST", "OWNER_FILE", "SOURCE_NOTEBOOKS", "record_name", "owned_b
            "Manifest", "build_manifest", "write_json", "read_manifest", "Check", "check_files",
            "check_params_agree", "compare_tables", "same_environment", "compare_figures"]
 
+# Every package whose version can change a number, a figure or how the work ran: the data engines
+# (pyarrow, duckdb) and the cluster client (dask, distributed) included.
 PACKAGES = ("numpy", "pandas", "scipy", "statsmodels", "matplotlib", "seaborn", "pydantic", "PyYAML", "joblib",
-            "papermill", "nbconvert", "nbformat", "nbclient", "ipykernel", "pyarrow", "openpyxl", "formulaic", "patsy")
+            "papermill", "nbconvert", "nbformat", "nbclient", "ipykernel", "pyarrow", "duckdb", "dask",
+            "distributed", "openpyxl", "formulaic", "patsy")
 MANIFEST = "manifest.json"
 MANIFEST_FORMAT = "gapbook-record/2"
 OWNER_FILE = ".gapbook-owner"  # pid of the process writing a partial record (removed on commit)

@@ -34,7 +34,7 @@ import numpy as np
 import pandas as pd
 from scipy import optimize, special
 
-from .compute import cluster_workers, iterate_tasks
+from .compute import cluster_workers, iterate_tasks, workers_phrase
 from .errors import AnalysisError, InputError, did_you_mean
 from .expressions import FORMULA_NAMESPACE, formula_environment
 from .models import AnalysisModel, exposure_terms
@@ -773,7 +773,7 @@ def simulate_study(data: pd.DataFrame, *, model: AnalysisModel, missing: Optiona
                             progress=progress)
     setup = (f"{replicates} replicates of {design.n:,} rows (covariates resampled from {len(design.pool):,} complete "
              f"covariate rows); MAR driven by {', '.join(design.mar_on)}; imputation inside the simulation: m = {m}, "
-             f"{SIMULATION_ITERATIONS} iterations; seed {seed}; {n_jobs} parallel worker(s).",
+             f"{SIMULATION_ITERATIONS} iterations; seed {seed}; replicates run in {workers_phrase(n_jobs)}.",
              "True value(s): " + ", ".join(f"{t} = {v:.4f}" for t, v in design.true_values.items())
              + f". Strategy fits that failed: {result.n_failed}.")
     return dataclasses.replace(result, sentences=setup + result.sentences)
