@@ -228,3 +228,17 @@ def test_bad_pooling_input(penguins):
     other = fit_model(penguins, formula="body_mass_g ~ flipper_length_mm")
     with pytest.raises(AnalysisError):
         pool_fits([fits[0], other])
+
+
+def test_a_term_missing_from_one_imputed_dataset_is_named_with_what_to_do(penguins):
+    # Rubin's rules pool one estimate per term over every imputed dataset (Rubin 1987), so a
+    # term that one completed dataset cannot estimate stops the pooling, naming the term.
+    frame = penguins.dropna(subset=["body_mass_g", "species", "flipper_length_mm"])
+    whole = fit_model(frame, formula="body_mass_g ~ species + flipper_length_mm")
+    without_chinstrap = fit_model(frame[frame["species"] != "Chinstrap"],
+                                  formula="body_mass_g ~ species + flipper_length_mm")
+    with pytest.raises(AnalysisError) as caught:
+        pool_fits([whole, without_chinstrap])
+    message = str(caught.value)
+    assert "imputed dataset 2 of 2" in message and "species[T.Chinstrap]" in message
+    assert "merge rare categories" in message

@@ -329,8 +329,9 @@ def pool_fits(fits: Sequence[ModelFit], *, strategy: str = STRATEGY) -> PooledRe
     for i, fit in enumerate(fits):
         if fit.terms != terms:
             extra = sorted(set(fit.terms) ^ set(terms))
-            raise AnalysisError(f"imputed dataset {i} gives different model terms ({', '.join(extra)}); a category "
-                                "is absent from some imputed datasets")
+            raise AnalysisError(f"imputed dataset {i + 1} of {len(fits)} lacks or adds model term(s) {', '.join(extra)} "
+                                "(a category empty there, or a column constant or aliased there, so Rubin's rules "
+                                "cannot pool it); merge rare categories of that variable or drop it from the formula")
     coefficients = np.vstack([f.coefficients for f in fits])
     covariances = np.stack([f.covariance for f in fits])
     # Barnard & Rubin's complete-data df: n - p for every family (for a GLM common practice, no source)
