@@ -259,3 +259,24 @@ def test_the_demo_follows_its_own_advice_on_the_number_of_imputations():
     assert params.imputation.m >= plan.advised_m() >= 20
     # The sensitivity stage keeps that m, so its delta = 0 rows are the imputation stage's estimate.
     assert params.sensitivity.m is None
+
+
+def test_a_conclusion_that_holds_is_said_in_the_panel_title_clear_of_the_curves():
+    # A panel whose grid never tips says so in its title; a panel that tips draws its tipping line instead.
+    from gapbook.plots.sensitivity import delta_curve
+
+    deltas = np.arange(0.0, 1.01, 0.5)
+    rows = [dict(term="x", variable="y", group=group, delta=d, estimate=-1.0 + slope * d,
+                 ci_lower=-1.5 + slope * d, ci_upper=-0.5 + slope * d, evaluated_by="grid")
+            for group, slope in (("a", 0.1), ("b", 2.0)) for d in deltas]
+    tips = pd.DataFrame([dict(variable="y", group="a", term="x", found=False, tipping_delta=np.nan,
+                              monte_carlo_se=np.nan),
+                         dict(variable="y", group="b", term="x", found=True, tipping_delta=0.25,
+                              monte_carlo_se=0.01)])
+    result = sensitivity.DeltaResult(curves=pd.DataFrame(rows), tipping_points=tips, series=(), terms=("x",),
+                                     alpha=0.05)
+    figure = delta_curve(result, family="gaussian")
+    titles = [ax.get_title() for ax in figure.axes]
+    assert titles[0].endswith("\nconclusion holds over the whole grid")
+    assert "holds" not in titles[1]
+    assert not any("whole grid" in t.get_text() for ax in figure.axes for t in ax.texts)

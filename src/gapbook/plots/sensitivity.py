@@ -61,6 +61,7 @@ def delta_curve(result: DeltaResult, term: Optional[str] = None, *, family: str)
         ax.axvline(0.0, color=NEUTRAL, lw=0.8, ls=":")
         tips = result.tipping_points[(result.tipping_points["variable"] == variable) & (result.tipping_points["group"] == group)
                               & (result.tipping_points["term"] == term)]
+        holds = False
         for tip in tips.itertuples():
             if tip.found:
                 ax.axvline(tip.tipping_delta, color=EMPHASIS, lw=1.4)
@@ -71,10 +72,11 @@ def delta_curve(result: DeltaResult, term: Optional[str] = None, *, family: str)
                             xycoords=("data", "axes fraction"), xytext=(-4, -4), textcoords="offset points",
                             ha="right", va="top", fontsize=8, color=EMPHASIS)
             else:
-                ax.text(0.02, 0.04, "conclusion holds over the whole grid", transform=ax.transAxes, fontsize=8,
-                        color=REFERENCE)
+                holds = True
         shifted = f"{variable}" + ("" if group == ALL_GROUPS else f" in group {group}")
-        ax.set_title(f"shift of imputed {shifted}", fontsize=10)
+        # said in the panel's title, where no curve, band or null line can run through it
+        ax.set_title(f"shift of imputed {shifted}" + ("\nconclusion holds over the whole grid" if holds else ""),
+                     fontsize=10)
         ax.set_xlabel("delta (added to imputed values)")
     axes[0][0].set_ylabel(f"{term}\n{effect_scale(family, exponentiated=False)}")
     axes[0][-1].legend(fontsize=8, loc="best", frameon=False)
