@@ -1,6 +1,6 @@
 """Speed of the mixed model for repeated measures and of reference-based multiple imputation.
 
-Design: the follow-up demo scenario (``gapbook.followup_demo``) scaled to 20,000
+Design: the follow-up demo scenario (``gapbook.followup.demo``) scaled to 20,000
 participants (10,000 per arm) x 6 visits, dropout depending on the last observed value
 and 3 % intermittent misses; model ``chg ~ arm * C(week) + base * C(week)`` (18 terms,
 21 covariance parameters). Targets: the mixed model fitted in under 10 s; jump-to-
@@ -27,10 +27,10 @@ import time
 import numpy as np
 from scipy import linalg, optimize, stats
 
-from gapbook.followup_demo import simulate_followup_trial
-from gapbook.mixed_model import _factor_from, _theta_from, fit_mixed_model
-from gapbook.repeated import repeated_outcome
-from gapbook.repeated_imputation import _rule_means, impute_repeated
+from gapbook.followup.demo import simulate_followup_trial
+from gapbook.followup.imputation import _rule_means, impute_repeated
+from gapbook.followup.mixed_model import _factor_from, _theta_from, fit_mixed_model
+from gapbook.followup.repeated import repeated_outcome
 
 WEEKS = (2, 4, 6, 8, 12, 16)
 SCENARIO = dict(weeks=WEEKS, control_mean=(-2.0, -3.0, -4.0, -5.0, -6.0, -6.5),
@@ -153,7 +153,7 @@ def main() -> None:
           "target < 10 s")
     theta = _theta_from(fit.sigma)
     _, one_plain = timed(plain_reml, theta, big.design, big.values)
-    from gapbook.mixed_model import _evaluate, _patterns
+    from gapbook.followup.mixed_model import _evaluate, _patterns
     scaled_patterns, build_time = timed(_patterns, big.design, big.values)
     _, one_ours = timed(_evaluate, scaled_patterns, fit.sigma, "reml", fit.n_observations)
     print(f"[mixed model, 20,000] one REML evaluation: plain {one_plain:.3f} s, gapbook {one_ours * 1000:.2f} ms "

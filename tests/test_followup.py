@@ -6,14 +6,14 @@ import pandas as pd
 import pytest
 
 from gapbook.errors import InputError
-from gapbook.followup import FOLLOWUP_STRATEGIES, analyse_followup
-from gapbook.followup_audit import audit_followup
-from gapbook.followup_comparisons import carry_last_observation_forward, completers
-from gapbook.followup_demo import simulate_followup_trial
-from gapbook.mixed_model import fit_mixed_model
+from gapbook.followup.analysis import FOLLOWUP_STRATEGIES, analyse_followup
+from gapbook.followup.audit import audit_followup
+from gapbook.followup.comparisons import carry_last_observation_forward, completers
+from gapbook.followup.demo import simulate_followup_trial
+from gapbook.followup.imputation import impute_repeated
+from gapbook.followup.mixed_model import fit_mixed_model
+from gapbook.followup.repeated import repeated_outcome
 from gapbook.plots import followup as plots
-from gapbook.repeated import repeated_outcome
-from gapbook.repeated_imputation import impute_repeated
 
 SETTINGS = dict(m=4, seed=12, burn_in=10, thin=2)
 

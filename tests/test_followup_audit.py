@@ -6,9 +6,9 @@ import pandas as pd
 import pytest
 from scipy import stats
 
-from gapbook.followup_audit import PATTERN_LABELS, audit_followup, classify_follow_up
-from gapbook.followup_demo import simulate_followup_trial
-from gapbook.repeated import repeated_outcome
+from gapbook.followup.audit import PATTERN_LABELS, audit_followup, classify_follow_up
+from gapbook.followup.demo import simulate_followup_trial
+from gapbook.followup.repeated import repeated_outcome
 
 # 1 = attended. Control: A, B, C, G; active: D, E, F, H (weeks 1-4).
 ATTENDED = {"A": [1, 1, 1, 1], "B": [1, 0, 0, 0], "C": [1, 0, 1, 1], "G": [1, 1, 1, 1],

@@ -9,7 +9,7 @@ import pytest
 
 from gapbook.cli import main
 from gapbook.errors import InputError
-from gapbook.followup_demo import followup_demo_files, followup_demo_frame
+from gapbook.followup.demo import followup_demo_files, followup_demo_frame
 from gapbook.params import Params, load_params
 
 HEADER = "subject,arm,base,week,chg\n"

@@ -10,8 +10,8 @@ import pandas as pd
 import pytest
 from conftest import record_path, run_gapbook
 
-from gapbook.estimand import describe_estimand
-from gapbook.followup_demo import EFFECT, followup_demo_files, followup_demo_params
+from gapbook.followup.demo import EFFECT, followup_demo_files, followup_demo_params
+from gapbook.followup.estimand import describe_estimand
 from gapbook.pipeline import FOLLOWUP_STAGES, PARTICIPANT_ROW_STAGES, STAGES, resolve_stages
 from gapbook.stage import open_stage
 from gapbook.vocabulary import FOLLOWUP_STRATEGY_NAMES
@@ -66,7 +66,7 @@ def test_visit_effects_and_the_headline_rows_in_estimates(stage_run):
     last = effects[effects["visit"] == 16].reset_index(drop=True)
     np.testing.assert_allclose(estimates["estimate"], last["estimate"], rtol=1e-9)
     np.testing.assert_allclose(estimates["ci_upper"], last["ci_upper"], rtol=1e-9)
-    # the mixed model recovers the demo's true week-16 effect (-4; followup_demo docstring) within its interval
+    # the mixed model recovers the demo's true week-16 effect (-4; gapbook.followup.demo docstring) within its interval
     mixed = estimates.set_index("strategy").loc["mixed_model"]
     assert mixed["ci_lower"] < EFFECT[-1] < mixed["ci_upper"]
     assert analysis.effect_grid().shape == (len(FOLLOWUP_STRATEGY_NAMES), 5)
@@ -78,7 +78,7 @@ def test_the_params_choose_strategies_method_reference_and_delta(tmp_path):
     analysis = open_stage(params, str(tmp_path)).followup()
     assert analysis.strategies() == ("mixed_model", "completers")
     reml = open_stage(followup_demo_params().to_dict(), str(tmp_path)).repeated_outcome
-    from gapbook.mixed_model import fit_mixed_model
+    from gapbook.followup.mixed_model import fit_mixed_model
 
     # ML and REML give the same means with complete balance only; here the SEs differ: the method reached the model
     by_ml = fit_mixed_model(reml, method="ml").visit_effects()
@@ -179,7 +179,7 @@ def test_the_wide_layout_gives_the_same_mixed_model_as_the_long(tmp_path):
     long_ctx = open_stage(str(params_path), str(tmp_path / "l"))
     a, b = wide_ctx.repeated_outcome, long_ctx.repeated_outcome
     np.testing.assert_array_equal(a.values, b.values)
-    from gapbook.mixed_model import fit_mixed_model
+    from gapbook.followup.mixed_model import fit_mixed_model
 
     pd.testing.assert_frame_equal(fit_mixed_model(a).visit_effects(), fit_mixed_model(b).visit_effects())
     # the reasons of the wide cells reach the follow-up audit as they do from the long file
@@ -189,7 +189,7 @@ def test_the_wide_layout_gives_the_same_mixed_model_as_the_long(tmp_path):
 
 def test_user_text_in_the_drafted_followup_text_is_shown_literally():
     # DESIGN.md security: user text on a page is text, never markup (text.md_escape for Markdown).
-    from gapbook.followup_report import draft_followup_methods
+    from gapbook.followup.report import draft_followup_methods
 
     hostile = "<script>alert(1)</script> ![x](http://example.invalid/x.png)"
     described = describe_estimand(population=hostile, intercurrent_events=[(hostile, "hypothetical")],

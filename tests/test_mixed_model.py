@@ -24,12 +24,12 @@ from scipy import optimize, stats
 from statsmodels.regression import tests as regression_tests
 from pathlib import Path
 
-from gapbook import mixed_model as mm
 from gapbook.errors import AnalysisError
-from gapbook.followup_comparisons import comparison_effects
-from gapbook.followup_demo import simulate_followup_trial
+from gapbook.followup import mixed_model as mm
+from gapbook.followup.comparisons import comparison_effects
+from gapbook.followup.demo import simulate_followup_trial
+from gapbook.followup.repeated import repeated_outcome
 from gapbook.little import em_multivariate_normal
-from gapbook.repeated import repeated_outcome
 from test_mechanism import anderson_estimates, monotone_bivariate
 
 DIETOX = Path(regression_tests.__file__).parent / "results" / "dietox.csv"

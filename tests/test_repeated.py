@@ -8,7 +8,7 @@ import statsmodels.formula.api as smf
 
 from gapbook.errors import InputError
 from gapbook.little import pattern_rows
-from gapbook.repeated import last_observed_index, repeated_outcome, wide_to_long
+from gapbook.followup.repeated import last_observed_index, repeated_outcome, wide_to_long
 
 FORMULA = "y ~ arm * C(week) + base"
 

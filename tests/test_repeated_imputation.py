@@ -20,12 +20,12 @@ import pytest
 import statsmodels.api as sm
 from scipy import stats
 
-from gapbook import repeated_imputation as ri
 from gapbook.errors import InputError
-from gapbook.followup_demo import simulate_followup_trial
+from gapbook.followup import imputation as ri
+from gapbook.followup.demo import simulate_followup_trial
+from gapbook.followup.mixed_model import fit_mixed_model
+from gapbook.followup.repeated import repeated_outcome
 from gapbook.little import em_multivariate_normal
-from gapbook.mixed_model import fit_mixed_model
-from gapbook.repeated import repeated_outcome
 from gapbook.vocabulary import INFORMATION_ANCHORING, REFERENCE_BASED_VARIANCE
 
 FORMULA = "chg ~ arm * C(week) + base * C(week)"

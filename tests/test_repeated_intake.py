@@ -6,7 +6,7 @@ import pandas as pd
 import pytest
 
 from gapbook.errors import InputError
-from gapbook.repeated_intake import NO_RECORD, repeated_study
+from gapbook.followup.intake import NO_RECORD, repeated_study
 
 VISITS = [0, 4, 8]
 FORMULA = "y ~ arm * C(week) + base"

@@ -11,9 +11,9 @@ from gapbook.audit import AuditResult
 from gapbook.cases import AvailableCaseSummary, CompleteCaseResult, CompletenessBaseline, StrategyComparison
 from gapbook.demo import demo_params
 from gapbook.errors import InputError
-from gapbook.estimand import EstimandDescription
-from gapbook.followup import FollowupAnalysis
-from gapbook.followup_audit import FollowupAudit
+from gapbook.followup.analysis import FollowupAnalysis
+from gapbook.followup.audit import FollowupAudit
+from gapbook.followup.estimand import EstimandDescription
 from gapbook.impute import ChainedImputation, ImputationPlan
 from gapbook.indicator import MissingCategoryResult
 from gapbook.little import LittleTest

@@ -48,7 +48,7 @@ DEMO_STUDIES = ("trial", "followup")  # the one-visit trial; the follow-up trial
 
 def cmd_demo(args: argparse.Namespace) -> int:
     from .demo import demo_params
-    from .followup_demo import followup_demo_params
+    from .followup.demo import followup_demo_params
 
     return _run_and_print(followup_demo_params() if args.study == "followup" else demo_params(), args)
 

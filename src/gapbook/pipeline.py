@@ -269,7 +269,7 @@ def check_followup_up_front(params: Params, study: Any, stages: Sequence[str]) -
     changes after baseline, a formula that cannot be built on the visit grid, and options
     the imputation strategies cannot run with. Returns a note describing the design for ``check``.
     """
-    from .repeated import label
+    from .followup.repeated import label
     from .stage import repeated_design, repeated_model_data
 
     repeated = repeated_design(params, study)

@@ -40,6 +40,11 @@ from .vocabulary import cautions, strategy_rank
 if TYPE_CHECKING:  # the stage modules are imported where a stage is run, not when this module loads
     from .audit import AuditResult
     from .cases import AvailableCaseSummary, CompleteCaseResult, CompletenessBaseline, StrategyComparison
+    from .followup.analysis import FollowupAnalysis
+    from .followup.audit import FollowupAudit
+    from .followup.estimand import EstimandDescription
+    from .followup.intake import RepeatedStudy
+    from .followup.repeated import RepeatedOutcome
     from .impute import ChainedImputation, ImputationPlan
     from .indicator import MissingCategoryResult
     from .mechanism import MechanismResult
@@ -48,11 +53,6 @@ if TYPE_CHECKING:  # the stage modules are imported where a stage is run, not wh
     from .report import RecordSuppression, ReportSummary
     from .sensitivity import DeltaSeries, SensitivityResult
     from .simulate import SimulationResult
-    from .estimand import EstimandDescription
-    from .followup import FollowupAnalysis
-    from .followup_audit import FollowupAudit
-    from .repeated import RepeatedOutcome
-    from .repeated_intake import RepeatedStudy
     from .survival import EventCoding
     from .time_to_event import TimeToEventAudit, TimeToEventMechanism
 
@@ -224,7 +224,7 @@ def repeated_design(params: Params, study: Study) -> "RepeatedStudy":
     RepeatedStudy
         One row per participant per planned visit.
     """
-    from .repeated_intake import repeated_study
+    from .followup.intake import repeated_study
 
     design = params.design
     if design is None:
@@ -274,7 +274,7 @@ def repeated_model_data(params: Params, repeated: "RepeatedStudy", data_label: s
                          "randomised arm) for the follow-up analyses")
     reference = section.repeated.reference if section.repeated is not None else None
     if reference is not None and _level(outcome.levels, reference) is None:
-        from .repeated import label
+        from .followup.repeated import label
 
         raise InputError(f"{params.label}: analysis.repeated.reference '{reference}' is not a level of "
                          f"{section.exposure} ({', '.join(map(label, outcome.levels))})")
@@ -282,7 +282,7 @@ def repeated_model_data(params: Params, repeated: "RepeatedStudy", data_label: s
 
 
 def _level(levels: Sequence[Any], wanted: Any) -> Any:
-    from .repeated import label
+    from .followup.repeated import label
 
     for level in levels:
         if label(level) == label(wanted):
@@ -435,7 +435,7 @@ class StageContext:
 
         Needs ``analysis.formula`` and ``analysis.exposure`` (the outcome and the arms).
         """
-        from .followup_audit import audit_followup
+        from .followup.audit import audit_followup
 
         if not self.params.is_followup or not self.params.analysis.formula:
             return None
@@ -445,7 +445,7 @@ class StageContext:
 
     def estimand(self, analyses: Sequence[str] = ()) -> Optional["EstimandDescription"]:
         """The ``estimand`` section as a table, with which of ``analyses`` targets each intercurrent event; None without one."""
-        from .estimand import describe_estimand
+        from .followup.estimand import describe_estimand
 
         section = self.params.estimand
         if section is None:
@@ -458,7 +458,7 @@ class StageContext:
 
     def followup(self) -> Optional["FollowupAnalysis"]:
         """Every follow-up strategy side by side (``analysis.repeated``, ``imputation.m``/``seed``); None without a design."""
-        from .followup import DEFAULT_STRATEGIES, analyse_followup
+        from .followup.analysis import DEFAULT_STRATEGIES, analyse_followup
         from .vocabulary import FOLLOWUP_STRATEGY_NAMES
 
         if not self.params.is_followup:
@@ -661,8 +661,8 @@ class StageContext:
 
     def followup_report(self) -> "ReportSummary":
         """The summary page of a follow-up study: participants through the visits, the estimand, every strategy."""
-        from .followup_report import FOLLOWUP_REPORT_TABLES, summarise_followup
-        from .repeated import label
+        from .followup.repeated import label
+        from .followup.report import FOLLOWUP_REPORT_TABLES, summarise_followup
         from .report import missing_summary
 
         params = self.params

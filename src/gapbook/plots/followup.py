@@ -17,11 +17,11 @@ import numpy as np
 from matplotlib import pyplot as plt
 
 from . import BACKGROUND, NEUTRAL, REFERENCE, new_figure
+from ..followup.analysis import FollowupAnalysis
+from ..followup.audit import FollowupAudit
+from ..followup.comparisons import COMPLETERS, LAST_OBSERVATION
+from ..followup.repeated import label
 from .palette import GROUPS, strategy_colour, strategy_marker
-from ..followup import FollowupAnalysis
-from ..followup_audit import FollowupAudit
-from ..followup_comparisons import COMPLETERS, LAST_OBSERVATION
-from ..repeated import label
 
 __all__ = ["plot_retention", "plot_completeness", "plot_profiles", "plot_means", "plot_last_visit_effects"]
 

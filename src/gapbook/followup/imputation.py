@@ -44,13 +44,13 @@ import numpy as np
 import pandas as pd
 from scipy import linalg, stats
 
-from .errors import AnalysisError, InputError, did_you_mean
-from .inference import wald_inference
+from ..errors import AnalysisError, InputError, did_you_mean
+from ..inference import wald_inference
+from ..little import pattern_rows
+from ..pool import rubin_pool
+from ..vocabulary import INFORMATION_ANCHORING, REFERENCE_BASED_VARIANCE
 from .mixed_model import VISIT_EFFECT_COLUMNS, design_crossproducts, fit_mixed_model
-from .pool import rubin_pool
-from .little import pattern_rows
 from .repeated import RepeatedOutcome, label
-from .vocabulary import INFORMATION_ANCHORING, REFERENCE_BASED_VARIANCE
 
 __all__ = ["RULE_STRATEGY", "DELTA_STRATEGY", "draw_group_parameters", "draw_posteriors", "impute_repeated"]
 

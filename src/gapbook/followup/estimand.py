@@ -18,8 +18,8 @@ from typing import Callable, Dict, Optional, Sequence, Tuple
 
 import pandas as pd
 
-from .errors import InputError
-from .vocabulary import INTERCURRENT_STRATEGIES, NOT_RECOMMENDED_STRATEGIES, STRATEGY_PHRASES
+from ..errors import InputError
+from ..vocabulary import INTERCURRENT_STRATEGIES, NOT_RECOMMENDED_STRATEGIES, STRATEGY_PHRASES
 
 __all__ = ["ESTIMAND_COLUMNS", "EstimandDescription", "describe_estimand", "estimand_sentences"]
 

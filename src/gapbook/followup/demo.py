@@ -39,7 +39,7 @@ import pandas as pd
 from scipy.special import expit
 
 if TYPE_CHECKING:
-    from .params import Params
+    from ..params import Params
 
 __all__ = ["EFFECT", "FollowupTrial", "simulate_followup_trial", "followup_demo_frame",
            "followup_demo_files", "followup_demo_params"]
@@ -204,6 +204,6 @@ def followup_demo_params() -> "Params":
     Params
         The validated params of the follow-up demo.
     """
-    from .params import load_params
+    from ..params import load_params
 
     return load_params(followup_demo_files()[1])

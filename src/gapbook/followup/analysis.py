@@ -20,14 +20,14 @@ from typing import Any, Dict, Optional, Sequence, Tuple, Union
 import numpy as np
 import pandas as pd
 
-from .errors import InputError, did_you_mean
-from .followup_comparisons import (COMPLETERS, LAST_OBSERVATION, NOT_RECOMMENDED, carry_last_observation_forward,
+from ..errors import InputError, did_you_mean
+from ..vocabulary import FOLLOWUP_STRATEGY_NAMES, INFORMATION_ANCHORING, REFERENCE_BASED_VARIANCE
+from .comparisons import (COMPLETERS, LAST_OBSERVATION, NOT_RECOMMENDED, carry_last_observation_forward,
                                    completers)
+from .imputation import DELTA_STRATEGY, RULE_STRATEGY, draw_posteriors, impute_repeated
 from .mixed_model import STRATEGY as MIXED_MODEL
 from .mixed_model import VISIT_EFFECT_COLUMNS, MixedModelFit, fit_mixed_model
 from .repeated import RepeatedOutcome, label
-from .repeated_imputation import DELTA_STRATEGY, RULE_STRATEGY, draw_posteriors, impute_repeated
-from .vocabulary import FOLLOWUP_STRATEGY_NAMES, INFORMATION_ANCHORING, REFERENCE_BASED_VARIANCE
 
 __all__ = ["FOLLOWUP_STRATEGIES", "FollowupAnalysis", "analyse_followup"]
 

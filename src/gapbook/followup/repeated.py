@@ -22,9 +22,9 @@ from typing import Any, Dict, Optional, Sequence, Tuple
 import numpy as np
 import pandas as pd
 
-from .errors import AnalysisError, InputError, did_you_mean
-from .expressions import formula_environment
-from .models import check_formula, exposure_terms
+from ..errors import AnalysisError, InputError, did_you_mean
+from ..expressions import formula_environment
+from ..models import check_formula, exposure_terms
 
 __all__ = ["label", "last_observed_index", "RepeatedOutcome", "repeated_outcome", "wide_to_long"]
 

@@ -24,8 +24,8 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
+from ..vocabulary import REASON_NOT_GIVEN
 from .repeated import RepeatedOutcome, last_observed_index
-from .vocabulary import REASON_NOT_GIVEN
 
 __all__ = ["PATTERN_LABELS", "classify_follow_up", "FollowupAudit", "audit_followup"]
 

@@ -21,9 +21,9 @@ from typing import Any, Optional, Sequence, Tuple
 import numpy as np
 import pandas as pd
 
-from .errors import InputError, did_you_mean
+from ..errors import InputError, did_you_mean
+from ..vocabulary import LAYOUTS, NO_RECORD
 from .repeated import RepeatedOutcome, label, repeated_outcome, wide_to_long
-from .vocabulary import LAYOUTS, NO_RECORD
 
 __all__ = ["repeated_study"]
 

@@ -15,10 +15,10 @@ from typing import Dict
 import numpy as np
 import pandas as pd
 
-from .errors import AnalysisError
+from ..errors import AnalysisError
+from ..vocabulary import COMPLETERS_CAUTION, LAST_OBSERVATION_CAUTION
 from .mixed_model import fit_mixed_model
 from .repeated import RepeatedOutcome, label
-from .vocabulary import COMPLETERS_CAUTION, LAST_OBSERVATION_CAUTION
 
 __all__ = ["COMPLETERS", "LAST_OBSERVATION", "NOT_RECOMMENDED", "completers", "carry_last_observation_forward",
            "comparison_effects"]

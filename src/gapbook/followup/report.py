@@ -16,12 +16,12 @@ from typing import Dict, List, Mapping, Optional, Sequence, Tuple
 import numpy as np
 import pandas as pd
 
-from .estimand import EstimandDescription, estimand_sentences
-from .inference import format_p
-from .report import Checklist, ChecklistItem, MissingSummary, ParticipantFlow, ReportSummary, effect_phrase
-from .text import md_code, md_escape
-from .vocabulary import (INFORMATION_ANCHORING, INTERCURRENT_STRATEGIES, NOT_RECOMMENDED_STRATEGIES,
+from ..inference import format_p
+from ..report import Checklist, ChecklistItem, MissingSummary, ParticipantFlow, ReportSummary, effect_phrase
+from ..text import md_code, md_escape
+from ..vocabulary import (INFORMATION_ANCHORING, INTERCURRENT_STRATEGIES, NOT_RECOMMENDED_STRATEGIES,
                          REFERENCE_BASED_VARIANCE, STRATEGY_PHRASES, cautions as page_cautions)
+from .estimand import EstimandDescription, estimand_sentences
 
 FOLLOWUP_REPORT_TABLES: Tuple[str, ...] = (
     "followup_completeness", "followup_patterns", "followup_retention_test", "followup_stopping_reasons",

@@ -35,9 +35,9 @@ import numpy as np
 import pandas as pd
 from scipy import linalg, optimize
 
-from .errors import AnalysisError, InputError
-from .inference import wald_inference
-from .little import pattern_rows
+from ..errors import AnalysisError, InputError
+from ..inference import wald_inference
+from ..little import pattern_rows
 from .repeated import RepeatedOutcome, label
 
 __all__ = ["STRATEGY", "design_crossproducts", "MixedModelFit", "VISIT_EFFECT_COLUMNS", "fit_mixed_model"]
