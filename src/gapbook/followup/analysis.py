@@ -137,7 +137,7 @@ def analyse_followup(outcome: RepeatedOutcome, *, strategies: Sequence[str] = DE
 
     Parameters
     ----------
-    outcome : repeated-measures data (see :func:`gapbook.repeated.repeated_outcome`).
+    outcome : repeated-measures data (see :func:`gapbook.followup.repeated.repeated_outcome`).
     strategies : which of FOLLOWUP_STRATEGIES to run (``delta_adjusted`` needs ``delta``).
     m, seed, burn_in, thin : imputation settings (one set of posterior draws serves every rule).
     reference : the reference group of the reference-based rules (default the exposure's first level).

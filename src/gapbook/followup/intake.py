@@ -11,7 +11,7 @@ Intake (``gapbook.intake``) has already turned markers into missing values with 
 checks what only a follow-up design can get wrong, each an input error naming the subject
 and the visit: a row without subject or visit, a visit not in the plan, two rows for one
 visit. (An exposure that changes within a participant is refused when the model is built,
-:func:`gapbook.repeated.repeated_outcome`, also naming subject and visit.)
+:func:`gapbook.followup.repeated.repeated_outcome`, also naming subject and visit.)
 """
 from __future__ import annotations
 

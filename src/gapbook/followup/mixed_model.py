@@ -413,7 +413,7 @@ def fit_mixed_model(outcome: RepeatedOutcome, *, method: str = "reml", alpha: fl
 
     Parameters
     ----------
-    outcome : the repeated-measures data (see :func:`gapbook.repeated.repeated_outcome`).
+    outcome : the repeated-measures data (see :func:`gapbook.followup.repeated.repeated_outcome`).
     method : ``"reml"`` (restricted maximum likelihood, the default) or ``"ml"``.
     alpha : 1 - confidence level of the intervals.
     tolerance : convergence when the gradient, scaled by the information, is below this.

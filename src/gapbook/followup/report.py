@@ -329,7 +329,7 @@ def summarise_followup(*, tables: Mapping[str, Optional[pd.DataFrame]], missing:
     formula, exposure, visits, method : the long-format model, the arm, the analysed visits, reml or ml.
     m, seed, reference, delta : the imputation settings the text reports.
     alpha : 1 - confidence level.
-    estimand : the estimand block (:func:`gapbook.estimand.describe_estimand`), or None.
+    estimand : the estimand block (:func:`gapbook.followup.estimand.describe_estimand`), or None.
 
     Returns
     -------
