@@ -162,10 +162,14 @@ def test_whitespace_is_what_python_strips():
     assert set(WHITESPACE) == {chr(c) for c in range(sys.maxunicode + 1) if chr(c).isspace()}
 
 
-def test_medians_and_mad_in_sql_equal_numpy(tmp_path):
-    # Source: numpy.median (the pandas path's robust screen uses it); ties, even and odd counts,
-    # a window that misses (a one-value reservoir cannot bracket the middle) and too few values.
+@pytest.mark.parametrize("sample", [100_000, 40, 0])
+def test_medians_and_mad_in_sql_equal_numpy(tmp_path, monkeypatch, sample):
+    # Source: numpy.median (the pandas path's robust screen uses it); ties, even and odd counts and
+    # too few values. The sample only places the windows: every row is sampled at 100,000, a few at
+    # 40 (windows that often miss the middle), none at 0 (every value read); the result is the same.
     import duckdb
+    import gapbook.intake_duckdb as engine_module
+    monkeypatch.setattr(engine_module, "_SAMPLE", sample)
     rng = np.random.default_rng(11)
     columns = {
         "ties": rng.integers(0, 5, 1001).astype(float),
