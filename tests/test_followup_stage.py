@@ -14,7 +14,7 @@ from gapbook.followup.demo import EFFECT, followup_demo_files, followup_demo_par
 from gapbook.followup.estimand import describe_estimand
 from gapbook.pipeline import FOLLOWUP_STAGES, PARTICIPANT_ROW_STAGES, STAGES, resolve_stages
 from gapbook.stage import open_stage
-from gapbook.vocabulary import FOLLOWUP_STRATEGY_NAMES
+from gapbook.vocabulary import FOLLOWUP_STRATEGY_NAMES, NO_RECORD
 
 VISIT_EFFECT_COLUMNS = ["strategy", "visit", "term", "estimate", "std_error", "ci_lower", "ci_upper", "p_value", "df",
                         "n_used"]
@@ -156,8 +156,8 @@ def test_small_counts_of_the_followup_tables_are_masked_but_not_their_visits():
     assert list(masked["followup_stopping_reasons"]["n"]) == ["<5", 9]
 
 
-def test_the_wide_layout_gives_the_same_mixed_model_as_the_long(tmp_path):
-    # The same trial laid out one row per participant (one chg column per week) must give the same analysis.
+def _wide_copy_of_the_demo(tmp_path):
+    """The demo trial laid out one row per participant (one chg column per week) by pandas' pivot; its params path."""
     csv, params_path = followup_demo_files()
     long = pd.read_csv(csv, dtype=str)
     wide = long.pivot(index="subject", columns="week", values="chg")
@@ -175,6 +175,13 @@ def test_the_wide_layout_gives_the_same_mixed_model_as_the_long(tmp_path):
     text = text.replace("  chg:   {type: continuous", "  chg_w16: {type: continuous")
     text = text.replace("path: wide.csv", "path: wide.csv\n  id: subject")
     (tmp_path / "params.yaml").write_text(text)
+    return tmp_path / "params.yaml"
+
+
+def test_the_wide_layout_gives_the_same_mixed_model_as_the_long(tmp_path):
+    # The same trial laid out one row per participant (one chg column per week) must give the same analysis.
+    _, params_path = followup_demo_files()
+    _wide_copy_of_the_demo(tmp_path)
     wide_ctx = open_stage(str(tmp_path / "params.yaml"), str(tmp_path / "w"))
     long_ctx = open_stage(str(params_path), str(tmp_path / "l"))
     a, b = wide_ctx.repeated_outcome, long_ctx.repeated_outcome
@@ -185,6 +192,31 @@ def test_the_wide_layout_gives_the_same_mixed_model_as_the_long(tmp_path):
     # the reasons of the wide cells reach the follow-up audit as they do from the long file
     audit_wide, audit_long = wide_ctx.followup_audit(), long_ctx.followup_audit()
     pd.testing.assert_frame_equal(audit_wide.completeness, audit_long.completeness)
+
+
+def test_the_mechanism_stage_sees_a_long_file_one_row_per_participant(tmp_path):
+    # Little's test (Little 1988, JASA 83:1198) and the group comparisons assume independent rows. On a long
+    # file they run one row per participant, the outcome one column per visit; the reference is the same
+    # trial laid out wide by pandas' pivot, which the mechanism stage reads one row per participant as it is.
+    csv, params_path = followup_demo_files()
+    raw = pd.read_csv(csv)
+    long_ctx = open_stage(str(params_path), str(tmp_path / "l"))
+    wide_ctx = open_stage(str(_wide_copy_of_the_demo(tmp_path)), str(tmp_path / "w"))
+    long_result, wide_result = long_ctx.mechanism(), wide_ctx.mechanism()
+    a, b = long_result.mcar.as_row().iloc[0], wide_result.mcar.as_row().iloc[0]
+    assert int(a["n_rows"]) == raw["subject"].nunique() == int(b["n_rows"])
+    for key in ("statistic", "df", "p_value", "n_patterns"):
+        assert a[key] == pytest.approx(b[key], rel=1e-9), key
+    assert "chg @ 16" in a["variables"].split(",")
+    assert long_result.sentences[0].startswith(f"One row per participant ({raw['subject'].nunique()})")
+    # a planned visit with no row is missing with its own reason (pandas counts the absent subject-visit pairs)
+    study, _ = long_ctx.participant_study()
+    absent = raw["subject"].nunique() - int((raw["week"] == 16).sum())
+    assert int((study.reasons["chg @ 16"] == NO_RECORD).sum()) == absent
+    assert study.data["arm"].dtype == long_ctx.study.data["arm"].dtype  # a category keeps its levels
+    # mechanism.variables names the outcome once for all its visit columns
+    _, chosen = long_ctx.participant_study(["base", "chg"])
+    assert chosen == ("base", "chg @ 2", "chg @ 4", "chg @ 8", "chg @ 12", "chg @ 16")
 
 
 def test_user_text_in_the_drafted_followup_text_is_shown_literally():

@@ -546,10 +546,34 @@ class StageContext:
         from .mechanism import assess_study
 
         section = self.params.mechanism
+        study, variables = self.study, section.variables
+        if self.is_followup and self.params.design.layout == "long":
+            study, variables = self.participant_study(variables)
         with params_errors(self.params, "mechanism"):
-            return assess_study(self.study, variables=section.variables, alpha=section.alpha,
-                                min_missing=section.min_missing, em_tolerance=section.em_tolerance,
-                                em_max_iterations=section.em_max_iterations)
+            result = assess_study(study, variables=variables, alpha=section.alpha,
+                                  min_missing=section.min_missing, em_tolerance=section.em_tolerance,
+                                  em_max_iterations=section.em_max_iterations)
+        return dataclasses.replace(result, sentences=study.notes + result.sentences) if study.notes else result
+
+    def participant_study(self, variables: Optional[Sequence[str]] = None
+                          ) -> Tuple["Study", Optional[Tuple[str, ...]]]:
+        """A long follow-up file one row per participant (variables that change over visits once per visit).
+
+        Returns the participant-level study and ``mechanism.variables`` in its names (a variable
+        spread over the visits stands for all its visit columns).
+        """
+        from .followup.participants import participant_study
+
+        outcome = _outcome_name(self.params) if self.params.analysis.formula else None
+        with params_errors(self.params, "design"):
+            study = participant_study(self.repeated, self.study, time_varying=(outcome,) if outcome else ())
+        if variables is None:
+            return study, None
+        chosen = []
+        for name in variables:
+            spread = [c for c in study.data.columns if c.startswith(f"{name} @ ")]
+            chosen.extend(spread if name not in study.data.columns and spread else [name])
+        return study, tuple(chosen)
 
     def complete_cases(self) -> "CompleteCaseResult":
         """The analysis model on the complete cases."""
