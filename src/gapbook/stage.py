@@ -547,7 +547,7 @@ class StageContext:
 
         section = self.params.mechanism
         study, variables = self.study, section.variables
-        if self.is_followup and self.params.design.layout == "long":
+        if self.params.is_followup and self.params.design.layout == "long":
             study, variables = self.participant_study(variables)
         with params_errors(self.params, "mechanism"):
             result = assess_study(study, variables=variables, alpha=section.alpha,
