@@ -63,6 +63,7 @@ analysis:
   exposure: arm
 imputation: {m: 5, iterations: 5}
 sensitivity: {m: 2}
+simulation: {replicates: 4, m: 2}
 """
 
 
@@ -228,13 +229,11 @@ def test_check_refuses_an_inconsistent_time_to_event_model(tmp_path, capsys, ana
     assert needle in one_line(capsys, ["check", write_study(tmp_path, params=text)])
 
 
-def test_check_skips_the_stages_not_built_for_cox_with_a_reason(tmp_path):
+def test_check_plans_every_participant_stage_for_cox(tmp_path):
     lines = []
     plan = preflight(load_params(write_study(tmp_path)), log=lines.append)
-    assert plan.stages == ("audit", "mechanism", "cases", "indicator", "impute", "sensitivity", "report")
-    assert any(line.startswith("skipped: simulate (family cox:") for line in lines)
-    with pytest.raises(InputError, match="stage 'simulate' does not run with family cox"):
-        preflight(load_params(write_study(tmp_path)), only=["simulate"])
+    assert plan.stages == ("audit", "mechanism", "cases", "indicator", "impute", "sensitivity", "simulate", "report")
+    assert not any("family cox" in line for line in lines)
 
 
 # ---------------------------------------------------------------------------
@@ -278,8 +277,9 @@ def test_a_cox_study_runs_end_to_end(tmp_path):
     params = write_study(tmp_path / "study")
     result = run_gapbook("run", params, "--out", tmp_path / "records", cwd=tmp_path / "study")
     record = record_path(result)
-    assert "skipped: simulate (family cox" in result.stdout + result.stderr
     tables = record / "tables"
+    performance = pd.read_csv(tables / "simulation_performance.csv")
+    assert set(performance["mechanism"]) == {"MCAR", "MAR", "MNAR"} and (performance["n_rep"] == 4).all()
     estimates = pd.read_csv(tables / "estimates.csv")
     assert set(estimates["strategy"]) == {"complete_case", "missing_category", "multiple_imputation"}
     assert estimates["exp_estimate"].notna().all()
@@ -292,5 +292,5 @@ def test_a_cox_study_runs_end_to_end(tmp_path):
     assert audit.loc["all", "n_time_missing"] == 2 and audit.loc["all", "n_event_missing"] == 3
     assert (tables / "mechanism_time_to_event.csv").is_file()
     assert pd.read_csv(tables / "sensitivity_delta.csv")["variable"].eq("age").all()  # the most incomplete covariate
-    for figure in ("strategy_comparison", "survival_by_exposure"):
+    for figure in ("strategy_comparison", "survival_by_exposure", "simulation_performance"):
         assert (record / "figures" / f"{figure}.png").is_file()

@@ -50,11 +50,7 @@ MODEL_STAGES = frozenset({"cases", "indicator", "followup", "impute", "sensitivi
 PARTICIPANT_ROW_STAGES = frozenset({"cases", "indicator", "impute", "sensitivity", "simulate"})
 FOLLOWUP_STAGES = frozenset({"followup"})
 # Stages that cannot yet handle a model family, and why (skipped with that sentence, never run half-way).
-FAMILY_GAPS: Dict[str, Dict[str, str]] = {
-    "cox": {
-        "simulate": "simulating follow-up times and censoring is not yet built for a Cox model",
-    },
-}
+FAMILY_GAPS: Dict[str, Dict[str, str]] = {}
 CLUSTER_STAGES = ("impute", "sensitivity", "simulate")  # their parallel tasks run where compute.cluster says
 KIT, STUDY, RECORD = "kit", "study", "record"
 

@@ -11,6 +11,12 @@ three mechanisms:
 - MNAR: the chance depends on the variable's own value (for the outcome: higher
   outcomes are more often missing).
 
+For a time-to-event (Cox) model the outcome is a follow-up time with an event status: the
+event times are drawn from a Weibull proportional-hazards model fitted to the complete cases
+(its log hazard ratios are the truth) and the censoring times from the study's own censoring
+distribution (reverse Kaplan–Meier); missing values are imposed on the covariates only, and
+the MAR driver defaults to the event status.
+
 Every strategy is applied to the same incomplete datasets, and bias, empirical SE, model
 SE and coverage are reported with their Monte Carlo standard errors. Replicates run in
 parallel; each has its own seed spawned from the params seed, so the results do not
@@ -38,10 +44,12 @@ from .compute import cluster_workers, iterate_tasks, workers_phrase
 from .errors import AnalysisError, InputError, did_you_mean
 from .expressions import FORMULA_NAMESPACE, formula_environment
 from .models import AnalysisModel, exposure_terms
+from .survival import CensoringDistribution, EventCoding, WeibullFit, censoring_distribution, cox_model, fit_weibull_ph
+from .vocabulary import effect_scale
 
 __all__ = ["MECHANISMS", "SIMULATION_ITERATIONS", "performance", "design_from_data", "simulate_complete",
            "impose_missing", "Replicate", "least_squares_for", "CompleteCaseStrategy", "default_strategies",
-           "SimulationResult", "run_simulation", "simulate_study"]
+           "SimulationResult", "run_simulation", "simulate_study", "follow_up_sentence"]
 
 MECHANISMS: Tuple[str, ...] = ("MCAR", "MAR", "MNAR")
 PERFORMANCE_COLUMNS: Tuple[str, ...] = ("mechanism", "strategy", "term", "n_rep", "true_value", "bias", "bias_mcse",
@@ -143,7 +151,10 @@ class SimulationDesign:
 
     ``linear_predictor`` holds the fitted model's linear predictor for every row of
     ``pool``; ``scale`` is the residual SD (gaussian) or None. ``true_values`` are the
-    fitted coefficients of the exposure terms: the estimands.
+    fitted coefficients of the exposure terms: the estimands. A time-to-event model has
+    ``weibull`` (the event-time model, whose log hazard ratios are the truth),
+    ``censoring`` (the censoring times' distribution) and ``left_out`` (rows without a
+    follow-up time or event status, outside the simulated population).
     """
 
     model: AnalysisModel
@@ -159,6 +170,9 @@ class SimulationDesign:
     types: Dict[str, str] = field(default_factory=dict)
     outcome_levels: Optional[Tuple[object, ...]] = None
     terms: Tuple[str, ...] = ()
+    weibull: Optional[WeibullFit] = None
+    censoring: Optional[CensoringDistribution] = None
+    left_out: int = 0
 
     def missing_fraction_table(self) -> pd.DataFrame:
         """The missing fraction imposed on each model variable (the study's own), as a table."""
@@ -167,7 +181,10 @@ class SimulationDesign:
 
 
 def default_mar_on(model: AnalysisModel, data: pd.DataFrame, covariates: Sequence[str]) -> List[str]:
-    """The first numeric covariate that is not the exposure (the MAR driver when params give none)."""
+    """The MAR driver when params give none: the first numeric covariate that is not the exposure; for a
+    time-to-event model the event status (missingness that depends on the outcome, as White & Royston 2009 study)."""
+    if model.is_time_to_event() and model.event is not None:
+        return [model.event.column]
     exposure = model.exposure
     for column in covariates:
         if column != exposure and pd.api.types.is_numeric_dtype(data[column]) and data[column].nunique() > 2:
@@ -188,7 +205,8 @@ def design_from_data(data: pd.DataFrame, *, model: AnalysisModel, mar_on: Option
     data : the study data (NaN where missing).
     model : the analysis model (formula, family, exposure).
     mar_on : always-observed variables that drive MAR missingness; default: the first
-        numeric covariate that is not the exposure.
+        numeric covariate that is not the exposure (a time-to-event model: the event column;
+        its follow-up time may be named too, since the simulation never makes it missing).
     missing : boolean frame of missing cells (``study.missing``); default ``data.isna()``.
     types : {column: type} for the imputation within the simulation.
     n : size of each simulated study (default: the study's number of rows).
@@ -196,17 +214,26 @@ def design_from_data(data: pd.DataFrame, *, model: AnalysisModel, mar_on: Option
     Returns
     -------
     SimulationDesign.
+
+    References
+    ----------
+    Collett D (2015). Modelling Survival Data in Medical Research, 3rd ed. (the Weibull
+    proportional-hazards model that generates a time-to-event study's event times).
     """
     outcome, covariates = model.variables(list(data.columns))
+    time_to_event = model.is_time_to_event()
     mar_on = list(mar_on) if mar_on else default_mar_on(model, data, covariates)
     for column in mar_on:
         if column not in data.columns:
             raise InputError(f"'{column}' is not a column of the data"
                              f"{did_you_mean(column, data.columns)}", option="mar_on")
-        if column == outcome:
+        if column == outcome and not time_to_event:  # a follow-up time is never made missing in the simulation
             raise InputError(f"'{column}' is the outcome; MAR must depend on observed "
                              "variables, so name covariates or auxiliary variables", option="mar_on")
     missing = data.isna() if missing is None else missing
+    if time_to_event:
+        return _time_to_event_design(data, model=model, outcome=outcome, covariates=covariates, mar_on=mar_on,
+                                     missing=missing, types=types, n=n)
     keep_columns = list(dict.fromkeys([*covariates, *mar_on]))
     # a not-applicable cell is not missing but has no value either: such rows are outside the model's population
     absent = missing[keep_columns].to_numpy(dtype=bool) | data[keep_columns].isna().to_numpy()
@@ -242,6 +269,62 @@ def design_from_data(data: pd.DataFrame, *, model: AnalysisModel, mar_on: Option
                             missing_fractions=fractions, mar_on=tuple(mar_on), n=int(n or len(data)),
                             types={c: t for c, t in (types or {}).items() if c in (outcome, *keep_columns)},
                             outcome_levels=outcome_levels, terms=tuple(terms))
+
+
+def _time_to_event_design(data: pd.DataFrame, *, model: AnalysisModel, outcome: str, covariates: Sequence[str],
+                          mar_on: Sequence[str], missing: pd.DataFrame, types: Optional[Mapping[str, str]],
+                          n: Optional[int]) -> SimulationDesign:
+    """The design of a Cox study: a Weibull event-time model, the censoring distribution, covariate rows.
+
+    Rows without a follow-up time or event status are outside the simulated population (every
+    strategy leaves them out of the analysis); the covariates' missing fractions are those
+    among the rows with follow-up, and the censoring distribution is estimated from all of them
+    (censoring is taken to be independent of the covariates). The simulated event column is
+    coded 1 = event, 0 = censored.
+    """
+    event = model.event
+    status = event.indicator(data)
+    with_follow_up = data[outcome].notna().to_numpy() & ~np.isnan(status)
+    keep_columns = [c for c in dict.fromkeys([*covariates, *mar_on]) if c not in (outcome, event.column)]
+    absent = missing[keep_columns].to_numpy(dtype=bool) | data[keep_columns].isna().to_numpy()
+    pool_rows = with_follow_up & ~absent.any(axis=1)
+    needed = max(20, 2 * len(keep_columns) + 5)  # common practice, no source
+    if pool_rows.sum() < needed or status[pool_rows].sum() < 2:
+        raise InputError(f"simulation: only {int(pool_rows.sum())} rows have every model variable observed "
+                         f"({int(np.nansum(status[pool_rows]))} events), fewer than the {needed} rows and 2 events "
+                         "needed to fit the model the simulation generates data from; leave the simulate stage out "
+                         "(--only with the other stages)")
+    frame = data.loc[pool_rows, [outcome, event.column, *keep_columns]].reset_index(drop=True)
+    coded = dataclasses.replace(model, event=EventCoding(column=event.column))
+    # Simulated event times are continuous, so no two events share a time and Efron's and Breslow's partial
+    # likelihoods are the same function (Efron 1977, JASA 72:557); Breslow's is the faster to fit.
+    simulated_model = dataclasses.replace(coded, ties="breslow")
+    frame[event.column] = status[pool_rows]
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            cox = coded.fit(frame)   # the analysis model on these rows: its kept terms and their order
+            phreg = cox_model(frame, formula=coded.formula, event=coded.event, ties=coded.ties,
+                              eval_env=FORMULA_NAMESPACE)
+            columns = [list(phreg.exog_names).index(t) for t in cox.terms]
+            exog = np.asarray(phreg.exog, dtype=float)[:, columns]
+            weibull = fit_weibull_ph(phreg.endog, phreg.status, exog)
+    except AnalysisError as exc:
+        raise AnalysisError(f"the simulation's generating model could not be fitted: {exc}") from None
+    beta = np.asarray(weibull.coefficients)
+    true_values = {t: float(b) for t, b in zip(cox.terms, beta) if t in exposure_terms(list(cox.terms), model.exposure)}
+    known = data.loc[with_follow_up]
+    fractions = {c: float(missing.loc[with_follow_up, c].mean()) for c in covariates
+                 if c != event.column and c not in mar_on and missing.loc[with_follow_up, c].any()}
+    kept_types = {c: t for c, t in (types or {}).items() if c in (outcome, *keep_columns)}
+    kept_types[event.column] = "binary"
+    return SimulationDesign(model=simulated_model, outcome=outcome, covariates=tuple(covariates),
+                            pool=frame.drop(columns=[outcome]), linear_predictor=exog @ beta, scale=None,
+                            true_values=true_values, missing_fractions=fractions, mar_on=tuple(mar_on),
+                            n=int(n or len(known)), types=kept_types, terms=tuple(cox.terms), weibull=weibull,
+                            censoring=censoring_distribution(known[outcome].to_numpy(dtype=float),
+                                                             status[with_follow_up]),
+                            left_out=int((~with_follow_up).sum()))
 
 
 def _fit_generating_model(frame: pd.DataFrame, model: AnalysisModel, outcome: str):
@@ -283,7 +366,12 @@ def simulate_complete(design: SimulationDesign, rng: np.random.Generator) -> pd.
     frame = design.pool.iloc[rows].reset_index(drop=True)
     linear = design.linear_predictor[rows]
     family = design.model.family
-    if family == "gaussian":
+    if design.weibull is not None:
+        event_time = design.weibull.draw_times(linear, rng)
+        censoring_time = design.censoring.draw(rng, design.n)
+        frame[design.model.event.column] = (event_time <= censoring_time).astype(float)
+        outcome = np.minimum(event_time, censoring_time)
+    elif family == "gaussian":
         outcome = linear + rng.normal(0.0, design.scale, size=design.n)
     elif family == "binomial":
         outcome = (rng.random(design.n) < special.expit(linear)).astype(float)
@@ -504,7 +592,12 @@ class MissingCategoryStrategy:
 
 @dataclass(frozen=True)
 class ImputationStrategy:
-    """Multiple imputation by chained equations (:mod:`gapbook.impute`), pooled with Rubin's rules."""
+    """Multiple imputation by chained equations (:mod:`gapbook.impute`), pooled with Rubin's rules.
+
+    For a time-to-event model the covariates are imputed as the impute stage does it: with the
+    event indicator and the Nelson–Aalen cumulative hazard as predictors, not the raw time
+    (White & Royston 2009, Stat Med 28:1982-1998).
+    """
 
     model: AnalysisModel
     m: int = 5
@@ -519,6 +612,8 @@ class ImputationStrategy:
         from .pool import pool_fits
         data = replicate.data
         seed = int(rng.integers(0, 2 ** 31 - 1))
+        if self.model.is_time_to_event():
+            return self._time_to_event(data, seed)
         imputed = impute_chained(data, m=self.m, iterations=self.iterations, seed=seed,
                                  types=dict(self.types) or None)
         if self.fast is None or replicate.complete_design is None:
@@ -535,6 +630,20 @@ class ImputationStrategy:
                 x[changed] = stacked[i * len(changed):(i + 1) * len(changed)]
             fits.append(self.fast.fit(x, frame[self.fast.outcome].to_numpy(dtype=float)))
         return pool_fits(fits).estimates()[list(ESTIMATE_FIELDS)]
+
+    def _time_to_event(self, data: pd.DataFrame, seed: int) -> pd.DataFrame:
+        from .impute import impute_chained
+        from .impute.plan import ImputationSettings, survival_predictors
+
+        outcome = self.model.variables(list(data.columns))[0]
+        follow_up = survival_predictors(data, time=outcome, event=self.model.event)
+        settings = ImputationSettings(m=self.m, iterations=self.iterations, seed=seed)
+        data, mask, settings = follow_up.apply(data, data.isna(), settings)
+        types = {**dict(self.types), **follow_up.types()}
+        imputed = impute_chained(data, m=self.m, iterations=self.iterations, seed=seed, types=types,
+                                 impute_mask=mask,
+                                 exclude_predictors={k: list(v) for k, v in settings.exclude_predictors.items()})
+        return imputed.analyse(self.model).estimates()[list(ESTIMATE_FIELDS)]
 
 
 Strategy = Callable[[Replicate, np.random.Generator], pd.DataFrame]
@@ -774,7 +883,31 @@ def simulate_study(data: pd.DataFrame, *, model: AnalysisModel, missing: Optiona
     setup = (f"{replicates} replicates of {design.n:,} rows (covariates resampled from {len(design.pool):,} complete "
              f"covariate rows); MAR driven by {', '.join(design.mar_on)}; imputation inside the simulation: m = {m}, "
              f"{SIMULATION_ITERATIONS} iterations; seed {seed}; replicates run in {workers_phrase(n_jobs)}.",
-             "True value(s): " + ", ".join(f"{t} = {v:.4f}" for t, v in design.true_values.items())
-             + f". Strategy fits that failed: {result.n_failed}.")
+             f"True value(s) ({effect_scale(model.family, exponentiated=False)}): "
+             + ", ".join(f"{t} = {v:.4f}" for t, v in design.true_values.items())
+             + f". Strategy fits that failed: {result.n_failed}."
+             + (f" {follow_up_sentence(design)}" if design.weibull is not None else ""))
     return dataclasses.replace(result, sentences=setup + result.sentences)
+
+
+def follow_up_sentence(design: SimulationDesign) -> str:
+    """How a time-to-event study's follow-up is simulated, in one sentence.
+
+    Parameters
+    ----------
+    design : SimulationDesign
+        A design with a Weibull event-time model and a censoring distribution.
+
+    Returns
+    -------
+    str
+    """
+    weibull, outcome = design.weibull, design.outcome
+    left_out = (f" {design.left_out:,} rows of the study without a follow-up time or event status are outside the "
+                "simulated population, as they are outside every analysis." if design.left_out else "")
+    return (f"Follow-up: event times drawn from a Weibull proportional-hazards model fitted to the {weibull.n:,} "
+            f"complete cases ({weibull.events:,} events; shape {weibull.shape:.3g}), whose log hazard ratios are the "
+            f"true values; censoring times drawn from the study's censoring distribution (reverse Kaplan-Meier of "
+            f"{outcome}), and at the largest follow-up time ({design.censoring.end:g}) beyond its last censoring; "
+            "missing values are imposed on the covariates only." + left_out)
 
