@@ -204,3 +204,23 @@ def test_a_worker_running_chains_imports_neither_pandas_nor_the_models():
             "print(sorted({m.split('.')[0] for m in sys.modules} & {'pandas', 'statsmodels', 'patsy', 'pydantic'}))")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
     assert out.strip() == "[]"
+
+
+@pytest.mark.slow
+def test_the_followup_stage_chains_on_a_cluster_are_byte_identical(cluster, tmp_path):
+    # The follow-up demo's imputation draws one data-augmentation chain per arm, each from its own
+    # child seed: two local processes and the LocalCluster must give the same visit effects, byte for byte.
+    from gapbook.followup.demo import followup_demo_params
+
+    body = followup_demo_params().to_dict()
+    body["imputation"].update(m=3, n_jobs=2)
+    tables = {}
+    for where in (LOCAL, cluster.scheduler_address):
+        body["compute"] = {"cluster": where}
+        before = _executed(cluster)
+        analysis = open_stage(body, str(tmp_path / where.replace("/", "_").replace(":", "_"))).followup()
+        tables[where] = analysis.effects.to_csv().encode(), _executed(cluster) - before
+    (local, none), (there, ran) = tables.values()
+    assert none == 0 and ran == 2  # one chain per arm ran on the workers
+    assert any("_group_posterior" in p for p in cluster.scheduler.task_prefixes), set(cluster.scheduler.task_prefixes)
+    assert local == there

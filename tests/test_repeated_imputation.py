@@ -168,3 +168,14 @@ def test_mar_imputation_simulation_covers_the_true_effect():
     assert abs(estimates.mean() - TRUE_LAST) < 3 * estimates.std(ddof=1) / np.sqrt(len(estimates))
     # Binomial(80, 0.95): 99 % of coverage estimates fall above about 0.88.
     assert np.mean(covered) >= 0.88
+
+
+def test_the_arms_chains_give_the_same_draws_in_one_or_two_processes():
+    # Each arm's chain draws from its own child seed, so where it runs cannot change a draw
+    # (a rule of the kit: same inputs and seed, same bytes, whatever the number of workers).
+    trial = simulate_followup_trial(n_per_arm=60, seed=3)
+    here = ri.draw_posteriors(outcome_of(trial), m=3, seed=11, burn_in=20, thin=5, n_jobs=1)
+    apart = ri.draw_posteriors(outcome_of(trial), m=3, seed=11, burn_in=20, thin=5, n_jobs=2)
+    for level in here.groups:
+        assert here.groups[level].coefficients.tobytes() == apart.groups[level].coefficients.tobytes()
+        assert here.groups[level].covariances.tobytes() == apart.groups[level].covariances.tobytes()

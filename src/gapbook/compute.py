@@ -85,9 +85,10 @@ def where_work_runs(address: str) -> str:
     str
     """
     if address == LOCAL:
-        return "this machine: imputation chains, sensitivity grid and simulation replicates run in local processes"
-    return (f"the Dask cluster at {address}: the imputation chains, the sensitivity grid and the simulation "
-            "replicates run on its workers, and the prepared study arrays (participant values; never the file "
+        return ("this machine: imputation chains (the follow-up stage's too), sensitivity grid and simulation replicates "
+                "run in local processes")
+    return (f"the Dask cluster at {address}: the imputation chains (the follow-up stage's too), the sensitivity grid "
+            "and the simulation replicates run on its workers, and the prepared study arrays (participant values; never the file "
             "path) are sent to them")
 
 

@@ -51,7 +51,7 @@ PARTICIPANT_ROW_STAGES = frozenset({"cases", "indicator", "impute", "sensitivity
 FOLLOWUP_STAGES = frozenset({"followup"})
 # Stages that cannot yet handle a model family, and why (skipped with that sentence, never run half-way).
 FAMILY_GAPS: Dict[str, Dict[str, str]] = {}
-CLUSTER_STAGES = ("impute", "sensitivity", "simulate")  # their parallel tasks run where compute.cluster says
+CLUSTER_STAGES = ("followup", "impute", "sensitivity", "simulate")  # their parallel tasks run where compute.cluster says
 KIT, STUDY, RECORD = "kit", "study", "record"
 
 Log = Callable[[str], None]

@@ -457,7 +457,8 @@ class StageContext:
                                      analyses=analyses)
 
     def followup(self) -> Optional["FollowupAnalysis"]:
-        """Every follow-up strategy side by side (``analysis.repeated``, ``imputation.m``/``seed``); None without a design."""
+        """Every follow-up strategy side by side (``analysis.repeated``, ``imputation.m``/``seed``/``n_jobs``, the chains on
+        ``compute.cluster``); None without a design."""
         from .followup.analysis import DEFAULT_STRATEGIES, analyse_followup
         from .vocabulary import FOLLOWUP_STRATEGY_NAMES
 
@@ -476,9 +477,10 @@ class StageContext:
                 strategies = tuple(s for s in FOLLOWUP_STRATEGY_NAMES if s in DEFAULT_STRATEGIES
                                    or s == "delta_adjusted")
         imputation = self.params.imputation
-        with design_errors(self.params, self.study.source or "data"):
+        with self.on_cluster(), design_errors(self.params, self.study.source or "data"):
             return analyse_followup(outcome, strategies=strategies, m=imputation.m, seed=imputation.seed,
-                                    reference=reference, delta=delta, method=method, alpha=self.params.analysis.alpha)
+                                    reference=reference, delta=delta, method=method, alpha=self.params.analysis.alpha,
+                                    n_jobs=imputation.n_jobs)
 
     def audit(self) -> "AuditResult":
         """The audit stage with the ``audit`` section, counted by the engine ``data.engine`` picks.

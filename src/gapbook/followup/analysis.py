@@ -132,7 +132,7 @@ def analyse_followup(outcome: RepeatedOutcome, *, strategies: Sequence[str] = DE
                      seed: Optional[int] = None, reference: Any = None,
                      delta: Union[None, float, Sequence[float], Dict[Any, float]] = None,
                      method: str = "reml", alpha: float = 0.05, burn_in: int = 200,
-                     thin: int = 20) -> FollowupAnalysis:
+                     thin: int = 20, n_jobs: int = 1) -> FollowupAnalysis:
     """The exposure effect at every visit under each strategy.
 
     Parameters
@@ -144,6 +144,8 @@ def analyse_followup(outcome: RepeatedOutcome, *, strategies: Sequence[str] = DE
     delta : shift of the outcomes imputed after leaving, for ``delta_adjusted``.
     method : ``reml`` or ``ml`` for the mixed model.
     alpha : 1 - confidence level.
+    n_jobs : local worker processes for the imputation's chains, one per exposure group (the
+        results do not depend on it; inside :func:`gapbook.compute.on_cluster` they run on the cluster).
 
     Returns
     -------
@@ -169,7 +171,7 @@ def analyse_followup(outcome: RepeatedOutcome, *, strategies: Sequence[str] = DE
     if DELTA_STRATEGY in strategies:
         wanted_rules.append("delta")
     if wanted_rules:
-        posteriors = draw_posteriors(outcome, m=m, seed=seed, burn_in=burn_in, thin=thin)
+        posteriors = draw_posteriors(outcome, m=m, seed=seed, burn_in=burn_in, thin=thin, n_jobs=n_jobs)
         for rule in wanted_rules:
             imputation = impute_repeated(outcome, rule="mar" if rule == "delta" else rule, reference=reference,
                                          delta=delta if rule == "delta" else None, posteriors=posteriors)

@@ -44,6 +44,7 @@ import numpy as np
 import pandas as pd
 from scipy import linalg, stats
 
+from ..compute import run_tasks
 from ..errors import AnalysisError, InputError, did_you_mean
 from ..inference import wald_inference
 from ..little import pattern_rows
@@ -354,8 +355,20 @@ class ArmPosteriors:
         return len(self.draw_seeds)
 
 
+def _group_posterior(values: np.ndarray, covariates: np.ndarray, draws: int, burn_in: int, thin: int,
+                     seed: np.random.SeedSequence, level: Any) -> GroupPosterior:
+    """One group's chain as a task (module level, so a worker process or a Dask worker can run it).
+
+    The arrays are copied first: arrays unpickled on a worker can sit at a memory alignment
+    that numpy's vectorised sums treat differently, and a fresh allocation makes the last bits
+    of every draw the same wherever the chain runs.
+    """
+    return draw_group_parameters(np.array(values, order="C"), np.array(covariates, order="C"), draws=draws,
+                                 burn_in=burn_in, thin=thin, rng=np.random.default_rng(seed), level=level)
+
+
 def draw_posteriors(outcome: RepeatedOutcome, *, m: int = 20, seed: Optional[int] = None, burn_in: int = 200,
-                    thin: int = 20) -> ArmPosteriors:
+                    thin: int = 20, n_jobs: int = 1) -> ArmPosteriors:
     """Posterior draws of each exposure group's multivariate normal regression (data augmentation).
 
     Parameters
@@ -364,6 +377,9 @@ def draw_posteriors(outcome: RepeatedOutcome, *, m: int = 20, seed: Optional[int
     m : number of draws (one per imputed dataset).
     seed : seed of the ``numpy.random.SeedSequence`` everything is drawn from.
     burn_in, thin : data augmentation iterations before the first draw and between draws.
+    n_jobs : local worker processes for the groups' chains (one chain per group, each with its
+        own seed, so the draws do not depend on where they run; inside
+        :func:`gapbook.compute.on_cluster` the chains run on the Dask cluster).
 
     Returns
     -------
@@ -378,19 +394,19 @@ def draw_posteriors(outcome: RepeatedOutcome, *, m: int = 20, seed: Optional[int
     sequence = np.random.SeedSequence(seed)
     group_seeds = sequence.spawn(len(outcome.levels))
     draw_seeds = tuple(sequence.spawn(m))
-    groups = {}
+    tasks = []
     for level, child in zip(outcome.levels, group_seeds):
         members = outcome.group_rows(level)
-        groups[level] = draw_group_parameters(outcome.values[members], covariates[members], draws=m,
-                                              burn_in=burn_in, thin=thin, rng=np.random.default_rng(child),
-                                              level=level)
+        tasks.append((outcome.values[members], covariates[members], m, burn_in, thin, child, level))
+    chains = run_tasks(_group_posterior, tasks, n_jobs=max(1, min(n_jobs, len(tasks))))
+    groups = dict(zip(outcome.levels, chains))
     return ArmPosteriors(groups=groups, draw_seeds=draw_seeds, seed=seed, burn_in=burn_in, thin=thin)
 
 
 def impute_repeated(outcome: RepeatedOutcome, *, rule: str = "mar", m: int = 20, seed: Optional[int] = None,
                     reference: Any = None, delta: Union[None, float, Sequence[float], Dict[Any, float]] = None,
                     delta_groups: Optional[Sequence[Any]] = None, burn_in: int = 200,
-                    thin: int = 20, posteriors: Optional[ArmPosteriors] = None) -> RepeatedImputation:
+                    thin: int = 20, posteriors: Optional[ArmPosteriors] = None, n_jobs: int = 1) -> RepeatedImputation:
     """Multiply impute a repeated outcome under missing at random or a reference-based rule.
 
     Parameters
@@ -406,6 +422,7 @@ def impute_repeated(outcome: RepeatedOutcome, *, rule: str = "mar", m: int = 20,
     burn_in, thin : data augmentation iterations before the first draw and between draws.
     posteriors : draws from :func:`draw_posteriors` to reuse (then ``m``, ``seed``,
         ``burn_in`` and ``thin`` are theirs).
+    n_jobs : local worker processes for the groups' chains (see :func:`draw_posteriors`).
 
     Returns
     -------
@@ -430,7 +447,7 @@ def impute_repeated(outcome: RepeatedOutcome, *, rule: str = "mar", m: int = 20,
     if delta_groups is None:
         delta_groups = tuple(level for level in outcome.levels if level != reference)
     if posteriors is None:
-        posteriors = draw_posteriors(outcome, m=m, seed=seed, burn_in=burn_in, thin=thin)
+        posteriors = draw_posteriors(outcome, m=m, seed=seed, burn_in=burn_in, thin=thin, n_jobs=n_jobs)
     covariates = outcome.covariate_matrix()
     completed = np.stack([_impute_once(outcome, covariates, posteriors.groups, i, rule, reference, shift,
                                        tuple(delta_groups), np.random.default_rng(child))
