@@ -18,6 +18,7 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_valida
 
 from .compute import LOCAL, check_cluster_address
 from .errors import InputError, did_you_mean
+from .text import one_line
 from .vocabulary import (COVARIANCE_STRUCTURES, FAMILY_NAMES, FOLLOWUP_STRATEGY_NAMES, IMPUTATION_METHODS,
                          INTERCURRENT_STRATEGY_NAMES, LAYOUTS, TIES_METHODS, TIME_TO_EVENT_FAMILIES, VARIABLE_TYPES)
 from .expressions import CONDITION, VALUE, ExpressionError, parse_expression, parse_formula
@@ -100,6 +101,14 @@ class DataSection(_Section):
         if self.thousands is not None and self.thousands == self.decimal:
             raise ValueError(f"thousands '{self.thousands}' is also the decimal mark")
         return self
+
+    @field_validator("path")
+    @classmethod
+    def _usable_path(cls, value: str) -> str:
+        # A NUL byte cannot be part of a file name: the operating system refuses it (a traceback otherwise).
+        if "\x00" in value:
+            raise ValueError("the path holds a NUL character (\\x00); write the data file's path as it is on disk")
+        return value
 
     @field_validator("encoding")
     @classmethod
@@ -478,6 +487,36 @@ class Params(_Section):
         return params
 
 
+class _RepeatedKey(Exception):
+    """A key written twice in one mapping of the params file."""
+
+
+class _UniqueKeyLoader(yaml.SafeLoader):
+    """YAML's safe loader, refusing a key written twice in one mapping.
+
+    Plain YAML loading keeps the last of two equal keys and drops the first without a word, so a
+    second ``variables:`` section or a repeated variable would silently replace what was written
+    first. Safe loading otherwise (no tags that build Python objects).
+    """
+
+    def construct_mapping(self, node: yaml.MappingNode, deep: bool = False) -> Dict[Any, Any]:
+        seen: Dict[Any, int] = {}
+        for key_node, _ in node.value:
+            if key_node.tag == "tag:yaml.org,2002:merge":
+                continue  # '<<: *anchor' brings keys that the mapping's own keys may override
+            key = self.construct_object(key_node, deep=True)
+            try:
+                first = seen.get(key)
+            except TypeError:  # an unhashable key; the schema refuses it with its own message
+                continue
+            if first is not None:
+                raise _RepeatedKey(f"the key '{one_line(str(key), 80)}' is written twice (lines {first} and "
+                                   f"{key_node.start_mark.line + 1}); keep one (YAML would silently keep "
+                                   "only the last)")
+            seen[key] = key_node.start_mark.line + 1
+        return super().construct_mapping(node, deep=deep)
+
+
 def load_params(path: Union[str, Path]) -> Params:
     """Read and validate a params YAML file (safe loading only).
 
@@ -499,10 +538,12 @@ def load_params(path: Union[str, Path]) -> Params:
         raise InputError(f"{path}: the params file is {size:,} bytes; at most {MAX_PARAMS_BYTES:,} are allowed "
                          "(is it the data file?)")
     try:
-        raw = yaml.safe_load(path.read_text(encoding="utf-8"))
+        raw = yaml.load(path.read_text(encoding="utf-8"), Loader=_UniqueKeyLoader)
     except RecursionError:
         raise InputError(f"{path}: the YAML is nested too deeply; the params need at most {MAX_PARAMS_DEPTH} "
                          "levels") from None
+    except _RepeatedKey as exc:
+        raise InputError(f"{path}: {exc}") from None
     except ValueError:  # e.g. an integer of thousands of digits
         raise InputError(f"{path}: holds a value YAML cannot read (a number thousands of digits long?)") from None
     except yaml.YAMLError as exc:

@@ -1,0 +1,69 @@
+"""Hostile and odd inputs found by trying the kit as an attacker and as a user with a real file.
+
+Each case is one a user or an attacker can write; the expectation is the kit's own contract
+(README "Writing a params file", "What intake refuses"): exit 2 with one line naming the file,
+key, column or row and what to do, never a traceback, never a silent change of meaning.
+"""
+from __future__ import annotations
+
+import pytest
+
+from gapbook.cli import main
+from gapbook.errors import InputError
+from gapbook.params import load_params
+
+CSV = "id,arm,age,y\n1,a,30,1.5\n2,b,40,NA\n3,a,50,2.5\n4,b,?,3.1\n5,a,60,2.2\n6,b,33,1.1\n"
+PARAMS = """study: {name: odd inputs}
+data: {path: d.csv, id: id}
+variables: {arm: {type: binary, levels: [a, b]}}
+missing: {markers: ["NA", "?"]}
+analysis: {formula: "y ~ arm + age", exposure: arm}
+"""
+
+
+def study(tmp_path, params=PARAMS, csv=CSV):
+    (tmp_path / "d.csv").write_bytes(csv.encode() if isinstance(csv, str) else csv)
+    path = tmp_path / "params.yaml"
+    path.write_text(params)
+    return path
+
+
+def check(path, capsys):
+    """Run ``gapbook check`` in process; return (exit code, stderr)."""
+    code = main(["check", str(path)])
+    return code, capsys.readouterr().err
+
+
+def test_a_nul_in_the_data_path_is_a_one_line_error(tmp_path, capsys):
+    # A NUL byte cannot be in a file name (POSIX); the path resolution raised ValueError with a traceback.
+    path = study(tmp_path, PARAMS.replace("path: d.csv", 'path: "d.csv\\0.txt"'))
+    code, err = check(path, capsys)
+    assert code == 2
+    assert "Traceback" not in err and len(err.strip().splitlines()) == 1
+    assert "data.path" in err and "NUL" in err
+
+
+@pytest.mark.parametrize("text,key,lines", [
+    # a second section of the same name: YAML 1.2 says mapping keys are unique; PyYAML keeps the last silently
+    (PARAMS + "study: {name: other}\n", "study", "lines 1 and 6"),
+    # a variable declared twice inside one section: the first declaration would be lost
+    (PARAMS.replace("variables: {arm: {type: binary, levels: [a, b]}}",
+                    "variables:\n  age: {range: [0, 120]}\n  arm: {type: binary, levels: [a, b]}\n"
+                    "  age: {type: count}"), "age", "lines 4 and 6"),
+])
+def test_a_key_written_twice_is_refused_naming_it(tmp_path, text, key, lines):
+    path = tmp_path / "params.yaml"
+    path.write_text(text)
+    with pytest.raises(InputError) as info:
+        load_params(path)
+    message = str(info.value)
+    assert f"'{key}' is written twice ({lines})" in message and str(path) in message
+
+
+def test_merge_keys_may_still_be_overridden(tmp_path):
+    # '<<: *anchor' then an explicit key is the YAML merge-key idiom, not a repeated key.
+    text = PARAMS + "imputation:\n  <<: {m: 5, iterations: 5}\n  m: 7\n"
+    path = tmp_path / "params.yaml"
+    path.write_text(text)
+    params = load_params(path)
+    assert params.imputation.m == 7 and params.imputation.iterations == 5
