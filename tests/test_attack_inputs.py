@@ -67,3 +67,27 @@ def test_merge_keys_may_still_be_overridden(tmp_path):
     path.write_text(text)
     params = load_params(path)
     assert params.imputation.m == 7 and params.imputation.iterations == 5
+
+
+def test_a_first_row_longer_than_the_header_names_the_row(tmp_path, capsys):
+    # pandas reads the extra leading fields as row labels and shifts every value one column along
+    # (its documented index-column inference); the error was a type error about another column.
+    path = study(tmp_path, csv=CSV.replace("1,a,30,1.5", "1,a,30,1.5,9,9"))
+    code, err = check(path, capsys)
+    assert code == 2 and len(err.strip().splitlines()) == 1
+    assert "d.csv: the first data row has 6 values but the header row names 4 columns" in err
+
+
+@pytest.mark.parametrize("engine", ["pandas", "duckdb"])
+@pytest.mark.parametrize("csv,needle", [
+    (CSV.replace("5,a,60", "5," + "x" * 100_000 + ",60"), "column 'arm' holds 'xxx"),           # a level
+    (CSV.replace("5,a,60", "5,a," + "x" * 100_000), "column 'age' holds numbers and the text 'xxx"),  # stray text
+    (CSV.replace("1,a,30", "9" * 100_000 + ",a,30").replace("3,a,50", "9" * 100_000 + ",a,50"),
+     "duplicate id '999"),                                                                       # an id
+])
+def test_a_huge_value_is_cut_in_the_one_line_error(tmp_path, capsys, engine, csv, needle):
+    # The error line quoted the whole cell: a 100,000-character line is no longer "one line naming the value".
+    path = study(tmp_path, PARAMS.replace("id: id}", f"id: id, engine: {engine}}}"), csv)
+    code, err = check(path, capsys)
+    assert code == 2 and needle in err
+    assert len(err) < 600 and "..." in err

@@ -309,6 +309,13 @@ def read_table(path: Path, fmt: str = "auto", sheet: Any = None, encoding: str =
     except Exception as exc:  # readers raise many kinds for a file that is not what its name says
         first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
         raise InputError(f"{path}: cannot be read as {fmt} ({first}); check data.format and the file") from None
+    if fmt in ("csv", "tsv") and len(header) > 1 and not isinstance(raw.index, pd.RangeIndex):
+        # pandas takes the first columns as row labels when the first data row has more fields than the
+        # header, shifting every value one column along; the user must see the row, not a later type error.
+        # (A one-name header is a wrong delimiter, which check_header explains.)
+        raise InputError(f"{path}: the first data row has {raw.index.nlevels + raw.shape[1]} values but the header "
+                         f"row names {len(header)} columns; name every column in the header, or remove the extra "
+                         f"delimiters ({'tabs' if sep == chr(9) else repr(sep)}) from the row")
     if len(header) == raw.shape[1]:
         raw.columns = header  # the names as written, not pandas' renamed duplicates
     if raw.shape[0] == 0 or raw.shape[1] == 0:
@@ -575,7 +582,7 @@ def rows_note(rows: Sequence[int], ids: Sequence[Any]) -> str:
         The note, with 1-based data row numbers.
     """
     text = ", ".join(str(int(r) + 1) for r in rows)
-    id_text = ", ".join(str(i) for i in ids)
+    id_text = ", ".join(one_line(i, 40) for i in ids)
     return f"data rows {text} (ids {id_text})"
 
 
@@ -797,7 +804,7 @@ def duplicate_id_error(label: str, id_column: str, first: Any, rows: Sequence[in
     InputError
     """
     where = ", ".join(str(int(r) + 1) for r in rows[:3])
-    return InputError(f"{label}: duplicate id '{first}' in column '{id_column}' (data rows {where}); "
+    return InputError(f"{label}: duplicate id '{one_line(first, 80)}' in column '{id_column}' (data rows {where}); "
                       "ids must be unique")
 
 
@@ -964,7 +971,7 @@ def decide_column(cells: DistinctCells, column: str, spec: VariableSpec, markers
             if outside:
                 first, note = locate(outside)
                 text = text_lookup[first]
-                raise InputError(f"{label}: column '{column}' holds '{text}' at {note}, which is "
+                raise InputError(f"{label}: column '{column}' holds '{one_line(text, 80)}' at {note}, which is "
                                  f"not among variables.{column}.levels ({', '.join(map(str, levels))})"
                                  f"{did_you_mean(text, canonical.values())}; add it to levels or declare it a "
                                  "missing marker")
@@ -1055,7 +1062,7 @@ def _refuse_stray_text(cells: DistinctCells, kept: List[int], numbers: Dict[int,
     if numeric_cells > text_cells:
         most = max(int(counts[i]) for i in text)
         worst, note = locate([i for i in text if counts[i] == most])
-        raise InputError(f"{label}: column '{column}' holds numbers and the text '{cells.uniques[worst]}' at "
+        raise InputError(f"{label}: column '{column}' holds numbers and the text '{one_line(cells.uniques[worst], 80)}' at "
                          f"{note}; declare the text a missing marker (missing.markers or "
                          f"missing.columns.{column}.markers) or declare variables.{column}.type")
 
