@@ -340,7 +340,10 @@ def _settled(table: pd.DataFrame, iterations: int, limit: float):
 def _with_sentences(result: ChainConvergence) -> ChainConvergence:
     from dataclasses import replace
     limit = f"{result.limit:g}"
-    if result.m < 2:
+    if not len(result.trace):
+        words = ("No value was imputed (the variables in the imputation are complete), so there are no chains "
+                 "to compare.",)
+    elif result.m < 2:
         words = ("R-hat needs at least two chains; this run has one, so convergence across chains cannot be "
                  "judged: raise imputation.m.",)
     elif result.iterations < FIRST_ITERATION:

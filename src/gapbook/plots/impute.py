@@ -45,6 +45,8 @@ def plot_chain_convergence(convergence: ChainConvergence):
     """
     table = convergence.rhat
     names = list(dict.fromkeys(table["variable"]))
+    if not names:
+        return _nothing_imputed("Have the chains forgotten their starting values, and from which iteration?")
     iterations = max(convergence.iterations, 1)
     figure = plt.figure(figsize=(7.5, 3.0 + 0.34 * len(names) + 0.9), layout="constrained")
     top, bottom = figure.subplots(2, 1, sharex=True, height_ratios=[3.0, 0.34 * max(len(names), 1) + 0.6])
@@ -52,8 +54,19 @@ def plot_chain_convergence(convergence: ChainConvergence):
     _spread_panel(bottom, convergence, names)
     bottom.set_xlabel("iteration")
     bottom.set_xlim(0.5, iterations + 0.5)
+
     figure.suptitle("Have the chains forgotten their starting values, and from which iteration?", fontsize=11,
                     x=0.01, ha="left")
+    return figure
+
+
+def _nothing_imputed(question: str):
+    """The figure of a run whose imputation variables are all complete: the question and why it has no answer."""
+    figure, axes = plt.subplots(figsize=(7.5, 1.6))
+    axes.set_axis_off()
+    axes.text(0.5, 0.5, "No value was imputed: the variables in the imputation are complete.", ha="center",
+              va="center", fontsize=10, transform=axes.transAxes)
+    figure.suptitle(question, fontsize=11, x=0.01, ha="left")
     return figure
 
 
@@ -166,6 +179,8 @@ def plot_observed_vs_imputed(imputation: ChainedImputation, bins: int = 30):
     """
     names = list(imputation.imputed)
     columns = min(3, max(len(names), 1))
+    if not names:
+        return _nothing_imputed("Do the imputed values look like values each variable takes, and where do they differ?")
     rows = math.ceil(len(names) / columns)
     figure, axes = plt.subplots(rows, columns, figsize=(3.3 * columns, 2.7 * rows + 0.6), layout="constrained",
                                 squeeze=False)
