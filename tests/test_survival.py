@@ -294,3 +294,50 @@ def test_a_cox_study_runs_end_to_end(tmp_path):
     assert pd.read_csv(tables / "sensitivity_delta.csv")["variable"].eq("age").all()  # the most incomplete covariate
     for figure in ("strategy_comparison", "survival_by_exposure", "simulation_performance"):
         assert (record / "figures" / f"{figure}.png").is_file()
+
+
+# ---------------------------------------------------------------------------
+# a cox study with nothing a delta can shift
+
+def without_missing_covariates() -> pd.DataFrame:
+    """The cohort with every covariate observed: only follow-up times and statuses are missing."""
+    frame = cohort()
+    frame["age"] = np.random.default_rng(2).normal(60, 10, len(frame)).round(1)
+    frame["stage"] = np.random.default_rng(3).choice(["I", "II", "III"], len(frame))
+    return frame
+
+
+@pytest.mark.parametrize("case", ["no incomplete covariate", "only an unordered category incomplete"])
+def test_cox_study_with_nothing_to_shift_skips_the_delta_adjustment_and_check_says_so(tmp_path, capsys, case):
+    from gapbook.stage import open_stage
+
+    frame = without_missing_covariates()
+    params_text = PARAMS
+    if case != "no incomplete covariate":  # stage as a nominal variable: imputed by polytomous regression
+        frame.loc[np.random.default_rng(4).random(len(frame)) < 0.1, "stage"] = "unknown"
+        params_text = PARAMS.replace("stage: {type: ordinal, levels: [I, II, III]}",
+                                     "stage: {type: nominal, levels: [I, II, III]}")
+    path = write_study(tmp_path / "study", frame, params_text)
+    code = main(["check", str(path), "--only", "audit,sensitivity"])
+    out, err = capsys.readouterr()
+    assert code == 0, err
+    notes = [line for line in out.splitlines() if line.startswith("note: sensitivity: Nothing to shift")]
+    assert len(notes) == 1
+    # check = run: the stage, in process, skips with the very sentence check printed
+    result = open_stage(str(path), str(tmp_path / "record")).sensitivity(
+        open_stage(str(path), str(tmp_path / "record")).imputation_plan())
+    assert result.skipped() and result.tables()["sensitivity_delta"].empty
+    assert notes[0] == f"note: sensitivity: {result.sentences[0]}"
+    # counts: pandas on the file written above (rows lacking a time or an event status)
+    assert f"the {5:,} rows lacking one of them are left out" in result.sentences[0]
+    if case == "no incomplete covariate":
+        assert "no covariate of the cox model has a missing value," in result.sentences[0]
+    else:
+        assert "stage (" in result.sentences[0] and "cannot shift" in result.sentences[0]
+
+
+def test_a_named_variable_that_cannot_be_shifted_still_stops_check(tmp_path, capsys):
+    # asking for a delta on a complete covariate is a request that cannot be met: exit 2, as before
+    path = write_study(tmp_path / "study", without_missing_covariates(),
+                       PARAMS.replace("sensitivity: {m: 2}", "sensitivity: {m: 2, variable: age}"))
+    assert "sensitivity.variable" in one_line(capsys, ["check", path])

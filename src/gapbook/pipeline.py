@@ -246,15 +246,20 @@ def check_model_up_front(params: Params, study: Any) -> Tuple[str, List[str]]:
     return found
 
 
-def check_sensitivity_up_front(params: Params, study: Any) -> None:
+def check_sensitivity_up_front(params: Params, study: Any) -> Tuple[str, ...]:
     """Stop before any stage when the sensitivity stage could not shift what the params ask for.
 
     The same function as the stage (:func:`gapbook.stage.sensitivity_series`): the imputation
-    plan and the delta series are built and checked, and no imputation runs.
+    plan and the delta series are built and checked, and no imputation runs. When there is
+    nothing to shift, the stage's own sentence saying why is returned as a note.
     """
+    from .sensitivity import nothing_to_shift
     from .stage import imputation_plan, sensitivity_series
 
-    sensitivity_series(params, study, imputation_plan(params, study))
+    plan = imputation_plan(params, study)
+    if sensitivity_series(params, study, plan):
+        return ()
+    return (f"sensitivity: {nothing_to_shift(plan)}",)
 
 
 def check_followup_up_front(params: Params, study: Any, stages: Sequence[str]) -> Tuple[str, ...]:
@@ -397,7 +402,7 @@ def preflight(params: Params, *, only: Optional[Sequence[str]] = None, log: Opti
     elif model_stages:
         model = check_model_up_front(params, study)
         if "sensitivity" in stages:
-            check_sensitivity_up_front(params, study)
+            design_notes = check_sensitivity_up_front(params, study)
     chosen = tuple(found[s] for s in stages)
     notes = design_notes + tuple(f"notebook {nb.file}: the study folder's copy, which differs from the kit's"
                                  for nb in chosen if nb.origin == STUDY and nb.differs_from_kit)

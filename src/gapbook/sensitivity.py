@@ -45,7 +45,7 @@ from .vocabulary import DELTA_METHODS, MAR_CAUTION
 
 __all__ = ["ALL_GROUPS", "DeltaSeries", "DeltaSpec", "delta_series", "imputation_evaluator", "interval",
            "find_tipping_point", "tipping_statement", "DeltaResult", "delta_analysis", "StrategyAndDelta",
-           "compare_with_deltas", "SensitivityResult", "sensitivity_analysis"]
+           "compare_with_deltas", "SensitivityResult", "sensitivity_analysis", "nothing_to_shift"]
 
 ALL_GROUPS = "all"
 DELTA_COLUMNS: Tuple[str, ...] = ("variable", "group", "delta", "term", "estimate", "ci_lower", "ci_upper", "p_value")
@@ -794,6 +794,38 @@ def default_variable(plan: ImputationPlan) -> Optional[str]:
     return next(name for n, name in incomplete if n == most)
 
 
+def nothing_to_shift(plan: ImputationPlan) -> str:
+    """Why the delta adjustment has nothing to shift when no variable is named, in one sentence.
+
+    Parameters
+    ----------
+    plan : ImputationPlan
+        The imputation plan the stage would shift.
+
+    Returns
+    -------
+    str
+        The sentence the stage shows (and ``check`` prints) when it skips the delta adjustment.
+    """
+    skipped = "the delta-adjustment analysis was skipped."
+    if getattr(plan, "survival", None) is None:
+        return ("Nothing to shift: every variable of the analysis model is complete, so no result rests on an "
+                f"assumption about why values are missing; {skipped}")
+    survival = plan.survival
+    left_out = survival.n_left_out()
+    follow_up = (f"the {plan.model.family} model's follow-up time ({survival.time}) and event status "
+                 f"({survival.event.column}) are never imputed"
+                 + (f" (the {left_out:,} rows lacking one of them are left out of every analysis, which no delta "
+                    "here can change)" if left_out else ""))
+    incomplete = plan.incomplete_covariates()
+    if not incomplete:
+        return (f"Nothing to shift: no covariate of the {plan.model.family} model has a missing value, and "
+                f"{follow_up}; so no covariate value rests on an assumption about why it is missing; {skipped}")
+    methods = ", ".join(f"{c} ({plan.methods.get(c, '')})" for c in incomplete)
+    return (f"Nothing to shift: {follow_up}, and the incomplete covariates are imputed by methods a delta cannot "
+            f"shift ({methods}; a delta shifts values imputed by {', '.join(DELTA_METHODS)}); {skipped}")
+
+
 def check_series(plan: ImputationPlan, series: Sequence[DeltaSeries], *, option: Optional[str] = None) -> None:
     """Refuse a series the imputation cannot shift, before any imputation runs.
 
@@ -874,9 +906,7 @@ def sensitivity_analysis(plan: ImputationPlan, *, series: Sequence[DeltaSeries],
                             alpha=model.alpha)
         comparison = StrategyAndDelta(comparison=pd.DataFrame(columns=list(COMPARISON_COLUMNS)), sentences=(),
                                       changes=False)
-        return SensitivityResult(deltas=empty, comparison=comparison, m=m, sentences=(
-            "Nothing to shift: every variable of the analysis model is complete, so no result rests on an "
-            "assumption about why values are missing; the delta-adjustment analysis was skipped.",))
+        return SensitivityResult(deltas=empty, comparison=comparison, m=m, sentences=(nothing_to_shift(plan),))
     terms = exposure_terms(model.fit(plan.data).terms, model.exposure)
     deltas = delta_analysis(plan_evaluator(plan, m=m), series=series, terms=terms, alpha=model.alpha,
                             refine=refine, types=plan.types, units=units, m=m)

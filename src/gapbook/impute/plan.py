@@ -95,21 +95,25 @@ class ImputationPlan:
                          "predictors": predictor_text})
         return pd.DataFrame(rows)
 
-    def delta_default(self) -> str:
+    def delta_default(self) -> Optional[str]:
         """The variable a delta shifts when the params name none: the outcome, or for a time-to-event model
         (whose time is never imputed) the incomplete model covariate with the most values to impute.
 
-        Exits 2 (option ``variable``) when a time-to-event model has no covariate a delta can shift.
+        None when a time-to-event model has no covariate a delta can shift (none incomplete, or none
+        imputed by a method in ``DELTA_METHODS``): the sensitivity stage then says so and shifts nothing.
         """
         if self.survival is None:
             return self.outcome
-        shiftable = [c for c in self.model_columns if c not in (self.outcome, self.survival.event.column)
-                     and self.impute_mask[c].any() and self.methods.get(c) in DELTA_METHODS]
+        shiftable = [c for c in self.incomplete_covariates() if self.methods.get(c) in DELTA_METHODS]
         if not shiftable:
-            raise InputError(f"a {self.model.family} model's follow-up time is not imputed, and no covariate of the "
-                             "model has values imputed by a method a delta can shift (pmm, normal, logistic); "
-                             "name one in sensitivity.delta", option="variable")
+            return None
         return max(shiftable, key=lambda c: int(self.impute_mask[c].sum()))
+
+    def incomplete_covariates(self) -> Tuple[str, ...]:
+        """The analysis model's covariates with values to impute (not the outcome, nor a time-to-event model's
+        event column)."""
+        left_aside = (self.outcome, self.survival.event.column if self.survival is not None else self.outcome)
+        return tuple(c for c in self.model_columns if c not in left_aside and self.impute_mask[c].any())
 
     def tables(self) -> Dict[str, pd.DataFrame]:
         """``imputation_settings`` (:meth:`variable_settings`)."""
