@@ -776,13 +776,9 @@ def default_variable(plan: ImputationPlan) -> Optional[str]:
     the most values to impute (the first in the formula on a tie); None when every
     analysis-model variable is complete (nothing rests on missing at random).
     """
-    survival = getattr(plan, "survival", None)
-    if survival is not None:
-        # A time-to-event model: its follow-up time is never imputed, so only covariates can be shifted;
-        # with every covariate complete nothing rests on missing at random, as for any other family.
-        covariates = [c for c in plan.model_columns if c not in (plan.outcome, survival.event.column)]
-        if not any(plan.impute_mask[c].any() for c in covariates if c in plan.impute_mask):
-            return None
+    if getattr(plan, "survival", None) is not None:
+        # A time-to-event model: its follow-up time is never imputed, so only covariates can be shifted; None when
+        # none can be (every covariate complete, or imputed by a method a delta cannot shift): the stage says why.
         return plan.delta_default()
     counts = {name: int(plan.impute_mask[name].sum()) for name in plan.model_columns if name in plan.impute_mask}
     if counts.get(plan.outcome, 0) > 0:
