@@ -27,8 +27,8 @@ import pandas as pd
 from . import __version__
 from .inference import format_estimate, format_p, format_p_cell
 from .text import show_invisible
-from .vocabulary import (STRATEGY_ASSUMPTIONS, STRATEGY_PHRASES, STRATEGY_TITLES, cautions, effect_scale,
-                         has_ratio_scale)
+from .vocabulary import (LEAD_STRATEGIES, STRATEGY_ASSUMPTIONS, STRATEGY_PHRASES, STRATEGY_TITLES, cautions,
+                         effect_scale, has_ratio_scale)
 
 __all__ = ["parameters_summary", "notebook_to_html", "effect_table", "write_index"]
 
@@ -357,10 +357,6 @@ def _estimate_text(value: Any) -> str:
     """An estimate or interval end as the landing page shows it (empty when missing)."""
     text = format_estimate(value)
     return "" if text == "n/a" else text
-
-
-# The strategy a reader is pointed to first, when present (the others are comparisons or sensitivity).
-LEAD_STRATEGIES = ("multiple_imputation", "mixed_model", "complete_case")
 
 
 def effect_table(estimates: pd.DataFrame, *, family: str, exposure: Optional[str], alpha: float,

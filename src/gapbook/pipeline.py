@@ -18,6 +18,7 @@ from typing import Any, Callable, Dict, List, Mapping, Optional, Sequence, Tuple
 from .errors import InputError, did_you_mean
 from .intake import sha256_of as sha256_file  # the one file digest, shared with intake and record
 from .params import Params
+from .vocabulary import FOLLOWUP_IMPUTED_STRATEGIES
 
 __all__ = ["STAGES", "STAGE_TITLES", "sha256_file", "kit_notebooks_dir", "StageNotebook", "resolve_stages",
            "check_model_up_front", "Plan", "preflight"]
@@ -287,7 +288,7 @@ def check_followup_up_front(params: Params, study: Any, stages: Sequence[str]) -
                          "planned visit; check design.visits and the outcome's missing markers")
     section = params.analysis.repeated
     imputing = section is None or section.strategies is None or any(
-        s not in ("mixed_model", "completers", "last_observation") for s in section.strategies)
+        s in FOLLOWUP_IMPUTED_STRATEGIES for s in section.strategies)
     if imputing and any(s in FOLLOWUP_STAGES for s in stages) and params.imputation.m < 2:
         raise InputError(f"{params.label}: imputation.m is {params.imputation.m}; the follow-up imputation strategies "
                          "pool at least two imputed datasets: raise it (e.g. 20)")

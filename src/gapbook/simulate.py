@@ -45,7 +45,7 @@ from .errors import AnalysisError, InputError, did_you_mean
 from .expressions import FORMULA_NAMESPACE, formula_environment
 from .models import AnalysisModel, exposure_terms
 from .survival import CensoringDistribution, EventCoding, WeibullFit, censoring_distribution, cox_model, fit_weibull_ph
-from .vocabulary import effect_scale
+from .vocabulary import PARTICIPANT_ROW_STRATEGY_NAMES, effect_scale
 
 __all__ = ["MECHANISMS", "SIMULATION_ITERATIONS", "performance", "design_from_data", "simulate_complete",
            "impose_missing", "Replicate", "least_squares_for", "CompleteCaseStrategy", "default_strategies",
@@ -650,7 +650,7 @@ Strategy = Callable[[Replicate, np.random.Generator], pd.DataFrame]
 
 
 def default_strategies(design: SimulationDesign, *, m: int = 5, iterations: int = 5,
-                       include: Sequence[str] = ("complete_case", "missing_category", "multiple_imputation"),
+                       include: Sequence[str] = PARTICIPANT_ROW_STRATEGY_NAMES,
                        ) -> Dict[str, Strategy]:
     """Every strategy gapbook offers, set up for the design (cheap imputation settings: m, iterations).
 

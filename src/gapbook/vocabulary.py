@@ -22,12 +22,13 @@ __all__ = [
     "IMPUTATION_METHODS", "DEFAULT_METHOD", "ALLOWED_METHODS", "DELTA_METHODS", "METHOD_WORDS",
     "Family", "FAMILIES", "FAMILY_NAMES", "RATIO_NAMES", "RATIO_WORDS", "ratio_name", "has_ratio_scale",
     "effect_scale", "TIME_TO_EVENT_FAMILIES", "TIES_METHODS",
-    "Strategy", "STRATEGIES", "STRATEGY_NAMES", "STRATEGY_TITLES", "STRATEGY_PHRASES", "STRATEGY_ASSUMPTIONS",
-    "strategy_rank",
+    "Strategy", "STRATEGIES", "STRATEGY_NAMES", "STRATEGY_TITLES", "STRATEGY_PHRASES", "STRATEGY_SHORT_TITLES",
+    "STRATEGY_ASSUMPTIONS", "PARTICIPANT_ROW_STRATEGY_NAMES", "LEAD_STRATEGIES", "strategy_rank",
     "BLANK", "NOT_APPLICABLE", "IMPLAUSIBLE", "NO_RECORD", "REASON_NOT_GIVEN",
     "MAR_CAUTION", "SENSITIVITY_POINTER", "PLAN_CAUTION", "REPORTING_CAUTION", "CAUTIONS", "cautions",
     "COMPLETERS_CAUTION", "LAST_OBSERVATION_CAUTION", "REFERENCE_BASED_VARIANCE", "INFORMATION_ANCHORING",
     "LAYOUTS", "COVARIANCE_STRUCTURES", "FOLLOWUP_STRATEGY_NAMES", "NOT_RECOMMENDED_STRATEGIES",
+    "REFERENCE_BASED_STRATEGIES", "FOLLOWUP_IMPUTED_STRATEGIES",
     "IntercurrentStrategy", "INTERCURRENT_STRATEGIES", "INTERCURRENT_STRATEGY_NAMES", "targeting_strategies",
 ]
 
@@ -191,31 +192,41 @@ def effect_scale(family: str, *, exponentiated: bool) -> str:
 
 @dataclass(frozen=True)
 class Strategy:
-    """A way of handling missing data in the analysis: its table name, title and phrase in a sentence."""
+    """A way of handling missing data in the analysis: its table name, title, phrase in a sentence and
+    short label (a figure's axis or legend; the title when not given)."""
 
     name: str
     title: str
     phrase: str
+    short: str = ""
 
 
 STRATEGIES: Tuple[Strategy, ...] = (
     Strategy("complete_case", "Complete cases", "complete cases"),
     Strategy("missing_category", "Missing category / indicator", "missing-category (indicator) analysis"),
     # Follow-up (repeated-measures) studies: the mixed model first, as trial plans name it primary.
-    Strategy("mixed_model", "Mixed model for repeated measures", "the mixed model for repeated measures"),
-    Strategy("multiple_imputation", "Multiple imputation", "multiple imputation"),
-    Strategy("jump_to_reference", "Jump to reference", "jump-to-reference imputation"),
-    Strategy("copy_reference", "Copy reference", "copy-reference imputation"),
+    Strategy("mixed_model", "Mixed model for repeated measures", "the mixed model for repeated measures",
+             "mixed model (MAR)"),
+    Strategy("multiple_imputation", "Multiple imputation", "multiple imputation", "imputation (MAR)"),
+    Strategy("jump_to_reference", "Jump to reference", "jump-to-reference imputation", "jump to reference"),
+    Strategy("copy_reference", "Copy reference", "copy-reference imputation", "copy reference"),
     Strategy("copy_increments_reference", "Copy increments in reference",
-             "copy-increments-in-reference imputation"),
-    Strategy("delta_adjusted", "Own arm with a delta", "own-arm imputation with a delta after leaving"),
-    Strategy("completers", "Completers only (not recommended)", "the completers-only analysis"),
+             "copy-increments-in-reference imputation", "copy increments in reference"),
+    Strategy("delta_adjusted", "Own arm with a delta", "own-arm imputation with a delta after leaving",
+             "own group + delta"),
+    Strategy("completers", "Completers only (not recommended)", "the completers-only analysis", "completers only"),
     Strategy("last_observation", "Last observation carried forward (not recommended)",
-             "last observation carried forward"),
+             "last observation carried forward", "last observation carried forward"),
 )
 STRATEGY_NAMES: Tuple[str, ...] = tuple(s.name for s in STRATEGIES)
 STRATEGY_TITLES: Dict[str, str] = {s.name: s.title for s in STRATEGIES}
 STRATEGY_PHRASES: Dict[str, str] = {s.name: s.phrase for s in STRATEGIES}
+STRATEGY_SHORT_TITLES: Dict[str, str] = {s.name: s.short or s.title for s in STRATEGIES}
+# The strategies of a study with one row per participant (the cases, indicator and impute stages), in
+# table order: what the simulation stage compares by default.
+PARTICIPANT_ROW_STRATEGY_NAMES: Tuple[str, ...] = ("complete_case", "missing_category", "multiple_imputation")
+# The strategy a reader is pointed to first when present (the others are comparisons or sensitivity).
+LEAD_STRATEGIES: Tuple[str, ...] = ("multiple_imputation", "mixed_model", "complete_case")
 # What each strategy assumes about why values are missing, in a few words for the landing page's table
 # (Little & Rubin 2019, Statistical Analysis with Missing Data, 3rd ed.; White & Carlin 2010, Stat Med
 # 29:2920; Carpenter & Kenward 2013, Multiple Imputation and its Application; recalled from memory).
@@ -238,6 +249,10 @@ FOLLOWUP_STRATEGY_NAMES: Tuple[str, ...] = (
     "mixed_model", "multiple_imputation", "jump_to_reference", "copy_reference", "copy_increments_reference",
     "delta_adjusted", "completers", "last_observation")
 NOT_RECOMMENDED_STRATEGIES: Tuple[str, ...] = ("completers", "last_observation")
+# Reference-based imputation (Carpenter, Roger & Kenward 2013, J Biopharm Stat 23:1352-1371): after leaving, a participant's outcomes follow the reference group.
+REFERENCE_BASED_STRATEGIES: Tuple[str, ...] = ("jump_to_reference", "copy_reference", "copy_increments_reference")
+# The follow-up strategies that impute the missing visits (and so pool m imputed datasets).
+FOLLOWUP_IMPUTED_STRATEGIES: Tuple[str, ...] = ("multiple_imputation", *REFERENCE_BASED_STRATEGIES, "delta_adjusted")
 # Follow-up designs: how the file is laid out, and the covariance structures the mixed model fits.
 LAYOUTS: Tuple[str, ...] = ("long", "wide")
 COVARIANCE_STRUCTURES: Tuple[str, ...] = ("unstructured",)

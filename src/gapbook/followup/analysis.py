@@ -21,7 +21,8 @@ import numpy as np
 import pandas as pd
 
 from ..errors import InputError, did_you_mean
-from ..vocabulary import FOLLOWUP_STRATEGY_NAMES, INFORMATION_ANCHORING, REFERENCE_BASED_VARIANCE
+from ..vocabulary import (FOLLOWUP_STRATEGY_NAMES, INFORMATION_ANCHORING, REFERENCE_BASED_STRATEGIES,
+                          REFERENCE_BASED_VARIANCE)
 from .comparisons import (COMPLETERS, LAST_OBSERVATION, NOT_RECOMMENDED, carry_last_observation_forward,
                                    completers)
 from .imputation import DELTA_STRATEGY, RULE_STRATEGY, draw_posteriors, impute_repeated
@@ -34,7 +35,6 @@ __all__ = ["FOLLOWUP_STRATEGIES", "FollowupAnalysis", "analyse_followup"]
 # Every strategy of the stage, in the order tables and figures show them (the vocabulary's list).
 FOLLOWUP_STRATEGIES: Tuple[str, ...] = FOLLOWUP_STRATEGY_NAMES
 STRATEGY_RULE = {strategy: rule for rule, strategy in RULE_STRATEGY.items()}
-REFERENCE_BASED = ("jump_to_reference", "copy_reference", "copy_increments_reference")
 DEFAULT_STRATEGIES = tuple(s for s in FOLLOWUP_STRATEGIES if s != DELTA_STRATEGY)
 
 
@@ -110,7 +110,7 @@ def _sentences(effects: pd.DataFrame, last_visit: Any, alpha: float, method: str
         if "multiple_imputation" in by.index:
             sentences.append("Multiple imputation under missing at random gives "
                              f"{_effect_sentence(by.loc['multiple_imputation'], alpha)}.")
-        based = [s for s in REFERENCE_BASED if s in by.index]
+        based = [s for s in REFERENCE_BASED_STRATEGIES if s in by.index]
         if based:
             parts = "; ".join(f"{s.replace('_', ' ')} {_effect_sentence(by.loc[s], alpha)}" for s in based)
             sentences.append(f"If participants' outcomes after leaving follow the reference group: {parts}.")
@@ -122,7 +122,7 @@ def _sentences(effects: pd.DataFrame, last_visit: Any, alpha: float, method: str
                 sentences.append(f"{strategy.replace('_', ' ').capitalize()} (comparison only): "
                                  f"{_effect_sentence(by.loc[strategy], alpha)}.")
     present = set(effects["strategy"])
-    if present & set(REFERENCE_BASED):
+    if present & set(REFERENCE_BASED_STRATEGIES):
         sentences.extend([REFERENCE_BASED_VARIANCE, INFORMATION_ANCHORING])
     sentences.extend(NOT_RECOMMENDED[s] for s in (COMPLETERS, LAST_OBSERVATION) if s in present)
     return tuple(sentences)

@@ -49,16 +49,15 @@ from ..errors import AnalysisError, InputError, did_you_mean
 from ..inference import wald_inference
 from ..little import pattern_rows
 from ..pool import rubin_pool
-from ..vocabulary import INFORMATION_ANCHORING, REFERENCE_BASED_VARIANCE
+from ..vocabulary import INFORMATION_ANCHORING, REFERENCE_BASED_STRATEGIES, REFERENCE_BASED_VARIANCE
 from .mixed_model import VISIT_EFFECT_COLUMNS, design_crossproducts, fit_mixed_model
 from .repeated import RepeatedOutcome, label
 
 __all__ = ["RULE_STRATEGY", "DELTA_STRATEGY", "draw_group_parameters", "draw_posteriors", "impute_repeated"]
 
-RULES = ("mar", "jump_to_reference", "copy_reference", "copy_increments_reference")
-# The strategy label each rule gets in visit_effects.csv.
-RULE_STRATEGY = {"mar": "multiple_imputation", "jump_to_reference": "jump_to_reference",
-                 "copy_reference": "copy_reference", "copy_increments_reference": "copy_increments_reference"}
+RULES = ("mar", *REFERENCE_BASED_STRATEGIES)
+# The strategy label each rule gets in visit_effects.csv (a reference-based rule is named as its strategy).
+RULE_STRATEGY = {"mar": "multiple_imputation", **{rule: rule for rule in REFERENCE_BASED_STRATEGIES}}
 DELTA_STRATEGY = "delta_adjusted"
 
 

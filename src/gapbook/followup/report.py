@@ -19,17 +19,15 @@ import pandas as pd
 from ..inference import format_p
 from ..report import Checklist, ChecklistItem, MissingSummary, ParticipantFlow, ReportSummary, effect_phrase
 from ..text import md_code, md_escape
-from ..vocabulary import (INFORMATION_ANCHORING, INTERCURRENT_STRATEGIES, NOT_RECOMMENDED_STRATEGIES,
-                         REFERENCE_BASED_VARIANCE, STRATEGY_PHRASES, cautions as page_cautions)
+from ..vocabulary import (FOLLOWUP_IMPUTED_STRATEGIES, INFORMATION_ANCHORING, INTERCURRENT_STRATEGIES,
+                          NOT_RECOMMENDED_STRATEGIES, REFERENCE_BASED_STRATEGIES, REFERENCE_BASED_VARIANCE,
+                          STRATEGY_PHRASES, cautions as page_cautions)
 from .estimand import EstimandDescription, estimand_sentences
 
 FOLLOWUP_REPORT_TABLES: Tuple[str, ...] = (
     "followup_completeness", "followup_patterns", "followup_retention_test", "followup_stopping_reasons",
     "followup_leavers", "visit_effects", "estimates", "estimand", "audit_variables", "mcar_test")
 __all__ = ["FOLLOWUP_REPORT_TABLES", "followup_flow", "draft_followup_methods", "draft_followup_results", "followup_checklist", "summarise_followup"]
-
-REFERENCE_BASED = ("jump_to_reference", "copy_reference", "copy_increments_reference")
-IMPUTED = ("multiple_imputation",) + REFERENCE_BASED + ("delta_adjusted",)
 
 
 def _n(value: object) -> str:
@@ -159,9 +157,9 @@ def draft_followup_methods(*, formula: str, exposure: str, visits: Sequence[obje
     if "mixed_model" in strategies:
         lead = "The primary analysis was " if primary == "mixed_model" else "The analyses included "
         sentences.append(f"{lead}{mixed}. The effect of {exposure} was estimated at every visit.")
-    imputed = [s for s in strategies if s in IMPUTED]
+    imputed = [s for s in strategies if s in FOLLOWUP_IMPUTED_STRATEGIES]
     if imputed:
-        rules = [s for s in imputed if s in REFERENCE_BASED]
+        rules = [s for s in imputed if s in REFERENCE_BASED_STRATEGIES]
         text = (f"Missing visits were multiply imputed (m = {m}, seed {seed}) from each arm's multivariate normal "
                 "model, drawn by data augmentation, ")
         parts = []
@@ -245,7 +243,7 @@ def draft_followup_results(*, flow: ParticipantFlow, patterns: Optional[pd.DataF
             sentences.append(f"The effect ({md_escape(term)}) at visit {md_escape(_label(last_visit))} was "
                              + "; ".join(parts) + ".")
         present = set(headline["strategy"])
-        if present & set(REFERENCE_BASED):
+        if present & set(REFERENCE_BASED_STRATEGIES):
             sentences.extend([REFERENCE_BASED_VARIANCE, INFORMATION_ANCHORING])
     else:
         sentences.append("The follow-up stage has not written estimates yet.")
@@ -275,7 +273,7 @@ def followup_checklist(flow: ParticipantFlow, missing: MissingSummary, tables: M
     analysed = steps[steps["step"].str.startswith("analysed: ")]
     estimates = tables.get("estimates")
     strategies = [] if estimates is None else list(dict.fromkeys(estimates["strategy"]))
-    sensitivity = [s for s in strategies if s in REFERENCE_BASED + ("delta_adjusted",)]
+    sensitivity = [s for s in strategies if s in REFERENCE_BASED_STRATEGIES + ("delta_adjusted",)]
     test = tables.get("followup_retention_test")
     items: List[ChecklistItem] = [
         ChecklistItem("participants randomised, attending each visit and analysed, by arm", "CONSORT 13a, 16",

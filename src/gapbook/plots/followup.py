@@ -21,17 +21,13 @@ from ..followup.analysis import FollowupAnalysis
 from ..followup.audit import FollowupAudit
 from ..followup.comparisons import COMPLETERS, LAST_OBSERVATION
 from ..followup.repeated import label
+from ..vocabulary import STRATEGY_SHORT_TITLES
 from .palette import GROUPS, strategy_colour, strategy_marker
 
 __all__ = ["plot_retention", "plot_completeness", "plot_profiles", "plot_means", "plot_last_visit_effects"]
 
 # One colour per exposure group, in level order: the reference group in the dark neutral tone.
 GROUP_COLOURS = GROUPS
-STRATEGY_TITLES = {"mixed_model": "mixed model (MAR)", "multiple_imputation": "imputation (MAR)",
-                   "jump_to_reference": "jump to reference", "copy_reference": "copy reference",
-                   "copy_increments_reference": "copy increments in reference",
-                   "delta_adjusted": "own group + delta", COMPLETERS: "completers only",
-                   LAST_OBSERVATION: "last observation carried forward"}
 
 
 def _group_colour(groups: Sequence[Any], group: Any) -> str:
@@ -231,7 +227,7 @@ def plot_last_visit_effects(analysis: FollowupAnalysis):
             colour = strategy_colour(strategy)
             axes.hlines(y, row["ci_lower"], row["ci_upper"], color=colour, linewidth=2)
             axes.plot(row["estimate"], y, strategy_marker(strategy), color=colour, markersize=5)
-            name = STRATEGY_TITLES.get(strategy, strategy)
+            name = STRATEGY_SHORT_TITLES.get(strategy, strategy)
             if comparison:
                 name += " (not recommended)"
             y_labels.append(name if len(terms) == 1 else f"{term}: {name}")

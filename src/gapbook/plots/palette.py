@@ -23,6 +23,8 @@ from typing import Dict, Mapping, Sequence, Tuple
 
 from matplotlib.colors import Colormap, LinearSegmentedColormap, to_rgb
 
+from ..vocabulary import FOLLOWUP_STRATEGY_NAMES, PARTICIPANT_ROW_STRATEGY_NAMES
+
 __all__ = ["OBSERVED", "MISSING", "IMPUTED", "NOT_APPLICABLE", "REFERENCE", "EMPHASIS", "NEUTRAL", "UNTESTED",
            "GRID", "BACKGROUND", "STRATEGY_COLOURS", "STRATEGY_MARKERS", "GROUPS", "REASON_SHADES",
            "MIN_DIFFERENCE", "DISTINGUISHABLE", "roles", "strategy_colour", "strategy_marker", "reason_shades",
@@ -81,9 +83,8 @@ MIN_DIFFERENCE = 12.0  # CIEDE2000; about 10 and above reads as clearly differen
 DISTINGUISHABLE: Tuple[Tuple[str, ...], ...] = (
     ("observed", "missing", "not_applicable", "emphasis", "neutral"),
     ("observed", "imputed", "not_applicable", "emphasis", "neutral"),
-    ("complete_case", "missing_category", "multiple_imputation", "delta_adjusted", "reference", "emphasis"),
-    ("mixed_model", "multiple_imputation", "jump_to_reference", "copy_reference", "copy_increments_reference",
-     "delta_adjusted", "completers", "last_observation", "reference"),
+    (*PARTICIPANT_ROW_STRATEGY_NAMES, "delta_adjusted", "reference", "emphasis"),
+    (*FOLLOWUP_STRATEGY_NAMES, "reference"),
     ("group_1", "group_2", "group_3", "group_4", "group_5"),
     tuple(f"reason_{i + 1}" for i in range(8)),
 )
