@@ -22,7 +22,8 @@ import pandas as pd
 from .errors import InputError
 from .inference import standardised_difference
 from .intake import levels_of
-from .models import AnalysisModel, ModelFit, add_ratio_columns, exposure_terms, formula_columns, scale_sentence
+from .models import (AnalysisModel, ModelFit, add_ratio_columns, exposure_rows, exposure_terms, formula_columns,
+                     scale_sentence)
 from .vocabulary import CATEGORICAL_TYPES, NUMBER_CODED_TYPES, STRATEGY_TITLES, infer_type, ratio_name
 
 __all__ = ["CompleteCaseFlow", "exposure_column", "complete_case_flow", "CompleteCaseResult", "check_model_data",
@@ -161,8 +162,7 @@ class CompleteCaseResult:
 
     def exposure_estimates(self) -> pd.DataFrame:
         """The rows of :meth:`estimates` for the exposure terms."""
-        estimates = self.estimates()
-        return estimates[estimates["term"].isin(self.exposure_terms)].reset_index(drop=True)
+        return exposure_rows(self.estimates(), self.exposure_terms)
 
     def tables(self) -> Dict[str, pd.DataFrame]:
         """``flow_complete_case`` and this strategy's rows of ``estimates``."""

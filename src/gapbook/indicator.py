@@ -33,7 +33,7 @@ from .cases import (CompleteCaseFlow, check_model_data, complete_case_flow, expo
 from .errors import InputError
 from .expressions import ColumnAliases, parse_formula
 from .intake import levels_of
-from .models import AnalysisModel, ModelFit, exposure_terms, scale_sentence
+from .models import AnalysisModel, ModelFit, exposure_rows, exposure_terms, scale_sentence
 
 __all__ = ["MISSING_LEVEL", "INDICATOR_WARNING", "prepare_missing_category", "MissingCategoryResult",
            "missing_category_analysis"]
@@ -218,8 +218,7 @@ class MissingCategoryResult:
 
     def exposure_estimates(self) -> pd.DataFrame:
         """The rows of :meth:`estimates` for the exposure terms."""
-        estimates = self.estimates()
-        return estimates[estimates["term"].isin(self.exposure_terms)].reset_index(drop=True)
+        return exposure_rows(self.estimates(), self.exposure_terms)
 
     def tables(self) -> Dict[str, pd.DataFrame]:
         """``missing_category_handling``, ``flow_missing_category`` and this strategy's ``estimates`` rows."""

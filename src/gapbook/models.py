@@ -24,7 +24,7 @@ from .survival import EventCoding, check_follow_up, cox_model, fit_cox_model
 from .vocabulary import FAMILY_NAMES, TIME_TO_EVENT_FAMILIES, effect_scale, has_ratio_scale
 
 __all__ = ["ModelFit", "add_ratio_columns", "formula_columns", "check_formula", "fit_model", "exposure_terms",
-           "AnalysisModel"]
+           "exposure_rows", "AnalysisModel"]
 
 
 @dataclass(frozen=True)
@@ -471,6 +471,26 @@ def exposure_terms(terms: Sequence[str], exposure: Optional[str]) -> List[str]:
         raise InputError(f"'{exposure}' matches no term of the model "
                          f"({', '.join(terms)}){did_you_mean(exposure, terms)}", option="exposure")
     return matched
+
+
+def exposure_rows(estimates: Optional[pd.DataFrame], terms: Sequence[str]) -> pd.DataFrame:
+    """The rows of ``estimates.csv`` (any strategies) for the exposure terms, numbered from 0.
+
+    Parameters
+    ----------
+    estimates : DataFrame or None
+        Rows with the ``estimates.csv`` columns; None or empty when no analysis ran.
+    terms : sequence of str
+        The exposure terms (:func:`exposure_terms`).
+
+    Returns
+    -------
+    DataFrame
+        The matching rows; without estimates, an empty frame with the columns a report reads.
+    """
+    if estimates is None or estimates.empty:
+        return pd.DataFrame(columns=["strategy", "term", "estimate", "ci_lower", "ci_upper", "p_value", "n_used"])
+    return estimates[estimates["term"].isin(list(terms))].reset_index(drop=True)
 
 
 @dataclass(frozen=True)

@@ -18,7 +18,7 @@ import pandas as pd
 from .errors import InputError, did_you_mean
 from .intake import Study
 from .impute import ImputationSettings
-from .models import AnalysisModel, check_formula, exposure_terms
+from .models import AnalysisModel, check_formula, exposure_rows, exposure_terms
 from .inference import format_estimate, format_p
 from .text import md_escape
 from .vocabulary import STRATEGY_PHRASES, cautions as page_cautions, effect_scale, has_ratio_scale
@@ -394,13 +394,6 @@ def _count(value: object, min_cell: int = 0) -> str:
     if min_cell > 1 and 1 <= number < min_cell:
         return f"<{min_cell}"
     return _fmt(number)
-
-
-def exposure_rows(estimates: Optional[pd.DataFrame], terms: Sequence[str]) -> pd.DataFrame:
-    """The rows of ``estimates.csv`` for the exposure terms (empty when none)."""
-    if estimates is None or estimates.empty:
-        return pd.DataFrame(columns=["strategy", "term", "estimate", "ci_lower", "ci_upper", "p_value", "n_used"])
-    return estimates[estimates["term"].isin(list(terms))].reset_index(drop=True)
 
 
 def effect_phrase(row: Mapping[str, object], alpha: float, family: str = "gaussian") -> str:
