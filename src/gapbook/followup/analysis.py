@@ -21,6 +21,7 @@ import numpy as np
 import pandas as pd
 
 from ..errors import InputError, did_you_mean
+from ..inference import format_p
 from ..vocabulary import (FOLLOWUP_STRATEGY_NAMES, INFORMATION_ANCHORING, REFERENCE_BASED_STRATEGIES,
                           REFERENCE_BASED_VARIANCE)
 from .comparisons import (COMPLETERS, LAST_OBSERVATION, NOT_RECOMMENDED, carry_last_observation_forward,
@@ -95,7 +96,7 @@ def _covariance_table(fit: MixedModelFit) -> pd.DataFrame:
 def _effect_sentence(row: pd.Series, alpha: float) -> str:
     level = int(round(100 * (1 - alpha)))
     return (f"{row['estimate']:.3g} ({level} % CI {row['ci_lower']:.3g} to {row['ci_upper']:.3g}; "
-            f"p = {row['p_value']:.3g})")
+            f"{format_p(row['p_value'])})")
 
 
 def _sentences(effects: pd.DataFrame, last_visit: Any, alpha: float, method: str) -> Tuple[str, ...]:

@@ -24,6 +24,7 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
+from ..inference import format_p
 from ..vocabulary import REASON_NOT_GIVEN
 from .repeated import RepeatedOutcome, last_observed_index
 
@@ -249,13 +250,13 @@ def _sentences(outcome: RepeatedOutcome, completeness: pd.DataFrame, patterns: p
     if not test.empty:
         row = test.iloc[0]
         sentences.append(f"Time to the last attended visit by group: log-rank chi-square {row.statistic:.2f} on "
-                         f"{int(row.df)} df, p = {row.p_value:.3g}.")
+                         f"{int(row.df)} df, {format_p(row.p_value)}.")
     usable = leavers.dropna(subset=["p_value"])
     if not usable.empty:
         strongest = usable.loc[usable["p_value"].idxmin()]
         sentences.append(f"Largest difference before leaving: in group {strongest.group}, those who left after visit "
                          f"{strongest.visit} had a mean outcome there {strongest.difference:+.3g} from those who "
-                         f"stayed (Welch p = {strongest.p_value:.3g}). Dropout related to observed outcomes is "
+                         f"stayed (Welch test, {format_p(strongest.p_value)}). Dropout related to observed outcomes is "
                          "compatible with missing at random, but completers-only and last-observation analyses "
                          "ignore it.")
     return tuple(sentences)

@@ -21,6 +21,7 @@ from ..followup.analysis import FollowupAnalysis
 from ..followup.audit import FollowupAudit
 from ..followup.comparisons import COMPLETERS, LAST_OBSERVATION
 from ..followup.repeated import label
+from ..inference import format_p
 from ..vocabulary import STRATEGY_SHORT_TITLES
 from .palette import GROUPS, strategy_colour, strategy_marker
 
@@ -79,7 +80,7 @@ def plot_retention(audit: FollowupAudit):
     title = "How long did participants stay in each group?"
     if not audit.retention_test.empty:
         row = audit.retention_test.iloc[0]
-        title += f"\nlog-rank chi-square {row['statistic']:.2f}, {int(row['df'])} df, p = {row['p_value']:.3g}"
+        title += f"\nlog-rank chi-square {row['statistic']:.2f}, {int(row['df'])} df, {format_p(row['p_value'])}"
     axes.set_title(title, fontsize=10)
     axes.legend(frameon=False, fontsize=8, loc="lower left")
     axes.spines[["top", "right"]].set_visible(False)
