@@ -16,8 +16,7 @@ each function taking a result object).
 """
 from __future__ import annotations
 
-import importlib
-from typing import Any, List
+from .lazy import lazy_exports
 
 __version__ = "0.1.0"
 
@@ -49,32 +48,4 @@ _EXPORTS = {
 __all__ = ["__version__", *_EXPORTS]
 
 
-def __getattr__(name: str) -> Any:
-    """Import the module defining ``name`` on first use (PEP 562).
-
-    Parameters
-    ----------
-    name : str
-        A name listed in ``__all__``.
-
-    Returns
-    -------
-    object
-        The function, class or value of that name.
-    """
-    module = _EXPORTS.get(name)
-    if module is None:
-        raise AttributeError(f"module 'gapbook' has no attribute {name!r}")
-    value = getattr(importlib.import_module(f".{module}", __name__), name)
-    globals()[name] = value  # later look-ups skip this function
-    return value
-
-
-def __dir__() -> List[str]:
-    """The module's names, the lazily loaded ones included.
-
-    Returns
-    -------
-    list of str
-    """
-    return sorted(set(globals()) | set(_EXPORTS))
+__getattr__, __dir__ = lazy_exports(__name__, _EXPORTS)

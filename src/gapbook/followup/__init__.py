@@ -19,25 +19,15 @@ does not load the others.
 """
 from __future__ import annotations
 
-import importlib
-from typing import Any, List
+from ..lazy import lazy_exports
 
 __all__ = ["FOLLOWUP_STRATEGIES", "FollowupAnalysis", "analyse_followup", "FollowupAudit", "audit_followup",
            "describe_estimand", "fit_mixed_model", "impute_repeated", "repeated_outcome", "repeated_study"]
 
-_MODULE_OF = {"FOLLOWUP_STRATEGIES": ".analysis", "FollowupAnalysis": ".analysis", "analyse_followup": ".analysis",
-              "FollowupAudit": ".audit", "audit_followup": ".audit", "describe_estimand": ".estimand",
-              "fit_mixed_model": ".mixed_model", "impute_repeated": ".imputation",
-              "repeated_outcome": ".repeated", "repeated_study": ".intake"}
+_MODULE_OF = {"FOLLOWUP_STRATEGIES": "analysis", "FollowupAnalysis": "analysis", "analyse_followup": "analysis",
+              "FollowupAudit": "audit", "audit_followup": "audit", "describe_estimand": "estimand",
+              "fit_mixed_model": "mixed_model", "impute_repeated": "imputation",
+              "repeated_outcome": "repeated", "repeated_study": "intake"}
 
 
-def __getattr__(name: str) -> Any:
-    if name in _MODULE_OF:
-        value = getattr(importlib.import_module(_MODULE_OF[name], __name__), name)
-        globals()[name] = value
-        return value
-    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
-
-
-def __dir__() -> List[str]:
-    return sorted(set(globals()) | set(__all__))
+__getattr__, __dir__ = lazy_exports(__name__, _MODULE_OF)

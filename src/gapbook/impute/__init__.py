@@ -14,23 +14,13 @@ uses, which keeps every worker about 100 MB smaller.
 """
 from __future__ import annotations
 
-import importlib
-from typing import Any, List
+from ..lazy import lazy_exports
 
 __all__ = ["ChainedImputation", "impute_chained", "ImputationPlan", "ImputationSettings", "plan_imputation",
            "passive_inputs"]
 
-_MODULE_OF = {"ChainedImputation": ".engine", "impute_chained": ".engine", "ImputationPlan": ".plan",
-              "ImputationSettings": ".plan", "plan_imputation": ".plan", "passive_inputs": ".preparation"}
+_MODULE_OF = {"ChainedImputation": "engine", "impute_chained": "engine", "ImputationPlan": "plan",
+              "ImputationSettings": "plan", "plan_imputation": "plan", "passive_inputs": "preparation"}
 
 
-def __getattr__(name: str) -> Any:
-    if name in _MODULE_OF:
-        value = getattr(importlib.import_module(_MODULE_OF[name], __name__), name)
-        globals()[name] = value
-        return value
-    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
-
-
-def __dir__() -> List[str]:
-    return sorted(set(globals()) | set(__all__))
+__getattr__, __dir__ = lazy_exports(__name__, _MODULE_OF)
