@@ -21,6 +21,7 @@ order, so row numbers are file rows); Parquet files are read in place.
 from __future__ import annotations
 
 import codecs
+import contextlib
 import os
 import shutil
 import tempfile
@@ -48,6 +49,7 @@ __all__ = ["WHITESPACE", "choose_engine", "ScannedColumn", "ScannedStudy", "scan
 
 AUTO_DUCKDB_BYTES = 100 * 2**20  # data.engine auto: files larger than 100 MiB are read with DuckDB
 MEMORY_LIMIT = "1GB"  # DuckDB spills to its private temporary folder beyond this
+IDLE_MEMORY_LIMIT = "64MB"  # while Python works on fetched counts, DuckDB's cached pages are let go
 PLAIN_NUMBER = r"[+-]?([0-9]+[.]?[0-9]*|[.][0-9]+)([eE][+-]?[0-9]+)?"
 DISTINCT_LISTED = 1000  # an undeclared numeric column lists its distinct values up to this many
 _APPROX_DISTINCT = 4 * DISTINCT_LISTED  # HyperLogLog estimates above this surely exceed DISTINCT_LISTED
@@ -139,6 +141,16 @@ def literal(value: Any) -> str:
     return f"{number!r}::DOUBLE"
 
 
+def _is_nan(number: str) -> str:
+    """True where a DOUBLE is NaN.
+
+    Not ``isnan()``: DuckDB 2.0 folds ``isnan(x)`` (and ``x = 'nan'``) of a Parquet column to
+    false from the file's min/max statistics, which leave NaN out; ``isfinite`` and
+    ``isinf`` are evaluated on the values.
+    """
+    return f"(NOT isfinite({number}) AND NOT isinf({number}))"
+
+
 def _in_list(column: str, values: Sequence[Any]) -> str:
     if not values:
         return "false"
@@ -203,6 +215,19 @@ class ScannedStudy:
 
     def variables_table(self) -> pd.DataFrame:
         return variables_table(self.variables)
+
+    @contextlib.contextmanager
+    def buffers_released(self):
+        """While in this block DuckDB lets its cached pages go (its memory limit lowered), for work in Python.
+
+        The pages of the decided rows stay in the private database file and are read again when
+        needed; with millions of patterns the Python side then has the memory DuckDB held.
+        """
+        self.connection.execute(f"SET memory_limit = {literal(IDLE_MEMORY_LIMIT)}")
+        try:
+            yield self
+        finally:
+            self.connection.execute(f"SET memory_limit = {literal(MEMORY_LIMIT)}")
 
     def close(self) -> None:
         if self._cleanup is not None:
@@ -351,7 +376,7 @@ class _Scanner:
                 else:
                     plain = f"coalesce(isfinite({number}) AND NOT {_in_list(number, numbers)}, false)"
                     parts += [f"CASE WHEN {plain} THEN {number} END AS p_{a}",
-                              f"CASE WHEN NOT {plain} THEN {number} END AS s_{a}"]
+                              f"CASE WHEN NOT {plain} THEN {number} END AS s_{a}", f"{number} AS x_{a}"]
             else:
                 number = f"TRY_CAST({c} AS DOUBLE)"
                 if every_value:
@@ -390,7 +415,7 @@ class _Scanner:
 
     def _clean_id_sql(self) -> str:
         if self.id_kind == "number":
-            return "CASE WHEN NOT isnan(CAST(id AS DOUBLE)) THEN id END"
+            return f"CASE WHEN NOT {_is_nan('CAST(id AS DOUBLE)')} THEN id END"
         return f"nullif(trim(id, {literal(WHITESPACE)}), '')"
 
     def _check_ids(self) -> None:
@@ -432,9 +457,9 @@ class _Scanner:
         parts = ["count(*) AS n_rows"]
         for name in self.variables:
             a = self.alias[name]
-            parts.append(f"count(p_{a}) AS np_{a}")
+            parts += [f"count(p_{a}) AS np_{a}", f"min(p_{a}) AS lo_{a}", f"max(p_{a}) AS hi_{a}"]
             if name not in self.params.variables or self.params.variables[name].type is None:
-                parts += [f"min(p_{a}) AS lo_{a}", f"max(p_{a}) AS hi_{a}", f"approx_count_distinct(p_{a}) AS nd_{a}"]
+                parts.append(f"approx_count_distinct(p_{a}) AS nd_{a}")
         row = self.con.execute(f"SELECT {', '.join(parts)} FROM cells").fetchone()
         values = dict(zip([d[0] for d in self.con.description], row))
         self.n_rows = int(values["n_rows"])
@@ -444,7 +469,9 @@ class _Scanner:
     def _specials(self, name: str) -> Tuple[List[Any], np.ndarray]:
         """The column's listed cells with their counts, NA left out."""
         a = self.alias[name]
-        rows = self.con.execute(f"SELECT s_{a} AS s, count(*) FROM cells WHERE s_{a} IS NOT NULL GROUP BY s").fetchall()
+        # In order of first appearance, as pandas.factorize lists them (messages name the first offending value).
+        rows = self.con.execute(f"SELECT s_{a} AS s, count(*) FROM cells WHERE s_{a} IS NOT NULL GROUP BY s "
+                                "ORDER BY min(rn)").fetchall()
         uniques = [r[0] for r in rows]
         if self.kinds[name] == "number":
             # Typed NaN cells are NA in pandas; their reason is the blank one either way.
@@ -457,9 +484,13 @@ class _Scanner:
         a = self.alias[name]
         n = int(summary["np"])
         spec = self.params.variables.get(name, VariableSpec())
-        if n == 0 or spec.type is not None:
-            # A declared numeric type needs no distinct values (categorical ones list every cell).
-            return PlainNumbers(n_cells=n, values=(), complete=spec.type is None)
+        if n == 0:
+            return PlainNumbers(n_cells=0, values=(), complete=True)
+        if spec.type is not None:
+            # A declared numeric type needs only the smallest and largest value (is a numeric missing code
+            # among the real values?); categorical ones list every cell.
+            lo, hi = float(summary["lo"]), float(summary["hi"])
+            return PlainNumbers(n_cells=n, values=(lo,) if lo == hi else (lo, hi), complete=False)
         if summary["nd"] <= _APPROX_DISTINCT:
             values = self.con.execute(f"SELECT DISTINCT p_{a} FROM cells WHERE p_{a} IS NOT NULL").fetchall()
             return PlainNumbers(n_cells=n, values=tuple(sorted(v[0] for v in values)), complete=True)
@@ -522,12 +553,30 @@ class _Scanner:
                 kept.append(i)
             else:
                 by_reason.setdefault(labels.index(reason), []).append(uniques[i])
-        arms = [f"WHEN p_{a} IS NOT NULL THEN -1", f"WHEN s_{a} IS NULL THEN {labels.index(decision.na_reason)}"]
+        value_sql = code_sql = None
+        na_code = labels.index(decision.na_reason)
+        if self.kinds[name] == "number" and name not in self.every_value and decision.numbers is not None:
+            # A typed number column (Parquet): a NULL/NaN test and one equality per listed value, on the
+            # number as read. Plain numbers are never listed (they are finite and equal no marker), so they
+            # and the listed values kept as numbers fall to ELSE -1, as in the general CASE chain below.
+            x = f"x_{a}"
+            missing = " OR ".join([f"{x} IS NULL", _is_nan(x)]
+                                  + [_in_list(x, values) for _, values in sorted(by_reason.items())])
+            base = ("(CASE " + " ".join([f"WHEN {x} IS NULL OR {_is_nan(x)} THEN {na_code}"]
+                                        + [f"WHEN {_in_list(x, values)} THEN {code}"
+                                           for code, values in sorted(by_reason.items())]) + " ELSE -1 END)")
+            value_sql = f"(CASE WHEN NOT ({missing}) THEN {x} END)"
+            outside = " OR ".join(([f"{x} < {literal(lo)}"] if lo is not None else [])
+                                  + ([f"{x} > {literal(hi)}"] if hi is not None else []))
+            reason_sql = (f"(CASE WHEN {base} = -1 AND ({outside}) THEN {labels.index(IMPLAUSIBLE)} ELSE {base} END)"
+                          if implausible else base)
+            return ScannedColumn(name=name, alias=a, info=info, decision=decision, reason_labels=tuple(labels),
+                                 reason_sql=reason_sql, value_sql=value_sql, code_sql=None)
+        arms = [f"WHEN p_{a} IS NOT NULL THEN -1", f"WHEN s_{a} IS NULL THEN {na_code}"]
         if self.kinds[name] == "number":
-            arms.append(f"WHEN isnan(s_{a}) THEN {labels.index(decision.na_reason)}")
+            arms.append(f"WHEN {_is_nan(f's_{a}')} THEN {na_code}")
         arms += [f"WHEN {_in_list(f's_{a}', values)} THEN {code}" for code, values in sorted(by_reason.items())]
         base = f"(CASE {' '.join(arms)} ELSE -1 END)"
-        value_sql = code_sql = None
         if decision.numbers is not None:
             kept_numbers = [(uniques[i], decision.numbers[i]) for i in kept]
             value_arms = [f"WHEN p_{a} IS NOT NULL THEN p_{a}"]
@@ -555,7 +604,7 @@ class _Scanner:
         parts = ["rn", "id" if self.id_column is not None else "rn + 1 AS id"]
         for column in columns.values():
             a = column.alias
-            parts.append(f"{column.reason_sql}::SMALLINT AS r0_{a}")
+            parts.append(f"{column.reason_sql}::{_reason_type(column)} AS r0_{a}")
             if column.value_sql is not None:
                 parts.append(f"{column.value_sql} AS v0_{a}")
             if column.code_sql is not None:
@@ -569,7 +618,8 @@ class _Scanner:
             if column.name in self.conditions:
                 # Outside the condition the cell is not applicable, whatever it holds; where the condition is
                 # unknown (an input missing) the cell stays as it is (Kleene: NOT NULL is NULL).
-                reason = f"(CASE WHEN NOT a_{a} THEN {column.label_code(NOT_APPLICABLE)} ELSE r0_{a} END)::SMALLINT"
+                reason = (f"(CASE WHEN NOT a_{a} THEN {column.label_code(NOT_APPLICABLE)} ELSE r0_{a} END)"
+                          f"::{_reason_type(column)}")
                 final += [f"a_{a}", f"{'v0' if column.value_sql is not None else 'k0'}_{a} AS n0_{a}"]
             final.append(f"{reason} AS r_{a}")
             if column.value_sql is not None:
@@ -582,7 +632,11 @@ class _Scanner:
         # The decided rows are written once into DuckDB's own (compressed) storage: every later pass then
         # scans plain columns instead of evaluating the raw cells' expressions again (three times faster
         # over 3 million rows x 30 columns than passes over a view).
+        # Every later query orders by rn where order matters, so the rows may be written in any order:
+        # without that, DuckDB holds finished batches back to keep the file order.
+        self.con.execute("SET preserve_insertion_order = false")
         self.con.execute(f"CREATE TABLE study AS SELECT {', '.join(final)} FROM {layered_select('decided', bindings)}")
+        self.con.execute("SET preserve_insertion_order = true")
         if self.fmt != "parquet":
             self.con.execute("DROP VIEW IF EXISTS cells")
             self.con.execute("DROP VIEW raw")
@@ -712,6 +766,11 @@ class _Scanner:
                             id_column=self.id_column, range_issues=issues, extreme_values=extremes,
                             source=str(self.path), sha256=sha256_of(self.path), notes=inferred_notes(infos),
                             warnings=tuple(self.warnings))
+
+
+def _reason_type(column: ScannedColumn) -> str:
+    """The SQL type of a column's reason codes (-1 to the number of labels): a byte unless there are very many."""
+    return "TINYINT" if len(column.reason_labels) < 127 else "SMALLINT"
 
 
 def _range_checked(column: ScannedColumn) -> bool:
