@@ -414,8 +414,10 @@ def patterns_from_words(words: np.ndarray, counts: np.ndarray, n_variables: int)
     """
     words = np.ascontiguousarray(words, dtype=np.uint64)
     bits = np.unpackbits(words.astype(">u8").view(np.uint8).reshape(len(words), -1), axis=1,
-                         bitorder="big")[:, :n_variables]
-    return PatternCounts(bits, np.asarray(counts, dtype=np.int64))
+                         bitorder="big")
+    # A copy of the variables' bits only: a slice would keep all 64 bits per word alive (with millions
+    # of patterns, twice the memory).
+    return PatternCounts(np.ascontiguousarray(bits[:, :n_variables]), np.asarray(counts, dtype=np.int64))
 
 
 def pattern_table(patterns: PatternCounts, names: Sequence[str], *,
@@ -531,8 +533,12 @@ def rows_in_dropout_order(patterns: PatternCounts, order_index: Sequence[int]) -
     total = int(patterns.n_rows.sum())
     if total == 0:
         return float("nan")
-    bits = patterns.missing_bits[:, list(order_index)].astype(np.int8)
-    fits = np.all(np.diff(bits, axis=1) >= 0, axis=1) if bits.shape[1] > 1 else np.ones(len(bits), dtype=bool)
+    fits = np.ones(len(patterns.n_rows), dtype=bool)
+    if len(order_index) > 1:
+        # In chunks: the reordered bits and their differences are pattern-sized temporaries.
+        for start in range(0, len(fits), _CHUNK_ROWS):
+            bits = patterns.missing_bits[start:start + _CHUNK_ROWS][:, list(order_index)].astype(np.int8)
+            fits[start:start + _CHUNK_ROWS] = np.all(np.diff(bits, axis=1) >= 0, axis=1)
     return float(patterns.n_rows[fits].sum() / total * 100)
 
 
@@ -576,15 +582,16 @@ def comissingness(patterns: PatternCounts, names: Sequence[str]) -> Tuple[pd.Dat
     """
     counts = patterns.n_rows.astype(np.float64)
     n = float(counts.sum())
-    missing_per_variable = patterns.missing_bits.T.astype(np.float64) @ counts if len(counts) else np.zeros(len(names))
-    incomplete = [j for j in range(len(names)) if missing_per_variable[j] > 0]
-    labels = [names[j] for j in incomplete]
-    both = np.zeros((len(incomplete), len(incomplete)))
-    # Chunks keep the float copy of the pattern bits small when nearly every row is its own pattern.
-    for start in range(0, len(counts), _CHUNK_ROWS):
-        block = patterns.missing_bits[start:start + _CHUNK_ROWS][:, incomplete].astype(np.float64)
-        both += block.T @ (block * counts[start:start + _CHUNK_ROWS, None])
+    both = np.zeros((len(names), len(names)))
+    # Chunks keep the float copy of the pattern bits small (about 32 MB) when nearly every row is its own pattern.
+    step = max(1024, _CHUNK_ROWS * 32 // max(len(names), 1))
+    for start in range(0, len(counts), step):
+        block = patterns.missing_bits[start:start + step].astype(np.float64)
+        both += block.T @ (block * counts[start:start + step, None])
     both = np.rint(both)
+    incomplete = [j for j in range(len(names)) if both[j, j] > 0]  # the diagonal: rows missing each variable
+    labels = [names[j] for j in incomplete]
+    both = both[np.ix_(incomplete, incomplete)]
     single = np.diag(both).copy()
     with np.errstate(divide="ignore", invalid="ignore"):
         spread = np.sqrt(single * (n - single))

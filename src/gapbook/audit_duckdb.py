@@ -3,7 +3,8 @@
 Two passes over the rows, whatever the number of variables: one groups rows by their
 missingness bitmask (the pattern table; 64 variables per word), the other counts every
 variable's reasons per level of the grouping variables. Both feed the same table builder
-as the pandas path (:func:`gapbook.audit.audit_from_counts`), so the tables are the same.
+as the pandas path (:func:`gapbook.audit.audit_from_counts`), so the tables are the same;
+it works in numpy while DuckDB's cached pages are let go (millions of patterns need the memory).
 """
 from __future__ import annotations
 
@@ -28,12 +29,13 @@ def _missing_sql(column: ScannedColumn) -> str:
     return f"({r} >= 0 AND {r} <> {not_applicable})" if not_applicable >= 0 else f"({r} >= 0)"
 
 
-def count_patterns_sql(scanned: ScannedStudy):
-    """Distinct missingness patterns and their rows, grouped in SQL on packed bitmask words."""
+def pattern_words_sql(scanned: ScannedStudy):
+    """Distinct missingness patterns grouped in SQL on packed bitmask words: the words (sorted as numpy.unique
+    sorts them), their rows and the number of variables, for :func:`gapbook.audit.patterns_from_words`."""
     columns = list(scanned.columns.values())
     p = len(columns)
     if p == 0:
-        return patterns_from_words(np.zeros((1, 1), dtype=np.uint64), np.array([scanned.n_rows]), 0)
+        return np.zeros((1, 1), dtype=np.uint64), np.array([scanned.n_rows]), 0
     words = []
     for start in range(0, p, 64):
         block = columns[start:start + 64]
@@ -45,7 +47,7 @@ def count_patterns_sql(scanned: ScannedStudy):
     codes = np.column_stack([np.asarray(found[f"w{i}"], dtype=np.uint64) for i in range(len(words))])
     counts = np.asarray(found["n"], dtype=np.int64)
     order = np.lexsort(codes.T[::-1])  # lexicographic by word, as numpy.unique sorts packed rows
-    return patterns_from_words(codes[order], counts[order], p)
+    return codes[order], counts[order], p
 
 
 def count_reasons_sql(scanned: ScannedStudy, by: Sequence[str]):
@@ -120,12 +122,14 @@ def audit_scanned(scanned: ScannedStudy, *, threshold: float = DEFAULT_THRESHOLD
     names = list(scanned.columns)
     by = _grouping_variables(by, names)
     reasons, groups = count_reasons_sql(scanned, by)
-    counts = MissingnessCounts(names=tuple(names), n_rows=scanned.n_rows, reasons=reasons,
-                               patterns=count_patterns_sql(scanned), groups=groups)
+    words = pattern_words_sql(scanned)
     types: Dict[str, str] = scanned.types
-    result = audit_from_counts(counts, types=types, threshold=float(threshold), top_patterns=int(top_patterns),
-                               range_issues=scanned.range_issues.reset_index(drop=True),
-                               extremes=scanned.extreme_values.reset_index(drop=True),
-                               types_table=scanned.variables_table(), max_patterns=int(max_patterns))
+    with scanned.buffers_released():  # the tables are built in numpy from the fetched counts
+        counts = MissingnessCounts(names=tuple(names), n_rows=scanned.n_rows, reasons=reasons,
+                                   patterns=patterns_from_words(*words), groups=groups)
+        result = audit_from_counts(counts, types=types, threshold=float(threshold), top_patterns=int(top_patterns),
+                                   range_issues=scanned.range_issues.reset_index(drop=True),
+                                   extremes=scanned.extreme_values.reset_index(drop=True),
+                                   types_table=scanned.variables_table(), max_patterns=int(max_patterns))
     return dataclasses.replace(result, notes=tuple(scanned.notes), warnings=tuple(scanned.warnings),
                                engine="duckdb")
