@@ -211,6 +211,18 @@ class DesignSection(_Section):
         if self.layout == "wide" and len(self.outcome_columns) != len(self.visits):
             raise ValueError(f"the wide layout needs outcome_columns: one outcome column per planned visit "
                              f"({len(self.visits)} visits, {len(self.outcome_columns)} columns), in the order of visits")
+        columns = [c.strip() for c in self.outcome_columns]
+        twice = [c for c in columns if columns.count(c) > 1]
+        if twice:
+            at = [label for label, c in zip(labels, columns) if c == twice[0]]
+            raise ValueError(f"outcome_columns names '{twice[0]}' for visits {' and '.join(at[:2])}; each visit "
+                             "needs its own outcome column")
+        numbered = [v for v in self.visits if isinstance(v, (int, float)) and not isinstance(v, bool)]
+        if len(numbered) == len(self.visits) and any(b <= a for a, b in zip(numbered, numbered[1:])):
+            first = next(b for a, b in zip(numbered, numbered[1:]) if b <= a)
+            raise ValueError(f"visits {', '.join(labels)} are not in increasing order (visit {first:g} is listed after "
+                             "a later one); numbered visits are the study's time order: list them in increasing "
+                             "order (dropout, last observation and the reference-based strategies follow it)")
         if self.layout == "long" and self.outcome_columns:
             raise ValueError("outcome_columns is for the wide layout; in the long layout the formula names the "
                              "outcome column")

@@ -132,6 +132,45 @@ class RepeatedOutcome:
     def reference(self) -> Any:
         return self.levels[0] if self.levels else None
 
+    def unestimable(self) -> Optional[Tuple[str, str]]:
+        """Why the formula's effects cannot be estimated from the observed outcomes, or None when they can.
+
+        The mixed model (and every strategy fitted with it) needs the design rows of the
+        observed outcomes to have full column rank: every planned visit attended by someone,
+        at least two arms, every arm observed at every visit, no term a combination of others.
+
+        Returns
+        -------
+        tuple of (str, str), or None
+            The params key to change (``design.visits``, ``analysis.exposure`` or
+            ``analysis.formula``) and one sentence naming the visit, arm or term, and what to do.
+        """
+        observed = self.observed
+        for j, visit in enumerate(self.visits):
+            if not observed[:, j].any():
+                return "design.visits", (f"no participant has the outcome at visit {label(visit)}; drop it from "
+                                         "design.visits (or check the visit column and the outcome's missing markers)")
+        if self.groups is not None:
+            present = [level for level in self.levels if (self.groups == level).any()]
+            if len(present) < 2:
+                return "analysis.exposure", (f"every participant is in arm {', '.join(map(label, present)) or '(none)'}"
+                                             f" of '{self.exposure}'; the follow-up analyses compare at least two arms")
+            for j, visit in enumerate(self.visits):
+                for level in present:
+                    if not observed[(self.groups == level), j].any():
+                        return "design.visits", (f"no participant of arm {label(level)} has the outcome at visit "
+                                                 f"{label(visit)}, so the arms cannot be compared there; drop the "
+                                                 "visit from design.visits or check the data")
+        rows = self.design[observed]
+        rank = 0
+        for k, term in enumerate(self.terms):
+            if np.linalg.matrix_rank(rows[:, :k + 1]) == rank:
+                return "analysis.formula", (f"the term {term} cannot be estimated from the observed outcomes (it is "
+                                            "constant, or a combination of the terms before it, on the attended "
+                                            "visits); simplify the formula")
+            rank += 1
+        return None
+
     def group_rows(self, level: Any) -> np.ndarray:
         """Positions of the participants in one exposure group."""
         if self.groups is None:
