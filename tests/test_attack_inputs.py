@@ -91,3 +91,18 @@ def test_a_huge_value_is_cut_in_the_one_line_error(tmp_path, capsys, engine, csv
     code, err = check(path, capsys)
     assert code == 2 and needle in err
     assert len(err) < 600 and "..." in err
+
+
+@pytest.mark.parametrize("params,csv,n", [
+    (PARAMS, "id,arm,age,y\n1,a,30,1.5\n", 1),                                      # a one-row file
+    # y applies only in arm a, so the rows the model can use hold one arm
+    (PARAMS.replace("variables: {arm: {type: binary, levels: [a, b]}}",
+                    "variables: {arm: {type: binary, levels: [a, b]}, y: {applies_if: \"arm == 'a'\"}}"), CSV, 3),
+])
+def test_an_exposure_the_usable_rows_cannot_estimate_is_named_as_such(tmp_path, capsys, params, csv, n):
+    # It was "'arm' matches no term of the model (Intercept)" (false: the formula has it), and statsmodels'
+    # RuntimeWarning about zero residual degrees of freedom reached the output as two raw lines.
+    code, err = check(study(tmp_path, params, csv), capsys)
+    assert code == 2 and "Warning" not in err and len(err.strip().splitlines()) == 1, err
+    assert (f"analysis.exposure: 'arm' cannot be estimated: its term arm[T.b] is constant among the {n} analysed "
+            "rows") in err

@@ -390,6 +390,9 @@ def fit_model(data: pd.DataFrame, *, formula: str, family: str = "gaussian", rob
                                    offset=getattr(model, "offset", None))
             result = model.fit(cov_type=cov_type)
             df_resid: Optional[float] = float(result.df_resid) if family == "gaussian" else None
+            # statsmodels computes the scale lazily: with no residual degrees of freedom its warning came
+            # here, outside the record, and reached check's and run's output as a raw RuntimeWarning
+            covariance = np.asarray(result.cov_params(), dtype=float)
     except InputError:
         raise
     except Exception as exc:
@@ -401,7 +404,7 @@ def fit_model(data: pd.DataFrame, *, formula: str, family: str = "gaussian", rob
     converged = bool(getattr(result, "converged", True)) and not failed
     coefficients = result.params.to_numpy(dtype=float)
     return ModelFit(formula=formula, family=family, terms=tuple(str(t) for t in result.params.index),
-                    coefficients=coefficients, covariance=np.asarray(result.cov_params(), dtype=float),
+                    coefficients=coefficients, covariance=covariance,
                     df_resid=df_resid, nobs=int(result.nobs), robust=robust, alpha=alpha, converged=converged,
                     warnings=notes, dropped=tuple(dropped))
 

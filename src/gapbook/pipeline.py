@@ -243,7 +243,14 @@ def check_model_up_front(params: Params, study: Any) -> Tuple[str, List[str]]:
         return found
     with params_errors(params, "analysis"):
         # Every model stage follows the exposure's terms: an exposure the formula lacks stops them all.
-        exposure_terms(fitted.terms, model.exposure)
+        matched = exposure_terms(list(fitted.terms) + list(fitted.dropped_terms()), model.exposure)
+    why = dict(fitted.dropped)
+    if matched and all(term in why for term in matched):
+        # The formula has the exposure, but the rows the model can use cannot estimate it (one arm left,
+        # e.g. after applies_if or a tiny file): say so, not that the exposure matches no term.
+        raise InputError(f"{params.label}: analysis.exposure: '{model.exposure}' cannot be estimated: its term "
+                         f"{matched[0]} is {why[matched[0]].replace('{n}', f'{fitted.nobs:,}')} (rows with every "
+                         "model variable observed); check its values and missing markers")
     return found
 
 
