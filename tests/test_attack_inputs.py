@@ -106,3 +106,16 @@ def test_an_exposure_the_usable_rows_cannot_estimate_is_named_as_such(tmp_path, 
     assert code == 2 and "Warning" not in err and len(err.strip().splitlines()) == 1, err
     assert (f"analysis.exposure: 'arm' cannot be estimated: its term arm[T.b] is constant among the {n} analysed "
             "rows") in err
+
+
+@pytest.mark.parametrize("levels,message", [
+    ("[a, a]", "level 'a' is listed twice;"),
+    ("[a, ' A ']", "level ' A ' is listed twice (as 'a' too);"),  # values match levels ignoring case and spaces
+    ("[1, 1.0]", "level '1.0' is listed twice (as '1' too);"),
+])
+def test_a_level_listed_twice_is_refused_naming_it(tmp_path, levels, message):
+    # [a, a] passed the params and failed later as "'b' is not among variables.arm.levels (a, a)".
+    path = study(tmp_path, PARAMS.replace("levels: [a, b]", f"levels: {levels}"))
+    with pytest.raises(InputError) as info:
+        load_params(path)
+    assert "variables.arm.levels: " + message in str(info.value)

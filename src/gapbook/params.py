@@ -137,6 +137,21 @@ class VariableSpec(_Section):
             parse_expression(value, where="", kind=CONDITION)
         return value
 
+    @field_validator("levels")
+    @classmethod
+    def _distinct_levels(cls, value: Optional[List[Union[str, int, float]]]) -> Optional[List[Union[str, int, float]]]:
+        # Data values match levels ignoring case and surrounding spaces (as markers do), so 'a' and ' A ' are one
+        # level; a repeated level would otherwise surface later as an unrelated data error.
+        seen: Dict[Any, Any] = {}
+        for level in value or ():
+            key = str(level).strip().casefold() if isinstance(level, str) else float(level)
+            if key in seen:
+                raise ValueError(f"level '{one_line(level, 80)}' is listed twice"
+                                 + (f" (as '{one_line(seen[key], 80)}' too)" if str(seen[key]) != str(level) else "")
+                                 + "; list each level once, the reference first")
+            seen[key] = level
+        return value
+
     @model_validator(mode="after")
     def _range_ordered(self) -> "VariableSpec":
         if self.range is not None:
