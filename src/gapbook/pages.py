@@ -405,6 +405,9 @@ def effect_table(estimates: pd.DataFrame, *, family: str, exposure: Optional[str
         strategy = str(values["strategy"])
         estimate = _estimate_text(values[f"{prefix}estimate"])
         interval = f"{_estimate_text(values[f'{prefix}ci_lower'])} to {_estimate_text(values[f'{prefix}ci_upper'])}"
+        if not estimate:  # the fit failed (e.g. did not converge): say so rather than show ' to '
+            failed = str(values.get("converged")).strip().lower() == "false"
+            estimate, interval = "not estimated", "did not converge" if failed else ""
         rows.append({
             "strategy": labels.get(strategy, strategy.replace("_", " ")),
             "assumes about the missing values": STRATEGY_ASSUMPTIONS.get(strategy, ""),
@@ -414,7 +417,8 @@ def effect_table(estimates: pd.DataFrame, *, family: str, exposure: Optional[str
             "p": format_p_cell(values.get("p_value")),
             "rows used": _number(values.get("n_used")),
         })
-        lead_rows.setdefault(strategy, (str(values["term"]), estimate, interval, values.get("p_value")))
+        if estimate != "not estimated":
+            lead_rows.setdefault(strategy, (str(values["term"]), estimate, interval, values.get("p_value")))
     lead = ""
     first = next((s for s in LEAD_STRATEGIES if s in lead_rows), next(iter(lead_rows), None))
     if first is not None:

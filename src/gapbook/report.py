@@ -396,6 +396,18 @@ def _count(value: object, min_cell: int = 0) -> str:
     return _fmt(number)
 
 
+def _is_number(value: object) -> bool:
+    try:
+        return math.isfinite(float(value))  # type: ignore[arg-type]
+    except (TypeError, ValueError):
+        return False
+
+
+def _is_false(value: object) -> bool:
+    """A ``converged`` cell that says no (False as written by pandas, or read back from the CSV)."""
+    return value is False or str(value).strip().lower() == "false"
+
+
 def effect_phrase(row: Mapping[str, object], alpha: float, family: str = "gaussian") -> str:
     """One estimates row in words, naming its scale.
 
@@ -404,6 +416,10 @@ def effect_phrase(row: Mapping[str, object], alpha: float, family: str = "gaussi
     ratio, as in the ``exp_*`` columns), likewise rate ratios for poisson.
     """
     level = f"{100 * (1 - alpha):g}"
+    if not _is_number(row["estimate"]):
+        # a fit that did not converge leaves the estimate empty: 'n/a (95% CI n/a to n/a)' read as a result
+        converged = row.get("converged") if hasattr(row, "get") else None
+        return "not estimated" + (" (the model fit did not converge)" if _is_false(converged) else "")
     if has_ratio_scale(family):
         values = [row.get(f"exp_{name}") if hasattr(row, "get") else None
                   for name in ("estimate", "ci_lower", "ci_upper")]

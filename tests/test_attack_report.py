@@ -1,0 +1,48 @@
+"""The landing page and the drafted results when one strategy's fit did not converge.
+
+Found on the NCCTG lung data (lifelines): a Cox model with missing indicators for covariates missing in
+one participant who died has a monotone likelihood (the indicator's coefficient runs to infinity; this
+is Cox-model theory, e.g. Heinze & Schemper 2001, Biometrics 57:114, recalled from memory), so the
+missing-category fit left its estimate empty. The page then showed the interval as ' to ' and the draft
+text said 'hazard ratio n/a (95% CI n/a to n/a; p not available)'.
+"""
+from __future__ import annotations
+
+import math
+
+import pandas as pd
+
+from gapbook.pages import effect_table
+from gapbook.report import effect_phrase
+
+NAN = math.nan
+ROWS = pd.DataFrame([
+    # strategy, term, estimate, ci_lower, ci_upper, p, n, exp..., converged
+    ("complete_case", "sex", -0.557, -0.946, -0.168, 0.005, 170, 0.573, 0.388, 0.846, True),
+    ("missing_category", "sex", NAN, NAN, NAN, NAN, 228, NAN, NAN, NAN, False),
+    ("multiple_imputation", "sex", -0.601, -0.941, -0.262, 0.0006, 228, 0.548, 0.390, 0.770, True),
+], columns=["strategy", "term", "estimate", "ci_lower", "ci_upper", "p_value", "n_used", "exp_estimate",
+            "exp_ci_lower", "exp_ci_upper", "converged"])
+
+
+def test_the_landing_table_says_not_estimated_instead_of_an_empty_interval():
+    table = effect_table(ROWS, family="cox", exposure="sex", alpha=0.05)
+    failed = table.frame[table.frame["strategy"].str.startswith("Missing")].iloc[0]
+    assert failed["hazard ratio"] == "not estimated" and failed["95% CI"] == "did not converge"
+    assert "0.548 (95% confidence interval 0.390 to 0.770" in table.lead  # the lead is still imputation's
+
+
+def test_the_lead_skips_a_strategy_without_an_estimate():
+    # the strategy the lead names first (multiple imputation) failed: the lead falls back to complete cases
+    failed_imputation = ROWS.iloc[[1, 0]].assign(strategy=["multiple_imputation", "complete_case"])
+    table = effect_table(failed_imputation, family="cox", exposure="sex", alpha=0.05)
+    assert "0.573 (95% confidence interval 0.388 to 0.846" in table.lead and "not estimated" not in table.lead
+
+
+def test_the_drafted_results_say_the_fit_did_not_converge():
+    failed = ROWS.iloc[1].to_dict()
+    assert effect_phrase(failed, 0.05, "cox") == "not estimated (the model fit did not converge)"
+    read_back = {**failed, "converged": "False"}  # as read from estimates.csv
+    assert effect_phrase(read_back, 0.05, "cox") == "not estimated (the model fit did not converge)"
+    assert effect_phrase(ROWS.iloc[2].to_dict(), 0.05, "cox") == \
+        "hazard ratio 0.548 (95% CI 0.390 to 0.770; p < 0.001)"
