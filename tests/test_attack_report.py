@@ -46,3 +46,28 @@ def test_the_drafted_results_say_the_fit_did_not_converge():
     assert effect_phrase(read_back, 0.05, "cox") == "not estimated (the model fit did not converge)"
     assert effect_phrase(ROWS.iloc[2].to_dict(), 0.05, "cox") == \
         "hazard ratio 0.548 (95% CI 0.390 to 0.770; p < 0.001)"
+
+
+def test_numeric_levels_read_as_written_in_the_flow_and_the_descriptives(tmp_path):
+    # NCCTG lung (lifelines) codes sex 1/2; the flow's columns and the descriptives read '1.0' and '2.0'.
+    from lifelines.datasets import load_lung
+
+    import gapbook
+    from gapbook.cases import descriptive_table
+    from gapbook.report import participant_flow
+
+    data = load_lung()
+    data.insert(0, "pid", range(1, len(data) + 1))
+    data.to_csv(tmp_path / "lung.csv", index=False, na_rep="NA")
+    study = gapbook.read_study(tmp_path / "lung.csv", id="pid", missing={"markers": ["NA"]},
+                               variables={"sex": {"type": "binary", "levels": [1, 2]},
+                                          "ph.ecog": {"type": "ordinal"}})
+    flow = participant_flow(study, formula="time ~ sex + age", group="sex").steps
+    assert [c for c in flow.columns if c not in ("step", "description")] == ["all", "1", "2"]
+    # lung: 138 men (sex 1) and 90 women (sex 2), counted from the file itself
+    assert flow.iloc[0][["all", "1", "2"]].tolist() == [228, (data["sex"] == 1).sum(), (data["sex"] == 2).sum()]
+    table = descriptive_table(study.data, complete=study.data.notna().all(axis=1), types=study.types,
+                              variables=["sex", "ph.ecog"])
+    statistics = set(table["statistic"])
+    assert {"count: 1", "count: 2", "proportion: 1", "count: 0", "count: 3"} <= statistics
+    assert not any(s.endswith(".0") for s in statistics)

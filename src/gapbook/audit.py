@@ -32,6 +32,7 @@ import pandas as pd
 from .errors import InputError, did_you_mean
 from .intake import EXTREME_COLUMNS, RANGE_COLUMNS, Study
 from .params import DEFAULT_MAX_PATTERNS, MAX_PATTERNS_LISTED
+from .text import level_text
 from .vocabulary import NOT_APPLICABLE, infer_type
 
 __all__ = ["DEFAULT_THRESHOLD", "GroupCounts", "MissingnessCounts", "AuditResult", "reason_slug", "count_patterns",
@@ -639,7 +640,7 @@ def group_codes(values: pd.Series, missing: np.ndarray, not_applicable: np.ndarr
         codes[usable] = remap[raw_codes[usable]]
     else:
         uniques, inverse = np.unique(values.to_numpy()[usable], return_inverse=True)
-        levels = [_level_label(u) for u in uniques]
+        levels = [level_text(u) for u in uniques]
         codes[usable] = inverse
     if len(levels) > MAX_GROUP_LEVELS:
         raise InputError(f"'{name}' has {len(levels)} distinct values (more than {MAX_GROUP_LEVELS}); "
@@ -654,12 +655,6 @@ def group_codes(values: pd.Series, missing: np.ndarray, not_applicable: np.ndarr
         codes[unknown] = len(labels)
         labels.append(GROUP_MISSING)
     return codes, labels
-
-
-def _level_label(value) -> str:
-    if isinstance(value, (float, np.floating)) and float(value).is_integer():
-        return f"{float(value):g}"
-    return str(value)
 
 
 def group_counts(cells: MissingCells, group: str, codes: np.ndarray, labels: Sequence[str]) -> GroupCounts:

@@ -24,6 +24,7 @@ from .inference import standardised_difference
 from .intake import levels_of
 from .models import (AnalysisModel, ModelFit, add_ratio_columns, exposure_rows, exposure_terms, formula_columns,
                      scale_sentence)
+from .text import level_text
 from .vocabulary import CATEGORICAL_TYPES, NUMBER_CODED_TYPES, STRATEGY_TITLES, infer_type, ratio_name
 
 __all__ = ["CompleteCaseFlow", "exposure_column", "complete_case_flow", "CompleteCaseResult", "check_model_data",
@@ -271,9 +272,9 @@ def _category_summary(values: pd.Series, levels: Sequence[object]) -> Dict[str, 
     counts = observed.astype(object).value_counts()
     out: Dict[str, float] = {}
     for level in levels:
-        out[f"count: {level}"] = float(counts.get(level, 0))
+        out[f"count: {level_text(level)}"] = float(counts.get(level, 0))
     for level in levels:
-        out[f"proportion: {level}"] = counts.get(level, 0) / total if total else np.nan
+        out[f"proportion: {level_text(level)}"] = counts.get(level, 0) / total if total else np.nan
     return out
 
 

@@ -36,6 +36,7 @@ from .expressions import FORMULA_NAMESPACE, ColumnAliases
 from .intake import Study, levels_of
 from .inference import format_p, standardised_difference, standardised_difference_of_shares, wald_inference
 from .little import LittleTest, little_mcar_test
+from .text import level_text
 from .vocabulary import MAR_CAUTION, NUMBER_CODED_TYPES, NUMERIC_TYPES, PLAN_CAUTION, SENSITIVITY_POINTER, infer_type
 
 __all__ = ["GroupComparison", "compare_groups", "mcar_test_data", "MissingnessModels", "fit_missingness_model",
@@ -74,10 +75,6 @@ def _listing(items: Sequence[str]) -> str:
     """'a', 'a and b', 'a, b and c'."""
     items = list(items)
     return items[0] if len(items) == 1 else ", ".join(items[:-1]) + " and " + items[-1]
-
-
-def _level_text(level: Any) -> str:
-    return f"{level:g}" if isinstance(level, (float, np.floating)) else str(level)
 
 
 def binary_codes(values: pd.Series) -> pd.Series:
@@ -177,7 +174,7 @@ def _shares_text(levels: Sequence[Any], counts: np.ndarray) -> str:
     total = counts.sum()
     if total == 0:
         return ""
-    return ", ".join(f"{_level_text(level)} {100 * c / total:.1f}%" for level, c in zip(levels, counts))
+    return ", ".join(f"{level_text(level)} {100 * c / total:.1f}%" for level, c in zip(levels, counts))
 
 
 def _compare_categorical(v: str, w: str, g1: pd.Series, g0: pd.Series, levels: Sequence[Any],
@@ -325,7 +322,7 @@ def _share_frame(v: str, w: str, g1: pd.Series, g0: pd.Series, levels: Sequence[
         for level in levels:
             count = int((g == level).sum())
             rows.append({"incomplete_variable": v, "compared_variable": w, "group": group,
-                         "level": _level_text(level), "count": count, "share": count / total if total else np.nan})
+                         "level": level_text(level), "count": count, "share": count / total if total else np.nan})
     return pd.DataFrame(rows)
 
 

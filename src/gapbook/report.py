@@ -20,7 +20,7 @@ from .intake import Study
 from .impute import ImputationSettings
 from .models import AnalysisModel, check_formula, exposure_rows, exposure_terms
 from .inference import format_estimate, format_p
-from .text import md_escape
+from .text import level_text, md_escape
 from .vocabulary import STRATEGY_PHRASES, cautions as page_cautions, effect_scale, has_ratio_scale
 
 __all__ = ["COUNT_TABLES", "RecordSuppression", "suppress_small_counts", "suppress_record_tables", "ReportSummary",
@@ -247,7 +247,7 @@ def participant_flow(study: Study, *, formula: Optional[str], group: Optional[st
     if group is not None:
         if group not in data.columns:
             raise InputError(f"report.group: '{group}' is not a column of the data{did_you_mean(group, data.columns)}")
-        group_values = data[group].astype(object).where(data[group].notna(), "(missing)").astype(str)
+        group_values = data[group].astype(object).map(level_text).where(data[group].notna(), "(missing)")
         levels = list(pd.unique(group_values))
         if isinstance(data[group].dtype, pd.CategoricalDtype):
             ordered = [str(c) for c in data[group].cat.categories]

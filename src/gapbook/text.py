@@ -17,10 +17,12 @@ from a params file or a data file; on a page they are text, never markup. Use:
 from __future__ import annotations
 
 import html
+import math
+import numbers
 import re
 from typing import Any
 
-__all__ = ["one_line", "show_invisible", "html_escape", "md_escape", "md_code", "plot_escape"]
+__all__ = ["one_line", "show_invisible", "html_escape", "md_escape", "md_code", "plot_escape", "level_text"]
 
 # CommonMark lets any ASCII punctuation be backslash-escaped. Escaped everywhere: what formats
 # inside a line (code, emphasis, links and images, strikethrough, maths in Jupyter's renderer,
@@ -165,3 +167,24 @@ def plot_escape(text: Any) -> str:
     str
     """
     return one_line(_LINE_BREAKS.sub(" ", str(text))).replace("$", r"\$")
+
+
+def level_text(value: Any) -> str:
+    """A category level as the data file wrote it: a whole number stored as a float (2.0) reads ``2``.
+
+    Numeric category columns are kept as floats after intake; shown with ``str`` their levels
+    read ``1.0`` and ``2.0`` in table columns and wording, which the file never said.
+
+    Parameters
+    ----------
+    value : object
+        A level (number or text).
+
+    Returns
+    -------
+    str
+    """
+    if isinstance(value, numbers.Real) and not isinstance(value, numbers.Integral) and math.isfinite(value):
+        number = float(value)
+        return str(int(number)) if number.is_integer() and abs(number) < 1e15 else repr(number)
+    return str(value)
