@@ -119,3 +119,39 @@ def test_a_level_listed_twice_is_refused_naming_it(tmp_path, levels, message):
     with pytest.raises(InputError) as info:
         load_params(path)
     assert "variables.arm.levels: " + message in str(info.value)
+
+
+LUNG_LIKE = "pid,months,status,arm\n1,5,Yes,a\n2,7,no,b\n3,9, YES ,a\n4,3,No,b\n5,8,yes,b\n6,2,no,a\n"
+COX = """data: {path: d.csv, id: pid}
+variables: {arm: {type: binary, levels: [a, b]}}
+analysis: {formula: "months ~ arm", family: cox, exposure: arm, event: {column: status, event: [yes], censored: [no]}}
+"""
+
+
+def test_event_values_match_ignoring_case_and_spaces_like_markers_and_levels(tmp_path, capsys):
+    # README: markers and levels match ignoring case and surrounding spaces; the event coding refused 'Yes'
+    # for 'yes' ("holds 'Yes' ... which is neither an event value ('yes') nor a censored value ('no')").
+    from gapbook.survival import EventCoding
+
+    assert main(["check", str(study(tmp_path, COX, LUNG_LIKE))]) == 0, capsys.readouterr().err
+    coding = EventCoding("status", event=("yes",), censored=("no",))
+    frame = __import__("pandas").DataFrame({"status": ["Yes", "no", " YES ", "No", None]})
+    assert coding.unexpected(frame).tolist() == []
+
+
+def test_one_text_as_event_and_as_censored_in_two_spellings_is_refused(tmp_path):
+    path = study(tmp_path, COX.replace("censored: [no]", "censored: [no, ' YES']"), LUNG_LIKE)
+    with pytest.raises(InputError, match="listed both as an event and as censored"):
+        load_params(path)
+
+
+def test_yes_and_no_in_the_params_stay_text(tmp_path):
+    # YAML 1.1 (PyYAML's safe loader) reads yes/no/on/off as booleans: `levels: [no, yes]` became
+    # [False, True] and `event: [yes]` became 1, matching nothing in a file that says yes/no. YAML 1.2
+    # (yaml.org/spec/1.2.2, core schema) has only true/false; switches still take yes (pydantic's bool).
+    params = PARAMS.replace("levels: [a, b]", "levels: [no, yes]").replace(
+        "analysis: {formula", "analysis: {robust: yes, formula").replace('markers: ["NA", "?"]', 'markers: [NA, off]')
+    loaded = load_params(study(tmp_path, params, CSV.replace(",a,", ",no,").replace(",b,", ",yes,")))
+    assert loaded.variables["arm"].levels == ["no", "yes"]
+    assert loaded.missing.markers == ["NA", "off"]
+    assert loaded.analysis.robust is True

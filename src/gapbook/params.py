@@ -10,6 +10,7 @@ message that names the file and key and suggests the nearest valid word.
 """
 from __future__ import annotations
 
+import re
 from pathlib import Path
 from typing import Annotated, Any, Dict, List, Literal, Optional, Tuple, Union
 
@@ -277,7 +278,10 @@ class EventSpec(_Section):
 
     @model_validator(mode="after")
     def _apart(self) -> "EventSpec":
-        both = [v for v in self.event if str(v) in {str(c) for c in self.censored}]
+        def key(value: Any) -> str:  # event values match ignoring case and surrounding spaces
+            return str(value).strip().casefold()
+
+        both = [v for v in self.event if key(v) in {key(c) for c in self.censored}]
         if both:
             raise ValueError(f"{both[0]!r} is listed both as an event and as censored; give it one meaning")
         return self
@@ -542,6 +546,17 @@ class _UniqueKeyLoader(yaml.SafeLoader):
                                    "only the last)")
             seen[key] = key_node.start_mark.line + 1
         return super().construct_mapping(node, deep=deep)
+
+
+# YAML 1.1 reads yes/no/on/off (any case) as true/false, so `event: [yes]`, `levels: [no, yes]` or
+# `markers: ["n", no]` silently became booleans (then 1 and 0) and never matched the data's text. Only
+# true/false are booleans here (as in YAML 1.2); switches still take yes/no, which the schema reads as
+# booleans itself.
+_UniqueKeyLoader.yaml_implicit_resolvers = {
+    first: [(tag, pattern) for tag, pattern in resolvers if tag != "tag:yaml.org,2002:bool"]
+    for first, resolvers in yaml.SafeLoader.yaml_implicit_resolvers.items()}
+_UniqueKeyLoader.add_implicit_resolver("tag:yaml.org,2002:bool", re.compile(r"^(?:true|True|TRUE|false|False|FALSE)$"),
+                                       list("tTfF"))
 
 
 def load_params(path: Union[str, Path]) -> Params:
