@@ -55,9 +55,10 @@ class EventCoding:
             numbers = [n for n in (_as_number(w) for w in wanted) if n is not None]
             return np.isin(values.to_numpy(dtype=float, na_value=np.nan), numbers)
         text = values.astype(object).where(values.notna(), None)
-        as_text = np.array([None if v is None else (f"{v:g}" if isinstance(v, float) else str(v)) for v in text],
-                           dtype=object)
-        wanted_text = {f"{w:g}" if isinstance(w, float) else str(w) for w in wanted}
+        # Texts match ignoring case and surrounding spaces, as markers and levels do ('Yes' is 'yes').
+        as_text = np.array([None if v is None else (f"{v:g}" if isinstance(v, float) else str(v).strip().casefold())
+                            for v in text], dtype=object)
+        wanted_text = {f"{w:g}" if isinstance(w, float) else str(w).strip().casefold() for w in wanted}
         return np.array([v is not None and v in wanted_text for v in as_text], dtype=bool)
 
     def unexpected(self, data: pd.DataFrame) -> np.ndarray:
