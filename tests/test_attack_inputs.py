@@ -155,3 +155,12 @@ def test_yes_and_no_in_the_params_stay_text(tmp_path):
     assert loaded.variables["arm"].levels == ["no", "yes"]
     assert loaded.missing.markers == ["NA", "off"]
     assert loaded.analysis.robust is True
+
+
+def test_the_event_column_as_a_covariate_of_its_own_cox_model_is_refused(tmp_path, capsys):
+    # months ~ arm + status: the event indicator "explains" the hazard by itself; check passed it.
+    params = COX.replace('"months ~ arm"', '"months ~ arm + status"').replace(
+        "event: {column: status, event: [yes], censored: [no]}", "event: status")
+    code, err = check(study(tmp_path, params, LUNG_LIKE.replace("Yes", "1").replace("YES", "1").replace(
+        "yes", "1").replace("No", "0").replace("no", "0")), capsys)
+    assert code == 2 and "analysis.event: 'status' is the event column and a covariate of the formula" in err

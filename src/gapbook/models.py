@@ -533,6 +533,11 @@ class AnalysisModel:
                 raise InputError(f"'{extra}' is not a column{did_you_mean(extra, columns)}", option=option)
             if extra == outcome:
                 raise InputError(f"'{extra}' is the formula's outcome as well", option=option)
+            if option == "event" and extra in used:
+                # the event indicator as its own covariate explains the outcome by itself (a coefficient
+                # that runs off to infinity), never an adjustment a plan asks for
+                raise InputError(f"'{extra}' is the event column and a covariate of the formula as well; drop it "
+                                 "from the formula's right-hand side", option=option)
             if extra not in used:
                 used.append(extra)
         if self.is_time_to_event() and self.event is None:
