@@ -227,3 +227,15 @@ def test_constant_and_many_level_columns_are_described_plainly(tmp_path):
     assert "constant" in study.variables["site"].reason
     levels = study.variables_table().set_index("variable").loc["visit_date", "levels"]
     assert levels.endswith("... (30 levels)")
+
+
+def test_an_infinite_value_makes_a_column_continuous_without_a_numpy_warning():
+    # inf is not a whole number (IEEE 754: inf mod 1 is NaN, with an 'invalid' warning numpy would print)
+    import warnings
+
+    from gapbook.vocabulary import infer_type
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        kind, _ = infer_type(pd.Series([0.0, 1.0, 2.0, np.inf, 3.0]))
+    assert kind == "continuous"

@@ -73,7 +73,8 @@ def infer_type(values: pd.Series) -> Tuple[str, str]:
     if pd.api.types.is_numeric_dtype(observed):
         if len(distinct) <= 2:
             return "binary", f"{len(distinct)} distinct numbers"
-        whole = np.all(np.mod(observed.to_numpy(dtype=float), 1) == 0)
+        numbers = observed.to_numpy(dtype=float)
+        whole = bool(np.all(np.isfinite(numbers))) and bool(np.all(np.mod(numbers, 1) == 0))  # inf is no count
         if whole and observed.min() >= 0 and observed.max() <= COUNT_MAX:
             return "count", f"whole numbers from 0 to {COUNT_MAX} at most"
         return "continuous", "numbers"
