@@ -164,3 +164,15 @@ def test_the_event_column_as_a_covariate_of_its_own_cox_model_is_refused(tmp_pat
     code, err = check(study(tmp_path, params, LUNG_LIKE.replace("Yes", "1").replace("YES", "1").replace(
         "yes", "1").replace("No", "0").replace("no", "0")), capsys)
     assert code == 2 and "analysis.event: 'status' is the event column and a covariate of the formula" in err
+
+
+@pytest.mark.parametrize("engine", ["pandas", "duckdb"])
+def test_spaces_around_a_column_name_are_dropped_and_said(tmp_path, capsys, engine):
+    # The README's contract: gapbook never renames a column silently. A header ' age ' is read as
+    # 'age' (what the params name), and check says so, whichever engine reads the file.
+    params = PARAMS.replace("data: {path: d.csv, id: id}", f"data: {{path: d.csv, id: id, engine: {engine}}}")
+    path = study(tmp_path, params=params, csv=CSV.replace("id,arm,age,y", "id,arm, age ,y"))
+    code = main(["check", str(path)])
+    out = capsys.readouterr()
+    assert code == 0, out.err
+    assert "column 3 is named ' age ' in the header; it is read as 'age'" in out.out + out.err

@@ -357,6 +357,11 @@ def check_header(raw: pd.DataFrame, label: str, *, ignore: Tuple[str, ...] = (),
     """
     warnings: List[str] = []
     names = [str(c).strip() for c in raw.columns]
+    # Spaces around a header name are nearly always a spreadsheet's padding; the name is read without
+    # them, and said so, since params and formulas name the column as it reads.
+    warnings.extend(f"{label}: column {position + 1} is named '{one_line(str(c), 80)}' in the header; it is read "
+                    f"as '{one_line(name, 80)}' (spaces around a column name are dropped)"
+                    for position, (c, name) in enumerate(zip(raw.columns, names)) if str(c) != name and name)
     raw = raw.copy()
     raw.columns = names
     for name in ignore:
