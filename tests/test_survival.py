@@ -250,6 +250,20 @@ def test_nelson_aalen_and_kaplan_meier_by_hand():
     km = kaplan_meier(time, event)
     np.testing.assert_allclose(km["survival"], [5 / 6, 5 / 6 * 4 / 5, 5 / 6 * 4 / 5 * 1 / 3, 5 / 6 * 4 / 5 * 1 / 3])
     assert km["at_risk"].tolist() == [6, 5, 3, 1] and km["censored"].tolist() == [0, 1, 0, 1]
+    # Greenwood (1926): se = S(t) sqrt(sum over event times s <= t of d / (n (n - d))); the
+    # censoring-only time 8 carries the value at 5.
+    greenwood = np.sqrt(np.cumsum([1 / (6 * 5), 1 / (5 * 4), 2 / (3 * 1)]))
+    survival = np.array([5 / 6, 2 / 3, 2 / 9])
+    np.testing.assert_allclose(km["std_error"], np.r_[survival * greenwood, survival[-1] * greenwood[-1]])
+
+
+def test_kaplan_meier_before_the_first_event_and_without_events():
+    # The product-limit estimate is 1 (standard error 0) until the first event (Kaplan & Meier 1958).
+    km = kaplan_meier(np.array([1.0, 2, 3, 4]), np.array([0, 0, 1, 0]))
+    assert km["survival"].tolist()[:2] == [1.0, 1.0] and km["std_error"].tolist()[:2] == [0.0, 0.0]
+    np.testing.assert_allclose(km["survival"], [1, 1, 0.5, 0.5])
+    none = kaplan_meier(np.array([1.0, 2.0]), np.array([0, 0]))
+    assert none["survival"].tolist() == [1.0, 1.0] and none["std_error"].tolist() == [0.0, 0.0]
 
 
 def test_robust_standard_errors_are_lin_wei_sandwich_even_with_early_censoring():

@@ -272,10 +272,14 @@ def cumulative_hazard_at(time: np.ndarray, event: np.ndarray) -> np.ndarray:
 
 
 def kaplan_meier(time: np.ndarray, event: np.ndarray) -> pd.DataFrame:
-    """The Kaplan–Meier estimate at each distinct time: time, at_risk, events, censored, survival.
+    """The Kaplan–Meier estimate at each distinct time: time, at_risk, events, censored, survival, std_error.
 
-    Reversing the roles of event and censoring (``event = 1 - event``) gives the reverse
-    Kaplan–Meier estimate of follow-up (Schemper & Smith 1996).
+    The product-limit estimate and its Greenwood standard error are statsmodels'
+    ``SurvfuncRight``, which reports them at the event times; here each distinct time (a
+    censoring-only one too) gets a row, carrying the value of the last event time at or before
+    it (1 and 0 before the first event). Reversing the roles of event and censoring
+    (``event = 1 - event``) gives the reverse Kaplan–Meier estimate of follow-up (Schemper &
+    Smith 1996).
 
     Parameters
     ----------
@@ -291,9 +295,13 @@ def kaplan_meier(time: np.ndarray, event: np.ndarray) -> pd.DataFrame:
     References
     ----------
     Kaplan EL, Meier P (1958). Nonparametric estimation from incomplete observations. JASA 53:457-481.
+    Greenwood M (1926). The natural duration of cancer. Reports on Public Health and Medical
+    Subjects 33. HMSO.
     Schemper M, Smith TL (1996). A note on quantifying follow-up in studies of failure time.
     Control Clin Trials 17:343-346.
     """
+    from statsmodels.duration.survfunc import SurvfuncRight
+
     time = np.asarray(time, dtype=float)
     event = np.asarray(event, dtype=float) > 0
     times = np.unique(time)
@@ -301,9 +309,12 @@ def kaplan_meier(time: np.ndarray, event: np.ndarray) -> pd.DataFrame:
     at_risk = len(time) - np.searchsorted(order, times, side="left")
     events = np.bincount(np.searchsorted(times, time[event]), minlength=len(times))
     totals = np.bincount(np.searchsorted(times, time), minlength=len(times))
-    survival = np.cumprod(1.0 - events / at_risk)
+    curve = SurvfuncRight(time, event.astype(float))
+    step = np.searchsorted(curve.surv_times, times, side="right")  # 0 before the first event time
+    survival = np.r_[1.0, curve.surv_prob][step]
+    std_error = np.r_[0.0, curve.surv_prob_se][step]
     return pd.DataFrame({"time": times, "at_risk": at_risk, "events": events, "censored": totals - events,
-                         "survival": survival})
+                         "survival": survival, "std_error": std_error})
 
 
 # ---------------------------------------------------------------------------

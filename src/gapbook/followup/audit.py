@@ -6,7 +6,7 @@ Questions answered, each as a table:
   (intermittent), per group (``patterns``);
 - how long did participants stay, per group: time to the last attended visit as a
   Kaplan-Meier curve, with a log-rank test of equal retention (``retention``,
-  ``retention_test``; statsmodels' ``SurvfuncRight`` and ``survdiff``);
+  ``retention_test``; :func:`gapbook.survival.kaplan_meier` and statsmodels' ``survdiff``);
 - why did those who left stop, per group (``stopping_reasons``, from the reasons intake
   recorded for the first missed visit);
 - do those who leave early differ before they leave: the mean outcome at each visit by the
@@ -25,6 +25,7 @@ import pandas as pd
 from scipy import stats
 
 from ..inference import format_p
+from ..survival import kaplan_meier
 from ..vocabulary import REASON_NOT_GIVEN
 from .repeated import RepeatedOutcome, last_observed_index
 
@@ -129,7 +130,7 @@ def _patterns(labels: np.ndarray, groups) -> pd.DataFrame:
 def _retention(outcome: RepeatedOutcome, groups, times: np.ndarray, alpha: float
                ) -> Tuple[pd.DataFrame, pd.DataFrame]:
     """Kaplan-Meier of the time to the last attended visit; leaving early is the event."""
-    from statsmodels.duration.survfunc import SurvfuncRight, survdiff
+    from statsmodels.duration.survfunc import survdiff
 
     last = outcome.last_observed
     t = outcome.n_visits
@@ -140,13 +141,13 @@ def _retention(outcome: RepeatedOutcome, groups, times: np.ndarray, alpha: float
     for level, members in groups:
         if len(members) == 0:
             continue
-        curve = SurvfuncRight(time[members], left[members])
+        curve = kaplan_meier(time[members], left[members])
         for k, visit in enumerate(outcome.visits):
             # Retained after visit k: share whose last attended visit is later than visit k.
-            position = np.searchsorted(curve.surv_times, times[k], side="right") - 1
+            position = np.searchsorted(curve["time"].to_numpy(), times[k], side="right") - 1
             if position >= 0:
-                share = float(curve.surv_prob[position])
-                se = float(curve.surv_prob_se[position])
+                share = float(curve["survival"].iloc[position])
+                se = float(curve["std_error"].iloc[position])
             else:
                 share, se = 1.0, 0.0
             at_risk = int(np.sum(time[members] >= times[k]))
