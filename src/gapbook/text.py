@@ -10,9 +10,10 @@ from a params file or a data file; on a page they are text, never markup. Use:
 - :func:`html_escape` for text put into HTML (the landing page, HTML tables);
 - :func:`show_invisible` over a whole page: bidirectional controls in a table cell that came
   from the data are shown, not obeyed;
-- :func:`plot_escape` for text put into matplotlib titles, labels and tick labels (a ``$``
-  would otherwise start mathtext, and an unbalanced one stops the figure);
 - :func:`one_line` for text put into a one-line message (control characters escaped).
+
+Figures need no escaping: :mod:`gapbook.plots` turns matplotlib's mathtext off for every
+figure, so a ``$`` in a title, label or tick label is drawn as it is.
 """
 from __future__ import annotations
 
@@ -22,7 +23,7 @@ import numbers
 import re
 from typing import Any
 
-__all__ = ["one_line", "show_invisible", "html_escape", "md_escape", "md_code", "plot_escape", "level_text"]
+__all__ = ["one_line", "show_invisible", "html_escape", "md_escape", "md_code", "level_text"]
 
 # CommonMark lets any ASCII punctuation be backslash-escaped. Escaped everywhere: what formats
 # inside a line (code, emphasis, links and images, strikethrough, maths in Jupyter's renderer,
@@ -152,21 +153,6 @@ def md_code(text: Any) -> str:
     runs = [len(run) for run in re.findall(r"`+", flat)]
     fence = "`" * (max(runs, default=0) + 1)
     return f"{fence} {flat} {fence}"
-
-
-def plot_escape(text: Any) -> str:
-    """``text`` for a matplotlib title, label or tick label: ``$`` never starts mathtext.
-
-    Parameters
-    ----------
-    text : object
-        Any value; it is converted with ``str``.
-
-    Returns
-    -------
-    str
-    """
-    return one_line(_LINE_BREAKS.sub(" ", str(text))).replace("$", r"\$")
 
 
 def level_text(value: Any) -> str:
