@@ -66,28 +66,21 @@ def test_check_accepts_the_followup_demo_and_skips_the_participant_row_stages(st
     assert [e.strategy for e in params.estimand.intercurrent_events] == ["treatment_policy", "hypothetical"]
 
 
-def test_two_rows_for_one_visit_names_subject_and_visit(study, capsys):
-    edit_data(study, "P0001,control,49.6,4,-11.3\n", "P0001,control,49.6,4,-11.3\nP0001,control,49.6,4,-10.0\n")
+@pytest.mark.parametrize("old, new, expected", [
+    ("P0001,control,49.6,4,-11.3\n", "P0001,control,49.6,4,-11.3\nP0001,control,49.6,4,-10.0\n",
+     ["followup_trial.csv: subject P0001 has 2 rows for visit 4"]),
+    ("P0001,control,49.6,4,-11.3", "P0001,control,49.6,5,-11.3",
+     ["params.yaml: design.visits: subject P0001 has visit 5", "not a planned visit"]),
+    ("P0001,control,49.6,4,-11.3", "P0001,control,49.6,,-11.3", ["subject P0001 has no visit"]),
+    ("P0001,control,49.6,4,-11.3", ",control,49.6,4,-11.3", ["subject column 'subject'", "data row 2"]),
+    ("P0001,control,49.6,8,-13.8", "P0001,control,52.0,8,-13.8",
+     ["analysis.formula: 'base' changes within subject P0001 (at visit 8)"]),
+], ids=["two rows for one visit", "a visit not in the plan", "a row without visit", "a row without subject",
+        "a covariate that changes after baseline"])
+def test_data_problems_are_one_line_naming_subject_and_visit(study, capsys, old, new, expected):
+    edit_data(study, old, new)
     _, line = one_line(capsys, ["check", study / "params.yaml"])
-    assert "followup_trial.csv: subject P0001 has 2 rows for visit 4" in line
-
-
-def test_a_visit_not_in_the_plan_names_subject_and_visit(study, capsys):
-    edit_data(study, "P0001,control,49.6,4,-11.3", "P0001,control,49.6,5,-11.3")
-    _, line = one_line(capsys, ["check", study / "params.yaml"])
-    assert "params.yaml: design.visits: subject P0001 has visit 5" in line and "not a planned visit" in line
-
-
-def test_a_row_without_visit_names_the_subject(study, capsys):
-    edit_data(study, "P0001,control,49.6,4,-11.3", "P0001,control,49.6,,-11.3")
-    _, line = one_line(capsys, ["check", study / "params.yaml"])
-    assert "subject P0001 has no visit" in line
-
-
-def test_a_row_without_subject_names_the_row(study, capsys):
-    edit_data(study, "P0001,control,49.6,4,-11.3", ",control,49.6,4,-11.3")
-    _, line = one_line(capsys, ["check", study / "params.yaml"])
-    assert "subject column 'subject'" in line and "data row 2" in line
+    assert all(part in line for part in expected), line
 
 
 def test_an_arm_that_changes_within_a_participant_names_subject_and_visit(study, capsys):
@@ -98,12 +91,6 @@ def test_an_arm_that_changes_within_a_participant_names_subject_and_visit(study,
     # run refuses it the same way, before any stage, and writes nothing
     _, ran = one_line(capsys, ["run", study / "params.yaml", "--out", study / "records"])
     assert ran == line and not (study / "records").exists()
-
-
-def test_a_covariate_that_changes_after_baseline_is_refused(study, capsys):
-    edit_data(study, "P0001,control,49.6,8,-13.8", "P0001,control,52.0,8,-13.8")
-    _, line = one_line(capsys, ["check", study / "params.yaml"])
-    assert "analysis.formula: 'base' changes within subject P0001 (at visit 8)" in line
 
 
 @pytest.mark.parametrize("old, new, expected", [
