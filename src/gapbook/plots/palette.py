@@ -119,11 +119,7 @@ def strategy_colour(strategy: str) -> str:
     str
         A hex colour.
     """
-    if strategy in STRATEGY_COLOURS:
-        return STRATEGY_COLOURS[strategy]
-    if str(strategy).startswith("delta_adjusted"):
-        return STRATEGY_COLOURS["delta_adjusted"]
-    return NEUTRAL
+    return STRATEGY_COLOURS.get(_drawn_as(strategy), NEUTRAL)
 
 
 def strategy_marker(strategy: str) -> str:
@@ -139,9 +135,12 @@ def strategy_marker(strategy: str) -> str:
     str
         A matplotlib marker.
     """
-    if str(strategy).startswith("delta_adjusted"):
-        return STRATEGY_MARKERS["delta_adjusted"]
-    return STRATEGY_MARKERS.get(strategy, "o")
+    return STRATEGY_MARKERS.get(_drawn_as(strategy), "o")
+
+
+def _drawn_as(strategy: str) -> str:
+    """The strategy whose colour and marker a row takes: delta-adjusted rows (``delta_adjusted_...``) share one."""
+    return "delta_adjusted" if str(strategy).startswith("delta_adjusted") else strategy
 
 
 def group_colours(levels: Sequence) -> Dict:
