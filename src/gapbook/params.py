@@ -21,7 +21,8 @@ from .compute import LOCAL, check_cluster_address
 from .errors import InputError, did_you_mean
 from .text import one_line
 from .vocabulary import (COVARIANCE_STRUCTURES, FAMILY_NAMES, FOLLOWUP_STRATEGY_NAMES, IMPUTATION_METHODS,
-                         INTERCURRENT_STRATEGY_NAMES, LAYOUTS, TIES_METHODS, TIME_TO_EVENT_FAMILIES, VARIABLE_TYPES)
+                         INTERCURRENT_STRATEGY_NAMES, LAYOUTS, MIXED_MODEL_METHODS, TIES_METHODS,
+                         TIME_TO_EVENT_FAMILIES, VARIABLE_TYPES)
 from .expressions import CONDITION, VALUE, ExpressionError, parse_expression, parse_formula
 
 __all__ = ["VariableSpec", "DeltaGrid", "Params", "load_params"]
@@ -34,6 +35,7 @@ ImputationMethod = Literal.__getitem__(IMPUTATION_METHODS)
 DataFormat = Literal.__getitem__(DATA_FORMATS)
 Layout = Literal.__getitem__(LAYOUTS)
 CovarianceStructure = Literal.__getitem__(COVARIANCE_STRUCTURES)
+MixedModelMethod = Literal.__getitem__(MIXED_MODEL_METHODS)
 FollowupStrategy = Literal.__getitem__(FOLLOWUP_STRATEGY_NAMES)
 IntercurrentStrategy = Literal.__getitem__(INTERCURRENT_STRATEGY_NAMES)
 STAGES: Tuple[str, ...] = ("audit", "mechanism", "cases", "indicator", "followup", "impute", "sensitivity", "simulate",
@@ -251,7 +253,7 @@ class RepeatedSection(_Section):
     subject: Optional[Name] = None          # default design.subject; must agree with it
     visit: Optional[Name] = None            # default design.visit; must agree with it
     covariance: CovarianceStructure = "unstructured"
-    method: Literal["reml", "ml"] = "reml"
+    method: MixedModelMethod = "reml"
     strategies: Optional[Annotated[List[FollowupStrategy], Field(min_length=1)]] = None
     reference: Optional[Union[str, int, float]] = None
     delta: Optional[Union[float, Annotated[List[float], Field(min_length=1, max_length=MAX_VISITS)]]] = None

@@ -27,7 +27,7 @@ __all__ = [
     "BLANK", "NOT_APPLICABLE", "IMPLAUSIBLE", "NO_RECORD", "REASON_NOT_GIVEN",
     "MAR_CAUTION", "SENSITIVITY_POINTER", "PLAN_CAUTION", "REPORTING_CAUTION", "CAUTIONS", "cautions",
     "COMPLETERS_CAUTION", "LAST_OBSERVATION_CAUTION", "REFERENCE_BASED_VARIANCE", "INFORMATION_ANCHORING",
-    "LAYOUTS", "COVARIANCE_STRUCTURES", "FOLLOWUP_STRATEGY_NAMES", "NOT_RECOMMENDED_STRATEGIES",
+    "LAYOUTS", "COVARIANCE_STRUCTURES", "MIXED_MODEL_METHODS", "FOLLOWUP_STRATEGY_NAMES", "NOT_RECOMMENDED_STRATEGIES",
     "REFERENCE_BASED_STRATEGIES", "FOLLOWUP_IMPUTED_STRATEGIES",
     "IntercurrentStrategy", "INTERCURRENT_STRATEGIES", "INTERCURRENT_STRATEGY_NAMES", "targeting_strategies",
 ]
@@ -257,6 +257,8 @@ FOLLOWUP_IMPUTED_STRATEGIES: Tuple[str, ...] = ("multiple_imputation", *REFERENC
 # Follow-up designs: how the file is laid out, and the covariance structures the mixed model fits.
 LAYOUTS: Tuple[str, ...] = ("long", "wide")
 COVARIANCE_STRUCTURES: Tuple[str, ...] = ("unstructured",)
+# How the mixed model estimates the covariance: restricted (REML, the default) or full maximum likelihood.
+MIXED_MODEL_METHODS: Tuple[str, ...] = ("reml", "ml")
 
 
 def strategy_rank(name: str) -> int:

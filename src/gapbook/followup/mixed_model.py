@@ -38,11 +38,11 @@ from scipy import linalg, optimize
 from ..errors import AnalysisError, InputError
 from ..inference import wald_inference
 from ..little import pattern_rows
+from ..vocabulary import MIXED_MODEL_METHODS
 from .repeated import RepeatedOutcome, label
 
 __all__ = ["STRATEGY", "design_crossproducts", "MixedModelFit", "VISIT_EFFECT_COLUMNS", "fit_mixed_model"]
 
-METHODS = ("reml", "ml")
 STRATEGY = "mixed_model"
 LOG_2PI = math.log(2 * math.pi)
 
@@ -436,8 +436,8 @@ def fit_mixed_model(outcome: RepeatedOutcome, *, method: str = "reml", alpha: fl
     Jennrich RI, Schluchter MD (1986). Unbalanced repeated-measures models with structured
     covariance matrices. Biometrics 42:805-820.
     """
-    if method not in METHODS:
-        raise InputError(f"analysis.repeated.method: '{method}' is not one of {', '.join(METHODS)}")
+    if method not in MIXED_MODEL_METHODS:
+        raise InputError(f"analysis.repeated.method: '{method}' is not one of {', '.join(MIXED_MODEL_METHODS)}")
     values = outcome.values
     observed = ~np.isnan(values)
     if not observed.any():
