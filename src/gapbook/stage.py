@@ -385,6 +385,10 @@ class StageContext:
                 f"{md_code(model.formula)}" + (f", offset log({md_code(model.offset)})" if model.offset else "")
                 + (f", follow-up time on the left, event {md_code(model.event.describe())}, {model.ties} ties"
                    if model.event is not None else "")
+                # statsmodels' score residuals are Breslow's form: with tied event times and Efron's ties the
+                # sandwich then differs slightly from one built on Efron-form residuals (survival.fit_cox_model)
+                + (" (the sandwich of Lin & Wei 1989 from Breslow-form score residuals, whatever the ties method)"
+                   if model.robust and model.event is not None else "")
                 + f"; exposure: {md_code(model.exposure or '(first term)')}.")
 
     def show_model(self) -> None:
