@@ -355,3 +355,47 @@ def test_a_named_variable_that_cannot_be_shifted_still_stops_check(tmp_path, cap
     path = write_study(tmp_path / "study", without_missing_covariates(),
                        PARAMS.replace("sensitivity: {m: 2}", "sensitivity: {m: 2, variable: age}"))
     assert "sensitivity.variable" in one_line(capsys, ["check", path])
+
+
+# ---------------------------------------------------------------------------
+# rows without a follow-up time or event status: left out of every strategy, and every page with an n says so
+
+def test_every_page_with_an_n_says_how_many_rows_lack_a_time_or_status_and_why(study):
+    from gapbook.impute.plan import plan_imputation
+    from gapbook.report import participant_flow
+
+    params, data = study
+    model = analysis_model(params)
+    # counts: pandas on the file cohort() writes (the markers 'lost' and '-9' and their reasons in PARAMS)
+    frame = cohort()
+    time_lost, status_unknown = frame["months"] == "lost", frame["status"] == "-9"
+    lacking = int((time_lost | status_unknown).sum())
+    expected = (f"{lacking} of {len(frame)} rows lack the follow-up time (months) or the event status (status) "
+                f"(time not known: {int(time_lost.sum())}; status not ascertained: "
+                f"{int((status_unknown & ~time_lost).sum())}) and are left out of every strategy")
+    complete_case = complete_case_analysis(data.data, model=model, reasons=data.reasons,
+                                           not_applicable=data.not_applicable)
+    assert any(s.startswith(expected) for s in complete_case.sentences), complete_case.sentences
+    category = missing_category_analysis(data.data, model=model, types=data.types, missing=data.missing,
+                                         reasons=data.reasons)
+    assert any(s.startswith(expected) for s in category.sentences), category.sentences
+    assert not any("rows without the outcome were dropped" in s for s in category.sentences)
+    plan = plan_imputation(data, model=model, m=2, iterations=1)
+    assert any(s.startswith(expected) for s in plan.sentences), plan.sentences
+    flow = participant_flow(data, formula=model.formula, event="status").steps.set_index("step")["all"]
+    assert flow["outcome_observed"] == len(frame) - lacking
+    assert flow["outcome_missing: time not known"] == time_lost.sum()
+    assert flow["outcome_missing: status not ascertained"] == (status_unknown & ~time_lost).sum()
+    # the strategies indeed leave exactly those rows out (statsmodels PHReg's rows: time, status and covariates)
+    assert complete_case.model_fit.nobs == len(data.data.dropna(subset=["months", "status", "arm", "age", "stage"]))
+
+
+def test_the_model_header_says_the_robust_cox_sandwich_uses_breslow_form_residuals(tmp_path):
+    # the Lin & Wei sandwich is built from statsmodels' score residuals, which are Breslow's form whatever the
+    # ties method (see test_robust_standard_errors_are_lin_wei_sandwich_even_with_early_censoring); the page says so
+    from gapbook.stage import open_stage
+
+    robust = write_study(tmp_path / "robust", params=PARAMS.replace("exposure: arm", "exposure: arm\n  robust: true"))
+    plain = write_study(tmp_path / "plain")
+    assert "Breslow-form score residuals" in open_stage(str(robust), str(tmp_path / "r1")).model_header()
+    assert "Breslow-form" not in open_stage(str(plain), str(tmp_path / "r2")).model_header()

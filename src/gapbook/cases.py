@@ -24,13 +24,14 @@ from .inference import standardised_difference
 from .intake import levels_of
 from .models import (AnalysisModel, ModelFit, add_ratio_columns, exposure_rows, exposure_terms, formula_columns,
                      scale_sentence)
+from .survival import missing_follow_up
 from .text import level_text
 from .vocabulary import CATEGORICAL_TYPES, NUMBER_CODED_TYPES, STRATEGY_TITLES, infer_type, ratio_name
 
 __all__ = ["CompleteCaseFlow", "exposure_column", "complete_case_flow", "CompleteCaseResult", "check_model_data",
            "require_rows", "complete_case_analysis", "is_categorical", "pairwise_correlations",
            "AvailableCaseSummary", "available_case_summary", "CompletenessBaseline", "completeness_baseline",
-           "StrategyComparison", "compare_strategies"]
+           "StrategyComparison", "compare_strategies", "follow_up_sentences"]
 FLOW_COLUMNS = ("step", "variable", "role", "n_excluded", "n_not_applicable", "n_lacking", "reasons", "n_remaining")
 
 
@@ -235,7 +236,28 @@ def complete_case_analysis(data: pd.DataFrame, *, model: AnalysisModel, reasons:
     sentence = (f"{fit.nobs:,} of {flow.n_rows:,} rows used (every model variable observed); exposure term(s): "
                 f"{', '.join(terms)}.")
     return CompleteCaseResult(flow=flow, model_fit=fit, exposure_terms=terms,
-                              sentences=(sentence, scale_sentence(fit.family), *fit.fit_sentences()))
+                              sentences=(sentence, *follow_up_sentences(data, model, reasons),
+                                         scale_sentence(fit.family), *fit.fit_sentences()))
+
+
+def follow_up_sentences(data: pd.DataFrame, model: AnalysisModel, reasons: Optional[pd.DataFrame]) -> Tuple[str, ...]:
+    """For a time-to-event model, the rows left out for a missing time or event status and why (else nothing).
+
+    Parameters
+    ----------
+    data : the analysis frame.
+    model : the analysis model.
+    reasons : the study's missing-reason frame, or None.
+
+    Returns
+    -------
+    tuple of str
+    """
+    if not model.is_time_to_event() or model.event is None:
+        return ()
+    outcome = model.variables(list(data.columns))[0]
+    sentence = missing_follow_up(data, time=outcome, event=model.event, reasons=reasons).sentence()
+    return (sentence,) if sentence else ()
 
 
 # ---------------------------------------------------------------------------

@@ -28,8 +28,8 @@ from typing import Dict, List, Mapping, Optional, Sequence, Tuple, Union
 import numpy as np
 import pandas as pd
 
-from .cases import (CompleteCaseFlow, check_model_data, complete_case_flow, exposure_column, is_categorical,
-                    require_rows)
+from .cases import (CompleteCaseFlow, check_model_data, complete_case_flow, exposure_column, follow_up_sentences,
+                    is_categorical, require_rows)
 from .errors import InputError
 from .expressions import ColumnAliases, parse_formula
 from .intake import levels_of
@@ -271,8 +271,10 @@ def missing_category_analysis(data: pd.DataFrame, *, model: AnalysisModel, types
     terms = tuple(exposure_terms(fit.terms, model.exposure))
     n_outcome = int(prepared.handling.loc[prepared.handling["role"] == "outcome", "n_missing"].sum())
     written = model.formula + "".join(f" + {name}" for name in prepared.indicators)  # as a reader writes it
+    follow_up = follow_up_sentences(data, model, reasons)  # a time-to-event model: time or status missing, and why
     sentences = (f"Model fitted: {written}.",
-                 f"{fit.nobs:,} of {flow.n_rows:,} rows used ({n_outcome:,} rows without the outcome were dropped).",
-                 scale_sentence(fit.family), *fit.fit_sentences())
+                 f"{fit.nobs:,} of {flow.n_rows:,} rows used"
+                 + ("." if follow_up else f" ({n_outcome:,} rows without the outcome were dropped)."),
+                 *follow_up, scale_sentence(fit.family), *fit.fit_sentences())
     return MissingCategoryResult(prepared=prepared, flow=flow, model_fit=fit, exposure_terms=terms,
                                  sentences=sentences)

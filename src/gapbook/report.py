@@ -212,7 +212,7 @@ def flow_group(study: Study, *, group: Optional[str] = None, exposure: Optional[
 
 
 def participant_flow(study: Study, *, formula: Optional[str], group: Optional[str] = None,
-                     estimates: Optional[pd.DataFrame] = None) -> ParticipantFlow:
+                     estimates: Optional[pd.DataFrame] = None, event: Optional[str] = None) -> ParticipantFlow:
     """Count participants from the file to each analysis (CONSORT-style flow), by group when given.
 
     Parameters
@@ -225,6 +225,8 @@ def participant_flow(study: Study, *, formula: Optional[str], group: Optional[st
     estimates : ``estimates.csv``; its ``n_used`` per strategy gives the analysed counts.
         A strategy's counts by group are shown when the rows it used can be identified
         (complete rows, rows with the outcome observed, or all rows) by matching its total.
+    event : a time-to-event model's event column: the outcome is then observed when both the
+        follow-up time and the event status are, and the rows lacking either are counted by reason.
 
     Returns
     -------
@@ -267,9 +269,16 @@ def participant_flow(study: Study, *, formula: Optional[str], group: Optional[st
         table = pd.DataFrame(rows, columns=["step", "description", "all", *levels])
         return ParticipantFlow(steps=table, group=group, n_rows=int(everyone.sum()), n_complete=int(complete.sum()))
     observed_outcome = ~missing[outcome].to_numpy()
-    rows.append({"step": "outcome_observed", "description": f"outcome ({outcome}) observed",
-                 **counts(observed_outcome)})
+    described = f"outcome ({outcome}) observed"
     reasons = study.reasons[outcome]
+    if event is not None:  # the time's reason, else the status's
+        observed_outcome = observed_outcome & ~missing[event].to_numpy()
+        described = f"outcome observed: follow-up time ({outcome}) and event status ({event})"
+        labels = list(dict.fromkeys([*reasons.cat.categories, *study.reasons[event].cat.categories]))
+        reasons = pd.Categorical(reasons.astype(object).where(reasons.notna(), study.reasons[event].astype(object)),
+                                 categories=labels)
+        reasons = pd.Series(reasons, index=study.reasons.index)
+    rows.append({"step": "outcome_observed", "description": described, **counts(observed_outcome)})
     for reason in [r for r in reasons.cat.categories if (reasons == r).any()]:
         rows.append({"step": f"outcome_missing: {reason}", "description": f"outcome missing: {reason}",
                      **counts((reasons == reason).fillna(False).to_numpy(dtype=bool))})
@@ -494,7 +503,8 @@ def build_checklist(flow: ParticipantFlow, missing: MissingSummary, tables: Mapp
         items.append(ChecklistItem(
             "losses of the outcome with reasons, by group", "CONSORT 13b; STROBE 13b",
             "tables/participant_flow.csv",
-            f"{outcome} missing {_count(n_rows - flow_all['outcome_observed'], min_cell)}: "
+            f"{outcome}{'' if model is None or model.event is None else ' or ' + model.event.column} missing "
+            f"{_count(n_rows - flow_all['outcome_observed'], min_cell)}: "
             + ("; ".join(losses) if losses else "none") + by_group))
     # Missing data per variable (STROBE 14b; Sterne et al. 2009)
     with_missing = missing.variables[missing.variables["n_missing"].astype(float) > 0]
@@ -821,7 +831,7 @@ def summarise(study: Study, *, tables: Mapping[str, Optional[pd.DataFrame]], tit
             if model is not None and estimates is not None and len(estimates) else []
     group = flow_group(study, group=group, exposure=model.exposure if model is not None else None)
     flow = participant_flow(study, formula=model.formula if model is not None else None, group=group,
-                            estimates=estimates)
+                            estimates=estimates, event=model.event.column if model is not None and model.event else None)
     missing = missing_summary(study, threshold=threshold, audit_variables=tables.get("audit_variables"))
     checklist = build_checklist(flow, missing, tables, model=model, imputation=imputation, terms=terms,
                                 min_cell=min_cell)

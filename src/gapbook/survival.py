@@ -21,7 +21,7 @@ from .errors import AnalysisError, InputError
 from .vocabulary import TIES_METHODS
 
 __all__ = ["EventCoding", "check_follow_up", "cox_model", "fit_cox_model", "nelson_aalen", "cumulative_hazard_at",
-           "kaplan_meier", "WeibullFit", "fit_weibull_ph", "CensoringDistribution", "censoring_distribution"]
+           "kaplan_meier", "MissingFollowUp", "missing_follow_up", "WeibullFit", "fit_weibull_ph", "CensoringDistribution", "censoring_distribution"]
 
 Value = Union[str, int, float]
 
@@ -207,6 +207,67 @@ def fit_cox_model(model: Any, *, robust: bool = False) -> Any:
     scores = np.nan_to_num(model.score_residuals(result.params), nan=0.0)
     bread = np.linalg.inv(model.hessian(result.params))
     return PHRegResults(model, result.params, bread @ (scores.T @ scores) @ bread)
+
+
+@dataclass(frozen=True)
+class MissingFollowUp:
+    """The rows whose follow-up time or event status is missing, and why: every strategy leaves them out.
+
+    A row without its time or status has no outcome for the Cox model, no place on the
+    cumulative hazard its covariates would be imputed with, and nothing a delta could shift,
+    so the default (what the analysis plan usually says) is to leave it out; each page that
+    reports an n says how many such rows there are. ``reasons`` pairs each missing reason
+    (the time's, else the status's) with its number of rows.
+    """
+
+    time: str
+    event: str
+    n_rows: int
+    n_missing: int
+    reasons: Tuple[Tuple[str, int], ...] = ()
+
+    def sentence(self) -> str:
+        """The rows left out and their reasons in one sentence ("" when every row has both).
+
+        Returns
+        -------
+        str
+        """
+        if not self.n_missing:
+            return ""
+        why = "; ".join(f"{label}: {count:,}" for label, count in self.reasons)
+        return (f"{self.n_missing:,} of {self.n_rows:,} rows lack the follow-up time ({self.time}) or the event "
+                f"status ({self.event}) ({why}) and are left out of every strategy: without its outcome a row "
+                "cannot enter the Cox model, and it is not imputed.")
+
+
+def missing_follow_up(data: pd.DataFrame, *, time: str, event: EventCoding,
+                      reasons: Optional[pd.DataFrame] = None) -> MissingFollowUp:
+    """Count the rows without a follow-up time or event status, by missing reason.
+
+    Parameters
+    ----------
+    data : the analysis frame (NaN where missing).
+    time : the follow-up time column.
+    event : the event coding.
+    reasons : the study's missing-reason frame (``study.reasons``); "missing" when not given.
+
+    Returns
+    -------
+    MissingFollowUp
+    """
+    time_lacking = data[time].isna().to_numpy()
+    event_lacking = data[event.column].isna().to_numpy()
+    lacking = time_lacking | event_lacking
+    labels = pd.Series("missing", index=data.index, dtype=object)
+    if reasons is not None:
+        for column, column_lacking in ((event.column, event_lacking), (time, time_lacking)):  # the time's reason wins
+            if column in reasons:
+                given = reasons[column].astype(object)
+                labels = labels.where(~(column_lacking & given.notna().to_numpy()), given)
+    counts = labels[lacking].value_counts(sort=False)
+    return MissingFollowUp(time=time, event=event.column, n_rows=int(len(data)), n_missing=int(lacking.sum()),
+                           reasons=tuple((str(k), int(v)) for k, v in counts.items()))
 
 
 # ---------------------------------------------------------------------------

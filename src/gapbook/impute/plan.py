@@ -13,7 +13,7 @@ import pandas as pd
 from ..errors import InputError, did_you_mean
 from ..intake import Study
 from ..models import AnalysisModel
-from ..survival import EventCoding, cumulative_hazard_at
+from ..survival import EventCoding, MissingFollowUp, cumulative_hazard_at, missing_follow_up
 from ..vocabulary import DELTA_METHODS, METHOD_WORDS
 from .engine import ChainedImputation, impute_chained
 from .preparation import choose_method, choose_predictors, passive_inputs
@@ -152,6 +152,7 @@ class SurvivalPredictors:
     keep: Tuple[bool, ...]
     hazard_column: str
     indicator_column: str
+    missing: Optional[MissingFollowUp] = None   # the rows left out and their reasons, when the study's are known
 
     def columns(self) -> Tuple[str, str]:
         """The two predictor columns added to the imputation data (event indicator, cumulative hazard)."""
@@ -189,7 +190,9 @@ class SurvivalPredictors:
     def sentences(self) -> Tuple[str, ...]:
         out = [f"Time to event: {self.time} and {self.event.column} enter the imputation models as {self.phrase()}; "
                "the analysis model still uses the time and event status themselves."]
-        if self.n_left_out():
+        if self.missing is not None and self.missing.sentence():
+            out.append(self.missing.sentence())
+        elif self.n_left_out():
             out.append(f"{self.n_left_out():,} rows without a follow-up time or event status are left out of the "
                        "imputation and of the pooled analysis (they have no place on the cumulative hazard and "
                        "every fit of the model leaves them out).")
@@ -203,7 +206,8 @@ def _free_name(stem: str, taken: Sequence[str]) -> str:
     return name
 
 
-def survival_predictors(data: pd.DataFrame, *, time: str, event: EventCoding) -> SurvivalPredictors:
+def survival_predictors(data: pd.DataFrame, *, time: str, event: EventCoding,
+                        reasons: Optional[pd.DataFrame] = None) -> SurvivalPredictors:
     """The event indicator and cumulative hazard predictors for imputing a Cox model's covariates.
 
     Parameters
@@ -211,6 +215,7 @@ def survival_predictors(data: pd.DataFrame, *, time: str, event: EventCoding) ->
     data : the imputation data (with the time and event columns).
     time : the follow-up time column.
     event : the event coding.
+    reasons : the study's missing-reason frame, so the plan says why rows are left out.
 
     Returns
     -------
@@ -228,8 +233,9 @@ def survival_predictors(data: pd.DataFrame, *, time: str, event: EventCoding) ->
     taken = list(data.columns)
     indicator = _free_name("event_indicator", taken)
     hazard = _free_name("cumulative_hazard", taken + [indicator])
+    missing = missing_follow_up(data, time=time, event=event, reasons=reasons) if reasons is not None else None
     return SurvivalPredictors(time=time, event=event, keep=tuple(bool(k) for k in keep), hazard_column=hazard,
-                              indicator_column=indicator)
+                              indicator_column=indicator, missing=missing)
 
 
 def plan_sentences(plan: ImputationPlan) -> Tuple[str, ...]:
@@ -335,7 +341,8 @@ def plan_imputation(study: Study, *, model: AnalysisModel, m: int = 20, iteratio
     data = study.data[columns].reset_index(drop=True)
     survival: Optional[SurvivalPredictors] = None
     if model.is_time_to_event():
-        survival = survival_predictors(data, time=outcome, event=model.event)
+        survival = survival_predictors(data, time=outcome, event=model.event,
+                                       reasons=study.reasons[columns].reset_index(drop=True))
         data, mask, settings = survival.apply(data, mask, settings)
         types.update(survival.types())
         columns = list(data.columns)
