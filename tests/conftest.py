@@ -82,3 +82,17 @@ def demo_record(tmp_path_factory) -> Path:
     record = record_path(result)
     (out / "stdout.txt").write_text(result.stdout)
     return record
+
+
+@pytest.fixture
+def followup_study(tmp_path) -> Path:
+    """A copy of the follow-up demo study (long layout, visits 2, 4, 8, 12, 16, arms control and active) that a
+    test may edit: its data file and params.yaml in one folder."""
+    from gapbook.followup.demo import followup_demo_files
+
+    csv, params = followup_demo_files()
+    folder = tmp_path / "trial"
+    folder.mkdir()
+    shutil.copy(csv, folder / csv.name)
+    shutil.copy(params, folder / "params.yaml")
+    return folder

@@ -4,7 +4,6 @@ would refuse up front"): exit 2 at check, one line naming the key and what to do
 """
 from __future__ import annotations
 
-import shutil
 from dataclasses import replace
 
 import numpy as np
@@ -13,19 +12,13 @@ import pytest
 
 from gapbook.cli import main
 from gapbook.errors import InputError
-from gapbook.followup.demo import followup_demo_files
 from gapbook.params import load_params
 
 
 @pytest.fixture
-def study(tmp_path):
-    """A copy of the follow-up demo study (long layout, visits 2, 4, 8, 12, 16, arms control and active)."""
-    csv, params = followup_demo_files()
-    folder = tmp_path / "trial"
-    folder.mkdir()
-    shutil.copy(csv, folder / csv.name)
-    shutil.copy(params, folder / "params.yaml")
-    return folder
+def study(followup_study):
+    """The follow-up demo study copied for this test (conftest's ``followup_study``)."""
+    return followup_study
 
 
 def rewrite(study, change):

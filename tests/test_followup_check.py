@@ -2,7 +2,6 @@
 and every problem of a follow-up file is refused up front, exit 2, in one line naming subject and visit."""
 from __future__ import annotations
 
-import shutil
 from pathlib import Path
 
 import pytest
@@ -24,14 +23,9 @@ def one_line(capsys, argv, code=2):
 
 
 @pytest.fixture
-def study(tmp_path):
-    """A copy of the follow-up demo study (data and params) that a test may edit."""
-    csv, params = followup_demo_files()
-    folder = tmp_path / "trial"
-    folder.mkdir()
-    shutil.copy(csv, folder / csv.name)
-    shutil.copy(params, folder / "params.yaml")
-    return folder
+def study(followup_study):
+    """The follow-up demo study copied for this test (conftest's ``followup_study``)."""
+    return followup_study
 
 
 def edit_data(study: Path, old: str, new: str, count: int = 1) -> None:
