@@ -568,7 +568,7 @@ class StageContext:
         Returns the participant-level study and ``mechanism.variables`` in its names (a variable
         spread over the visits stands for all its visit columns).
         """
-        from .followup.participants import participant_study
+        from .followup.participants import participant_study, planned_visits, visit_column
 
         outcome = _outcome_name(self.params) if self.params.analysis.formula else None
         with params_errors(self.params, "design"):
@@ -577,8 +577,8 @@ class StageContext:
             return study, None
         chosen = []
         for name in variables:
-            spread = [c for c in study.data.columns if c.startswith(f"{name} @ ")]
-            chosen.extend(spread if name not in study.data.columns and spread else [name])
+            spread = [visit_column(name, visit) for visit in planned_visits(self.repeated)]
+            chosen.extend(spread if name not in study.data.columns and spread[0] in study.data.columns else [name])
         return study, tuple(chosen)
 
     def complete_cases(self) -> "CompleteCaseResult":

@@ -12,9 +12,8 @@ outcome, a visit-level measurement) becomes one column per planned visit, named
 from __future__ import annotations
 
 import dataclasses
-from typing import Any, List, Sequence, Tuple
+from typing import Any, List, Sequence
 
-import numpy as np
 import pandas as pd
 
 from ..intake import Study
@@ -22,7 +21,7 @@ from ..vocabulary import NO_RECORD
 from .intake import RepeatedStudy
 from .repeated import label
 
-__all__ = ["participant_study", "visit_column"]
+__all__ = ["participant_study", "planned_visits", "visit_column"]
 
 
 def visit_column(variable: str, visit: Any) -> str:
@@ -47,13 +46,19 @@ def _varies_within(frame: pd.DataFrame, subject: str, column: str) -> bool:
     return bool((frame.groupby(subject, sort=False)[column].nunique(dropna=True) > 1).any())
 
 
-def _first_recorded(values: pd.DataFrame, reasons: pd.DataFrame, subject: pd.Series, column: str
-                    ) -> Tuple[pd.Series, pd.Series]:
-    """Per participant, the first recorded value of a column that does not vary (else the first row's reason)."""
-    recorded = values[column].notna().to_numpy()
-    order = np.lexsort((~recorded, pd.factorize(subject, sort=False)[0]))  # per participant, recorded rows first
-    first = pd.Series(np.arange(len(subject)))[order].groupby(subject.to_numpy()[order], sort=False).first()
-    return values[column].iloc[first.to_numpy()], reasons[column].iloc[first.to_numpy()]
+def planned_visits(repeated: RepeatedStudy) -> List[Any]:
+    """Every planned visit in order, the baseline visit (when the plan has one) first.
+
+    Parameters
+    ----------
+    repeated : RepeatedStudy
+        The study laid out long over its planned visits.
+
+    Returns
+    -------
+    list
+    """
+    return ([repeated.baseline] if repeated.baseline is not None else []) + list(repeated.visits)
 
 
 def participant_study(repeated: RepeatedStudy, study: Study, *, time_varying: Sequence[str] = ()) -> Study:
@@ -78,7 +83,7 @@ def participant_study(repeated: RepeatedStudy, study: Study, *, time_varying: Se
     """
     frame, reasons = repeated.frame, repeated.reasons
     subject, visit = repeated.subject, repeated.visit
-    planned: List[Any] = ([repeated.baseline] if repeated.baseline is not None else []) + list(repeated.visits)
+    planned = planned_visits(repeated)
     subjects = frame[subject].astype(str)
     participants = pd.Index(pd.unique(subjects), name=subject)
     columns = [c for c in frame.columns if c not in (subject, visit) and c in study.variables]
@@ -87,9 +92,11 @@ def participant_study(repeated: RepeatedStudy, study: Study, *, time_varying: Se
     for column in columns:
         info = study.variables[column]
         if column not in time_varying and not _varies_within(frame, subject, column):
-            values, reason = _first_recorded(frame, reasons, subjects, column)
+            # the first recorded value; a participant with none keeps the reason (every missing cell has one)
+            values = frame[column].groupby(subjects, sort=False).first().reindex(participants)
+            reason = reasons[column].astype(object).groupby(subjects, sort=False).first().reindex(participants)
             data[column] = values.set_axis(index)
-            why[column] = reason.astype(object).set_axis(index)
+            why[column] = reason.where(values.isna()).set_axis(index)
             infos[column] = info
             continue
         for planned_visit in planned:
