@@ -47,7 +47,7 @@ def refused(study, capsys):
 def test_a_planned_visit_nobody_attended_is_refused_by_check(study, capsys):
     edit_params(study, "visits: [2, 4, 8, 12, 16]", "visits: [2, 4, 8, 12, 16, 20]")
     line = refused(study, capsys)
-    assert "design.visits: no participant has the outcome at visit 20; drop it from design.visits" in line
+    assert "params.yaml: design.visits: no participant has the outcome at visit 20; drop it from the planned visits" in line
 
 
 def test_a_visit_whose_outcomes_are_all_missing_is_refused_by_check(study, capsys):
@@ -81,8 +81,8 @@ def test_a_term_the_observed_visits_cannot_estimate_is_named(study):
     assert outcome.unestimable() is None  # the demo as shipped is estimable
     broken = outcome.design.copy()
     broken[:, :, -1] = broken[:, :, 0] * 2.0  # last term = twice the intercept: not estimable
-    key, why = replace(outcome, design=broken).unestimable()
-    assert key == "analysis.formula" and why.startswith(f"the term {outcome.terms[-1]} cannot be estimated")
+    problem = replace(outcome, design=broken).unestimable()
+    assert problem.option == "formula" and problem.message.startswith(f"the term {outcome.terms[-1]} cannot be estimated")
     assert np.linalg.matrix_rank(broken[outcome.observed]) < len(outcome.terms)  # numpy agrees it is singular
 
 

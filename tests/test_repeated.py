@@ -69,14 +69,14 @@ def test_two_rows_for_one_visit_names_subject_and_visit():
 def test_visit_not_in_plan_names_subject_and_visit():
     frame = small_trial()
     frame.loc[5, "week"] = 7
-    with pytest.raises(InputError, match=r"design.visits: subject C has visit 7"):
+    with pytest.raises(InputError, match=r"^visits: subject C has visit 7, which is not a planned visit \(1, 2, 3\); add it to the planned visits"):
         build(frame)
 
 
 def test_arm_changing_within_subject_names_subject_and_visit():
     frame = small_trial()
     frame.loc[2, "arm"] = "trt"
-    with pytest.raises(InputError, match=r"analysis.exposure: the arm 'arm' changes within subject A \(from \w+ to trt at visit 3\)"):
+    with pytest.raises(InputError, match=r"^exposure: the arm 'arm' changes within subject A \(from \w+ to trt at visit 3\)"):
         build(frame)
 
 

@@ -142,9 +142,9 @@ def test_delta_shifts_only_cells_after_deviation_in_the_active_arm():
 
 def test_rule_and_group_errors_are_input_errors():
     outcome = outcome_of(simulate_followup_trial(n_per_arm=30, seed=2))
-    with pytest.raises(InputError, match="not one of"):
+    with pytest.raises(InputError, match="^rule: 'jump_to_ref' is not one of"):
         ri.impute_repeated(outcome, rule="jump_to_ref")
-    with pytest.raises(InputError, match="reference group 'placebo'"):
+    with pytest.raises(InputError, match="^reference: 'placebo' is not a level of"):
         ri.impute_repeated(outcome, rule="mar", reference="placebo")
 
 

@@ -6,11 +6,29 @@ The CLI turns :class:`InputError` into exit code 2 with its one-line message and
 from __future__ import annotations
 
 import difflib
-from typing import Iterable, Optional
+from dataclasses import dataclass
+from typing import Callable, Iterable, Optional, Union
 
 from .text import one_line
 
-__all__ = ["InputError", "AnalysisError", "nearest", "did_you_mean"]
+__all__ = ["OptionName", "InputError", "AnalysisError", "nearest", "did_you_mean"]
+
+
+@dataclass(frozen=True)
+class OptionName:
+    """Another option named inside an error's text, where the user may act instead of (or beside) the
+    error's own option: ``InputError("0 is not one of ", OptionName("visits"), " (1, 2)", option="baseline")``.
+
+    A stage module shows the option's name (``baseline: 0 is not one of visits (1, 2)``); the
+    notebook-facing layer (:mod:`gapbook.stage`) shows the params key it came from
+    (``design.baseline: 0 is not one of design.visits (1, 2)``). Only these parts are renamed, never
+    text from a data or params file.
+    """
+
+    name: str
+
+    def __str__(self) -> str:
+        return self.name
 
 
 class InputError(Exception):
@@ -22,13 +40,33 @@ class InputError(Exception):
     A stage module names the option it was given (``InputError("'x' is not a column",
     option="auxiliary")`` reads ``auxiliary: 'x' is not a column``); the notebook-facing
     layer (:mod:`gapbook.stage`) renames that option to the params key it came from. The
-    option may carry a dotted item after it, e.g. ``methods.bmi``.
+    option may carry a dotted item after it, e.g. ``methods.bmi``. The message may be given
+    in parts, some of them :class:`OptionName`, when its text names a second option; the
+    option ``data`` is the data the module was given, which the notebook-facing layer names
+    by the data file.
     """
 
-    def __init__(self, message: object = "", *, option: Optional[str] = None) -> None:
+    def __init__(self, *parts: Union[object, OptionName], option: Optional[str] = None) -> None:
         self.option = option
-        self.message = one_line(message, limit=2000)  # without the option's name
-        super().__init__(one_line(f"{option}: {message}" if option else message, limit=2000))
+        self.parts = parts
+        self.message = self.text()  # without the option's name
+        super().__init__(one_line(f"{option}: {self.message}" if option else self.message, limit=2000))
+
+    def text(self, name: Callable[[str], str] = str) -> str:
+        """The message without the option's name, each :class:`OptionName` part shown as ``name(option)``.
+
+        Parameters
+        ----------
+        name : callable
+            The words for an option named in the text (default: the option itself).
+
+        Returns
+        -------
+        str
+            One printable line of at most 2,000 characters.
+        """
+        return one_line("".join(name(part.name) if isinstance(part, OptionName) else str(part)
+                                for part in self.parts), limit=2000)
 
 
 class AnalysisError(Exception):

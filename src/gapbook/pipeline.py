@@ -279,7 +279,7 @@ def check_followup_up_front(params: Params, study: Any, stages: Sequence[str]) -
     the imputation strategies cannot run with. Returns a note describing the design for ``check``.
     """
     from .followup.repeated import label
-    from .stage import repeated_design, repeated_model_data
+    from .stage import check_estimable, repeated_design, repeated_model_data
 
     repeated = repeated_design(params, study)
     visits = ", ".join(map(label, repeated.visits))
@@ -296,10 +296,8 @@ def check_followup_up_front(params: Params, study: Any, stages: Sequence[str]) -
     section = params.analysis.repeated
     imputing = section is None or section.strategies is None or any(
         s in FOLLOWUP_IMPUTED_STRATEGIES for s in section.strategies)
-    problem = outcome.unestimable() if any(s in FOLLOWUP_STAGES for s in stages) else None
-    if problem is not None:
-        key, why = problem
-        raise InputError(f"{params.label}: {key}: {why}")
+    if any(s in FOLLOWUP_STAGES for s in stages):
+        check_estimable(params, outcome, study.source or "data")
     if imputing and any(s in FOLLOWUP_STAGES for s in stages) and params.imputation.m < 2:
         raise InputError(f"{params.label}: imputation.m is {params.imputation.m}; the follow-up imputation strategies "
                          "pool at least two imputed datasets: raise it (e.g. 20)")

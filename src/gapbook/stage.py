@@ -24,12 +24,14 @@ from __future__ import annotations
 
 import contextlib
 import dataclasses
+import typing
 from dataclasses import dataclass
 from functools import cached_property
 from pathlib import Path
-from typing import TYPE_CHECKING, Any, Dict, Iterator, Optional, Protocol, Sequence, Tuple, Union
+from typing import TYPE_CHECKING, Any, Dict, Iterator, Mapping, Optional, Protocol, Sequence, Tuple, Union
 
 import pandas as pd
+from pydantic import BaseModel
 
 from .errors import InputError
 from .intake import Study, load_study
@@ -58,7 +60,7 @@ if TYPE_CHECKING:  # the stage modules are imported where a stage is run, not wh
 
 __all__ = ["StageResult", "StageContext", "open_stage", "analysis_model", "params_errors", "write_csv",
            "merge_estimates", "imputation_plan", "sensitivity_series", "CSV_FLOAT_FORMAT", "ESTIMATE_COLUMNS", "FIGURE_DPI", "repeated_design",
-           "repeated_model_data"]
+           "repeated_model_data", "check_estimable"]
 
 CSV_FLOAT_FORMAT = "%.10g"
 ESTIMATE_COLUMNS = ("strategy", "term", "estimate", "std_error", "ci_lower", "ci_upper", "p_value", "n_used",
@@ -102,32 +104,64 @@ def write_csv(frame: pd.DataFrame, path: Path) -> Path:
 _SPECIAL_KEYS = {"types": "variables.{}.type", "delta_by": "sensitivity.delta.{}.by"}
 
 
-def _params_key(option: str, sections: Sequence[str]) -> Optional[str]:
-    """The params key an option came from, looked up in the schema of the given sections (first match)."""
+def _section_model(path: str) -> Any:
+    """The pydantic model of a params section (``"design"``, ``"analysis.repeated"``), or None.
+
+    An optional section (``design: Optional[DesignSection]``) is annotated as a Union with None:
+    its model is the Union's one pydantic member.
+    """
+    model: Any = Params
+    for name in path.split("."):
+        field = getattr(model, "model_fields", {}).get(name)
+        if field is None:
+            return None
+        candidates = (field.annotation, *typing.get_args(field.annotation))
+        model = next((c for c in candidates if isinstance(c, type) and issubclass(c, BaseModel)), None)
+    return model
+
+
+def _params_key(option: str, sections: Sequence[str], keys: Optional[Mapping[str, str]] = None) -> Optional[str]:
+    """The params key an option came from: ``keys`` first, then the schema of the given sections (first match).
+
+    ``sections`` may name a section inside a section (``"analysis.repeated"``) and an optional one
+    (``"design"``).
+    """
     head, _, item = option.partition(".")
+    keys = keys or {}
+    if head in keys:
+        return keys[head] + (f".{item}" if item else "")
     if head in _SPECIAL_KEYS and item:
         return _SPECIAL_KEYS[head].format(item)
     for section in sections:
-        model = Params.model_fields[section].annotation
-        if head in getattr(model, "model_fields", {}):
+        if head in getattr(_section_model(section), "model_fields", {}):
             return f"{section}.{option}"
     return None
 
 
 @contextlib.contextmanager
-def params_errors(params: Params, *sections: str) -> Iterator[None]:
+def params_errors(params: Params, *sections: str, keys: Optional[Mapping[str, str]] = None,
+                  data_file: Optional[str] = None) -> Iterator[None]:
     """Rename the option in a stage module's ``InputError`` to the params key it came from.
 
     ``sections`` are the params sections whose keys the options are, in order of precedence
     (e.g. ``"mechanism", "analysis"``: ``alpha`` is ``mechanism.alpha``). The message then
     names the params file and the key: ``study.yaml: imputation.auxiliary: 'x' is not a column``.
+    Another option the message names (an :class:`~gapbook.errors.OptionName` part) is renamed the
+    same way: ``study.yaml: design.baseline: 0 is not one of design.visits (1, 2)``.
 
     Parameters
     ----------
     params : Params
         The params the options were read from (its file names the error).
     *sections : str
-        The params sections, in order of precedence.
+        The params sections, in order of precedence; ``"analysis.repeated"`` names a section
+        inside a section.
+    keys : mapping of str to str
+        Options whose params key is not found by their name, e.g. ``{"ids": "data.id"}`` or an
+        option computed from a key (the wide layout's ``outcome``, from ``analysis.formula``).
+    data_file : str, optional
+        The data file's name: an error about the data the module was given (option ``data``,
+        e.g. two rows for one visit) is named by the data file rather than a params key.
 
     Yields
     ------
@@ -137,10 +171,13 @@ def params_errors(params: Params, *sections: str) -> Iterator[None]:
     try:
         yield
     except InputError as exc:
-        key = _params_key(exc.option, sections) if exc.option else None
+        if exc.option == "data" and data_file is not None:
+            raise InputError(f"{data_file}: {exc.message}") from None
+        key = _params_key(exc.option, sections, keys) if exc.option else None
         if key is None:
             raise
-        raise InputError(f"{params.label}: {key}: {exc.message}") from None
+        text = exc.text(lambda option: _params_key(option, sections, keys) or option)
+        raise InputError(f"{params.label}: {key}: {text}") from None
 
 
 def analysis_model(params: Params) -> "AnalysisModel":
@@ -183,18 +220,18 @@ def event_coding(params: Params) -> "Optional[EventCoding]":
 # ---------------------------------------------------------------------------
 # follow-up studies: the design section and analysis.repeated -> options
 
+# The sections a follow-up module's options come from, in order of precedence: ``subject`` and ``visit``
+# are the design's (analysis.repeated may only repeat them), ``method`` is the mixed model's, ``m`` and
+# ``seed`` the imputation's, ``formula``, ``exposure`` and ``alpha`` the analysis model's.
+FOLLOWUP_SECTIONS = ("design", "analysis.repeated", "imputation", "analysis")
+
+
 @contextlib.contextmanager
-def design_errors(params: Params, data_label: str) -> Iterator[None]:
-    """Name the file in the follow-up modules' errors, which start with the params key (or ``data:``) they concern."""
-    try:
+def followup_errors(params: Params, data_file: str, keys: Optional[Mapping[str, str]] = None) -> Iterator[None]:
+    """:func:`params_errors` for the follow-up modules: their options are keys of ``design``,
+    ``analysis.repeated``, ``imputation`` or ``analysis``; an error about the data rows names ``data_file``."""
+    with params_errors(params, *FOLLOWUP_SECTIONS, keys=keys, data_file=data_file):
         yield
-    except InputError as exc:
-        message = str(exc)
-        if message.startswith("data:"):
-            raise InputError(f"{data_label}:{message[len('data:'):]}") from None
-        if message.startswith(params.label):
-            raise
-        raise InputError(f"{params.label}: {message}") from None
 
 
 def _outcome_name(params: Params) -> str:
@@ -230,8 +267,10 @@ def repeated_design(params: Params, study: Study) -> "RepeatedStudy":
     if design is None:
         raise InputError(f"{params.label}: this stage needs a design section (a follow-up study)")
     subject = params.subject_column
-    label = study.source or "data"
-    with design_errors(params, label):
+    # the subject is design.subject, else data.id (as the wide layout's ids are); the wide layout's outcome is
+    # the left side of analysis.formula
+    keys = {"ids": "data.id", "outcome": "analysis.formula", "subject": "design.subject" if design.subject else "data.id"}
+    with followup_errors(params, study.source or "data", keys=keys):
         if design.layout == "long":
             data = study.data.assign(**{subject: study.ids.to_numpy()})  # intake kept the subject apart, as an id
             return repeated_study(data, study.reasons, layout="long", subject=subject, visit=design.visit,
@@ -267,7 +306,7 @@ def repeated_model_data(params: Params, repeated: "RepeatedStudy", data_label: s
     if not section.exposure:
         raise InputError(f"{params.label}: analysis.exposure is required for the follow-up analyses: name the "
                          "arm whose effect is reported at every visit")
-    with design_errors(params, data_label):
+    with followup_errors(params, data_label):
         outcome = repeated.outcome(formula=section.formula, exposure=section.exposure)
     if not outcome.levels:
         raise InputError(f"{params.label}: analysis.exposure '{section.exposure}' must be categorical (the "
@@ -279,6 +318,32 @@ def repeated_model_data(params: Params, repeated: "RepeatedStudy", data_label: s
         raise InputError(f"{params.label}: analysis.repeated.reference '{reference}' is not a level of "
                          f"{section.exposure} ({', '.join(map(label, outcome.levels))})")
     return outcome
+
+
+def check_estimable(params: Params, outcome: "RepeatedOutcome", data_label: str = "data") -> None:
+    """Exit 2 when the mixed model cannot estimate the formula's effects from the observed outcomes.
+
+    ``check`` calls it for the follow-up stage, so a visit nobody attended, a single arm or a
+    term the attended visits cannot estimate stops ``check`` with the params key to change,
+    instead of stopping the run after minutes.
+
+    Parameters
+    ----------
+    params : Params
+        The resolved params (``design`` and ``analysis`` sections).
+    outcome : RepeatedOutcome
+        From :func:`repeated_model_data`.
+    data_label : str
+        The data file's name for messages.
+
+    Returns
+    -------
+    None
+    """
+    problem = outcome.unestimable()
+    if problem is not None:
+        with followup_errors(params, data_label):
+            raise problem
 
 
 def _level(levels: Sequence[Any], wanted: Any) -> Any:
@@ -481,7 +546,7 @@ class StageContext:
                 strategies = tuple(s for s in FOLLOWUP_STRATEGY_NAMES if s in DEFAULT_STRATEGIES
                                    or s == "delta_adjusted")
         imputation = self.params.imputation
-        with self.on_cluster(), design_errors(self.params, self.study.source or "data"):
+        with self.on_cluster(), followup_errors(self.params, self.study.source or "data"):
             return analyse_followup(outcome, strategies=strategies, m=imputation.m, seed=imputation.seed,
                                     reference=reference, delta=delta, method=method, alpha=self.params.analysis.alpha,
                                     n_jobs=imputation.n_jobs)

@@ -159,11 +159,11 @@ def analyse_followup(outcome: RepeatedOutcome, *, strategies: Sequence[str] = DE
     """
     unknown = [s for s in strategies if s not in FOLLOWUP_STRATEGIES]
     if unknown:
-        raise InputError(f"analysis.repeated.strategies: '{unknown[0]}' is not one of "
-                         f"{', '.join(FOLLOWUP_STRATEGIES)}{did_you_mean(unknown[0], FOLLOWUP_STRATEGIES)}")
+        raise InputError(f"'{unknown[0]}' is not one of {', '.join(FOLLOWUP_STRATEGIES)}"
+                         f"{did_you_mean(unknown[0], FOLLOWUP_STRATEGIES)}", option="strategies")
     if DELTA_STRATEGY in strategies and delta is None:
-        raise InputError("analysis.repeated.delta: the delta_adjusted strategy needs a delta (the shift of "
-                         "outcomes imputed after leaving)")
+        raise InputError("the delta_adjusted strategy needs a delta (the shift of outcomes imputed after leaving)",
+                         option="delta")
     frames = []
     fit = fit_mixed_model(outcome, method=method, alpha=alpha)
     if MIXED_MODEL in strategies:

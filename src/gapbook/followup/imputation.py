@@ -325,14 +325,20 @@ def _delta_vector(delta: Union[None, float, Sequence[float], Dict[Any, float]], 
     if isinstance(delta, dict):
         unknown = [v for v in delta if v not in visits]
         if unknown:
-            raise InputError(f"delta: visit {label(unknown[0])} is not a planned visit ({', '.join(map(label, visits))})")
+            raise InputError(f"visit {label(unknown[0])} is not a planned visit ({', '.join(map(label, visits))})",
+                             option="delta")
         return np.array([float(delta.get(v, 0.0)) for v in visits])
     if np.ndim(delta) == 0:
         return np.full(t, float(delta))
     vector = np.asarray(delta, dtype=float)
     if vector.shape != (t,):
-        raise InputError(f"delta: give one shift per planned visit ({t}), a single number or a mapping")
+        raise InputError(f"give one shift per planned visit ({t}), a single number or a mapping", option="delta")
     return vector
+
+
+def _check_groups(outcome: RepeatedOutcome) -> None:
+    if not outcome.levels:
+        raise InputError("imputation by group needs a categorical exposure (the arm)", option="exposure")
 
 
 @dataclass(frozen=True)
@@ -386,9 +392,8 @@ def draw_posteriors(outcome: RepeatedOutcome, *, m: int = 20, seed: Optional[int
         m draws of each group's coefficients and covariance.
     """
     if m < 2:
-        raise InputError("imputation.m: at least two imputed datasets are needed to pool; raise m")
-    if not outcome.levels:
-        raise InputError("analysis.exposure: imputation by group needs a categorical exposure (the arm)")
+        raise InputError("at least two imputed datasets are needed to pool; raise it", option="m")
+    _check_groups(outcome)
     covariates = outcome.covariate_matrix()
     sequence = np.random.SeedSequence(seed)
     group_seeds = sequence.spawn(len(outcome.levels))
@@ -435,13 +440,12 @@ def impute_repeated(outcome: RepeatedOutcome, *, rule: str = "mar", m: int = 20,
     Rubin DB (1987). Multiple Imputation for Nonresponse in Surveys. Wiley.
     """
     if rule not in RULES:
-        raise InputError(f"imputation rule '{rule}' is not one of {', '.join(RULES)}{did_you_mean(rule, RULES)}")
-    if not outcome.levels:
-        raise InputError("analysis.exposure: imputation by group needs a categorical exposure (the arm)")
+        raise InputError(f"'{rule}' is not one of {', '.join(RULES)}{did_you_mean(rule, RULES)}", option="rule")
+    _check_groups(outcome)
     reference = outcome.reference if reference is None else reference
     if reference not in outcome.levels:
-        raise InputError(f"reference group '{label(reference)}' is not a level of {outcome.exposure} "
-                         f"({', '.join(map(label, outcome.levels))})")
+        raise InputError(f"'{label(reference)}' is not a level of {outcome.exposure} "
+                         f"({', '.join(map(label, outcome.levels))})", option="reference")
     shift = _delta_vector(delta, outcome.visits)
     if delta_groups is None:
         delta_groups = tuple(level for level in outcome.levels if level != reference)

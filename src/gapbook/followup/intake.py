@@ -21,7 +21,7 @@ from typing import Any, Optional, Sequence, Tuple
 import numpy as np
 import pandas as pd
 
-from ..errors import InputError, did_you_mean
+from ..errors import InputError, OptionName, did_you_mean
 from ..vocabulary import LAYOUTS, NO_RECORD
 from .repeated import RepeatedOutcome, label, repeated_outcome, wide_to_long
 
@@ -116,15 +116,16 @@ def repeated_study(data: pd.DataFrame, reasons: pd.DataFrame, *, layout: str, su
     RepeatedStudy.
     """
     if layout not in LAYOUTS:
-        raise InputError(f"design.layout: '{layout}' is not one of {', '.join(LAYOUTS)}{did_you_mean(layout, LAYOUTS)}")
+        raise InputError(f"'{layout}' is not one of {', '.join(LAYOUTS)}{did_you_mean(layout, LAYOUTS)}", option="layout")
     visits = tuple(visits)
     if len(visits) < 1 or len(set(map(str, visits))) != len(visits):
-        raise InputError("design.visits: list each planned visit once, in order")
+        raise InputError("list each planned visit once, in order", option="visits")
     if baseline is not None and baseline not in visits:
-        raise InputError(f"design.baseline: {label(baseline)} is not one of design.visits ({', '.join(map(label, visits))})")
+        raise InputError(f"{label(baseline)} is not one of ", OptionName("visits"), f" ({', '.join(map(label, visits))})",
+                         option="baseline")
     analysed = tuple(v for v in visits if baseline is None or v != baseline)
     if not analysed:
-        raise InputError("design.visits: list at least one visit after baseline")
+        raise InputError("list at least one visit after baseline", option="visits")
     if layout == "wide":
         return _wide(data, reasons, subject=subject, visit=visit, visits=visits, analysed=analysed, baseline=baseline,
                      ids=ids, outcome_columns=outcome_columns, outcome=outcome)
@@ -132,13 +133,13 @@ def repeated_study(data: pd.DataFrame, reasons: pd.DataFrame, *, layout: str, su
 
 
 def _long(data, reasons, *, subject, visit, visits, analysed, baseline) -> RepeatedStudy:
-    for key, column in (("design.subject", subject), ("design.visit", visit)):
+    for option, column in (("subject", subject), ("visit", visit)):
         if column not in data.columns:
-            raise InputError(f"{key}: '{column}' is not a column of the data{did_you_mean(column, data.columns)}")
+            raise InputError(f"'{column}' is not a column of the data{did_you_mean(column, data.columns)}", option=option)
     subjects = data[subject]
     blank = np.flatnonzero(subjects.isna().to_numpy())
     if len(blank):
-        raise InputError(f"design.subject: data row {blank[0] + 1} has no subject in '{subject}'; every row needs one")
+        raise InputError(f"data row {blank[0] + 1} has no subject in '{subject}'; every row needs one", option="subject")
     subjects = subjects.astype(str).str.strip()
     planned = [_planned_value(v, visits) for v in data[visit].astype(object).to_numpy()]
     unknown = [k for k, v in enumerate(planned) if v is None]
@@ -146,9 +147,9 @@ def _long(data, reasons, *, subject, visit, visits, analysed, baseline) -> Repea
         k = unknown[0]
         raw = data[visit].iloc[k]
         shown = "no visit" if pd.isna(raw) else f"visit {label(raw)}"
-        raise InputError(f"design.visits: subject {subjects.iloc[k]} has {shown} (data row {k + 1}), which is not a "
-                         f"planned visit ({', '.join(map(label, visits))}); add it to design.visits or correct "
-                         f"the '{visit}' column")
+        raise InputError(f"subject {subjects.iloc[k]} has {shown} (data row {k + 1}), which is not a planned visit "
+                         f"({', '.join(map(label, visits))}); add it to the planned visits or correct the '{visit}' "
+                         "column", option="visits")
     frame = data.drop(columns=[visit]).copy()
     frame[subject] = subjects.to_numpy()
     frame[visit] = pd.Series(planned, index=data.index, dtype=object)
@@ -158,8 +159,8 @@ def _long(data, reasons, *, subject, visit, visits, analysed, baseline) -> Repea
     if duplicated.any():
         first = frame.loc[duplicated, [subject, visit]].iloc[0]
         count = int(((frame[subject] == first[subject]) & (frame[visit] == first[visit])).sum())
-        raise InputError(f"data: subject {first[subject]} has {count} rows for visit {label(first[visit])} "
-                         "(one row per subject per visit is expected); remove or merge the duplicates")
+        raise InputError(f"subject {first[subject]} has {count} rows for visit {label(first[visit])} "
+                         "(one row per subject per visit is expected); remove or merge the duplicates", option="data")
     return RepeatedStudy(frame=frame, reasons=reasons.drop(columns=[c for c in (visit, subject) if c in reasons]),
                          subject=subject, visit=visit, visits=analysed, baseline=baseline, layout="long")
 
@@ -167,17 +168,18 @@ def _long(data, reasons, *, subject, visit, visits, analysed, baseline) -> Repea
 def _wide(data, reasons, *, subject, visit, visits, analysed, baseline, ids, outcome_columns,
           outcome) -> RepeatedStudy:
     if ids is None:
-        raise InputError("data.id: the wide layout needs the subject identifier column as data.id")
+        raise InputError("the wide layout needs the subject identifier column; name it here", option="ids")
     outcome_columns = list(outcome_columns)
     if len(outcome_columns) != len(visits):
-        raise InputError(f"design.outcome_columns: give one outcome column per planned visit ({len(visits)} visits, "
-                         f"{len(outcome_columns)} columns), in the order of design.visits")
+        raise InputError(f"give one outcome column per planned visit ({len(visits)} visits, {len(outcome_columns)} "
+                         "columns), in the order of ", OptionName("visits"), option="outcome_columns")
     for column in outcome_columns:
         if column not in data.columns:
-            raise InputError(f"design.outcome_columns: '{column}' is not a column of the data"
-                             f"{did_you_mean(column, data.columns)}")
+            raise InputError(f"'{column}' is not a column of the data{did_you_mean(column, data.columns)}",
+                             option="outcome_columns")
     if not outcome:
-        raise InputError("analysis.formula: name the repeated outcome on the left of '~' (e.g. 'chg ~ arm * C(visit)')")
+        raise InputError("name the repeated outcome (the left side of the long-format formula, e.g. 'chg' in "
+                         "'chg ~ arm * C(visit)')", option="outcome")
     keep = [c for c in data.columns if c not in outcome_columns]
     frame_in = data.assign(**{subject: ids.to_numpy()}) if subject not in data.columns else data
     frame = wide_to_long(frame_in, subject=subject, outcome_columns=outcome_columns, visits=visits, outcome=outcome,

@@ -437,11 +437,11 @@ def fit_mixed_model(outcome: RepeatedOutcome, *, method: str = "reml", alpha: fl
     covariance matrices. Biometrics 42:805-820.
     """
     if method not in MIXED_MODEL_METHODS:
-        raise InputError(f"analysis.repeated.method: '{method}' is not one of {', '.join(MIXED_MODEL_METHODS)}")
+        raise InputError(f"'{method}' is not one of {', '.join(MIXED_MODEL_METHODS)}", option="method")
     values = outcome.values
     observed = ~np.isnan(values)
     if not observed.any():
-        raise InputError(f"analysis.formula: the outcome '{outcome.outcome_name}' is observed at no visit")
+        raise InputError(f"the outcome '{outcome.outcome_name}' is observed at no visit", option="formula")
     # Work on a standardised outcome so the optimiser sees numbers near 1; transform back at the end.
     centre = float(np.nanmean(values))
     scale = float(np.nanstd(values)) or 1.0
@@ -456,7 +456,7 @@ def fit_mixed_model(outcome: RepeatedOutcome, *, method: str = "reml", alpha: fl
     attended = observed.sum(axis=0)
     if (attended == 0).any():
         visit = outcome.visits[int(np.flatnonzero(attended == 0)[0])]
-        raise AnalysisError(f"no participant has the outcome at visit {label(visit)}; drop it from design.visits")
+        raise AnalysisError(f"no participant has the outcome at visit {label(visit)}; drop it from the planned visits")
     theta0 = _theta_from(_start(design, scaled))
     cache: Dict[bytes, Tuple[np.ndarray, _Evaluation]] = {}
 

@@ -132,7 +132,7 @@ class RepeatedOutcome:
     def reference(self) -> Any:
         return self.levels[0] if self.levels else None
 
-    def unestimable(self) -> Optional[Tuple[str, str]]:
+    def unestimable(self) -> Optional[InputError]:
         """Why the formula's effects cannot be estimated from the observed outcomes, or None when they can.
 
         The mixed model (and every strategy fitted with it) needs the design rows of the
@@ -141,40 +141,42 @@ class RepeatedOutcome:
 
         Returns
         -------
-        tuple of (str, str), or None
-            The params key to change (``design.visits``, ``analysis.exposure`` or
-            ``analysis.formula``) and one sentence naming the visit, arm or term, and what to do.
+        InputError or None
+            The error to raise: its option is the one to change (``visits``, ``exposure`` or
+            ``formula``), its message one sentence naming the visit, arm or term, and what to do.
         """
         observed = self.observed
         for j, visit in enumerate(self.visits):
             if not observed[:, j].any():
-                return "design.visits", (f"no participant has the outcome at visit {label(visit)}; drop it from "
-                                         "design.visits (or check the visit column and the outcome's missing markers)")
+                return InputError(f"no participant has the outcome at visit {label(visit)}; drop it from the planned "
+                                  "visits (or check the visit column and the outcome's missing markers)",
+                                  option="visits")
         if self.groups is not None:
             present = [level for level in self.levels if (self.groups == level).any()]
             if len(present) < 2:
-                return "analysis.exposure", (f"every participant is in arm {', '.join(map(label, present)) or '(none)'}"
-                                             f" of '{self.exposure}'; the follow-up analyses compare at least two arms")
+                return InputError(f"every participant is in arm {', '.join(map(label, present)) or '(none)'} of "
+                                  f"'{self.exposure}'; the follow-up analyses compare at least two arms",
+                                  option="exposure")
             for j, visit in enumerate(self.visits):
                 for level in present:
                     if not observed[(self.groups == level), j].any():
-                        return "design.visits", (f"no participant of arm {label(level)} has the outcome at visit "
-                                                 f"{label(visit)}, so the arms cannot be compared there; drop the "
-                                                 "visit from design.visits or check the data")
+                        return InputError(f"no participant of arm {label(level)} has the outcome at visit "
+                                          f"{label(visit)}, so the arms cannot be compared there; drop the visit "
+                                          "from the planned visits or check the data", option="visits")
         rows = self.design[observed]
         rank = 0
         for k, term in enumerate(self.terms):
             if np.linalg.matrix_rank(rows[:, :k + 1]) == rank:
-                return "analysis.formula", (f"the term {term} cannot be estimated from the observed outcomes (it is "
-                                            "constant, or a combination of the terms before it, on the attended "
-                                            "visits); simplify the formula")
+                return InputError(f"the term {term} cannot be estimated from the observed outcomes (it is constant, "
+                                  "or a combination of the terms before it, on the attended visits); simplify the "
+                                  "formula", option="formula")
             rank += 1
         return None
 
     def group_rows(self, level: Any) -> np.ndarray:
         """Positions of the participants in one exposure group."""
         if self.groups is None:
-            raise InputError("analysis.exposure: a categorical exposure (the arm) is needed for this analysis")
+            raise InputError("a categorical exposure (the arm) is needed for this analysis", option="exposure")
         return np.flatnonzero(self.groups == level)
 
     # -- derived copies ----------------------------------------------------------------
@@ -222,7 +224,7 @@ class RepeatedOutcome:
         A numeric exposure gives the effect of one unit more.
         """
         if self.exposure is None:
-            raise InputError("analysis.exposure: name the exposure (the arm) whose effect is reported at each visit")
+            raise InputError("name the exposure (the arm) whose effect is reported at each visit", option="exposure")
         if self.levels:
             reference = self.design_at(**{self.exposure: self.levels[0]}).mean(axis=0)
             return {self.term_of(level): self.design_at(**{self.exposure: level}).mean(axis=0) - reference
@@ -279,17 +281,17 @@ def _check_rows(data: pd.DataFrame, subject: str, visit: str, planned: Sequence[
     """Exit 2 naming subject and visit for a duplicated visit or a visit not in the plan."""
     if data[subject].isna().any():
         row = int(np.flatnonzero(data[subject].isna().to_numpy())[0])
-        raise InputError(f"design.subject: row {row + 1} has no subject identifier in column '{subject}'")
+        raise InputError(f"row {row + 1} has no subject identifier in column '{subject}'", option="subject")
     known = pd.Series(data[visit]).isin(list(planned))
     if not known.all():
         bad = data.loc[~known.to_numpy(), [subject, visit]].iloc[0]
-        raise InputError(f"design.visits: subject {label(bad[subject])} has visit {label(bad[visit])}, which is not a planned "
-                         f"visit ({_shown(planned)}); add it to design.visits or correct the visit column")
+        raise InputError(f"subject {label(bad[subject])} has visit {label(bad[visit])}, which is not a planned visit "
+                         f"({_shown(planned)}); add it to the planned visits or correct the visit column", option="visits")
     duplicated = data.duplicated([subject, visit], keep=False).to_numpy()
     if duplicated.any():
         bad = data.loc[duplicated, [subject, visit]].iloc[0]
-        raise InputError(f"data: subject {label(bad[subject])} has {int(duplicated.sum())} rows for visit {label(bad[visit])} "
-                         f"(one row per subject per visit is expected); remove or merge the duplicates")
+        raise InputError(f"subject {label(bad[subject])} has {int(duplicated.sum())} rows for visit {label(bad[visit])} "
+                         "(one row per subject per visit is expected); remove or merge the duplicates", option="data")
 
 
 def _subject_level(data: pd.DataFrame, subject: str, column: str) -> bool:
@@ -316,23 +318,23 @@ def repeated_outcome(data: pd.DataFrame, *, formula: str, subject: str, visit: s
     -------
     RepeatedOutcome. Participants with a covariate missing are left out and listed in ``excluded``.
     """
-    for key, column in (("design.subject", subject), ("design.visit", visit)):
+    for option, column in (("subject", subject), ("visit", visit)):
         if column not in data.columns:
-            raise InputError(f"{key}: '{column}' is not a column of the data{did_you_mean(column, data.columns)}")
+            raise InputError(f"'{column}' is not a column of the data{did_you_mean(column, data.columns)}", option=option)
     visits = tuple(visits)
     if len(visits) == 0:
-        raise InputError("design.visits: list the planned visits in order")
+        raise InputError("list the planned visits in order", option="visits")
     if len(set(visits)) != len(visits):
-        raise InputError("design.visits: a visit is listed twice; list each planned visit once, in order")
+        raise InputError("a visit is listed twice; list each planned visit once, in order", option="visits")
     planned = visits + (() if baseline_visit is None else (baseline_visit,))
     _check_rows(data, subject, visit, planned)
     outcome, used = check_formula(formula, list(data.columns))
     if outcome in (subject, visit):
-        raise InputError(f"analysis.formula: the outcome '{outcome}' is the subject or visit column")
+        raise InputError(f"the outcome '{outcome}' is the subject or visit column", option="formula")
     if not pd.api.types.is_numeric_dtype(data[outcome]):
-        raise InputError(f"analysis.formula: the repeated outcome '{outcome}' must be numeric")
+        raise InputError(f"the repeated outcome '{outcome}' must be numeric", option="formula")
     if exposure is not None and exposure not in data.columns:
-        raise InputError(f"analysis.exposure: '{exposure}' is not a column{did_you_mean(exposure, data.columns)}")
+        raise InputError(f"'{exposure}' is not a column{did_you_mean(exposure, data.columns)}", option="exposure")
     covariates = [c for c in used if c not in (outcome, visit, subject)]
     if exposure is not None and exposure not in covariates:
         covariates.append(exposure)
@@ -349,13 +351,13 @@ def repeated_outcome(data: pd.DataFrame, *, formula: str, subject: str, visit: s
             first = rows[column].dropna().iloc[0]
             changed = rows.loc[rows[column].notna() & (rows[column] != first), visit].iloc[0]
             if column == exposure:
-                raise InputError(f"analysis.exposure: the arm '{column}' changes within subject {label(who)} (from "
-                                 f"{label(first)} to {label(rows.loc[rows[visit] == changed, column].iloc[0])} at "
-                                 f"visit {label(changed)}); a participant keeps the arm they were randomised to: "
-                                 "correct the data")
-            raise InputError(f"analysis.formula: '{column}' changes within subject {label(who)} (at visit "
-                             f"{label(changed)}); a repeated-measures model takes covariates fixed per subject "
-                             "(baseline values) or per visit")
+                raise InputError(f"the arm '{column}' changes within subject {label(who)} (from {label(first)} to "
+                                 f"{label(rows.loc[rows[visit] == changed, column].iloc[0])} at visit "
+                                 f"{label(changed)}); a participant keeps the arm they were randomised to: correct "
+                                 "the data", option="exposure")
+            raise InputError(f"'{column}' changes within subject {label(who)} (at visit {label(changed)}); a "
+                             "repeated-measures model takes covariates fixed per subject (baseline values) or per visit",
+                             option="formula")
     analysed = data[data[visit].isin(list(visits))]
     order = pd.unique(data[subject])
     per_subject = data.groupby(subject, sort=False, observed=True)[subject_columns].first().reindex(order) \
@@ -370,7 +372,7 @@ def repeated_outcome(data: pd.DataFrame, *, formula: str, subject: str, visit: s
                           for s in excluded[subject]]
     per_subject = per_subject[~incomplete.any(axis=1).to_numpy()]
     if len(per_subject) == 0:
-        raise InputError(f"analysis.formula: no subject has every covariate of '{formula}' observed")
+        raise InputError(f"no subject has every covariate of '{formula}' observed", option="formula")
     subjects = per_subject.index.to_numpy()
     n, t = len(subjects), len(visits)
     # The long grid: every kept subject at every analysed visit, subject-major.
@@ -384,7 +386,7 @@ def repeated_outcome(data: pd.DataFrame, *, formula: str, subject: str, visit: s
         per_visit = data.groupby(visit, sort=False, observed=True)[column].first()
         missing = [v for v in visits if v not in per_visit.index or pd.isna(per_visit.get(v))]
         if missing:
-            raise InputError(f"analysis.formula: '{column}' has no value at visit {label(missing[0])}")
+            raise InputError(f"'{column}' has no value at visit {label(missing[0])}", option="formula")
         grid[column] = grid[visit].map(per_visit).astype(data[column].dtype)
     design_info, matrix = _design(formula, grid)
     # The outcome matrix.
@@ -429,7 +431,7 @@ def _design(formula: str, grid: pd.DataFrame) -> Tuple[Any, np.ndarray]:
         matrix = patsy.dmatrix(rhs, grid, eval_env=formula_environment(), NA_action="raise")
     except Exception as exc:
         first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
-        raise InputError(f"analysis.formula: '{formula}' could not be built on the visit grid ({first})") from None
+        raise InputError(f"'{formula}' could not be built on the visit grid ({first})", option="formula") from None
     return matrix.design_info, np.asarray(matrix, dtype=float)
 
 
@@ -452,7 +454,7 @@ def wide_to_long(data: pd.DataFrame, *, subject: str, outcome_columns: Sequence[
         subject, visit, outcome and the kept columns, one row per participant per visit.
     """
     if len(outcome_columns) != len(visits):
-        raise InputError("design.visits: give one outcome column per planned visit")
+        raise InputError("give one outcome column per planned visit", option="outcome_columns")
     n, t = len(data), len(visits)
     frame = pd.DataFrame({subject: np.repeat(data[subject].to_numpy(), t)})
     for column in keep:
