@@ -26,6 +26,7 @@ import pandas as pd
 
 from . import __version__
 from .inference import format_estimate, format_p, format_p_cell
+from .stage import read_csv
 from .text import show_invisible
 from .vocabulary import (LEAD_STRATEGIES, STRATEGY_ASSUMPTIONS, STRATEGY_PHRASES, STRATEGY_TITLES, cautions,
                          effect_scale, has_ratio_scale)
@@ -436,7 +437,7 @@ def _tipping_statements(folder: Path) -> str:
     path = folder / "tables" / "tipping_point.csv"
     if not path.is_file():
         return ""
-    table = pd.read_csv(path)
+    table = read_csv(path)
     if "statement" not in table.columns:
         return ""
     return " ".join(str(s) for s in table["statement"].dropna())
@@ -503,11 +504,11 @@ def write_index(folder: Path, *, params: Any, pages: Sequence[Tuple[str, str, fl
                      f'failed: {html.escape(str(error.get("message")))}. The stages listed below finished.</p>')
     estimates_path = folder / "tables" / "estimates.csv"
     if estimates_path.is_file():
-        estimates = pd.read_csv(estimates_path)
+        estimates = read_csv(estimates_path)
         labels = None
         comparison = folder / "tables" / "strategy_comparison.csv"
         if comparison.is_file():
-            named = pd.read_csv(comparison)
+            named = read_csv(comparison)
             if {"strategy", "label"} <= set(named.columns):
                 labels = dict(zip(named["strategy"].astype(str), named["label"].astype(str)))
         effect = effect_table(estimates, family=params.analysis.family, exposure=params.analysis.exposure,
@@ -529,7 +530,7 @@ def write_index(folder: Path, *, params: Any, pages: Sequence[Tuple[str, str, fl
             parts.append(_figure_link(folder, EFFECT_FIGURE))
     flow_path = folder / "tables" / "participant_flow.csv"
     if flow_path.is_file():
-        flow = pd.read_csv(flow_path, keep_default_na=False, na_values=[""])
+        flow = read_csv(flow_path, keep_default_na=False, na_values=[""])
         if "description" in flow.columns and "step" in flow.columns:
             flow = flow.drop(columns="step")  # the machine-readable key; the description says the same
         parts.append("<h2>Participant flow</h2>")

@@ -36,7 +36,7 @@ from pydantic import BaseModel
 from .errors import InputError
 from .intake import Study, load_study
 from .params import DeltaGrid, Params, load_params
-from .text import md_code, md_escape
+from .text import md_code, md_escape, spreadsheet_original, spreadsheet_safe
 from .vocabulary import cautions, strategy_rank
 
 if TYPE_CHECKING:  # the stage modules are imported where a stage is run, not when this module loads
@@ -58,7 +58,7 @@ if TYPE_CHECKING:  # the stage modules are imported where a stage is run, not wh
     from .survival import EventCoding
     from .time_to_event import TimeToEventAudit, TimeToEventMechanism
 
-__all__ = ["StageResult", "StageContext", "open_stage", "analysis_model", "params_errors", "write_csv",
+__all__ = ["StageResult", "StageContext", "open_stage", "analysis_model", "params_errors", "write_csv", "read_csv",
            "merge_estimates", "imputation_plan", "sensitivity_series", "CSV_FLOAT_FORMAT", "ESTIMATE_COLUMNS", "FIGURE_DPI", "repeated_design",
            "repeated_model_data", "check_estimable"]
 
@@ -94,8 +94,72 @@ def write_csv(frame: pd.DataFrame, path: Path) -> Path:
         ``path``, so reruns with the same inputs write the same bytes.
     """
     path.parent.mkdir(parents=True, exist_ok=True)
-    frame.to_csv(path, index=False, float_format=CSV_FLOAT_FORMAT, lineterminator="\n")
+    safe = _map_text(frame, spreadsheet_safe)
+    # Python's csv writer quotes a field for the line terminator's characters only ('\n' here), so a
+    # text holding a bare carriage return would be written unquoted and split the row for every
+    # reader. Such a CR goes through the writer as a stand-in holding '\n' (which it quotes) and is
+    # put back afterwards; the stand-in is lengthened until no text holds it.
+    texts = [str(c) for c in safe.columns] + [v for c in range(safe.shape[1]) if _is_text(safe.iloc[:, c])
+                                              for v in safe.iloc[:, c].astype(object) if isinstance(v, str)]
+    stand_in = None
+    if any("\r" in text for text in texts):
+        stand_in = "\x00\n\x00"
+        while any(stand_in in text for text in texts):
+            stand_in = f"\x00{stand_in}\x00"
+        safe = _map_text(safe, lambda text: text.replace("\r", stand_in))
+    written = safe.to_csv(None, index=False, float_format=CSV_FLOAT_FORMAT, lineterminator="\n")
+    if stand_in is not None:
+        written = written.replace(stand_in, "\r")
+    path.write_bytes(written.encode("utf-8"))
     return path
+
+
+def read_csv(path: Path, **options: Any) -> pd.DataFrame:
+    """A table :func:`write_csv` wrote, with its text cells and column names as they were before writing.
+
+    Text that a spreadsheet would read as a formula is written with a single quote in front
+    (:func:`gapbook.text.spreadsheet_safe`); this removes it again, so a stage or page that reads
+    a table back sees the original level, term or label.
+
+    Parameters
+    ----------
+    path : Path
+        The ``tables/<name>.csv`` file.
+    **options
+        Passed to :func:`pandas.read_csv` (e.g. ``keep_default_na``).
+
+    Returns
+    -------
+    DataFrame
+    """
+    return _map_text(pd.read_csv(path, **options), spreadsheet_original)
+
+
+def _is_text(values: pd.Series) -> bool:
+    """Whether a column can hold text cells (object, categorical or string dtype)."""
+    return pd.api.types.is_object_dtype(values) or isinstance(values.dtype, (pd.CategoricalDtype, pd.StringDtype))
+
+
+def _map_text(frame: pd.DataFrame, convert: Any) -> pd.DataFrame:
+    """``frame`` with ``convert`` applied to every text column name and text cell; numbers untouched.
+
+    Columns without a text cell that ``convert`` changes are left as they are (same dtype, same bytes).
+    """
+    renamed = {c: convert(c) for c in frame.columns if isinstance(c, str) and convert(c) != c}
+    changed = {}
+    for position, column in enumerate(frame.columns):
+        values = frame.iloc[:, position]
+        if not _is_text(values):
+            continue
+        converted = values.astype(object).map(lambda v: convert(v) if isinstance(v, str) else v)
+        if not converted.equals(values.astype(object)):
+            changed[position] = converted
+    if not renamed and not changed:
+        return frame
+    out = frame.copy()
+    for position, converted in changed.items():
+        out.isetitem(position, converted)
+    return out.rename(columns=renamed) if renamed else out
 
 
 # ---------------------------------------------------------------------------
@@ -400,7 +464,7 @@ class StageContext:
     def read_table(self, name: str) -> Optional[pd.DataFrame]:
         """A table an earlier stage wrote to this record, or None when that stage has not run."""
         path = self.tables_dir / f"{name}.csv"
-        return pd.read_csv(path) if path.is_file() else None
+        return read_csv(path) if path.is_file() else None
 
     def read_tables(self, names: Sequence[str]) -> Dict[str, Optional[pd.DataFrame]]:
         """Several tables by name (None for each one the record lacks)."""

@@ -10,7 +10,10 @@ from a params file or a data file; on a page they are text, never markup. Use:
 - :func:`html_escape` for text put into HTML (the landing page, HTML tables);
 - :func:`show_invisible` over a whole page: bidirectional controls in a table cell that came
   from the data are shown, not obeyed;
-- :func:`one_line` for text put into a one-line message (control characters escaped).
+- :func:`one_line` for text put into a one-line message (control characters escaped);
+- :func:`spreadsheet_safe` for text put into a record's ``tables/*.csv`` (a cell that a
+  spreadsheet would read as a formula starts with a single quote), and
+  :func:`spreadsheet_original` to read such a cell back as it was.
 
 Figures need no escaping: :mod:`gapbook.plots` turns matplotlib's mathtext off for every
 figure, so a ``$`` in a title, label or tick label is drawn as it is.
@@ -23,7 +26,8 @@ import numbers
 import re
 from typing import Any
 
-__all__ = ["one_line", "show_invisible", "html_escape", "md_escape", "md_code", "level_text"]
+__all__ = ["one_line", "show_invisible", "html_escape", "md_escape", "md_code", "level_text",
+           "spreadsheet_safe", "spreadsheet_original"]
 
 # CommonMark lets any ASCII punctuation be backslash-escaped. Escaped everywhere: what formats
 # inside a line (code, emphasis, links and images, strikethrough, maths in Jupyter's renderer,
@@ -42,6 +46,16 @@ _LINE_BREAKS = re.compile(r"[\r\n\t\v\f\x85\u2028\u2029]+")
 # overrides, isolates and marks (they can reorder a table cell or a sentence, Unicode UAX #9),
 # and C0/C1 control characters other than tab and line breaks.
 _INVISIBLE = re.compile("[\u202a-\u202e\u2066-\u2069\u200e\u200f\u061c\x00-\x08\x0b\x0c\x0e-\x1f\x7f-\x9f]")
+
+# Spreadsheet formula injection (OWASP, "CSV Injection", recalled from memory): a spreadsheet
+# reads a cell that starts with '=', '+', '-', '@', a tab or a carriage return as a formula. The
+# common defence is a single quote in front of such a text cell, which spreadsheets read as "this is
+# text". Quotes already in front of those characters count too, so reading back removes exactly one
+# quote and every text comes back as it was. A plain number ('-0.25', '+3', '1e-5') is no formula
+# and stays as it is written.
+_FORMULA_START = re.compile("'*[=+\\-@\t\r]")
+_QUOTED_FORMULA_START = re.compile("'+[=+\\-@\t\r]")
+_PLAIN_NUMBER = re.compile(r"[+-]?(?:\d+(?:\.\d*)?|\.\d+)(?:[eE][+-]?\d+)?\Z")
 
 
 def _shown_as_escape(ch: str) -> str:
@@ -174,3 +188,44 @@ def level_text(value: Any) -> str:
         number = float(value)
         return str(int(number)) if number.is_integer() and abs(number) < 1e15 else repr(number)
     return str(value)
+
+
+def spreadsheet_safe(text: str) -> str:
+    """``text`` as a CSV cell a spreadsheet shows as text: a single quote in front of a would-be formula.
+
+    A cell that starts with ``=``, ``+``, ``-``, ``@``, a tab or a carriage return (after any single
+    quotes) gets one more single quote in front; a plain number (``-0.25``) is left as it is, so it
+    stays a number. :func:`spreadsheet_original` undoes it exactly.
+
+    Parameters
+    ----------
+    text : str
+        A text cell or column name.
+
+    Returns
+    -------
+    str
+
+    References
+    ----------
+    OWASP Foundation, "CSV Injection" (community page; the list of formula-starting characters and
+    the single-quote prefix are recalled from memory).
+    """
+    if _FORMULA_START.match(text) and not _PLAIN_NUMBER.match(text):
+        return "'" + text
+    return text
+
+
+def spreadsheet_original(cell: str) -> str:
+    """The text :func:`spreadsheet_safe` was given: one leading single quote removed from a quoted would-be formula.
+
+    Parameters
+    ----------
+    cell : str
+        A text cell or column name as written in a record's table.
+
+    Returns
+    -------
+    str
+    """
+    return cell[1:] if _QUOTED_FORMULA_START.match(cell) else cell
