@@ -399,3 +399,98 @@ def test_the_model_header_says_the_robust_cox_sandwich_uses_breslow_form_residua
     plain = write_study(tmp_path / "plain")
     assert "Breslow-form score residuals" in open_stage(str(robust), str(tmp_path / "r1")).model_header()
     assert "Breslow-form" not in open_stage(str(plain), str(tmp_path / "r2")).model_header()
+
+
+# ---------------------------------------------------------------------------
+# fits whose maximum is hard to reach, or does not exist (statsmodels' heart data)
+
+def heart_with(marker_rows) -> pd.DataFrame:
+    """statsmodels' Stanford heart transplant data (shipped with statsmodels) with a 0/1 column on the given rows."""
+    from statsmodels.datasets import heart
+
+    frame = heart.load_pandas().data.copy()
+    frame["marker"] = 0.0
+    frame.loc[list(marker_rows), "marker"] = 1.0
+    return frame
+
+
+COX_MARKER = AnalysisModel("survival ~ age + marker", family="cox", exposure="age", event="censors")
+
+
+@pytest.mark.parametrize("ties", ["efron", "breslow"])
+def test_a_column_marking_one_early_event_reaches_the_finite_maximum(ties):
+    # statsmodels' heart data: one of the two events at the first time (1 day) is marked. The maximum is finite
+    # (a later death of a marked row is impossible, but earlier deaths of others with it at risk bound it);
+    # statsmodels' default Newton from zero overshoots it (NaN, or a singular matrix) -- counted here first.
+    frame = heart_with(heart_with([]).query("survival == 1 and censors == 1").index[:1])
+    model = PHReg(frame["survival"].to_numpy(), frame[["age", "marker"]].to_numpy(), status=frame["censors"].to_numpy(),
+                  ties=ties)
+    with np.errstate(all="ignore"):
+        try:
+            default = np.asarray(model.fit().params, dtype=float)
+        except np.linalg.LinAlgError:
+            default = np.full(2, np.nan)
+    assert not np.all(np.isfinite(default))
+    fit = AnalysisModel(**{**COX_MARKER.__dict__, "ties": ties}).fit(frame)
+    assert fit.converged and not fit.unbounded
+    # Reference: statsmodels' own partial log-likelihood and score at our estimate -- the score is zero at the
+    # maximum, and scipy's BFGS on that log-likelihood finds the same point.
+    np.testing.assert_allclose(model.score(fit.coefficients), 0, atol=1e-6)
+    from scipy.optimize import minimize
+    found = minimize(lambda b: -model.loglike(b), np.zeros(2), method="BFGS").x
+    np.testing.assert_allclose(fit.coefficients, found, atol=2e-3)
+    assert np.all(np.isfinite(fit.std_errors()))
+
+
+def test_a_column_whose_rows_have_no_event_is_named_as_monotone_likelihood():
+    # Bryson & Johnson (1981): a 0/1 column whose 1-rows have no event makes the partial likelihood rise for
+    # ever as its coefficient falls. heart: the first three censored rows (counted with pandas) are marked.
+    censored = heart_with([]).query("censors == 0").index[:3]
+    fit = COX_MARKER.fit(heart_with(censored))
+    assert not fit.converged
+    assert fit.unbounded == (("marker", "none of the 3 rows where it is 1 has an event, so its hazard ratio runs to 0"),)
+    text = " ".join(fit.fit_sentences())
+    assert "monotone likelihood" in text and "marker: none of the 3 rows" in text and "Firth" in text
+
+
+def test_monotone_likelihood_towards_infinity_and_at_a_reference_level():
+    # Bryson & Johnson (1981), the other way: every event of the unmarked rows comes after the marked rows
+    # have left. heart: mark the two events at day 1 (the earliest time, pandas) -- the censored row at day 1 is
+    # at risk then but has no event, so the unmarked rows' first event (day 3) comes after the marked ones left.
+    early = heart_with([]).query("survival == 1 and censors == 1").index
+    fit = COX_MARKER.fit(heart_with(early))
+    assert not fit.converged
+    assert fit.unbounded[0][0] == "marker" and "runs to infinity" in fit.unbounded[0][1]
+    # A category whose reference level has no event: the other levels' hazard ratios run off together.
+    frame = heart_with([])
+    frame["site"] = np.where(frame.index % 2 == 0, "B", "C")
+    frame.loc[frame.query("censors == 0").index[:4], "site"] = "A"
+    fit = AnalysisModel("survival ~ age + C(site)", family="cox", event="censors").fit(frame)
+    assert ("C(site)", "none of the 4 rows at its reference level has an event, so the hazard ratios of its other "
+            "levels run to infinity") in fit.unbounded
+
+
+def test_check_warns_when_the_missing_indicator_has_no_events(tmp_path):
+    # heart: age missing for three censored participants; with a covariate beside it the missing-indicator fit has
+    # an indicator without events (monotone likelihood); check names it before any stage runs
+    frame = heart_with([]).rename(columns={"marker": "transplant"})
+    frame["transplant"] = (frame.index % 3 == 0).astype(int)
+    frame["age"] = frame["age"].astype(object)
+    frame.loc[frame.query("censors == 0").index[:3], "age"] = "NA"
+    frame.insert(0, "pid", range(1, len(frame) + 1))
+    (tmp_path / "heart.csv").write_text(frame.to_csv(index=False))
+    (tmp_path / "params.yaml").write_text("data: {path: heart.csv, id: pid}\nanalysis: {formula: 'survival ~ "
+                                          "transplant + age', family: cox, event: censors, exposure: transplant}\n")
+    lines: list = []
+    preflight(load_params(tmp_path / "params.yaml"), only=["indicator"], log=lines.append)
+    warned = [line for line in lines if line.startswith("warning: indicator:")]
+    assert len(warned) == 1 and "age_missing: none of the 3 rows where it is 1 has an event" in warned[0]
+
+
+def test_the_missing_category_page_says_which_variable_the_dropped_rows_lacked():
+    # heart (statsmodels): age, the exposure, missing for the first four censored rows (counted with pandas); it
+    # read '65 of 69 rows used (0 rows without the outcome were dropped)'
+    frame = heart_with([])
+    frame.loc[frame.query("censors == 0").index[:4], "age"] = np.nan
+    result = missing_category_analysis(frame, model=COX_MARKER, indicator_for_continuous=True)
+    assert "65 of 69 rows used (4 rows dropped: 4 without the exposure age)." in result.sentences

@@ -34,6 +34,7 @@ from .errors import InputError
 from .expressions import ColumnAliases, parse_formula
 from .intake import levels_of
 from .models import AnalysisModel, ModelFit, exposure_rows, exposure_terms, scale_sentence
+from .text import counted
 
 __all__ = ["MISSING_LEVEL", "INDICATOR_WARNING", "prepare_missing_category", "MissingCategoryResult",
            "missing_category_analysis"]
@@ -196,6 +197,20 @@ def prepare_missing_category(data: pd.DataFrame, *, model: AnalysisModel, types:
                                label=label, aliases=aliases)
 
 
+def _dropped_words(steps: pd.DataFrame) -> str:
+    """' (4 rows dropped: 4 without the exposure age).' from the flow table; '.' when none was dropped.
+
+    It said '(0 rows without the outcome were dropped)' when the rows lost lacked the exposure.
+    """
+    lost = steps[steps["step"] == "excluded"]
+    lost = lost[pd.to_numeric(lost["n_excluded"], errors="coerce").fillna(0) > 0]
+    if lost.empty:
+        return " (no row dropped)."
+    parts = [f"{int(row.n_excluded):,} without the {row.role} {row.variable}" for row in lost.itertuples()]
+    total = int(lost["n_excluded"].astype(float).sum())
+    return f" ({counted(total, 'row')} dropped: {', '.join(parts)})."
+
+
 @dataclass(frozen=True)
 class MissingCategoryResult:
     """The model fitted with missing categories/indicators: the recoded data, flow, fit and exposure terms."""
@@ -267,14 +282,13 @@ def missing_category_analysis(data: pd.DataFrame, *, model: AnalysisModel, types
     require_rows(flow)
     fit = recoded.fit(prepared.data.loc[flow.complete.to_numpy()])
     fit = dataclasses.replace(fit, terms=prepared.display_terms(fit.terms),
-                              dropped=tuple((prepared.aliases.display(term), why) for term, why in fit.dropped))
+                              dropped=tuple((prepared.aliases.display(term), why) for term, why in fit.dropped),
+                              unbounded=tuple((prepared.aliases.display(term), why) for term, why in fit.unbounded))
     terms = tuple(exposure_terms(fit.terms, model.exposure))
-    n_outcome = int(prepared.handling.loc[prepared.handling["role"] == "outcome", "n_missing"].sum())
     written = model.formula + "".join(f" + {name}" for name in prepared.indicators)  # as a reader writes it
     follow_up = follow_up_sentences(data, model, reasons)  # a time-to-event model: time or status missing, and why
     sentences = (f"Model fitted: {written}.",
-                 f"{fit.nobs:,} of {flow.n_rows:,} rows used"
-                 + ("." if follow_up else f" ({n_outcome:,} rows without the outcome were dropped)."),
+                 f"{fit.nobs:,} of {flow.n_rows:,} rows used" + ("." if follow_up else _dropped_words(flow.steps)),
                  *follow_up, scale_sentence(fit.family), *fit.fit_sentences())
     return MissingCategoryResult(prepared=prepared, flow=flow, model_fit=fit, exposure_terms=terms,
                                  sentences=sentences)

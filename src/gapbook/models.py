@@ -20,7 +20,7 @@ import statsmodels.formula.api as smf
 from .errors import AnalysisError, InputError, did_you_mean
 from .expressions import FORMULA_NAMESPACE, ExpressionError, parse_formula
 from .inference import wald_inference
-from .survival import EventCoding, check_follow_up, cox_model, fit_cox_model
+from .survival import EventCoding, check_follow_up, cox_model, fit_cox_model, unbounded_cox_terms
 from .vocabulary import FAMILY_NAMES, TIME_TO_EVENT_FAMILIES, effect_scale, has_ratio_scale
 
 __all__ = ["ModelFit", "add_ratio_columns", "formula_columns", "check_formula", "fit_model", "exposure_terms",
@@ -37,6 +37,8 @@ class ModelFit:
     linear combination of the columns before it), so no term is reported as estimate 0, SE 0.
     ``converged`` is False when the fit did not converge (iterative fits) or the data are
     perfectly separated; ``warnings`` holds the fitting library's warnings about this fit.
+    ``unbounded`` lists, for a Cox model, the terms whose partial likelihood has no maximum
+    (monotone likelihood), each with why; such a fit is never ``converged``.
     """
 
     formula: str
@@ -51,6 +53,7 @@ class ModelFit:
     converged: bool = True
     warnings: Tuple[str, ...] = ()
     dropped: Tuple[Tuple[str, str], ...] = ()
+    unbounded: Tuple[Tuple[str, str], ...] = ()
 
     def std_errors(self) -> np.ndarray:
         """Standard errors: square roots of the covariance's diagonal."""
@@ -85,7 +88,15 @@ class ModelFit:
         out: List[str] = []
         if self.dropped:
             out.append(dropped_sentence(self.dropped, self.nobs))
-        if not self.converged:
+        if self.unbounded:
+            causes = "; ".join(f"{term}: {why}" for term, why in self.unbounded)
+            out.append("The model cannot be estimated as it stands: its partial likelihood keeps rising as a "
+                       f"coefficient runs off (monotone likelihood; Bryson & Johnson 1981): {causes}. Its estimates "
+                       "and standard errors are not reliable. Merge that level with another, or leave the covariate "
+                       "out; for a missing-value indicator or category, prefer complete cases or multiple "
+                       "imputation; a penalised (Firth) Cox model (Heinze & Schemper 2001) is an alternative gapbook "
+                       "does not fit.")
+        elif not self.converged:
             named = [w for w in self.warnings if w.split(":")[0] in NOT_CONVERGED_WARNINGS] or list(self.warnings)
             detail = f" ({'; '.join(named)})" if named else ""
             out.append(f"The model fit did not converge{detail}: its estimates and standard errors are not "
@@ -442,12 +453,17 @@ def _fit_cox(data: pd.DataFrame, *, formula: str, family: str, robust: bool, alp
         message = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
         raise AnalysisError(f"the Cox model '{formula}' could not be fitted: {message}") from None
     notes, failed = _fit_warnings(caught)
+    terms = tuple(names[j] for j in columns)
+    unbounded = unbounded_cox_terms(model.endog, model.status, model.exog, terms)
     coefficients = np.asarray(result.params, dtype=float)
-    converged = bool(np.all(np.isfinite(coefficients))) and not failed
-    return ModelFit(formula=formula, family=family, terms=tuple(names[j] for j in columns), coefficients=coefficients,
-                    covariance=np.asarray(result.cov_params(), dtype=float), df_resid=None,
+    covariance = np.asarray(result.cov_params(), dtype=float)
+    # a NaN or negative variance is no fit either (statsmodels' Newton can end on one without a warning)
+    converged = bool(np.all(np.isfinite(coefficients)) and np.all(np.isfinite(covariance))
+                     and np.all(np.diag(covariance) > 0)) and not failed and not unbounded
+    return ModelFit(formula=formula, family=family, terms=terms, coefficients=coefficients,
+                    covariance=covariance, df_resid=None,
                     nobs=int(model.exog.shape[0]), robust=robust, alpha=alpha, converged=converged, warnings=notes,
-                    dropped=tuple(dropped))
+                    dropped=tuple(dropped), unbounded=unbounded)
 
 
 def exposure_terms(terms: Sequence[str], exposure: Optional[str]) -> List[str]:
@@ -508,6 +524,12 @@ class AnalysisModel:
     alpha: float = 0.05
     event: Optional[EventCoding] = None   # time-to-event families: the event column and its coding
     ties: str = "efron"
+
+    def __post_init__(self) -> None:
+        # In a notebook 'event="status"' is the natural spelling: the column, coded 1 = event, 0 = censored
+        # (as in the params); it stopped on an AttributeError deep inside the fit.
+        if isinstance(self.event, str):
+            object.__setattr__(self, "event", EventCoding(column=self.event))
 
     def fit(self, data: pd.DataFrame, formula: Optional[str] = None) -> ModelFit:
         """``fit_model`` with these options (``formula`` overrides the model's, e.g. with indicators added)."""

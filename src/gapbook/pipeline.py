@@ -21,7 +21,7 @@ from .params import Params
 from .vocabulary import FOLLOWUP_IMPUTED_STRATEGIES
 
 __all__ = ["STAGES", "STAGE_TITLES", "sha256_file", "kit_notebooks_dir", "StageNotebook", "resolve_stages",
-           "check_model_up_front", "Plan", "preflight"]
+           "check_model_up_front", "check_cox_up_front", "Plan", "preflight"]
 
 STAGES: Dict[str, str] = {
     "audit": "01_audit.ipynb",
@@ -254,6 +254,55 @@ def check_model_up_front(params: Params, study: Any) -> Tuple[str, List[str]]:
     return found
 
 
+def check_cox_up_front(params: Params, study: Any, stages: Sequence[str]) -> Tuple[str, ...]:
+    """Warnings for Cox fits whose partial likelihood has no maximum, named before any stage runs.
+
+    A level of a category, or a missing-value indicator, whose rows have no event (or all the
+    events) makes the fit run off without converging (monotone likelihood). The complete-case
+    and missing-category stages make the same fits as here (the stage functions); each fit
+    that would run off is named with the term and why. Not refused: the other strategies can
+    still answer. An error the missing-category stage would stop on stops here.
+
+    Parameters
+    ----------
+    params : Params
+        The params (family cox, else nothing is checked).
+    study : Study
+        The study after intake.
+    stages : sequence of str
+        The stages that will run.
+
+    Returns
+    -------
+    tuple of str
+        One warning per stage whose fit would not converge, naming the terms and why.
+    """
+    from .errors import AnalysisError
+    from .stage import StageContext
+
+    context = StageContext(params=params, out_dir=Path("."))
+    if not context.model().is_time_to_event():
+        return ()
+    context.study = study  # the study already read (a cached property of the context)
+    fits: List[Tuple[str, Callable[[], Any]]] = []
+    if "cases" in stages:
+        fits.append(("cases", lambda: context.model().fit(study.data)))
+    if "indicator" in stages:
+        fits.append(("indicator", lambda: context.missing_category().model_fit))
+    found = []
+    for stage, fit in fits:
+        try:
+            unbounded = fit().unbounded
+        except AnalysisError:  # the stage explains a fit that fails outright
+            continue
+        if unbounded:
+            causes = "; ".join(f"{term}: {why}" for term, why in unbounded)
+            found.append(f"{stage}: the Cox model has no finite estimate (monotone likelihood), so the stage will "
+                         f"report a fit that did not converge: {causes}; merge that level with another or leave the "
+                         "covariate out (for a missing-value indicator, rely on complete cases or multiple imputation)")
+    return tuple(found)
+
+
 def check_sensitivity_up_front(params: Params, study: Any) -> Tuple[str, ...]:
     """Stop before any stage when the sensitivity stage could not shift what the params ask for.
 
@@ -411,6 +460,9 @@ def preflight(params: Params, *, only: Optional[Sequence[str]] = None, log: Opti
         design_notes = check_followup_up_front(params, study, stages)
     elif model_stages:
         model = check_model_up_front(params, study)
+        for warning in check_cox_up_front(params, study, stages):
+            if log is not None:
+                log(f"warning: {warning}")
         if "sensitivity" in stages:
             design_notes = check_sensitivity_up_front(params, study)
     chosen = tuple(found[s] for s in stages)

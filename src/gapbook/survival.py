@@ -11,16 +11,20 @@ This module sits below :mod:`gapbook.models` (which fits the Cox model through
 """
 from __future__ import annotations
 
+import math
+import re
+import warnings
 from dataclasses import dataclass
-from typing import Any, Optional, Sequence, Tuple, Union
+from typing import Any, Dict, List, Optional, Sequence, Tuple, Union
 
 import numpy as np
 import pandas as pd
 
 from .errors import AnalysisError, InputError
+from .text import counted
 from .vocabulary import TIES_METHODS
 
-__all__ = ["EventCoding", "check_follow_up", "cox_model", "fit_cox_model", "nelson_aalen", "cumulative_hazard_at",
+__all__ = ["EventCoding", "check_follow_up", "cox_model", "fit_cox_model", "unbounded_cox_terms", "nelson_aalen", "cumulative_hazard_at",
            "kaplan_meier", "MissingFollowUp", "missing_follow_up", "WeibullFit", "fit_weibull_ph", "CensoringDistribution", "censoring_distribution"]
 
 Value = Union[str, int, float]
@@ -201,12 +205,147 @@ def fit_cox_model(model: Any, *, robust: bool = False) -> Any:
     """
     from statsmodels.duration.hazard_regression import PHRegResults
 
-    result = model.fit()
+    result = _maximise_partial_likelihood(model)
     if not robust:
         return result
     scores = np.nan_to_num(model.score_residuals(result.params), nan=0.0)
     bread = np.linalg.inv(model.hessian(result.params))
     return PHRegResults(model, result.params, bread @ (scores.T @ scores) @ bread)
+
+
+def _finite_fit(result: Any) -> bool:
+    covariance = np.asarray(result.cov_params(), dtype=float)
+    return bool(np.all(np.isfinite(result.params)) and np.all(np.isfinite(covariance))
+                and np.all(np.diag(covariance) > 0))
+
+
+def _maximise_partial_likelihood(model: Any) -> Any:
+    """Newton-Raphson from zero (statsmodels' default); BFGS to the maximum's neighbourhood, then Newton, if it fails.
+
+    A full Newton step from zero can overshoot far past a finite maximum when a design column
+    covers few rows (an indicator marking one participant with an early event): exp() then
+    overflows and statsmodels returns NaN or stops on a singular matrix, although the
+    maximum exists. BFGS, which limits its steps, finds the neighbourhood; Newton from there
+    converges in a few steps. Fits that Newton handles from zero are unchanged.
+    """
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        try:
+            with np.errstate(all="ignore"):
+                result = model.fit()
+            failed = not _finite_fit(result)
+        except (np.linalg.LinAlgError, ValueError, OverflowError, FloatingPointError):
+            failed = True
+    if not failed:
+        for item in caught:  # the fit's own warnings reach the caller (they say whether it converged)
+            warnings.warn_explicit(item.message, item.category, item.filename, item.lineno)
+        return result
+    with np.errstate(over="ignore", invalid="ignore"):
+        start = model.fit(method="bfgs", maxiter=1000).params
+    return model.fit(method="newton", start_params=start)
+
+
+# A treatment-coded level column, 'C(site)[T.B]' or 'sex[T.male]': the factor and the level.
+_LEVEL_COLUMN = re.compile(r"^(?P<factor>[^:]+)\[T\.(?P<level>[^:]*)\]$")
+
+
+def _one_sided(time: np.ndarray, event: np.ndarray, inside: np.ndarray) -> Optional[str]:
+    """Whether the partial likelihood keeps rising as the coefficient of the 0/1 column ``inside`` runs off.
+
+    'low' (to minus infinity): each event among the rows inside comes after every row outside
+    has left follow-up (in particular, no row inside has an event); 'high' (to plus infinity):
+    the same with inside and outside swapped. None when the events of both sides overlap
+    the other's follow-up. Breslow's risk sets: a row followed to t is at risk at t.
+    """
+    def first_event(rows: np.ndarray) -> float:
+        times = time[rows & event]
+        return float(times.min()) if len(times) else math.inf
+
+    if first_event(inside) > time[~inside].max():
+        return "low"
+    if first_event(~inside) > time[inside].max():
+        return "high"
+    return None
+
+
+def unbounded_cox_terms(time: np.ndarray, event: np.ndarray, exog: np.ndarray,
+                        names: Sequence[str]) -> Tuple[Tuple[str, str], ...]:
+    """Design columns along which the Cox partial likelihood has no maximum (monotone likelihood), with why.
+
+    A two-valued column (a level of a category, a missing-value indicator, a 0/1 covariate)
+    whose rows of one value have no event, or have all their events only after every other
+    row has left follow-up, makes the partial likelihood rise for ever as its coefficient
+    runs to minus (or plus) infinity: the fit cannot converge, its estimate runs off and its
+    standard error explodes (Bryson & Johnson 1981). The same is checked for the reference
+    level of a treatment-coded category (the rows where all its level columns are 0). This
+    looks at one column at a time, so it names the usual causes; monotone likelihood along
+    a combination of columns is left to the fit's own convergence check.
+
+    Parameters
+    ----------
+    time : array of float
+        The follow-up times of the rows fitted.
+    event : array
+        1 for an event, 0 for censored, per row.
+    exog : 2-D array
+        The design matrix fitted (no intercept).
+    names : sequence of str
+        The design columns' names (statsmodels' term names).
+
+    Returns
+    -------
+    tuple of (term, why)
+        ``why`` says which rows and which way the hazard ratio runs, without the term's name.
+
+    References
+    ----------
+    Bryson MC, Johnson ME (1981). The incidence of monotone likelihood in the Cox model.
+    Technometrics 23:381-383.
+    Heinze G, Schemper M (2001). A solution to the problem of monotone likelihood in Cox
+    regression. Biometrics 57:114-119.
+    """
+    time = np.asarray(time, dtype=float)
+    event = np.asarray(event, dtype=float) > 0
+    exog = np.asarray(exog, dtype=float)
+    found: List[Tuple[str, str]] = []
+    groups: Dict[str, List[int]] = {}
+    for j, name in enumerate(names):
+        values = np.unique(exog[:, j])
+        if len(values) != 2:
+            continue
+        inside = exog[:, j] == values[1]
+        side = _one_sided(time, event, inside)
+        if side is not None:
+            found.append((str(name), _unbounded_why(side, event, inside, f"where it is {values[1]:g}")))
+        level = _LEVEL_COLUMN.match(str(name))
+        if level is not None and set(values) == {0.0, 1.0}:
+            groups.setdefault(level.group("factor"), []).append(j)
+    for factor, columns in groups.items():
+        inside = ~np.any(exog[:, columns] != 0, axis=1)
+        if inside.all() or not inside.any():
+            continue
+        side = _one_sided(time, event, inside)
+        if side is not None:
+            found.append((factor, _unbounded_why(side, event, inside, "at its reference level", reference=True)))
+    return tuple(found)
+
+
+def _unbounded_why(side: str, event: np.ndarray, inside: np.ndarray, rows: str, reference: bool = False) -> str:
+    """Why one column's coefficient runs off, in words (``side`` as :func:`_one_sided` says it for ``inside``).
+
+    For a category's reference level (``reference``) it is the other levels' hazard ratios,
+    relative to it, that run off, the other way.
+    """
+    n = int(inside.sum())
+    counted_rows = f"{counted(n, 'row')} {rows}"
+    if side == "low":
+        why = (f"none of the {counted_rows} has an event" if not (inside & event).any() else
+               f"the {counted_rows} have their events only after every other row has left follow-up")
+    else:
+        why = (f"every event is among the {counted_rows}" if not (~inside & event).any() else
+               f"the other rows have their events only after the {counted_rows} have all left follow-up")
+    runs = "infinity" if (side == "high") != reference else "0"
+    return f"{why}, so {'the hazard ratios of its other levels run' if reference else 'its hazard ratio runs'} to {runs}"
 
 
 @dataclass(frozen=True)
