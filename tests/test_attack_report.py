@@ -1,10 +1,11 @@
 """The landing page and the drafted results when one strategy's fit did not converge.
 
-Found on the NCCTG lung data (lifelines): a Cox model with missing indicators for covariates missing in
-one participant who died has a monotone likelihood (the indicator's coefficient runs to infinity; this
-is Cox-model theory, e.g. Heinze & Schemper 2001, Biometrics 57:114, recalled from memory), so the
-missing-category fit left its estimate empty. The page then showed the interval as ' to ' and the draft
-text said 'hazard ratio n/a (95% CI n/a to n/a; p not available)'.
+Found on the NCCTG lung data (lifelines): the missing-category Cox fit, with an indicator for a covariate
+missing in one participant who died, left its estimate empty. That fit has a finite maximum, which
+statsmodels' Newton steps from zero overshot (now reached: tests/test_survival.py); a fit that really has
+none (monotone likelihood, Bryson & Johnson 1981) still leaves a row like the one below. The page then
+showed the interval as ' to ' and the draft text said 'hazard ratio n/a (95% CI n/a to n/a; p not
+available)'. A fit that did not converge but left numbers is shown with them, flagged, and never leads.
 """
 from __future__ import annotations
 
@@ -71,3 +72,17 @@ def test_numeric_levels_read_as_written_in_the_flow_and_the_descriptives(tmp_pat
     statistics = set(table["statistic"])
     assert {"count: 1", "count: 2", "proportion: 1", "count: 0", "count: 3"} <= statistics
     assert not any(s.endswith(".0") for s in statistics)
+
+
+def test_numbers_from_a_fit_that_did_not_converge_are_flagged_and_never_lead():
+    # a missing-category fit with an indicator whose rows have no event (monotone likelihood) leaves numbers
+    unconverged = ROWS.copy()
+    unconverged.loc[1, ["estimate", "ci_lower", "ci_upper", "p_value"]] = [-0.55, -0.94, -0.16, 0.006]
+    unconverged.loc[1, ["exp_estimate", "exp_ci_lower", "exp_ci_upper"]] = [0.577, 0.391, 0.852]
+    first = unconverged.iloc[[1, 0]].assign(strategy=["multiple_imputation", "complete_case"])
+    table = effect_table(first, family="cox", exposure="sex", alpha=0.05)
+    flagged = table.frame[table.frame["strategy"].str.startswith("Multiple")].iloc[0]
+    assert flagged["hazard ratio"] == "0.577" and "did not converge: not reliable" in flagged["95% CI"]
+    assert "0.573 (95% confidence interval 0.388 to 0.846" in table.lead
+    phrase = effect_phrase({**unconverged.iloc[1].to_dict(), "converged": "False"}, 0.05, "cox")
+    assert phrase.startswith("hazard ratio 0.577") and "did not converge, so these numbers are not reliable" in phrase

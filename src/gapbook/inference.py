@@ -12,7 +12,7 @@ from typing import Optional, Tuple, Union
 import numpy as np
 from scipy import stats
 
-__all__ = ["wald_inference", "standardised_difference", "standardised_difference_of_shares", "format_p",
+__all__ = ["is_false_cell", "wald_inference", "standardised_difference", "standardised_difference_of_shares", "format_p",
            "format_p_cell", "format_df", "LARGE_DF",
            "format_estimate"]
 
@@ -153,6 +153,24 @@ def format_p_cell(p: object) -> str:
     if value is None or not math.isfinite(value):
         return ""
     return "< 0.001" if value < 0.001 else f"{value:.3f}"
+
+
+def is_false_cell(value: object) -> bool:
+    """Whether a table cell says no: False as pandas holds it, or 'False' as read back from a CSV.
+
+    The ``converged`` column of ``estimates.csv`` is read both ways: from a result in
+    memory (a bool) and from the record's table (text); an empty cell is not a no.
+
+    Parameters
+    ----------
+    value : object
+        The cell.
+
+    Returns
+    -------
+    bool
+    """
+    return value is False or (isinstance(value, np.bool_) and not value) or str(value).strip().lower() == "false"
 
 
 def _as_float(value: object) -> Optional[float]:

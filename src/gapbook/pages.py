@@ -25,7 +25,7 @@ import numpy as np
 import pandas as pd
 
 from . import __version__
-from .inference import format_estimate, format_p, format_p_cell
+from .inference import format_estimate, format_p, format_p_cell, is_false_cell
 from .stage import read_csv
 from .text import show_invisible
 from .vocabulary import (LEAD_STRATEGIES, STRATEGY_ASSUMPTIONS, STRATEGY_PHRASES, STRATEGY_TITLES, cautions,
@@ -406,9 +406,11 @@ def effect_table(estimates: pd.DataFrame, *, family: str, exposure: Optional[str
         strategy = str(values["strategy"])
         estimate = _estimate_text(values[f"{prefix}estimate"])
         interval = f"{_estimate_text(values[f'{prefix}ci_lower'])} to {_estimate_text(values[f'{prefix}ci_upper'])}"
+        failed = is_false_cell(values.get("converged"))
         if not estimate:  # the fit failed (e.g. did not converge): say so rather than show ' to '
-            failed = str(values.get("converged")).strip().lower() == "false"
             estimate, interval = "not estimated", "did not converge" if failed else ""
+        elif failed:  # numbers from a fit that did not converge are shown, never as a result to lead with
+            interval += " (the fit did not converge: not reliable; its stage page says why)"
         rows.append({
             "strategy": labels.get(strategy, strategy.replace("_", " ")),
             "assumes about the missing values": STRATEGY_ASSUMPTIONS.get(strategy, ""),
@@ -418,7 +420,7 @@ def effect_table(estimates: pd.DataFrame, *, family: str, exposure: Optional[str
             "p": format_p_cell(values.get("p_value")),
             "rows used": _number(values.get("n_used")),
         })
-        if estimate != "not estimated":
+        if estimate != "not estimated" and not failed:
             lead_rows.setdefault(strategy, (str(values["term"]), estimate, interval, values.get("p_value")))
     lead = ""
     first = next((s for s in LEAD_STRATEGIES if s in lead_rows), next(iter(lead_rows), None))

@@ -19,7 +19,7 @@ from .errors import InputError, did_you_mean
 from .intake import Study
 from .impute import ImputationSettings
 from .models import AnalysisModel, check_formula, exposure_rows, exposure_terms
-from .inference import format_estimate, format_p
+from .inference import format_estimate, format_p, is_false_cell
 from .text import level_text, md_escape
 from .vocabulary import STRATEGY_PHRASES, cautions as page_cautions, effect_scale, has_ratio_scale
 
@@ -412,11 +412,6 @@ def _is_number(value: object) -> bool:
         return False
 
 
-def _is_false(value: object) -> bool:
-    """A ``converged`` cell that says no (False as written by pandas, or read back from the CSV)."""
-    return value is False or str(value).strip().lower() == "false"
-
-
 def effect_phrase(row: Mapping[str, object], alpha: float, family: str = "gaussian") -> str:
     """One estimates row in words, naming its scale.
 
@@ -425,10 +420,12 @@ def effect_phrase(row: Mapping[str, object], alpha: float, family: str = "gaussi
     ratio, as in the ``exp_*`` columns), likewise rate ratios for poisson.
     """
     level = f"{100 * (1 - alpha):g}"
+    failed = is_false_cell(row.get("converged") if hasattr(row, "get") else None)
     if not _is_number(row["estimate"]):
         # a fit that did not converge leaves the estimate empty: 'n/a (95% CI n/a to n/a)' read as a result
-        converged = row.get("converged") if hasattr(row, "get") else None
-        return "not estimated" + (" (the model fit did not converge)" if _is_false(converged) else "")
+        return "not estimated" + (" (the model fit did not converge)" if failed else "")
+    # numbers from a fit that did not converge are no result: say so beside them
+    unreliable = "; the model fit did not converge, so these numbers are not reliable" if failed else ""
     if has_ratio_scale(family):
         values = [row.get(f"exp_{name}") if hasattr(row, "get") else None
                   for name in ("estimate", "ci_lower", "ci_upper")]
@@ -439,7 +436,7 @@ def effect_phrase(row: Mapping[str, object], alpha: float, family: str = "gaussi
     else:
         words = "difference"
         estimate, lower, upper = (_fmt(row[name]) for name in ("estimate", "ci_lower", "ci_upper"))
-    return f"{words} {estimate} ({level}% CI {lower} to {upper}; {format_p(row['p_value'])})"
+    return f"{words} {estimate} ({level}% CI {lower} to {upper}; {format_p(row['p_value'])}{unreliable})"
 
 
 def build_checklist(flow: ParticipantFlow, missing: MissingSummary, tables: Mapping[str, Optional[pd.DataFrame]], *,
