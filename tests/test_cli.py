@@ -112,6 +112,9 @@ def test_new_scaffolds_a_study_folder(tmp_path, gapbook_here):
     assert sorted(p.name for p in (tmp_path / "mystudy" / "notebooks").glob("*.ipynb")) == \
         sorted(p.name for p in (ROOT / "notebooks").glob("*.ipynb"))
     assert_user_error(gapbook_here("new", tmp_path / "mystudy"), "not empty")
+    # pointed at the data file itself, it says a file is there and what to give instead (it said 'folder exists')
+    (tmp_path / "extract.csv").write_text("id,y\n1,2\n")
+    assert_user_error(gapbook_here("new", tmp_path / "extract.csv"), "a file of that name exists")
 
 
 def test_run_audit_then_verify_and_tamper(study, gapbook_here):

@@ -255,7 +255,7 @@ def test_check_reads_with_duckdb_and_reports_the_same_counts(tmp_path, capsys):
         lines[engine] = [line.replace(f"read with {engine}", "read with ENGINE") for line in out
                          if line.startswith(("data:", "missing:", "note:", "range:"))]
     assert lines["pandas"] == lines["duckdb"]
-    assert "missing: 2 cells in 2 variables; 1 rows complete" in lines["duckdb"]
+    assert "missing: 2 cells in 2 variables; 1 row complete" in lines["duckdb"]
 
 
 # ---------------------------------------------------------------------------

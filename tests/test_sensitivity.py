@@ -231,6 +231,38 @@ def test_shifting_both_groups_alike_is_explained_with_their_shares():
     assert sensitivity.alike_shift_sentence(data, data.isna(), variable="y", exposure="age") == ""
 
 
+def test_shifting_values_missing_only_where_the_exposure_is_missing_too_is_said_so():
+    # Constructed example: y is missing in the two rows whose arm is missing, never within an arm; the
+    # shares read 'A 0.0%, B 0.0%', as if nothing were shifted.
+    data = pd.DataFrame({"y": [1.0, 2.0, np.nan, 3.0, 4.0, np.nan],
+                         "arm": pd.Categorical(["A", "A", None, "B", "B", None])})
+    text = sensitivity.alike_shift_sentence(data, data.isna(), variable="y", exposure="arm")
+    assert "0.0%" not in text and "all in rows whose arm is missing too (2 rows)" in text
+    # with some missing within the arms as well, the shares are given and the rows without an arm counted
+    data.loc[0, "y"] = np.nan
+    text = sensitivity.alike_shift_sentence(data, data.isna(), variable="y", exposure="arm")
+    assert "(A 50.0%, B 0.0%; and 2 rows whose arm is missing too)" in text
+
+
+def test_a_tipping_point_within_its_monte_carlo_error_of_zero_is_not_read_as_zero():
+    # heart (statsmodels) trial: tipping delta 1 (between grid points 0 and 1) with Monte Carlo SE 2.16 rounded
+    # to 'on average 0 higher', which says no shift is needed; rounding rule: common practice, no source
+    point = sensitivity.TippingPoint("age", "positive", "above", True, 1.0, (0.0, 1.0), (0.0, 8.0), 0,
+                                     monte_carlo_se=2.16)
+    text = sensitivity.tipping_statement(point, variable="age", group=sensitivity.ALL_GROUPS, by=None,
+                                         variable_type="continuous", exposure_label="age", unit="years", m=20)
+    assert "on average 0 " not in text and "about 1 year higher" in text
+    assert "Monte Carlo SE of 2 with m = 20" in text and "cannot be told from no shift" in text
+
+
+def test_a_unit_after_one_reads_singular():
+    # English grammar: 'more than 1 percentage points' read wrongly; symbols stay as written
+    point = sensitivity.TippingPoint("x", "positive", "above", False, float("nan"), (0.0, 1.0), (0.0, 1.0), 0)
+    text = sensitivity.tipping_statement(point, variable="y", group=sensitivity.ALL_GROUPS, by=None,
+                                         variable_type="continuous", exposure_label="x", unit="percentage points")
+    assert "more than 1 percentage point higher" in text
+
+
 def test_default_variable_is_the_outcome_else_the_most_incomplete_model_variable(demo_plan):
     plan, study = demo_plan
     assert sensitivity.default_variable(plan) == "hba1c_12m"

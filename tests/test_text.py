@@ -108,3 +108,15 @@ def test_invisible_characters_are_shown_not_obeyed():
     assert show_invisible("dose\u202egm\u2066x\u2069\x1b[2J\nnext\tcol") == "dose\\u202egm\\u2066x\\u2069\\x1b[2J\nnext\tcol"
     assert show_invisible("Persian \u200c joiner and emoji \u200d kept") == "Persian \u200c joiner and emoji \u200d kept"
     assert html_escape("<b>\u202e</b>") == "&lt;b&gt;\\u202e&lt;/b&gt;"
+
+
+def test_counts_and_units_read_in_the_right_number():
+    # English grammar (no source needed beyond it): one takes the singular, everything else the plural
+    from gapbook.text import counted, quantity
+
+    assert counted(1, "variable") == "1 variable" and counted(0, "variable") == "0 variables"
+    assert counted(1200, "row") == "1,200 rows" and counted(2, "analysis", "analyses") == "2 analyses"
+    assert quantity("1", "percentage points") == "1 percentage point" and quantity("-1", "days") == "-1 day"
+    assert quantity("1.0", "days") == "1.0 days" and quantity("2", "years") == "2 years"
+    for symbol in ("%", "mmHg", "kg/m2", "mmol/mol", "status", "s"):
+        assert quantity("1", symbol) == f"1 {symbol}"

@@ -32,7 +32,7 @@ import pandas as pd
 from .errors import InputError, did_you_mean
 from .intake import EXTREME_COLUMNS, RANGE_COLUMNS, Study
 from .params import DEFAULT_MAX_PATTERNS, MAX_PATTERNS_LISTED
-from .text import level_text
+from .text import counted, level_text
 from .vocabulary import NOT_APPLICABLE, infer_type
 
 __all__ = ["DEFAULT_THRESHOLD", "GroupCounts", "MissingnessCounts", "AuditResult", "reason_slug", "count_patterns",
@@ -903,8 +903,11 @@ def audit_sentences(result: AuditResult) -> Tuple[str, ...]:
     return (
         f"{result.n_rows:,} rows and {result.n_variables} variables.",
         f"{result.n_complete_rows:,} rows ({summary['pct_complete_rows']:.1f} %) have nothing missing; "
-        f"{int(summary['incomplete_variables'])} variables have at least one missing value, and "
-        f"{int(summary['over_threshold_variables'])} lack more than {result.threshold:.0%} of their values.",
+        f"{counted(int(summary['incomplete_variables']), 'variable')} "
+        f"{'has' if int(summary['incomplete_variables']) == 1 else 'have'} at least one missing value, and "
+        f"{int(summary['over_threshold_variables'])} "
+        f"{'lacks' if int(summary['over_threshold_variables']) == 1 else 'lack'} more than {result.threshold:.0%} "
+        "of their values.",
         f"Of all cells that apply, {summary['pct_missing_cells']:.1f} % are missing.",
         f"The rows fall into {result.n_patterns:,} missingness patterns, which are {pattern_words}.",
     ) + _remainder_sentence(result)

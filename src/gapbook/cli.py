@@ -16,6 +16,7 @@ from typing import List, Optional, Sequence
 from . import __version__
 from .compute import LOCAL
 from .errors import AnalysisError, InputError
+from .text import counted
 
 __all__ = ["main"]
 
@@ -70,8 +71,8 @@ def cmd_check(args: argparse.Namespace) -> int:
     _print(f"params: {params.source}")
     _print(f"data:   {data.source} ({data.n_rows} rows, {len(data.columns)} variables, sha256 {data.sha256[:12]}; "
            f"read with {data.engine})")
-    _print(f"missing: {data.missing_cells} cells in {data.incomplete_variables} variables; "
-           f"{data.complete_rows} rows complete")
+    _print(f"missing: {counted(data.missing_cells, 'cell')} in {counted(data.incomplete_variables, 'variable')}; "
+           f"{counted(data.complete_rows, 'row')} complete")
     for note in data.notes:
         _print(f"note: {note}")
     for note in plan.notes:
@@ -96,7 +97,10 @@ def cmd_new(args: argparse.Namespace) -> int:
     from .pipeline import kit_notebooks_dir
 
     target = Path(args.dir)
-    if target.exists() and (not target.is_dir() or any(target.iterdir())):
+    if target.exists() and not target.is_dir():
+        raise InputError(f"{target}: a file of that name exists (gapbook new makes a folder); give the name of a "
+                         "new folder, e.g. 'gapbook new mystudy', and put the data file in its data/ afterwards")
+    if target.exists() and any(target.iterdir()):
         raise InputError(f"{target}: the folder exists and is not empty; give a new folder name")
     try:
         (target / "data").mkdir(parents=True, exist_ok=True)

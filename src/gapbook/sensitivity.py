@@ -41,6 +41,7 @@ from .inference import wald_inference
 from .impute import ImputationPlan
 from .models import AnalysisModel, exposure_terms
 from .pool import PooledResult, rubin_pool
+from .text import counted, level_text, quantity
 from .vocabulary import DELTA_METHODS, MAR_CAUTION
 
 __all__ = ["ALL_GROUPS", "DeltaSeries", "DeltaSpec", "delta_series", "imputation_evaluator", "interval",
@@ -466,7 +467,7 @@ def _amount(delta: float, monte_carlo_se: float, variable: str, unit: Optional[s
     if variable_type == "binary":
         return f"{shown} on the log-odds scale (odds ratio {math.exp(float(shown)):.3g})"
     if unit:
-        return f"{shown} {unit}"
+        return quantity(shown, unit)
     return f"{shown} (in the units of {variable}; variables.{variable}.unit names them)"
 
 
@@ -517,8 +518,17 @@ def tipping_statement(point: TippingPoint, *, variable: str, group: str, by: Opt
                 f"{_amount(edge, float('nan'), variable, unit, variable_type)} {direction} than imputed under "
                 "missing at random to change it.")
     precision = ""
+    with_m = f" with m = {m}" if m else ""
     if math.isfinite(point.monte_carlo_se):
-        precision = f" (Monte Carlo SE {point.monte_carlo_se:.1g}" + (f" with m = {m}" if m else "") + ")"
+        precision = f" (Monte Carlo SE {point.monte_carlo_se:.1g}{with_m})"
+    if point.delta != 0 and float(rounded_delta(abs(point.delta), point.monte_carlo_se)) == 0:
+        # Rounded to its Monte Carlo error the tipping point reads 0 ('on average 0 higher'), which says the
+        # opposite of what was found: a shift tips it, but the imputations cannot tell how small a shift does.
+        return (f"The conclusion ({held}) changes when {where} are on average about "
+                f"{_amount(point.delta, float('nan'), variable, unit, variable_type)} {direction} than imputed "
+                f"under missing at random, but that tipping point has a Monte Carlo SE of "
+                f"{point.monte_carlo_se:.1g}{with_m}, larger than itself: it cannot be told from no shift at all, "
+                "so the conclusion is fragile; more imputations per delta (sensitivity.m) would locate it.")
     return (f"The conclusion ({held}) holds unless {where} are on average "
             f"{_amount(point.delta, point.monte_carlo_se, variable, unit, variable_type)} {direction} than imputed "
             f"under missing at random{precision}.")
@@ -541,13 +551,27 @@ def alike_shift_sentence(data: pd.DataFrame, impute_mask: pd.DataFrame, *, varia
     if not 2 <= len(levels) <= 20:
         return ""
     missing = impute_mask[variable].to_numpy(dtype=bool)
-    shares = []
+    if not missing.any():
+        return ""
+    unknown = int((groups.isna().to_numpy() & missing).sum())
+    shares, any_share = [], False
     for level in levels:
         inside = (groups == level).to_numpy()
-        shares.append(f"{level} {100 * missing[inside].mean():.1f}%" if inside.any() else f"{level} none")
+        any_share = any_share or bool(missing[inside].any())
+        shares.append(f"{level_text(level)} {100 * missing[inside].mean():.1f}%" if inside.any()
+                      else f"{level_text(level)} none")
+    if not any_share and unknown:
+        # Every shifted value sits in a row whose exposure is missing too: 'shares (A 0.0%, B 0.0%)' read as
+        # if nothing were shifted, while each imputed dataset places those rows in the groups it imputes.
+        return (f"The missing values of {variable} are all in rows whose {exposure} is missing too "
+                f"({counted(unknown, 'row')}), so no {exposure} group has missing values of its own: shifting them "
+                f"alike moves the {exposure} comparison only through the {exposure} each imputed dataset gives those "
+                f"rows (by about delta times the difference between the groups' shares of them). So that curve shows "
+                f"how the overall level depends on the missing-at-random assumption, not the comparison.")
+    also = f"; and {counted(unknown, 'row')} whose {exposure} is missing too" if unknown else ""
     return (f"Shifting the missing values of {variable} in every {exposure} group alike moves the {exposure} "
-            f"comparison only through the groups' different shares of missing values ({', '.join(shares)}): by "
-            "about delta times the difference in shares, and not at all when the shares are equal. So that curve "
+            f"comparison only through the groups' different shares of missing values ({', '.join(shares)}{also}): "
+            "by about delta times the difference in shares, and not at all when the shares are equal. So that curve "
             "shows how the overall level depends on the missing-at-random assumption, not the comparison; the curves "
             f"that shift one {exposure} group test the comparison.")
 

@@ -27,7 +27,7 @@ import re
 from typing import Any
 
 __all__ = ["one_line", "show_invisible", "html_escape", "md_escape", "md_code", "level_text",
-           "spreadsheet_safe", "spreadsheet_original"]
+           "spreadsheet_safe", "spreadsheet_original", "counted", "quantity"]
 
 # CommonMark lets any ASCII punctuation be backslash-escaped. Escaped everywhere: what formats
 # inside a line (code, emphasis, links and images, strikethrough, maths in Jupyter's renderer,
@@ -229,3 +229,49 @@ def spreadsheet_original(cell: str) -> str:
     str
     """
     return cell[1:] if _QUOTED_FORMULA_START.match(cell) else cell
+
+
+def counted(n: int, noun: str, plural: str = "") -> str:
+    """A count with its noun in the number English needs: '1 variable', '3 variables', '1,200 rows'.
+
+    Parameters
+    ----------
+    n : int
+        The count.
+    noun : str
+        The singular noun.
+    plural : str, optional
+        The plural when it is not ``noun + 's'`` (e.g. 'analyses').
+
+    Returns
+    -------
+    str
+    """
+    return f"{n:,} {noun if n == 1 else (plural or noun + 's')}"
+
+
+def quantity(number: str, unit: str) -> str:
+    """A number written as text with its unit, the unit singular after exactly one.
+
+    'more than 1 percentage point', '2 percentage points', '1 day', '1.0 days' (a decimal
+    reads plural in English), '1 mmHg'. Only a unit whose last word is a regular English
+    plural (ending in 's' after a letter other than 's' or 'u', at least three letters)
+    is made singular; symbols such as '%', 'mmHg', 'kg/m2' or 'mmol/mol' stay as written.
+
+    Parameters
+    ----------
+    number : str
+        The number as it will be read (already rounded), e.g. '1' or '2.5'.
+    unit : str
+        The unit as the params give it (``variables.<x>.unit``).
+
+    Returns
+    -------
+    str
+    """
+    words = unit.rsplit(" ", 1)
+    last = words[-1]
+    plural = len(last) >= 3 and last.isalpha() and last.endswith("s") and last[-2].lower() not in "su"
+    if number.strip().lstrip("+-") == "1" and plural:
+        unit = " ".join(words[:-1] + [last[:-1]])
+    return f"{number} {unit}"
