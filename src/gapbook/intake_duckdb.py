@@ -21,6 +21,7 @@ order, so row numbers are file rows); Parquet files are read in place.
 from __future__ import annotations
 
 import codecs
+import concurrent.futures
 import contextlib
 import os
 import shutil
@@ -166,7 +167,10 @@ class ScannedColumn:
 
     ``reason_sql`` gives a reason code per row (-1 observed, otherwise an index into
     ``reason_labels``); ``value_sql`` the value of a numeric column (NULL where missing);
-    ``code_sql`` the category code of a text column (NULL where missing).
+    ``code_sql`` the category code of a text column (NULL where missing). A typed number column
+    (Parquet) also has ``observed_sql``, true exactly where its number as read ``x_<alias>`` is a
+    value (before range checks and conditions), and where nothing else can set a cell missing or
+    not applicable, ``missing_sql``, its missingness as the cheapest test on ``x_<alias>``.
     """
 
     name: str
@@ -177,6 +181,8 @@ class ScannedColumn:
     reason_sql: str
     value_sql: Optional[str]
     code_sql: Optional[str]
+    observed_sql: Optional[str] = None
+    missing_sql: Optional[str] = None
 
     def label_code(self, label: str) -> int:
         return self.reason_labels.index(label) if label in self.reason_labels else -2
@@ -317,6 +323,7 @@ class _Scanner:
         self.alias = {name: f"c{j}" for j, name in enumerate(self.variables)}
         self.kinds: Dict[str, str] = {}
         self.id_kind = "text"
+        self.nan_columns: set = set()  # typed number columns holding a NaN cell (only these need a NaN test)
 
     # -- reading -------------------------------------------------------------------------
 
@@ -374,7 +381,9 @@ class _Scanner:
                 if every_value:
                     parts += [f"NULL::DOUBLE AS p_{a}", f"{number} AS s_{a}"]
                 else:
-                    plain = f"coalesce(isfinite({number}) AND NOT {_in_list(number, numbers)}, false)"
+                    # A NULL number gives NULL either way, so no coalesce; `<>` costs a third of NOT IN.
+                    plain = "(" + " AND ".join([f"isfinite({number})"] + [f"{number} <> {literal(v)}"
+                                                           for v in numbers]) + ")"
                     parts += [f"CASE WHEN {plain} THEN {number} END AS p_{a}",
                               f"CASE WHEN NOT {plain} THEN {number} END AS s_{a}", f"{number} AS x_{a}"]
             else:
@@ -476,6 +485,8 @@ class _Scanner:
         if self.kinds[name] == "number":
             # Typed NaN cells are NA in pandas; their reason is the blank one either way.
             keep = [i for i, u in enumerate(uniques) if not (isinstance(u, float) and np.isnan(u))]
+            if len(keep) < len(uniques):
+                self.nan_columns.add(name)
             rows = [rows[i] for i in keep]
             uniques = [r[0] for r in rows]
         return uniques, np.array([int(r[1]) for r in rows], dtype=np.int64)
@@ -556,22 +567,31 @@ class _Scanner:
         value_sql = code_sql = None
         na_code = labels.index(decision.na_reason)
         if self.kinds[name] == "number" and name not in self.every_value and decision.numbers is not None:
-            # A typed number column (Parquet): a NULL/NaN test and one equality per listed value, on the
-            # number as read. Plain numbers are never listed (they are finite and equal no marker), so they
-            # and the listed values kept as numbers fall to ELSE -1, as in the general CASE chain below.
+            # A typed number column (Parquet): a NULL test (and a NaN test where the column holds NaN) and one
+            # equality per listed value, on the number as read. Plain numbers are never listed (they are finite
+            # and equal no marker), so they and the listed values kept as numbers fall to ELSE -1, as in the
+            # general CASE chain below. The NaN test is the dearest part (it doubles a pass over the file).
             x = f"x_{a}"
-            missing = " OR ".join([f"{x} IS NULL", _is_nan(x)]
-                                  + [_in_list(x, values) for _, values in sorted(by_reason.items())])
-            base = ("(CASE " + " ".join([f"WHEN {x} IS NULL OR {_is_nan(x)} THEN {na_code}"]
+            blank = f"{x} IS NULL OR {_is_nan(x)}" if name in self.nan_columns else f"{x} IS NULL"
+            listed = [v for _, values in sorted(by_reason.items()) for v in values]
+            base = ("(CASE " + " ".join([f"WHEN {blank} THEN {na_code}"]
                                         + [f"WHEN {_in_list(x, values)} THEN {code}"
                                            for code, values in sorted(by_reason.items())]) + " ELSE -1 END)")
-            value_sql = f"(CASE WHEN NOT ({missing}) THEN {x} END)"
+            # True where the reason is -1, NULL for a NULL cell. Written with <> and AND, not NOT IN: DuckDB
+            # evaluates `x <> a` at a third of the cost of `NOT x IN (a)` (10,000,000 rows x 28 columns, 1.6 CPU s
+            # against 3.4 on top of reading the numbers), and `(...) IS NOT TRUE` is the cheapest missing test.
+            keeps = ([f"NOT {_is_nan(x)}"] if name in self.nan_columns else []) + \
+                [f"{x} <> {literal(v)}" for v in listed]
+            observed = f"({' AND '.join(keeps)})" if keeps else f"({x} IS NOT NULL)"
+            value_sql = f"(CASE WHEN {observed} THEN {x} END)" if keeps else x
+            plain_missing = not implausible and name not in self.conditions and NOT_APPLICABLE not in labels
             outside = " OR ".join(([f"{x} < {literal(lo)}"] if lo is not None else [])
                                   + ([f"{x} > {literal(hi)}"] if hi is not None else []))
             reason_sql = (f"(CASE WHEN {base} = -1 AND ({outside}) THEN {labels.index(IMPLAUSIBLE)} ELSE {base} END)"
                           if implausible else base)
             return ScannedColumn(name=name, alias=a, info=info, decision=decision, reason_labels=tuple(labels),
-                                 reason_sql=reason_sql, value_sql=value_sql, code_sql=None)
+                                 reason_sql=reason_sql, value_sql=value_sql, code_sql=None, observed_sql=observed,
+                                 missing_sql=f"({observed} IS NOT TRUE)" if plain_missing else None)
         arms = [f"WHEN p_{a} IS NOT NULL THEN -1", f"WHEN s_{a} IS NULL THEN {na_code}"]
         if self.kinds[name] == "number":
             arms.append(f"WHEN {_is_nan(f's_{a}')} THEN {na_code}")
@@ -609,6 +629,10 @@ class _Scanner:
                 parts.append(f"{column.value_sql} AS v0_{a}")
             if column.code_sql is not None:
                 parts.append(f"{column.code_sql} AS k0_{a}")
+            if column.observed_sql is not None:
+                parts.append(f"x_{a}")
+            if column.missing_sql is not None:
+                parts.append(f"{column.missing_sql} AS m_{a}")
         self.con.execute(f"CREATE VIEW decided AS SELECT {', '.join(parts)} FROM cells")
         bindings = self._condition_bindings(columns)
         final = ["rn", "id"]
@@ -625,22 +649,30 @@ class _Scanner:
             if column.value_sql is not None:
                 # The value as read is kept only where a range check lists values outside the range (a
                 # fifth less work writing the table over 1 million rows x 30 than keeping it everywhere).
-                final += ([f"v0_{a}"] if _range_checked(column) else []) + \
-                    [f"CASE WHEN {reason} = -1 THEN v0_{a} END AS v_{a}"]
+                value = f"v0_{a}" if reason == f"r0_{a}" and IMPLAUSIBLE not in column.reason_labels else \
+                    f"CASE WHEN {reason} = -1 THEN v0_{a} END"  # (v0 is NULL exactly where r0 is not -1)
+                final += ([f"v0_{a}"] if _range_checked(column) else []) + [f"{value} AS v_{a}"]
             if column.code_sql is not None:
                 final.append(f"CASE WHEN {reason} = -1 THEN k0_{a} END AS k_{a}")
-        # The decided rows are written once into DuckDB's own (compressed) storage: every later pass then
-        # scans plain columns instead of evaluating the raw cells' expressions again (three times faster
-        # over 3 million rows x 30 columns than passes over a view).
-        # Every later query orders by rn where order matters, so the rows may be written in any order:
-        # without that, DuckDB holds finished batches back to keep the file order.
+            # Passed through for the cheap tests on the number as read (a view computes only what a query uses).
+            final += [f"x_{a}"] * (column.observed_sql is not None) + [f"m_{a}"] * (column.missing_sql is not None)
+        select = f"SELECT {', '.join(final)} FROM {layered_select('decided', bindings)}"
+        if self.fmt == "parquet":
+            # A Parquet file is read again by every pass, through this view: with the short tests of typed
+            # columns a pass costs less than writing the decided rows did (at 10,000,000 rows x 30 the write
+            # alone took 32.6 CPU s, the whole audit 72; benchmarks/README.md, fourth round).
+            self.con.execute(f"CREATE VIEW study AS {select}")
+            return
+        # Text files: the decided rows are written once into DuckDB's own (compressed) storage, so that later
+        # passes scan plain columns instead of parsing every cell again (three times faster over 3 million
+        # rows x 30 columns than passes over a view). Every later query orders by rn where order matters, so
+        # the rows may be written in any order: without that, DuckDB holds finished batches back.
         self.con.execute("SET preserve_insertion_order = false")
-        self.con.execute(f"CREATE TABLE study AS SELECT {', '.join(final)} FROM {layered_select('decided', bindings)}")
+        self.con.execute(f"CREATE TABLE study AS {select}")
         self.con.execute("SET preserve_insertion_order = true")
-        if self.fmt != "parquet":
-            self.con.execute("DROP VIEW IF EXISTS cells")
-            self.con.execute("DROP VIEW raw")
-            self.con.execute("DROP TABLE raw_table")
+        self.con.execute("DROP VIEW IF EXISTS cells")
+        self.con.execute("DROP VIEW raw")
+        self.con.execute("DROP TABLE raw_table")
 
     # -- applies_if --------------------------------------------------------------------------
 
@@ -723,11 +755,14 @@ class _Scanner:
         wanted = [(column, centre) for column, centre in zip(screened, centres) if centre is not None]
         if not wanted:
             return pd.DataFrame(columns=list(EXTREME_COLUMNS))
-        # A slightly wider band in SQL; the cut itself is made below with intake's arithmetic.
+        # A slightly wider band in SQL; the cut itself is made below with intake's arithmetic. The band is
+        # first put as bounds on the number as read (a filter DuckDB applies while reading, before any
+        # expression is evaluated), and missing codes are left out there as well.
         found = self.con.execute(" UNION ALL ".join(
-            f"SELECT {j} AS j, rn, id, v_{column.alias} AS v FROM study WHERE {_spread_sql(f'v_{column.alias}', centre)} > "
-            f"{literal(_band(cutoff, centre))}" for j, (column, centre) in enumerate(wanted))
-            + " ORDER BY j, rn").fetchall()
+            f"SELECT {j} AS j, rn, id, v_{column.alias} AS v FROM study "
+            f"WHERE {self._prefilter(column, centre, _band(cutoff, centre))} "
+            f"AND {_spread_sql(f'v_{column.alias}', centre)} > {literal(_band(cutoff, centre))}"
+            for j, (column, centre) in enumerate(wanted)) + " ORDER BY j, rn").fetchall()
         rows: List[Dict[str, Any]] = []
         for j, rn, ident, value in found:
             column, centre = wanted[j]
@@ -738,9 +773,26 @@ class _Scanner:
                              "z_scale": "log" if centre.log else "linear"})
         return pd.DataFrame(rows, columns=list(EXTREME_COLUMNS))
 
+    @staticmethod
+    def _prefilter(column: ScannedColumn, centre: RobustCentre, band: float) -> str:
+        """Rows that may hold an extreme value: on the number as read where the relation has it (a typed Parquet
+        column: DuckDB then filters while reading, and missing codes are left out there too), else on the value."""
+        if column.observed_sql is None:
+            return _outside_sql(f"v_{column.alias}", centre, band)
+        return f"{_outside_sql(f'x_{column.alias}', centre, band)} AND {column.observed_sql}"
+
     # -- all steps ---------------------------------------------------------------------------
 
     def scan(self) -> ScannedStudy:
+        # The file's digest is read in a thread while DuckDB works (hashlib and file reads let the GIL go, and
+        # DuckDB's own threads do not keep both cores busy all through): about 2.5 CPU s at 10,000,000 rows.
+        with concurrent.futures.ThreadPoolExecutor(max_workers=1, thread_name_prefix="gapbook-sha256") as pool:
+            digest = pool.submit(sha256_of, self.path)
+            study = self._scan()
+            study.sha256 = digest.result()
+            return study
+
+    def _scan(self) -> ScannedStudy:
         self.every_value: set = set()
         if self.fmt != "parquet":
             encoding = self.params.data.encoding
@@ -764,7 +816,7 @@ class _Scanner:
         infos = {name: c.info for name, c in columns.items()}
         return ScannedStudy(connection=self.con, relation="study", n_rows=self.n_rows, columns=columns,
                             id_column=self.id_column, range_issues=issues, extreme_values=extremes,
-                            source=str(self.path), sha256=sha256_of(self.path), notes=inferred_notes(infos),
+                            source=str(self.path), sha256="", notes=inferred_notes(infos),
                             warnings=tuple(self.warnings))
 
 
@@ -814,6 +866,24 @@ def _spread_sql(expression: str, centre: Any) -> str:
     return f"abs({expression} - {median})"
 
 
+def _outside_sql(expression: str, centre: RobustCentre, band: float) -> str:
+    """True (at least) wherever :func:`_spread_sql` of the expression exceeds ``band``, as two bounds on it.
+
+    The bounds are placed a thousandth of the band inside (and a spread above the band lies above
+    the bound in exact arithmetic, so above its rounded value too): every row whose spread exceeds
+    the band passes, and a few more, which the spread test that follows drops. NaN passes (DuckDB
+    orders it above every number); NULL does not (its spread is NULL).
+    """
+    m = float(centre.median)
+    if centre.log:  # greatest(x / m, m / x) > band, with m > 0
+        inner = 0.999 * band
+        if inner <= 1.0:
+            return "true"
+        return f"({expression} <= {literal(m / inner)} OR {expression} >= {literal(m * inner)})"
+    inner = 0.999 * band
+    return f"({expression} <= {literal(m - inner)} OR {expression} >= {literal(m + inner)})"
+
+
 def _band(cutoff: float, centre: RobustCentre) -> float:
     """A spread a little below the cut of |robust z| > cutoff, so the SQL filter keeps every flagged value."""
     limit = cutoff * centre.scale
@@ -842,7 +912,7 @@ def _robust_centres(con, relation: str, expressions: Sequence[str]) -> List[Opti
         spreads.append(_spread_sql(e, RobustCentre(median=m, scale=0.0, log=log)) if m is not None
                        else "NULL::DOUBLE")
         windows.append(_window(spread_values(s, m, log)) if m is not None else None)
-    middles = [m for _, _, m in _exact_middles(con, relation, spreads, windows)]
+    middles = [m for _, _, m in _exact_middles(con, relation, spreads, windows, nonnull=expressions)]
     out: List[Optional[RobustCentre]] = []
     for n, median, middle, log in zip(counts, medians, middles, positive):
         if n < 3 or median is None or middle is None:
@@ -879,15 +949,17 @@ def _window(sample: np.ndarray) -> Optional[Tuple[float, float]]:
     return float(lo), float(hi)
 
 
-def _exact_middles(con, relation: str, expressions: Sequence[str], windows: Sequence[Optional[Tuple[float, float]]]
-                   ) -> List[Tuple[int, Optional[float], Optional[float]]]:
+def _exact_middles(con, relation: str, expressions: Sequence[str], windows: Sequence[Optional[Tuple[float, float]]],
+                   nonnull: Optional[Sequence[str]] = None) -> List[Tuple[int, Optional[float], Optional[float]]]:
     """Each expression's count of non-NULL values, its smallest value, and numpy's median of them.
 
     One query over the rows: per expression, the values are split into below, inside and
     above the window; the window's distinct values are listed with their counts (values
     recorded to a few decimals repeat a lot). Grouping the rows this way costs about a third
     of histogram() over every row. Where the window misses the middle (rare), every value of
-    that expression is read. The median is None with fewer than 3 values.
+    that expression is read. The median is None with fewer than 3 values. ``nonnull`` (one per
+    expression) are simpler expressions that are NULL wherever theirs is (a spread's value): rows are
+    filtered on them, so that DuckDB does not evaluate the expression twice (filter and value).
     """
     parts = []
     for j, (e, w) in enumerate(zip(expressions, windows)):
@@ -897,8 +969,11 @@ def _exact_middles(con, relation: str, expressions: Sequence[str], windows: Sequ
             lo, hi = literal(w[0]), literal(w[1])
             part = f"CASE WHEN e < {lo} THEN 0 WHEN e <= {hi} THEN 1 ELSE 2 END"
             value = f"CASE WHEN e BETWEEN {lo} AND {hi} THEN e END"
-        parts.append(f"SELECT {j} AS j, {part} AS part, {value} AS value, count(*) AS n, min(e) AS low "
-                     f"FROM (SELECT ({e})::DOUBLE AS e FROM {relation}) WHERE e IS NOT NULL GROUP BY part, value")
+        rows = f"FROM (SELECT ({e})::DOUBLE AS e FROM {relation}) WHERE e IS NOT NULL" if nonnull is None else \
+            f"FROM (SELECT ({e})::DOUBLE AS e FROM {relation} WHERE ({nonnull[j]}) IS NOT NULL)"
+        # count(e), not count(*): where the simpler test lets a NULL through, it counts for nothing.
+        parts.append(f"SELECT {j} AS j, {part} AS part, {value} AS value, count(e) AS n, min(e) AS low "
+                     f"{rows} GROUP BY part, value")
     found = con.execute(" UNION ALL ".join(parts)).fetchnumpy()
     j_of = np.asarray(found["j"], dtype=np.int64)
     part_of = np.asarray(found["part"], dtype=np.int64)
