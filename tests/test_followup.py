@@ -14,6 +14,7 @@ from gapbook.followup.imputation import impute_repeated
 from gapbook.followup.mixed_model import fit_mixed_model
 from gapbook.followup.repeated import repeated_outcome
 from gapbook.plots import followup as plots
+from gapbook.vocabulary import REFERENCE_BASED_CAUTIONS
 
 SETTINGS = dict(m=4, seed=12, burn_in=10, thin=2)
 
@@ -60,6 +61,14 @@ def test_sentences_carry_the_cautions(trial):
     _, _, analysis = trial
     text = " ".join(analysis.sentences)
     assert "not recommended" in text and "information anchoring" in text and "valid if missing at random" in text
+
+
+def test_the_reference_based_cautions_come_once_and_only_with_a_reference_based_strategy(trial):
+    # One wording (vocabulary.REFERENCE_BASED_CAUTIONS) read by the stage's sentences and the summary page alike
+    _, outcome, analysis = trial
+    assert [analysis.sentences.count(caution) for caution in REFERENCE_BASED_CAUTIONS] == [1, 1]
+    under_mar = analyse_followup(outcome, strategies=["mixed_model", "multiple_imputation"], **SETTINGS)
+    assert not set(REFERENCE_BASED_CAUTIONS) & set(under_mar.sentences)
 
 
 def test_delta_strategy_needs_a_delta_and_names_are_checked(trial):

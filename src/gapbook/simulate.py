@@ -45,13 +45,12 @@ from .errors import AnalysisError, InputError, did_you_mean
 from .expressions import FORMULA_NAMESPACE, formula_environment
 from .models import AnalysisModel, exposure_terms
 from .survival import CensoringDistribution, EventCoding, WeibullFit, censoring_distribution, cox_model, fit_weibull_ph
-from .vocabulary import PARTICIPANT_ROW_STRATEGY_NAMES, effect_scale
+from .vocabulary import MECHANISMS, PARTICIPANT_ROW_STRATEGY_NAMES, effect_scale
 
 __all__ = ["MECHANISMS", "SIMULATION_ITERATIONS", "performance", "design_from_data", "simulate_complete",
            "impose_missing", "Replicate", "least_squares_for", "CompleteCaseStrategy", "default_strategies",
            "SimulationResult", "run_simulation", "simulate_study", "follow_up_sentence"]
 
-MECHANISMS: Tuple[str, ...] = ("MCAR", "MAR", "MNAR")
 PERFORMANCE_COLUMNS: Tuple[str, ...] = ("mechanism", "strategy", "term", "n_rep", "true_value", "bias", "bias_mcse",
                                         "emp_se", "emp_se_mcse", "model_se", "coverage", "coverage_mcse")
 # Log-odds change in the chance of being missing per SD of the driving variable: a strong

@@ -12,7 +12,7 @@ undeclared column its word.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Dict, Optional, Tuple
+from typing import Dict, Iterable, Optional, Tuple
 
 import numpy as np
 import pandas as pd
@@ -27,6 +27,7 @@ __all__ = [
     "BLANK", "NOT_APPLICABLE", "IMPLAUSIBLE", "NO_RECORD", "REASON_NOT_GIVEN",
     "MAR_CAUTION", "SENSITIVITY_POINTER", "PLAN_CAUTION", "REPORTING_CAUTION", "CAUTIONS", "cautions",
     "COMPLETERS_CAUTION", "LAST_OBSERVATION_CAUTION", "REFERENCE_BASED_VARIANCE", "INFORMATION_ANCHORING",
+    "REFERENCE_BASED_CAUTIONS", "reference_based_cautions", "MECHANISMS",
     "LAYOUTS", "COVARIANCE_STRUCTURES", "MIXED_MODEL_METHODS", "FOLLOWUP_STRATEGY_NAMES", "NOT_RECOMMENDED_STRATEGIES",
     "REFERENCE_BASED_STRATEGIES", "FOLLOWUP_IMPUTED_STRATEGIES",
     "IntercurrentStrategy", "INTERCURRENT_STRATEGIES", "INTERCURRENT_STRATEGY_NAMES", "targeting_strategies",
@@ -353,6 +354,12 @@ NO_RECORD = "no record of the visit"   # follow-up, long layout: no row for a pl
 REASON_NOT_GIVEN = "reason not given"  # follow-up: a participant left and no reason was recorded
 
 # ---------------------------------------------------------------------------
+# missingness mechanisms (Rubin 1976, Biometrika 63:581-592, citation recalled from memory): the ones the
+# simulation stage imposes
+
+MECHANISMS: Tuple[str, ...] = ("MCAR", "MAR", "MNAR")
+
+# ---------------------------------------------------------------------------
 # the cautions of the trade, carried by every report
 
 MAR_CAUTION = ("Missing at random (MAR) cannot be verified from the observed data: a test can give evidence "
@@ -382,6 +389,7 @@ INFORMATION_ANCHORING = ("Whether that wider variance is a defect or the right a
                          "('information anchoring'; Cro, Carpenter & Kenward 2019, JRSS A 182:623-645, citation "
                          "recalled from memory), while the repeated-sampling variance is smaller.")
 CAUTIONS: Tuple[str, ...] = (f"{MAR_CAUTION} {SENSITIVITY_POINTER}", PLAN_CAUTION, REPORTING_CAUTION)
+REFERENCE_BASED_CAUTIONS: Tuple[str, ...] = (REFERENCE_BASED_VARIANCE, INFORMATION_ANCHORING)
 
 
 def cautions(with_model: bool = True) -> Tuple[str, ...]:
@@ -398,3 +406,24 @@ def cautions(with_model: bool = True) -> Tuple[str, ...]:
         The cautions, in the order a page shows them.
     """
     return CAUTIONS if with_model else (MAR_CAUTION, PLAN_CAUTION, REPORTING_CAUTION)
+
+
+def reference_based_cautions(strategies: Iterable[str]) -> Tuple[str, ...]:
+    """The reference-based cautions (Rubin's variance, information anchoring) when a strategy is reference-based.
+
+    Parameters
+    ----------
+    strategies : iterable of str
+        The follow-up strategies a page or result reports.
+
+    Returns
+    -------
+    tuple of str
+        :data:`REFERENCE_BASED_CAUTIONS` when any strategy is in :data:`REFERENCE_BASED_STRATEGIES`, else empty.
+
+    References
+    ----------
+    Cro S, Carpenter JR, Kenward MG (2019). Information-anchored sensitivity analysis: theory and
+    application. JRSS A 182:623-645 (citation recalled from memory).
+    """
+    return REFERENCE_BASED_CAUTIONS if set(strategies) & set(REFERENCE_BASED_STRATEGIES) else ()

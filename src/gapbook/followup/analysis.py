@@ -22,8 +22,7 @@ import pandas as pd
 
 from ..errors import InputError, did_you_mean
 from ..inference import format_p
-from ..vocabulary import (FOLLOWUP_STRATEGY_NAMES, INFORMATION_ANCHORING, REFERENCE_BASED_STRATEGIES,
-                          REFERENCE_BASED_VARIANCE)
+from ..vocabulary import FOLLOWUP_STRATEGY_NAMES, REFERENCE_BASED_STRATEGIES, reference_based_cautions
 from .comparisons import (COMPLETERS, LAST_OBSERVATION, NOT_RECOMMENDED, carry_last_observation_forward,
                                    completers)
 from .imputation import DELTA_STRATEGY, RULE_STRATEGY, draw_posteriors, impute_repeated
@@ -123,8 +122,7 @@ def _sentences(effects: pd.DataFrame, last_visit: Any, alpha: float, method: str
                 sentences.append(f"{strategy.replace('_', ' ').capitalize()} (comparison only): "
                                  f"{_effect_sentence(by.loc[strategy], alpha)}.")
     present = set(effects["strategy"])
-    if present & set(REFERENCE_BASED_STRATEGIES):
-        sentences.extend([REFERENCE_BASED_VARIANCE, INFORMATION_ANCHORING])
+    sentences.extend(reference_based_cautions(present))
     sentences.extend(NOT_RECOMMENDED[s] for s in (COMPLETERS, LAST_OBSERVATION) if s in present)
     return tuple(sentences)
 

@@ -49,7 +49,7 @@ from ..errors import AnalysisError, InputError, did_you_mean
 from ..inference import wald_inference
 from ..little import pattern_rows
 from ..pool import rubin_pool
-from ..vocabulary import INFORMATION_ANCHORING, REFERENCE_BASED_STRATEGIES, REFERENCE_BASED_VARIANCE
+from ..vocabulary import REFERENCE_BASED_STRATEGIES, reference_based_cautions
 from .mixed_model import VISIT_EFFECT_COLUMNS, design_crossproducts, fit_mixed_model
 from .repeated import RepeatedOutcome, label
 
@@ -313,9 +313,7 @@ class PooledVisitEffects:
 
     @property
     def sentences(self) -> Tuple[str, ...]:
-        if self.rule in ("mar",):
-            return ()
-        return (REFERENCE_BASED_VARIANCE, INFORMATION_ANCHORING)
+        return reference_based_cautions([RULE_STRATEGY[self.rule]])
 
 
 def _delta_vector(delta: Union[None, float, Sequence[float], Dict[Any, float]], visits: Sequence[Any]) -> np.ndarray:

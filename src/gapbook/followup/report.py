@@ -19,9 +19,9 @@ import pandas as pd
 from ..inference import format_p
 from ..report import Checklist, ChecklistItem, MissingSummary, ParticipantFlow, ReportSummary, effect_phrase
 from ..text import md_code, md_escape
-from ..vocabulary import (FOLLOWUP_IMPUTED_STRATEGIES, INFORMATION_ANCHORING, INTERCURRENT_STRATEGIES,
-                          NOT_RECOMMENDED_STRATEGIES, REFERENCE_BASED_STRATEGIES, REFERENCE_BASED_VARIANCE,
-                          STRATEGY_PHRASES, cautions as page_cautions)
+from ..vocabulary import (FOLLOWUP_IMPUTED_STRATEGIES, INTERCURRENT_STRATEGIES, NOT_RECOMMENDED_STRATEGIES,
+                          REFERENCE_BASED_STRATEGIES, STRATEGY_PHRASES, cautions as page_cautions,
+                          reference_based_cautions)
 from .estimand import EstimandDescription, estimand_sentences
 
 FOLLOWUP_REPORT_TABLES: Tuple[str, ...] = (
@@ -242,9 +242,7 @@ def draft_followup_results(*, flow: ParticipantFlow, patterns: Optional[pd.DataF
                      for _, r in rows.iterrows()]
             sentences.append(f"The effect ({md_escape(term)}) at visit {md_escape(_label(last_visit))} was "
                              + "; ".join(parts) + ".")
-        present = set(headline["strategy"])
-        if present & set(REFERENCE_BASED_STRATEGIES):
-            sentences.extend([REFERENCE_BASED_VARIANCE, INFORMATION_ANCHORING])
+        sentences.extend(reference_based_cautions(headline["strategy"]))
     else:
         sentences.append("The follow-up stage has not written estimates yet.")
     return " ".join(sentences)
