@@ -98,7 +98,7 @@ def test_jump_to_reference_with_dropout_before_first_visit_scales_the_mar_effect
     j2r = pooled.visit_effects().set_index("visit")
     mar = fit_mixed_model(outcome).visit_effects().set_index("visit")
     for k, week in enumerate(outcome.visits):
-        between = pooled.estimates[:, k].var(ddof=1)
+        between = pooled.coefficients[:, k].var(ddof=1)
         mc_se = np.sqrt(between / imputation.m)
         expected = (1 - share_left) * mar.loc[week, "estimate"]
         assert abs(j2r.loc[week, "estimate"] - expected) < 4 * mc_se + 0.02 * abs(expected)

@@ -276,33 +276,38 @@ class RepeatedImputation:
             fit = fit_mixed_model(self.completed_outcome(i), alpha=alpha, complete_crossproducts=crossproducts)
             result = fit.contrast(matrix)
             estimates[i], variances[i], complete_df[i] = result.estimate, result.std_error ** 2, result.df
-        return PooledVisitEffects(strategy=self.strategy, names=tuple(names), estimates=estimates,
-                                  variances=variances, complete_df=complete_df.mean(axis=0), n_used=self.outcome.n,
-                                  alpha=alpha, rule=self.rule)
+        return PooledVisitEffects(strategy=self.strategy, names=tuple(names), coefficients=estimates,
+                                  coefficient_variances=variances, complete_df=complete_df.mean(axis=0),
+                                  n_used=self.outcome.n, alpha=alpha, rule=self.rule,
+                                  sentences=reference_based_cautions([RULE_STRATEGY[self.rule]]))
 
 
 @dataclass(frozen=True)
 class PooledVisitEffects:
     """Exposure effects at every visit pooled over imputed datasets with Rubin's rules.
 
-    ``estimates`` and ``variances`` are (m, K) for the K (term, visit) pairs in ``names``;
+    ``coefficients`` and ``coefficient_variances`` are (m, K) for the K (term, visit) pairs in ``names``
+    (as :class:`gapbook.pool.PooledResult` names its per-imputation fits; ``estimates`` is reserved for
+    ``estimates.csv`` rows);
     ``complete_df`` the complete-data Satterthwaite df of each, used in Barnard & Rubin's df.
     """
 
     strategy: str
     names: Tuple[Tuple[str, Any], ...]
-    estimates: np.ndarray
-    variances: np.ndarray
+    coefficients: np.ndarray
+    coefficient_variances: np.ndarray
     complete_df: np.ndarray
     n_used: int
     alpha: float
     rule: str
+    sentences: Tuple[str, ...] = ()
 
     def visit_effects(self) -> pd.DataFrame:
         """Rows of ``visit_effects.csv`` with the fraction of missing information (fmi) and riv."""
         rows = []
         for k, (term, visit) in enumerate(self.names):
-            pooled = rubin_pool(self.estimates[:, [k]], self.variances[:, [k]], df_complete=float(self.complete_df[k]))
+            pooled = rubin_pool(self.coefficients[:, [k]], self.coefficient_variances[:, [k]],
+                                df_complete=float(self.complete_df[k]))
             estimate, se, df = float(pooled.estimate[0]), float(np.sqrt(pooled.total[0])), float(pooled.df[0])
             lower, upper, p = (float(v) for v in wald_inference(estimate, se, df, self.alpha))
             rows.append({"strategy": self.strategy, "visit": visit, "term": term, "estimate": estimate,
@@ -310,10 +315,6 @@ class PooledVisitEffects:
                          "p_value": p, "df": df, "n_used": self.n_used, "fmi": float(pooled.fmi[0]),
                          "riv": float(pooled.riv[0])})
         return pd.DataFrame(rows, columns=list(VISIT_EFFECT_COLUMNS) + ["fmi", "riv"])
-
-    @property
-    def sentences(self) -> Tuple[str, ...]:
-        return reference_based_cautions([RULE_STRATEGY[self.rule]])
 
 
 def _delta_vector(delta: Union[None, float, Sequence[float], Dict[Any, float]], visits: Sequence[Any]) -> np.ndarray:

@@ -294,8 +294,8 @@ class MixedModelFit:
     _theta_covariance: np.ndarray = field(default=None, repr=False, compare=False)
     _directions: np.ndarray = field(default=None, repr=False, compare=False)
 
-    @property
     def std_errors(self) -> np.ndarray:
+        """Standard errors: square roots of the covariance's diagonal (as ``ModelFit.std_errors()``)."""
         return np.sqrt(np.diag(self.cov))
 
     def covariance_frame(self) -> pd.DataFrame:
