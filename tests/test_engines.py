@@ -120,6 +120,25 @@ def test_typed_parquet_columns_read_as_pandas_reads_them(tmp_path):
     _assert_same(pair)
 
 
+@pytest.mark.parametrize("name", ["s[1].parquet", "s*.parquet", "s?.csv"])
+def test_a_file_name_like_a_pattern_is_read_as_that_one_file(tmp_path, name):
+    # DuckDB reads '*', '?', '[...]' and '{...}' in a file name as a pattern (its documentation on
+    # reading multiple files): s[1].parquet would read s1.parquet, s*.parquet every match, while
+    # the record hashes the one named file. Reference: the pandas path, which reads that file.
+    fmt = name.rsplit(".", 1)[1]
+    named = pd.DataFrame({"pid": ["a", "b", "c", "d"], "x": ["1", "2", "NA", "4"]})
+    other = pd.DataFrame({"pid": ["e", "f"], "x": ["NA", "NA"]})
+    for frame, file in ((named, name), (other, f"s1.{fmt}"), (other.assign(pid=["g", "h"]), f"s2.{fmt}")):
+        if fmt == "parquet":
+            frame.to_parquet(tmp_path / file, index=False)
+        else:
+            frame.to_csv(tmp_path / file, index=False)
+    params = _params(tmp_path / name, data={"id": "pid"}, missing={"markers": ["NA"]})
+    pair = audit_both(params, tmp_path)
+    assert isinstance(pair[0], dict) and pair[0]["audit_summary"].splitlines()[1].startswith(b"4,1,3,")  # 4 rows, 3 complete
+    _assert_same(pair)
+
+
 def test_stored_nan_is_missing_whatever_the_parquet_statistics_say(tmp_path):
     # A float column or id that holds NaN beside zeros: Parquet's min/max statistics leave NaN out
     # (both 0), and DuckDB 2.0 folds isnan() to false from them; NaN must still read as missing

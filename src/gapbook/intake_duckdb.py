@@ -256,6 +256,28 @@ def _connect(workdir: str):
     return connection
 
 
+_GLOB_CHARACTERS = frozenset("*?[]{}")
+
+
+def _plain_link(path: Path, workdir: str, fmt: str) -> str:
+    """A name for the data file that DuckDB reads as that one file: a link in the private folder.
+
+    DuckDB reads a file name holding ``*``, ``?``, ``[...]`` or ``{...}`` as a pattern, so
+    ``data/s[1].parquet`` would read ``data/s1.parquet`` and ``s*.csv`` every file it matches,
+    while the record names and hashes the one file the params give. The link's own name holds none.
+    """
+    link = os.path.join(workdir, f"data.{fmt}")
+    if _GLOB_CHARACTERS & set(link):
+        raise InputError(f"{workdir}: the temporary folder's path holds one of {' '.join(sorted(_GLOB_CHARACTERS))}, "
+                         "which DuckDB reads as a file pattern; set TMPDIR to a plain folder or data.engine to pandas")
+    try:
+        os.symlink(path.resolve(), link)
+    except OSError as exc:
+        raise InputError(f"{path}: cannot link the data file into DuckDB's temporary folder ({exc.strerror}); "
+                         "set data.engine to pandas") from None
+    return link
+
+
 def _close(connection, workdir: str) -> None:
     try:
         connection.close()
@@ -293,7 +315,8 @@ def scan_study(params: Params) -> ScannedStudy:
     connection = _connect(workdir)
     cleanup = weakref.finalize(connection, _close, connection, workdir)
     try:
-        scanner = _Scanner(connection, params, path, fmt, list(header.columns), label, conditions)
+        scanner = _Scanner(connection, params, path, fmt, list(header.columns), label, conditions,
+                           sql_path=_plain_link(path, workdir, fmt))
         study = scanner.scan()
     except duckdb.Error as exc:
         cleanup()
@@ -309,11 +332,12 @@ class _Scanner:
     """The steps of :func:`scan_study`; holds the connection and the names of the SQL relations."""
 
     def __init__(self, connection, params: Params, path: Path, fmt: str, names: List[str], label: str,
-                 conditions: Mapping[str, Expression]):
+                 conditions: Mapping[str, Expression], *, sql_path: Optional[str] = None):
         self.con = connection
         self.conditions = dict(conditions)
         self.params = params
         self.path = path
+        self.sql_path = sql_path or str(path)  # the name DuckDB is given (a plain link to the file)
         self.fmt = fmt
         self.names = names  # stripped, as intake names them (columns in data.ignore left out)
         self.warnings: List[str] = []
@@ -329,10 +353,10 @@ class _Scanner:
 
     def _source_sql(self, serial: bool = False) -> str:
         if self.fmt == "parquet":
-            return f"read_parquet({literal(str(self.path))}, file_row_number = true)"
+            return f"read_parquet({literal(self.sql_path)}, file_row_number = true)"
         columns = ", ".join(f"{literal(f'f{j}')}: 'VARCHAR'" for j in range(len(self.file_names)))
         delim = self.params.data.delimiter or ("," if self.fmt == "csv" else "\t")
-        return (f"read_csv({literal(str(self.path))}, header = true, auto_detect = false, columns = {{{columns}}}, "
+        return (f"read_csv({literal(self.sql_path)}, header = true, auto_detect = false, columns = {{{columns}}}, "
                 f"delim = {literal(delim)}, quote = '\"', escape = '\"', null_padding = true, strict_mode = true, "
                 f"encoding = {literal(_duckdb_encoding(self.params.data.encoding))}"
                 + (", parallel = false)" if serial else ")"))
@@ -340,7 +364,7 @@ class _Scanner:
     def _raw_columns(self) -> Dict[str, str]:
         """SQL for each column's raw cells in the ``raw`` relation; sets each column's kind (number or text)."""
         if self.fmt == "parquet":
-            described = self.con.execute(f"DESCRIBE SELECT * FROM read_parquet({literal(str(self.path))})").fetchall()
+            described = self.con.execute(f"DESCRIBE SELECT * FROM read_parquet({literal(self.sql_path)})").fetchall()
             types = {row[0]: str(row[1]) for row in described}
             out = {}
             for raw_name in [row[0] for row in described]:
