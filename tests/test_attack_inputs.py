@@ -176,3 +176,47 @@ def test_spaces_around_a_column_name_are_dropped_and_said(tmp_path, capsys, engi
     out = capsys.readouterr()
     assert code == 0, out.err
     assert "column 3 is named ' age ' in the header; it is read as 'age'" in out.out + out.err
+
+
+@pytest.mark.parametrize("engine", ["pandas", "duckdb"])
+def test_values_near_the_float_limit_raise_no_numpy_warning(tmp_path, capsys, engine):
+    # 1e308 + 1e308 overflows (IEEE 754 double: the largest finite value is about 1.8e308), so the
+    # median's mean of two middle values, the spreads and the default delta grid's SD went inf with
+    # numpy's 'overflow encountered' warning printed raw beside check's output.
+    import warnings
+
+    import numpy as np
+    import pandas as pd
+
+    n = 60
+    pd.DataFrame({"id": np.arange(n), "arm": np.where(np.arange(n) % 2, "a", "b"),
+                  "age": [1e308, -1e308, np.inf, -0.0] * (n // 4),
+                  "y": np.where(np.arange(n) == 5, np.nan, 1e308)}).to_parquet(tmp_path / "d.parquet", index=False)
+    path = study(tmp_path, PARAMS.replace("path: d.csv, id: id}", f"path: d.parquet, id: id, engine: {engine}}}"))
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        code = main(["check", str(path)] + (["--only", "audit"] if engine == "duckdb" else []))
+    err = capsys.readouterr().err
+    assert code == 0, err
+    assert not [w for w in caught if issubclass(w.category, RuntimeWarning)], [str(w.message) for w in caught]
+
+
+def test_a_pipe_or_folder_as_data_or_params_is_named_as_such(tmp_path, capsys):
+    # It exists, so "not found" sent the user looking for a missing file.
+    import os
+
+    os.mkfifo(tmp_path / "d.csv")
+    path = tmp_path / "params.yaml"
+    path.write_text(PARAMS)
+    code, err = check(path, capsys)
+    assert code == 2 and "d.csv: is not a regular file (a folder, pipe or device); check data.path" in err
+    code, err = check(tmp_path, capsys)
+    assert code == 2 and f"{tmp_path}: is not a regular file" in err and len(err.strip().splitlines()) == 1
+
+
+def test_a_params_file_that_is_not_utf8_says_so(tmp_path, capsys):
+    # UnicodeDecodeError is a ValueError: it was reported as "a number thousands of digits long?".
+    path = tmp_path / "params.yaml"
+    path.write_bytes(PARAMS.replace("odd inputs", "caf\xe9").encode("latin-1"))
+    code, err = check(path, capsys)
+    assert code == 2 and "not a UTF-8 text file; save the params file as UTF-8" in err

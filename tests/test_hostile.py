@@ -222,7 +222,7 @@ CASES = [
          needle="not readable as utf-8"),
     Case("binary_garbage", params=p(), data=raw_data(bytes(range(256)) * 16), needle="study.csv"),
     Case("empty_file", params=p(), data=raw_data(b""), needle="empty"),
-    Case("data_is_a_folder", params=p(data={"path": "."}), needle="data file not found"),
+    Case("data_is_a_folder", params=p(data={"path": "."}), needle="is not a regular file"),
     Case("ignore_unknown_column", params=p(data={"ignore": ["nope"]}), needle="data.ignore names 'nope'"),
     Case("out_in_sys", params=p(), command="run", args=["--out", "/sys/kernel/gapbook"], needle="/sys/kernel"),
     # -- legitimate but hostile-looking: exit 0, nothing runs

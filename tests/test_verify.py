@@ -63,6 +63,9 @@ def _deep(body):
     (lambda b: "{not json", "not valid JSON"),
     (lambda b: "[1, 2]", "not an object"),
     (_deep, "not valid JSON"),
+    # an integer of 100,000 digits: Python's json refuses it with a ValueError that is no JSONDecodeError
+    # (int max str digits, 4300 by default since Python 3.11); it came out as a traceback
+    (lambda b: '{"format": ' + "9" * 100_000 + "}", "not valid JSON"),
 ])
 def test_a_malformed_manifest_is_exit_2_naming_the_file_and_key(audit_record, tmp_path, capsys, change, key):
     record = copy_record(audit_record, tmp_path)

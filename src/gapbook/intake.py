@@ -267,7 +267,8 @@ def read_table(path: Path, fmt: str = "auto", sheet: Any = None, encoding: str =
     (raw, warnings) : DataFrame and list of str
     """
     if not path.is_file():
-        raise InputError(f"{path}: data file not found; check data.path (it is relative to the params file)")
+        what = "is not a regular file (a folder, pipe or device)" if path.exists() else "data file not found"
+        raise InputError(f"{path}: {what}; check data.path (it is relative to the params file)")
     fmt = _format_of(path, fmt)
     named = encoding
     if encoding.replace("_", "-").lower() in ("utf-8", "utf8"):
@@ -1455,9 +1456,12 @@ def robust_screen(data: pd.DataFrame, infos: Mapping[str, VariableInfo], ids: pd
         observed = column[~np.isnan(column)]
         if observed.size < 3:
             continue
-        median = float(np.median(observed))
-        log = bool(observed.min() > 0)
-        centre = robust_centre(median, float(np.median(spread_values(observed, median, log))), log)
+        # Values near the float limit (1e308) overflow to inf in the median's mean of two values
+        # and in the spreads; inf is the result, as numpy gives it, without numpy's warning.
+        with np.errstate(over="ignore", invalid="ignore"):
+            median = float(np.median(observed))
+            log = bool(observed.min() > 0)
+            centre = robust_centre(median, float(np.median(spread_values(observed, median, log))), log)
         if centre is None:
             continue
         z = robust_z(column, centre)

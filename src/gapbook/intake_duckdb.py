@@ -863,7 +863,8 @@ def _numpy_median(middle: Sequence[float]) -> float:
     (The mean of one value is not always the value itself: numpy's sum starts at +0.0, so a middle
     value of -0.0 gives a median of 0.0.)
     """
-    return float(np.mean(np.array(middle, dtype=float)))
+    with np.errstate(over="ignore", invalid="ignore"):  # two values near 1e308: inf, as numpy's median gives
+        return float(np.mean(np.array(middle, dtype=float)))
 
 
 def _middle(counts_below: int, values: np.ndarray, counts: np.ndarray, n: int) -> Optional[float]:

@@ -576,7 +576,8 @@ def load_params(path: Union[str, Path]) -> Params:
     """
     path = Path(path)
     if not path.is_file():
-        raise InputError(f"{path}: params file not found; give the path to a YAML file (see 'gapbook new DIR')")
+        what = "is not a regular file (a folder, pipe or device)" if path.exists() else "params file not found"
+        raise InputError(f"{path}: {what}; give the path to a YAML file (see 'gapbook new DIR')")
     size = path.stat().st_size
     if size > MAX_PARAMS_BYTES:
         raise InputError(f"{path}: the params file is {size:,} bytes; at most {MAX_PARAMS_BYTES:,} are allowed "
@@ -588,14 +589,14 @@ def load_params(path: Union[str, Path]) -> Params:
                          "levels") from None
     except _RepeatedKey as exc:
         raise InputError(f"{path}: {exc}") from None
+    except UnicodeDecodeError:  # before ValueError, of which it is a kind
+        raise InputError(f"{path}: not a UTF-8 text file; save the params file as UTF-8") from None
     except ValueError:  # e.g. an integer of thousands of digits
         raise InputError(f"{path}: holds a value YAML cannot read (a number thousands of digits long?)") from None
     except yaml.YAMLError as exc:
         mark = getattr(exc, "problem_mark", None)
         where = f" at line {mark.line + 1}" if mark is not None else ""
         raise InputError(f"{path}: not valid YAML{where}; check indentation and quoting") from None
-    except UnicodeDecodeError:
-        raise InputError(f"{path}: not a UTF-8 text file; save the params file as UTF-8") from None
     if raw is None:
         raise InputError(f"{path}: the params file is empty; it needs at least a 'data' section with 'path'")
     return Params.from_dict(raw, source=str(path.resolve()))

@@ -412,7 +412,7 @@ def read_manifest(record: Path) -> Manifest:
         raise InputError(f"{record}: not a gapbook record (no {MANIFEST}); give the folder that 'run' printed")
     try:
         body = json.loads(path.read_text(encoding="utf-8"))
-    except (json.JSONDecodeError, UnicodeDecodeError, RecursionError):
+    except (ValueError, RecursionError):  # JSONDecodeError, UnicodeDecodeError, and an integer too long to read
         raise InputError(f"{path}: not valid JSON; the record is damaged") from None
     except OSError as exc:
         raise InputError(f"{path}: cannot be read ({exc.strerror})") from None

@@ -90,7 +90,8 @@ def default_deltas(values: pd.Series, variable_type: str) -> Tuple[float, ...]:
     """
     if variable_type == "binary":
         return (0.0, 0.25, 0.5, 0.75, 1.0, 1.5, 2.0)
-    sd = float(pd.to_numeric(values, errors="coerce").std())
+    with np.errstate(over="ignore", invalid="ignore"):  # values near 1e308: an inf SD, replaced below
+        sd = float(pd.to_numeric(values, errors="coerce").std())
     if not math.isfinite(sd) or sd == 0:
         sd = 1.0
     step = float(f"{sd / 8:.1g}")  # a round step so the deltas read well
