@@ -77,7 +77,7 @@ def test_check_says_where_the_data_goes_and_never_connects(tmp_path, capsys):
         study["compute"] = {"cluster": f"127.0.0.1:{port}"}
         path = tmp_path / "params.yaml"
         path.write_text(yaml.safe_dump(study))
-        assert main(["check", str(path)]) == 0
+        assert main(["check", str(path), "--cluster", f"127.0.0.1:{port}"]) == 0
         out = capsys.readouterr().out
         with pytest.raises(BlockingIOError):
             listener.accept()
@@ -86,6 +86,43 @@ def test_check_says_where_the_data_goes_and_never_connects(tmp_path, capsys):
     assert "impute, sensitivity, simulate" in line
     assert main(["check", str(path), "--only", "audit,mechanism"]) == 0
     assert "none of these stages sends work" in capsys.readouterr().out
+
+
+def test_a_params_file_alone_never_sends_work_to_a_cluster(tmp_path, capsys):
+    # Results come back pickled, and unpickling runs code the other side chose (Python's pickle
+    # documentation: "never unpickle data that could have come from an untrusted source"): the
+    # command line must confirm the address the params name, else check and run stop, exit 2,
+    # before anything connects and before a record is started.
+    import yaml
+
+    with socket.socket() as listener:
+        listener.bind(("127.0.0.1", 0))
+        listener.listen(1)
+        listener.setblocking(False)
+        port = listener.getsockname()[1]
+        study = demo_params().to_dict()
+        study["compute"] = {"cluster": f"127.0.0.1:{port}"}
+        path = tmp_path / "params.yaml"
+        path.write_text(yaml.safe_dump(study))
+        for command in (["check", str(path)], ["check", str(path), "--cluster", "127.0.0.1:1"],
+                        ["run", str(path), "--out", str(tmp_path / "records")]):
+            assert main(command) == 2, command
+            err = capsys.readouterr().err
+            assert len(err.strip().splitlines()) == 1 and "Traceback" not in err
+            assert f"compute.cluster tcp://127.0.0.1:{port} would receive participant values" in err
+            assert f"add --cluster tcp://127.0.0.1:{port} to the command" in err
+        assert not (tmp_path / "records").exists() or not any((tmp_path / "records").iterdir())
+        with pytest.raises(BlockingIOError):
+            listener.accept()
+    # stages that send nothing need no confirmation; a --cluster the params do not name is refused
+    assert main(["check", str(path), "--only", "audit,mechanism"]) == 0
+    capsys.readouterr()
+    assert main(["check", str(path), "--cluster", "nonsense"]) == 2
+    assert "--cluster: 'nonsense' is not a Dask scheduler address" in capsys.readouterr().err
+    local = tmp_path / "local.yaml"
+    local.write_text(yaml.safe_dump(demo_params().to_dict()))
+    assert main(["check", str(local), "--cluster", "127.0.0.1:8786"]) == 2
+    assert "compute.cluster is local" in capsys.readouterr().err
 
 
 def test_a_local_run_says_so():

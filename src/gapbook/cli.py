@@ -14,7 +14,7 @@ from pathlib import Path
 from typing import List, Optional, Sequence
 
 from . import __version__
-from .compute import LOCAL
+from .compute import LOCAL, check_cluster_address
 from .errors import AnalysisError, InputError
 from .text import counted
 
@@ -31,12 +31,42 @@ def _stages(text: Optional[str]) -> Optional[List[str]]:
     return [s for s in text.split(",") if s.strip()] if text else None
 
 
+def _confirm_cluster(params, stages: Sequence[str], given: Optional[str]) -> None:
+    """Refuse to send work to ``compute.cluster`` unless the command line names the same scheduler (``--cluster``).
+
+    Work sent to a Dask cluster carries participant values, and its results come back pickled:
+    unpickling runs whatever code the other side chose. A params file can come from anyone, and
+    nothing in one may run code here, so a params file alone never starts that; the person
+    running the command confirms the address they control.
+    """
+    from .pipeline import CLUSTER_STAGES
+
+    confirmed = None
+    if given is not None:
+        try:
+            confirmed = check_cluster_address(given)
+        except InputError as exc:
+            raise InputError(f"--cluster: {exc.message}") from None
+    cluster = params.compute.cluster
+    if cluster == LOCAL:
+        if confirmed is not None:
+            raise InputError(f"--cluster {confirmed}: the params' compute.cluster is local ({params.source}); "
+                             "name the scheduler in compute.cluster too, or leave --cluster out")
+        return
+    if confirmed == cluster or not any(stage in CLUSTER_STAGES for stage in stages):
+        return
+    raise InputError(f"{params.source}: compute.cluster {cluster} would receive participant values and send back "
+                     "results that are unpickled here, which runs code the cluster chooses; a params file alone "
+                     f"never starts that: if you control that cluster, add --cluster {cluster} to the command")
+
+
 def _run_and_print(params, args: argparse.Namespace) -> int:
     """Check, run the stages (one line each), and print the record's path last (the contract scripts rely on)."""
     from .pipeline import preflight
     from .runner import run_study
 
     plan = preflight(params, only=_stages(args.only), log=_print)
+    _confirm_cluster(params, plan.stages, getattr(args, "cluster", None))
     if params.compute.cluster != LOCAL:  # before any data leaves this machine, say where it goes
         _print(f"compute: {plan.compute}")
     record = run_study(plan, Path(args.out), log=_print)
@@ -67,6 +97,7 @@ def cmd_check(args: argparse.Namespace) -> int:
 
     params = load_params(args.params)
     plan = preflight(params, only=_stages(args.only), log=_print)
+    _confirm_cluster(params, plan.stages, args.cluster)
     data = plan.data
     _print(f"params: {params.source}")
     _print(f"data:   {data.source} ({data.n_rows} rows, {len(data.columns)} variables, sha256 {data.sha256[:12]}; "
@@ -144,6 +175,10 @@ def _record_options(command: argparse.ArgumentParser) -> None:
     command.add_argument("--only", help="comma-separated stages to run, e.g. audit,mechanism")
 
 
+CLUSTER_HELP = ("confirm the Dask scheduler the params' compute.cluster names (the same address); without it, "
+                "work is never sent to a cluster")
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(prog="gapbook", description="Analyse incomplete study data and keep a re-runnable record.")
     parser.add_argument("--version", action="version", version=f"gapbook {__version__}")
@@ -159,10 +194,12 @@ def build_parser() -> argparse.ArgumentParser:
     check = sub.add_parser("check", help="validate params and data without running notebooks")
     check.add_argument("params")
     check.add_argument("--only", help="comma-separated stages 'run --only' would run")
+    check.add_argument("--cluster", metavar="ADDRESS", help=CLUSTER_HELP)
     check.set_defaults(func=cmd_check)
     run = sub.add_parser("run", help="execute the stages and write a record")
     run.add_argument("params")
     _record_options(run)
+    run.add_argument("--cluster", metavar="ADDRESS", help=CLUSTER_HELP)
     run.set_defaults(func=cmd_run)
     verify = sub.add_parser("verify", help="check a record's files, re-execute it and compare every table")
     verify.add_argument("record")
