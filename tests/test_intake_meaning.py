@@ -218,6 +218,35 @@ def test_free_text_values_never_leave_intake(tmp_path):
     assert not study.variables["site"].free_text  # a 3-level category stays a category
 
 
+def test_a_few_repeated_comments_are_free_text_too(tmp_path):
+    # palmerpenguins ships the raw LTER table (load_penguins_raw): its Comments column holds 10
+    # distinct sentences in 54 cells ("Nest never observed with full clutch.", pandas counting the
+    # shipped file), too few distinct texts for the counting rule, but sentences all the same.
+    from palmerpenguins import load_penguins_raw
+
+    raw = load_penguins_raw()
+    comments = raw["Comments"]
+    assert comments.nunique() == 10 and comments.notna().sum() == 54
+    frame = pd.DataFrame({"pid": raw["Individual ID"] + "-" + raw["studyName"], "Comments": comments.fillna(""),
+                          "Island": raw["Island"]})
+    study = load_study(params_for(write_csv(tmp_path, frame)))
+    info = study.variables["Comments"]
+    assert info.free_text and info.n_distinct == 10
+    assert int(study.missing["Comments"].sum()) == 344 - 54
+    text = study.variables_table().to_csv()
+    assert "clutch" not in text and "isotopes" not in text
+    assert "sentences, read as free text (10 distinct texts)" in info.reason
+    assert not study.variables["Island"].free_text  # three island names stay a category
+
+
+def test_answer_options_of_several_words_stay_categories(tmp_path):
+    # Questionnaire answers are several words but no sentences (no full stop ending one).
+    options = ["Never", "Less than once a month", "Once a month", "2 to 4 times a month", "4 or more times a week"]
+    path = write_csv(tmp_path, pd.DataFrame({"pid": range(50), "often": options * 10}))
+    info = load_study(params_for(path)).variables["often"]
+    assert not info.free_text and info.type == "nominal"
+
+
 # ---------------------------------------------------------------------------
 # column names
 

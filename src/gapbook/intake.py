@@ -42,6 +42,13 @@ MAX_NAME_LENGTH = 256         # characters in a column name
 # never shown or analysed, only counted (common practice, no source).
 FREE_TEXT_MIN_DISTINCT = 10
 FREE_TEXT_LONG_VALUE = 100    # a value this long is free text whatever the counts
+# An undeclared text column most of whose distinct texts are sentences (at least this many words
+# and a full stop, '!' or '?' ending one) is free text however few texts it holds: comments such
+# as "Not enough blood for isotopes." name people, events and places, and a handful of them
+# repeated (palmerpenguins' raw Comments: 10 texts in 54 cells) still reads as prose, not as
+# categories (common practice, no source).
+FREE_TEXT_SENTENCE_WORDS = 3
+_SENTENCE_END = re.compile(r"[.!?](?:\s|$)")
 FREE_TEXT_LEVEL = "(text)"    # what such a column holds after intake where it was observed
 
 
@@ -946,7 +953,7 @@ def decide_column(cells: DistinctCells, column: str, spec: VariableSpec, markers
         raise EveryValueNeeded(column)  # a text column's numbers become categories as written
 
     levels = tuple(spec.levels) if spec.levels is not None else None
-    free_text = False
+    free_text = sentences = False
     if all_numeric:
         value_of = np.array([numbers[i] if unique_reason[i] is None else np.nan for i in range(len(uniques))],
                             dtype=float)
@@ -988,6 +995,7 @@ def decide_column(cells: DistinctCells, column: str, spec: VariableSpec, markers
             if declared_type is None and _looks_like_free_text(cells, text_lookup, categories):
                 # A free-text column keeps only whether each cell was answered; its texts go no further.
                 free_text = True
+                sentences = _reads_as_sentences(categories)
                 n_distinct = len(categories)
                 text_lookup = [None if t is None else FREE_TEXT_LEVEL for t in text_lookup]
                 categories = (FREE_TEXT_LEVEL,)
@@ -999,7 +1007,8 @@ def decide_column(cells: DistinctCells, column: str, spec: VariableSpec, markers
         numeric_storage = False
 
     if free_text:
-        why = (f"free text or identifiers ({n_distinct} distinct texts): values are not shown or analysed, only "
+        what = "sentences, read as free text" if sentences else "free text or identifiers"
+        why = (f"{what} ({n_distinct} distinct texts): values are not shown or analysed, only "
                "whether each is missing; declare its type and levels to use it")
         info = VariableInfo(name=column, type="nominal", declared=False, reason=why, levels=(FREE_TEXT_LEVEL,),
                             numeric_storage=False, free_text=True, n_distinct=n_distinct)
@@ -1308,12 +1317,19 @@ def _refuse_dates(cells: DistinctCells, kept: List[int], numbers: Dict[int, Opti
 
 def _looks_like_free_text(cells: DistinctCells, text_lookup: List[Optional[str]], categories: Sequence[str]) -> bool:
     """Many distinct texts making up most of the observed cells, or long texts: names, comments, identifiers."""
-    if any(len(c) > FREE_TEXT_LONG_VALUE for c in categories):
+    if any(len(c) > FREE_TEXT_LONG_VALUE for c in categories) or _reads_as_sentences(categories):
         return True
     if len(categories) < FREE_TEXT_MIN_DISTINCT:
         return False
     observed = sum(int(n) for t, n in zip(text_lookup, cells.counts) if t is not None)
     return len(categories) > observed / 2
+
+
+def _reads_as_sentences(categories: Sequence[str]) -> bool:
+    """More than half of the distinct texts are sentences: several words, and a '.', '!' or '?' ending one."""
+    sentences = sum(len(c.split()) >= FREE_TEXT_SENTENCE_WORDS and _SENTENCE_END.search(c) is not None
+                    for c in categories)
+    return sentences * 2 > len(categories)
 
 
 RANGE_COLUMNS = ("variable", "id", "value", "rule", "action")
