@@ -239,3 +239,43 @@ def test_an_infinite_value_makes_a_column_continuous_without_a_numpy_warning():
         warnings.simplefilter("error")
         kind, _ = infer_type(pd.Series([0.0, 1.0, 2.0, np.inf, 3.0]))
     assert kind == "continuous"
+
+
+def test_blank_outcomes_take_their_reason_from_the_discontinuation_column(tmp_path):
+    # An ADSL-like file (CDISC ADaM: DCSREAS holds the reason for discontinuation, blank for completers).
+    # Expected counts: pandas counting the file itself.
+    frame = pd.DataFrame({"pid": [f"01-{i:03d}" for i in range(12)],
+                          "arm": ["A", "B"] * 6,
+                          "y": ["3.1", "", "2.5", "", "-9", "1.0", "", "4.2", "", "2.2", "", "3.3"],
+                          "DCSREAS": ["", "ADVERSE EVENT", "", "LACK OF EFFICACY", "ADVERSE EVENT", "",
+                                      "ADVERSE EVENT", "", "", "", "NA", ""]})
+    path = tmp_path / "adsl.csv"
+    frame.to_csv(path, index=False)
+    params = make_params(path, missing={"markers": ["", "NA"], "reasons": {-9: "refused"},
+                                        "columns": {"y": {"reason_from": "DCSREAS"}}})
+    study = load_study(params)
+    blank_y = frame["y"] == ""
+    expected = frame.loc[blank_y & ~frame["DCSREAS"].isin(["", "NA"]), "DCSREAS"].value_counts()
+    reasons = study.reasons["y"].value_counts()
+    for reason, count in expected.items():
+        assert reasons[reason] == count
+    # a code in the cell keeps its own reason; a blank cell whose reason column is blank or a marker stays 'blank'
+    assert reasons["refused"] == (frame["y"] == "-9").sum()
+    assert reasons[BLANK] == (blank_y & frame["DCSREAS"].isin(["", "NA"])).sum()
+    # the reason column is no variable (its blanks mean 'no reason'), and check says so
+    assert "DCSREAS" not in study.data.columns
+    assert any(note.startswith("DCSREAS: the reasons for the blank cells of y") for note in study.notes)
+
+
+def test_a_reason_column_that_is_free_text_or_absent_is_refused(tmp_path):
+    frame = pd.DataFrame({"pid": range(60), "y": [""] * 60, "why": [f"comment {i}" for i in range(60)]})
+    path = tmp_path / "study.csv"
+    frame.to_csv(path, index=False)
+    with pytest.raises(InputError, match="60 distinct texts .* looks like free text"):
+        load_study(make_params(path, missing={"columns": {"y": {"reason_from": "why"}}}))
+    with pytest.raises(InputError, match="missing.columns.y.reason_from: 'whyy' is not a column .* did you mean 'why'"):
+        load_study(make_params(path, missing={"columns": {"y": {"reason_from": "whyy"}}}))
+    from gapbook.intake_duckdb import choose_engine
+    with pytest.raises(InputError, match="reason_from is read with pandas only"):
+        choose_engine(make_params(path, data={"path": str(path), "engine": "duckdb"},
+                                  missing={"columns": {"y": {"reason_from": "why"}}}))

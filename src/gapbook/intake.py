@@ -641,13 +641,61 @@ def load_study(params: Params, raw: Optional[pd.DataFrame] = None) -> Study:
 
     data = pd.DataFrame(values, index=raw.index)
     reason_frame = pd.DataFrame(reasons, index=raw.index)
+    reason_frame = _reasons_from_columns(reason_frame, raw, params, label)
     data, reason_frame = _apply_applicability(data, reason_frame, params, label, conditions, ids, warnings)
     data, reason_frame, issues = _check_ranges(data, reason_frame, infos, params, ids)
+    # A column that gives other columns' reasons (reason_from) is no variable: its blanks mean 'no reason'.
+    sources = {section.reason_from: name for name, section in params.missing.columns.items()
+               if section.reason_from is not None and section.reason_from in data.columns}
+    data, reason_frame = data.drop(columns=list(sources)), reason_frame.drop(columns=list(sources))
+    infos = {name: info for name, info in infos.items() if name not in sources}
     extremes = robust_screen(data, infos, ids, params.missing.robust_z)
-    notes = inferred_notes(infos)
+    notes = inferred_notes(infos) + tuple(f"{source}: the reasons for the blank cells of {name} "
+                                          f"(missing.columns.{name}.reason_from), not a variable of the study"
+                                          for source, name in sources.items())
     return Study(data=data, reasons=reason_frame, variables=infos, ids=ids, id_column=id_column,
                  range_issues=issues, extreme_values=extremes, source=source, sha256=sha, notes=notes,
                  warnings=tuple(warnings))
+
+
+# A reason column (missing.columns.<x>.reason_from) with more distinct texts than this is free text, not reasons.
+MAX_REASON_TEXTS = 50
+
+
+def _reasons_from_columns(reasons: pd.DataFrame, raw: pd.DataFrame, params: Params, label: str) -> pd.DataFrame:
+    """Blank cells of a column take their reason from another column's text on the same row (``reason_from``).
+
+    A trial file records why an outcome is missing in a column of its own (ADaM's DCSREAS,
+    the reason for discontinuation); its blank outcome cells would otherwise all read 'blank'.
+    Only blank cells change: a marker or reason code in the cell itself keeps its reason, and
+    a row whose reason column is blank (or a missing marker) stays 'blank'.
+    """
+    for column, section in params.missing.columns.items():
+        source = section.reason_from
+        if source is None or column not in reasons.columns:
+            continue
+        where = f"{params.label}: missing.columns.{column}.reason_from"
+        if source not in raw.columns:
+            raise InputError(f"{where}: '{one_line(source, 80)}' is not a column of the data"
+                             f"{did_you_mean(source, list(raw.columns))} (the id column and data.ignore columns "
+                             "cannot give reasons)")
+        markers = marker_table(params, source)
+        texts = raw[source].astype(object).where(raw[source].notna(), "").map(lambda v: str(v).strip())
+        usable = texts.map(lambda v: v != "" and markers.reason_for(v) is None).to_numpy()
+        distinct = sorted(set(texts[usable]))
+        if len(distinct) > MAX_REASON_TEXTS:
+            raise InputError(f"{where}: '{one_line(source, 80)}' holds {len(distinct)} distinct texts (at most "
+                             f"{MAX_REASON_TEXTS} reasons); it looks like free text: give a column of coded reasons")
+        too_long = [t for t in distinct if len(t) > 200]
+        if too_long:
+            raise InputError(f"{where}: '{one_line(source, 80)}' holds a text of {len(too_long[0])} characters; "
+                             "reasons are at most 200")
+        blank = (reasons[column].astype(object) == BLANK).to_numpy()
+        take = blank & usable
+        if take.any():
+            values = reasons[column].astype(object).where(~take, texts)
+            reasons[column] = pd.Categorical(values, categories=sorted(set(values.dropna())))
+    return reasons
 
 
 def read_study(path: Union[str, Path], *, id: Optional[str] = None,

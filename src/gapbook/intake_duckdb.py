@@ -85,6 +85,12 @@ def choose_engine(params: Params) -> Tuple[str, str]:
     path = params.data_path
     if declared == "pandas":
         return "pandas", "data.engine is pandas"
+    borrowed = [name for name, section in params.missing.columns.items() if section.reason_from is not None]
+    if borrowed:  # reasons taken from another column are read with pandas only
+        if declared == "duckdb":
+            raise InputError(f"{params.label}: missing.columns.{borrowed[0]}.reason_from is read with pandas only; "
+                             "set data.engine: pandas (or auto)")
+        return "pandas", f"data.engine auto: missing.columns.{borrowed[0]}.reason_from is read with pandas"
     if declared == "duckdb":
         _duckdb_format(params)
         return "duckdb", "data.engine is duckdb"

@@ -172,6 +172,8 @@ class ColumnMissing(_Section):
     markers: _bounded(Marker) = Field(default_factory=list)
     reasons: Reasons = Field(default_factory=dict)
     use_global: bool = True     # false: only this column's own markers and reasons apply to it
+    # a column whose text is the reason for this column's blank cells (e.g. ADaM DCSREAS for a missing outcome)
+    reason_from: Optional[Annotated[str, Field(min_length=1, max_length=500)]] = None
 
 
 class MissingSection(_Section):
