@@ -181,3 +181,19 @@ def test_summary_without_an_analysis_model_reports_the_missing_data(tmp_path, pe
     assert "333" in summary.results_text and "344" in summary.results_text
     assert summary.not_run == ("mechanism",)  # model stages are not reported as missing from the record
     assert MAR_CAUTION in summary.markdown()
+
+
+def test_the_drafted_methods_keep_column_names_as_written():
+    # CDISC ADaM names are upper case (ADAS_WK24); str.capitalize() turned them into 'adas_wk24' in the draft
+    from types import SimpleNamespace
+
+    from gapbook.impute import ImputationSettings
+    from gapbook.models import AnalysisModel
+    from gapbook.report import draft_methods
+
+    tables = {"estimates": pd.DataFrame({"strategy": ["multiple_imputation"]}),
+              "imputation_summary": pd.DataFrame({"variable": ["ADAS_WK24"], "method": ["pmm"]})}
+    text = draft_methods(SimpleNamespace(), SimpleNamespace(variables=pd.DataFrame({"reasons": [""]})), tables,
+                         model=AnalysisModel("ADAS_WK24 ~ TRT01P"),
+                         imputation=ImputationSettings(m=5, iterations=10, seed=1))
+    assert "Methods: ADAS_WK24 pmm." in text

@@ -120,3 +120,10 @@ def test_counts_and_units_read_in_the_right_number():
     assert quantity("1.0", "days") == "1.0 days" and quantity("2", "years") == "2 years"
     for symbol in ("%", "mmHg", "kg/m2", "mmol/mol", "status", "s"):
         assert quantity("1", symbol) == f"1 {symbol}"
+
+
+def test_first_upper_keeps_the_rest_as_written():
+    # str.capitalize lower-cased CDISC names ('ADAS_WK24') in drafted sentences
+    from gapbook.text import first_upper
+
+    assert first_upper("methods: ADAS_WK24 pmm") == "Methods: ADAS_WK24 pmm" and first_upper("") == ""

@@ -20,7 +20,7 @@ from .intake import Study
 from .impute import ImputationSettings
 from .models import AnalysisModel, check_formula, exposure_rows, exposure_terms
 from .inference import format_estimate, format_p, is_false_cell
-from .text import level_text, md_escape
+from .text import first_upper, level_text, md_escape
 from .vocabulary import STRATEGY_PHRASES, cautions as page_cautions, effect_scale, has_ratio_scale
 
 __all__ = ["COUNT_TABLES", "RecordSuppression", "suppress_small_counts", "suppress_record_tables", "ReportSummary",
@@ -658,7 +658,7 @@ def draft_methods(flow: ParticipantFlow, missing: MissingSummary, tables: Mappin
             f"The primary analysis used multiple imputation by fully conditional specification with m = {imp.m} "
             f"imputed datasets and {imp.iterations} iterations (seed {imp.seed}); the imputation model included "
             f"the outcome, the exposure and every covariate of the analysis model{aux}{passive}. "
-            f"{imputation_methods_phrase(tables.get('imputation_summary')).capitalize()}. Estimates were "
+            f"{first_upper(imputation_methods_phrase(tables.get('imputation_summary')))}. Estimates were "
             "combined with Rubin's rules (Rubin 1987) with small-sample degrees of freedom (Barnard & Rubin 1999), "
             "taking n - p (rows analysed minus estimated coefficients) as the complete-data degrees of freedom"
             + (" (for a generalised linear model a common choice without a published source)"

@@ -27,7 +27,7 @@ import re
 from typing import Any
 
 __all__ = ["one_line", "show_invisible", "html_escape", "md_escape", "md_code", "level_text",
-           "spreadsheet_safe", "spreadsheet_original", "counted", "quantity"]
+           "spreadsheet_safe", "spreadsheet_original", "counted", "quantity", "first_upper"]
 
 # CommonMark lets any ASCII punctuation be backslash-escaped. Escaped everywhere: what formats
 # inside a line (code, emphasis, links and images, strikethrough, maths in Jupyter's renderer,
@@ -275,3 +275,22 @@ def quantity(number: str, unit: str) -> str:
     if number.strip().lstrip("+-") == "1" and plural:
         unit = " ".join(words[:-1] + [last[:-1]])
     return f"{number} {unit}"
+
+
+def first_upper(text: str) -> str:
+    """``text`` with its first letter in upper case and the rest as written.
+
+    ``str.capitalize`` lower-cases everything after the first letter, which turned the
+    column names in a drafted sentence ('methods: ADAS_WK24 pmm') into names the data
+    does not have ('Methods: adas_wk24 pmm').
+
+    Parameters
+    ----------
+    text : str
+        A sentence that may hold column names, levels or proper names.
+
+    Returns
+    -------
+    str
+    """
+    return text[:1].upper() + text[1:]

@@ -22,6 +22,7 @@ import pandas as pd
 
 from ..errors import InputError, did_you_mean
 from ..inference import format_p
+from ..text import first_upper
 from ..vocabulary import FOLLOWUP_STRATEGY_NAMES, REFERENCE_BASED_STRATEGIES, reference_based_cautions
 from .comparisons import (COMPLETERS, LAST_OBSERVATION, NOT_RECOMMENDED, carry_last_observation_forward,
                                    completers)
@@ -119,7 +120,7 @@ def _sentences(effects: pd.DataFrame, last_visit: Any, alpha: float, method: str
                              f"{_effect_sentence(by.loc[DELTA_STRATEGY], alpha)}.")
         for strategy in (COMPLETERS, LAST_OBSERVATION):
             if strategy in by.index:
-                sentences.append(f"{strategy.replace('_', ' ').capitalize()} (comparison only): "
+                sentences.append(f"{first_upper(strategy.replace('_', ' '))} (comparison only): "
                                  f"{_effect_sentence(by.loc[strategy], alpha)}.")
     present = set(effects["strategy"])
     sentences.extend(reference_based_cautions(present))

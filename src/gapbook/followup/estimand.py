@@ -19,6 +19,7 @@ from typing import Callable, Dict, Optional, Sequence, Tuple
 import pandas as pd
 
 from ..errors import InputError
+from ..text import first_upper
 from ..vocabulary import INTERCURRENT_STRATEGIES, NOT_RECOMMENDED_STRATEGIES, STRATEGY_PHRASES
 
 __all__ = ["ESTIMAND_COLUMNS", "EstimandDescription", "describe_estimand", "estimand_sentences"]
@@ -146,6 +147,6 @@ def estimand_sentences(intercurrent_events: Sequence[Tuple[str, str]], *, primar
                              + (f", which targets the {' or '.join(aims)} strategy." if aims else "."))
     for strategy in NOT_RECOMMENDED_STRATEGIES:
         if strategy in run:
-            sentences.append(f"{_phrase([strategy]).capitalize()} targets no estimand cleanly and is shown as a "
+            sentences.append(f"{first_upper(_phrase([strategy]))} targets no estimand cleanly and is shown as a "
                              "comparison only.")
     return tuple(sentences)

@@ -18,7 +18,7 @@ import pandas as pd
 
 from ..inference import format_p
 from ..report import Checklist, ChecklistItem, MissingSummary, ParticipantFlow, ReportSummary, effect_phrase
-from ..text import md_code, md_escape
+from ..text import first_upper, md_code, md_escape
 from ..vocabulary import (FOLLOWUP_IMPUTED_STRATEGIES, INTERCURRENT_STRATEGIES, NOT_RECOMMENDED_STRATEGIES,
                           REFERENCE_BASED_STRATEGIES, STRATEGY_PHRASES, cautions as page_cautions,
                           reference_based_cautions)
@@ -177,7 +177,7 @@ def draft_followup_methods(*, formula: str, exposure: str, visits: Sequence[obje
         sentences.append(text)
     comparisons = [s for s in strategies if s in NOT_RECOMMENDED_STRATEGIES]
     if comparisons:
-        sentences.append(f"{_phrase(comparisons).capitalize()} {'is' if len(comparisons) == 1 else 'are'} "
+        sentences.append(f"{first_upper(_phrase(comparisons))} {'is' if len(comparisons) == 1 else 'are'} "
                          "reported for comparison only and not recommended (National Research Council 2010).")
     if estimand is not None:
         attributes = estimand.attributes
