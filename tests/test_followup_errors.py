@@ -121,7 +121,7 @@ def test_intake_errors_name_the_option_they_were_given():
     error = raised(repeated_study, data.assign(week=[1, 2, 1, 3, 1, 2]), data.isna(), layout="long", subject="id",
                    visit="week", visits=[1, 2])
     assert error.option == "visits" and str(error).startswith("visits: subject B has visit 3 (data row 4)")
-    assert "add it to the planned visits or correct the 'week' column" in str(error)
+    assert "add it to the planned visits, correct the 'week' column" in str(error)
     doubled = pd.concat([data, data.iloc[[0]]], ignore_index=True)
     error = raised(repeated_study, doubled, doubled.isna(), layout="long", subject="id", visit="week", visits=[1, 2])
     assert error.option == "data" and str(error).startswith("data: subject A has 2 rows for visit 1")

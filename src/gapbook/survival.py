@@ -81,8 +81,9 @@ class EventCoding:
         where = f"data row {bad[0] + 1}" + (f" (id {ids.iloc[bad[0]]})" if ids is not None else "")
         raise InputError(f"column '{self.column}' holds {shown} at {where} and in {len(bad)} row(s) in all, which is "
                          f"neither an event value ({_values_text(self.event)}) nor a censored value "
-                         f"({_values_text(self.censored)}); list it under event or censored, or declare it a "
-                         "missing marker", option="event")
+                         f"({_values_text(self.censored)}); list it under event or censored (a competing event "
+                         "listed as censored gives the cause-specific hazard), or declare it a missing marker if "
+                         "the status is unknown (a competing event is not missing data)", option="event")
 
     def indicator(self, data: pd.DataFrame) -> np.ndarray:
         """1.0 for an event, 0.0 for censored, NaN where the event status is missing.
