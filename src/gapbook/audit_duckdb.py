@@ -63,8 +63,8 @@ def count_reasons_sql(scanned: ScannedStudy, by: Sequence[str]):
         keys += [f"CASE WHEN r_{c.alias} = -1 THEN {value} END AS g{len(keys) // 2}",
                  f"CASE WHEN r_{c.alias} = -1 THEN 0 WHEN r_{c.alias} = {not_applicable} THEN 2 ELSE 1 END "
                  f"AS s{len(keys) // 2}"]
-    sums = [f"sum((r_{c.alias} = {k})::BIGINT) AS n_{c.alias}_{k}"
-            for c in columns for k in range(len(c.reason_labels))]
+    sums = [f"{c.reason_counts_sql[k] if c.reason_counts_sql else f'sum((r_{c.alias} = {k})::BIGINT)'} "
+            f"AS n_{c.alias}_{k}" for c in columns for k in range(len(c.reason_labels))]
     group = ", ".join(f"g{i}, s{i}" for i in range(len(by)))
     query = (f"SELECT {', '.join(keys + ['count(*) AS n_rows'] + sums)} FROM {scanned.relation}"
              + (f" GROUP BY {group}" if by else ""))
