@@ -15,7 +15,7 @@ import pytest
 import yaml
 from conftest import copy_record, make_demo_study, record_path, run_gapbook
 
-from gapbook.cli import main
+from gapbook.cli import PAGES_NOT_RERUN, main
 
 
 def one_line_error(capsys, code, argv, *needles):
@@ -247,3 +247,15 @@ def test_a_forger_who_also_fixes_the_digests_is_caught_by_the_rerun(audit_record
     assert "every file matches the manifest" in result.stdout  # the forgery passed the digest check ...
     assert "FAIL audit_variables.csv: different" in result.stdout  # ... not the re-run
     assert "FAIL figures/audit_map.png: different" in result.stdout
+
+
+def test_a_forged_page_with_its_digest_fixed_is_named_as_not_compared(audit_record, tmp_path, capsys):
+    """verify re-runs tables and figures only, so its last line must say the pages were not compared."""
+    record = copy_record(audit_record, tmp_path)
+    page = record / "report" / "index.html"
+    page.write_text(page.read_text().replace("</body>", "<script>alert(1)</script></body>"))
+    rehash(record, "report/index.html")
+    code = main(["verify", str(record)])
+    out = capsys.readouterr().out
+    assert code == 0  # the tables and figures still match: the forged page is not caught ...
+    assert out.strip().splitlines()[-1] == PAGES_NOT_RERUN  # ... and the verdict says it was not compared
