@@ -41,6 +41,11 @@ def test_check_takes_only_like_run(tmp_path, capsys):
     assert "stage 'impute' needs analysis.formula" in line
     assert main(["check", str(params), "--only", "audit"]) == 0
     assert "stages: audit (kit notebooks)" in capsys.readouterr().out
+    assert main(["check", str(params), "--only", " audit , "]) == 0  # spaces around a name are not part of it
+    assert "stages: audit (kit notebooks)" in capsys.readouterr().out
+    for empty in (",", " , ", ""):  # naming no stage ran every stage
+        _, line = one_line(capsys, ["check", params, "--only", empty])
+        assert "--only:" in line and "names no stage" in line
 
 
 @pytest.mark.parametrize("out", ["/sys/kernel", "/proc/self/status", "FILE"])

@@ -28,7 +28,13 @@ def _print(line: str) -> None:
 
 
 def _stages(text: Optional[str]) -> Optional[List[str]]:
-    return [s for s in text.split(",") if s.strip()] if text else None
+    """The stages ``--only`` names; None without the option. ``--only ,`` named none and ran every stage."""
+    if text is None:
+        return None
+    stages = [s.strip() for s in text.split(",") if s.strip()]
+    if not stages:
+        raise InputError(f"--only: {text!r} names no stage; give stages separated by commas, e.g. audit,mechanism")
+    return stages
 
 
 def _confirm_cluster(params, stages: Sequence[str], given: Optional[str]) -> None:
