@@ -6,11 +6,15 @@ reference is the same work run on this machine: in this process and in local pro
 """
 from __future__ import annotations
 
+import contextlib
 import socket
+from pathlib import Path
+from typing import Iterator, Tuple
 
 import numpy as np
 import pandas as pd
 import pytest
+import yaml
 
 from conftest import make_demo_study, record_path, run_gapbook
 from gapbook.cli import main
@@ -19,6 +23,25 @@ from gapbook.demo import demo_params
 from gapbook.errors import InputError
 from gapbook.params import Params
 from gapbook.stage import open_stage
+
+
+@contextlib.contextmanager
+def listening_socket() -> Iterator[Tuple[socket.socket, int]]:
+    """A plain listening socket on 127.0.0.1 standing in for a scheduler; accept() raises if nobody connected."""
+    with socket.socket() as listener:
+        listener.bind(("127.0.0.1", 0))
+        listener.listen(1)
+        listener.setblocking(False)
+        yield listener, listener.getsockname()[1]
+
+
+def params_naming_cluster(tmp_path: Path, address: str) -> Path:
+    """The demo params with ``compute.cluster`` set to ``address``, written under ``tmp_path``."""
+    study = demo_params().to_dict()
+    study["compute"] = {"cluster": address}
+    path = tmp_path / "params.yaml"
+    path.write_text(yaml.safe_dump(study))
+    return path
 
 
 # ---------------------------------------------------------------------------
@@ -54,8 +77,6 @@ def test_a_bad_address_in_a_params_file_is_exit_2_naming_the_key(tmp_path, capsy
     with pytest.raises(InputError) as caught:
         Params.from_dict(study, source="study.yaml")
     assert str(caught.value).startswith("study.yaml: compute.cluster: 'http://10.0.0.5:8786' is not a Dask")
-    import yaml
-
     path = tmp_path / "params.yaml"
     path.write_text(yaml.safe_dump(study))
     assert main(["check", str(path)]) == 2
@@ -66,17 +87,8 @@ def test_a_bad_address_in_a_params_file_is_exit_2_naming_the_key(tmp_path, capsy
 def test_check_says_where_the_data_goes_and_never_connects(tmp_path, capsys):
     # A plain listening socket stands in for a scheduler: check must report the address and
     # what would be sent, and the socket must see no connection at all.
-    import yaml
-
-    with socket.socket() as listener:
-        listener.bind(("127.0.0.1", 0))
-        listener.listen(1)
-        listener.setblocking(False)
-        port = listener.getsockname()[1]
-        study = demo_params().to_dict()
-        study["compute"] = {"cluster": f"127.0.0.1:{port}"}
-        path = tmp_path / "params.yaml"
-        path.write_text(yaml.safe_dump(study))
+    with listening_socket() as (listener, port):
+        path = params_naming_cluster(tmp_path, f"127.0.0.1:{port}")
         assert main(["check", str(path), "--cluster", f"127.0.0.1:{port}"]) == 0
         out = capsys.readouterr().out
         with pytest.raises(BlockingIOError):
@@ -93,17 +105,8 @@ def test_a_params_file_alone_never_sends_work_to_a_cluster(tmp_path, capsys):
     # documentation: "never unpickle data that could have come from an untrusted source"): the
     # command line must confirm the address the params name, else check and run stop, exit 2,
     # before anything connects and before a record is started.
-    import yaml
-
-    with socket.socket() as listener:
-        listener.bind(("127.0.0.1", 0))
-        listener.listen(1)
-        listener.setblocking(False)
-        port = listener.getsockname()[1]
-        study = demo_params().to_dict()
-        study["compute"] = {"cluster": f"127.0.0.1:{port}"}
-        path = tmp_path / "params.yaml"
-        path.write_text(yaml.safe_dump(study))
+    with listening_socket() as (listener, port):
+        path = params_naming_cluster(tmp_path, f"127.0.0.1:{port}")
         for command in (["check", str(path)], ["check", str(path), "--cluster", "127.0.0.1:1"],
                         ["run", str(path), "--out", str(tmp_path / "records")]):
             assert main(command) == 2, command
