@@ -681,8 +681,9 @@ def _reasons_from_columns(reasons: pd.DataFrame, raw: pd.DataFrame, params: Para
                              "cannot give reasons)")
         markers = marker_table(params, source)
         texts = raw[source].astype(object).where(raw[source].notna(), "").map(lambda v: str(v).strip())
-        usable = texts.map(lambda v: v != "" and markers.reason_for(v) is None).to_numpy()
-        distinct = sorted(set(texts[usable]))
+        # each distinct text is looked up once (a marker's reason is no reason for another column)
+        distinct = sorted(t for t in set(texts) if t != "" and markers.reason_for(t) is None)
+        usable = texts.isin(distinct).to_numpy()
         if len(distinct) > MAX_REASON_TEXTS:
             raise InputError(f"{where}: '{one_line(source, 80)}' holds {len(distinct)} distinct texts (at most "
                              f"{MAX_REASON_TEXTS} reasons); it looks like free text: give a column of coded reasons")

@@ -20,7 +20,9 @@ import statsmodels.formula.api as smf
 from .errors import AnalysisError, InputError, did_you_mean
 from .expressions import FORMULA_NAMESPACE, ExpressionError, parse_formula
 from .inference import wald_inference
-from .survival import EventCoding, check_follow_up, cox_model, fit_cox_model, unbounded_cox_terms
+from .text import first_upper
+from .survival import (MONOTONE_ADVICE, EventCoding, check_follow_up, cox_model, finite_fit, fit_cox_model,
+                       unbounded_causes, unbounded_cox_terms)
 from .vocabulary import FAMILY_NAMES, TIME_TO_EVENT_FAMILIES, effect_scale, has_ratio_scale
 
 __all__ = ["ModelFit", "add_ratio_columns", "formula_columns", "check_formula", "fit_model", "exposure_terms",
@@ -89,13 +91,11 @@ class ModelFit:
         if self.dropped:
             out.append(dropped_sentence(self.dropped, self.nobs))
         if self.unbounded:
-            causes = "; ".join(f"{term}: {why}" for term, why in self.unbounded)
             out.append("The model cannot be estimated as it stands: its partial likelihood keeps rising as a "
-                       f"coefficient runs off (monotone likelihood; Bryson & Johnson 1981): {causes}. Its estimates "
-                       "and standard errors are not reliable. Merge that level with another, or leave the covariate "
-                       "out; for a missing-value indicator or category, prefer complete cases or multiple "
-                       "imputation; a penalised (Firth) Cox model (Heinze & Schemper 2001) is an alternative gapbook "
-                       "does not fit.")
+                       f"coefficient runs off (monotone likelihood; Bryson & Johnson 1981): "
+                       f"{unbounded_causes(self.unbounded)}. Its estimates and standard errors are not reliable. "
+                       f"{first_upper(MONOTONE_ADVICE)}; a penalised (Firth) Cox model (Heinze & Schemper 2001) is an "
+                       "alternative gapbook does not fit.")
         elif not self.converged:
             named = [w for w in self.warnings if w.split(":")[0] in NOT_CONVERGED_WARNINGS] or list(self.warnings)
             detail = f" ({'; '.join(named)})" if named else ""
@@ -455,13 +455,9 @@ def _fit_cox(data: pd.DataFrame, *, formula: str, family: str, robust: bool, alp
     notes, failed = _fit_warnings(caught)
     terms = tuple(names[j] for j in columns)
     unbounded = unbounded_cox_terms(model.endog, model.status, model.exog, terms)
-    coefficients = np.asarray(result.params, dtype=float)
-    covariance = np.asarray(result.cov_params(), dtype=float)
-    # a NaN or negative variance is no fit either (statsmodels' Newton can end on one without a warning)
-    converged = bool(np.all(np.isfinite(coefficients)) and np.all(np.isfinite(covariance))
-                     and np.all(np.diag(covariance) > 0)) and not failed and not unbounded
-    return ModelFit(formula=formula, family=family, terms=terms, coefficients=coefficients,
-                    covariance=covariance, df_resid=None,
+    converged = finite_fit(result) and not failed and not unbounded
+    return ModelFit(formula=formula, family=family, terms=terms, coefficients=np.asarray(result.params, dtype=float),
+                    covariance=np.asarray(result.cov_params(), dtype=float), df_resid=None,
                     nobs=int(model.exog.shape[0]), robust=robust, alpha=alpha, converged=converged, warnings=notes,
                     dropped=tuple(dropped), unbounded=unbounded)
 

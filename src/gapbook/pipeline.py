@@ -279,6 +279,7 @@ def check_cox_up_front(params: Params, study: Any, stages: Sequence[str]) -> Tup
     """
     from .errors import AnalysisError
     from .stage import StageContext
+    from .survival import MONOTONE_ADVICE, unbounded_causes
 
     context = StageContext(params=params, out_dir=Path("."))
     if not context.model().is_time_to_event():
@@ -296,10 +297,8 @@ def check_cox_up_front(params: Params, study: Any, stages: Sequence[str]) -> Tup
         except AnalysisError:  # the stage explains a fit that fails outright
             continue
         if unbounded:
-            causes = "; ".join(f"{term}: {why}" for term, why in unbounded)
             found.append(f"{stage}: the Cox model has no finite estimate (monotone likelihood), so the stage will "
-                         f"report a fit that did not converge: {causes}; merge that level with another or leave the "
-                         "covariate out (for a missing-value indicator, rely on complete cases or multiple imputation)")
+                         f"report a fit that did not converge: {unbounded_causes(unbounded)}; {MONOTONE_ADVICE}")
     return tuple(found)
 
 

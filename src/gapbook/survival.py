@@ -24,7 +24,7 @@ from .errors import AnalysisError, InputError
 from .text import counted
 from .vocabulary import TIES_METHODS
 
-__all__ = ["EventCoding", "check_follow_up", "cox_model", "fit_cox_model", "unbounded_cox_terms", "nelson_aalen", "cumulative_hazard_at",
+__all__ = ["EventCoding", "check_follow_up", "cox_model", "fit_cox_model", "finite_fit", "unbounded_cox_terms", "unbounded_causes", "MONOTONE_ADVICE", "nelson_aalen", "cumulative_hazard_at",
            "kaplan_meier", "MissingFollowUp", "missing_follow_up", "WeibullFit", "fit_weibull_ph", "CensoringDistribution", "censoring_distribution"]
 
 Value = Union[str, int, float]
@@ -214,7 +214,21 @@ def fit_cox_model(model: Any, *, robust: bool = False) -> Any:
     return PHRegResults(model, result.params, bread @ (scores.T @ scores) @ bread)
 
 
-def _finite_fit(result: Any) -> bool:
+def finite_fit(result: Any) -> bool:
+    """Whether a fitted Cox model has finite estimates and a covariance with finite, positive variances.
+
+    statsmodels' Newton can end on NaN estimates or a NaN or negative variance without a warning;
+    such a fit is no fit.
+
+    Parameters
+    ----------
+    result : PHRegResults
+        A fitted model (its ``params`` and ``cov_params()``).
+
+    Returns
+    -------
+    bool
+    """
     covariance = np.asarray(result.cov_params(), dtype=float)
     return bool(np.all(np.isfinite(result.params)) and np.all(np.isfinite(covariance))
                 and np.all(np.diag(covariance) > 0))
@@ -234,7 +248,7 @@ def _maximise_partial_likelihood(model: Any) -> Any:
         try:
             with np.errstate(all="ignore"):
                 result = model.fit()
-            failed = not _finite_fit(result)
+            failed = not finite_fit(result)
         except (np.linalg.LinAlgError, ValueError, OverflowError, FloatingPointError):
             failed = True
     if not failed:
@@ -329,6 +343,26 @@ def unbounded_cox_terms(time: np.ndarray, event: np.ndarray, exog: np.ndarray,
         if side is not None:
             found.append((factor, _unbounded_why(side, event, inside, "at its reference level", reference=True)))
     return tuple(found)
+
+
+def unbounded_causes(unbounded: Sequence[Tuple[str, str]]) -> str:
+    """The terms :func:`unbounded_cox_terms` found, each with why, in one phrase ('term: why; term: why').
+
+    Parameters
+    ----------
+    unbounded : sequence of (term, why)
+        From :func:`unbounded_cox_terms`.
+
+    Returns
+    -------
+    str
+    """
+    return "; ".join(f"{term}: {why}" for term, why in unbounded)
+
+
+# What to do about a monotone likelihood: the page's sentence and check's warning say it alike.
+MONOTONE_ADVICE = ("merge that level with another, or leave the covariate out; for a missing-value indicator or "
+                   "category, prefer complete cases or multiple imputation")
 
 
 def _unbounded_why(side: str, event: np.ndarray, inside: np.ndarray, rows: str, reference: bool = False) -> str:
