@@ -178,27 +178,76 @@ def test_spaces_around_a_column_name_are_dropped_and_said(tmp_path, capsys, engi
     assert "column 3 is named ' age ' in the header; it is read as 'age'" in out.out + out.err
 
 
-@pytest.mark.parametrize("engine", ["pandas", "duckdb"])
-def test_values_near_the_float_limit_raise_no_numpy_warning(tmp_path, capsys, engine):
-    # 1e308 + 1e308 overflows (IEEE 754 double: the largest finite value is about 1.8e308), so the
-    # median's mean of two middle values, the spreads and the default delta grid's SD went inf with
-    # numpy's 'overflow encountered' warning printed raw beside check's output.
-    import warnings
-
+def _near_limit_study(tmp_path, engine, age, fmt="parquet"):
     import numpy as np
     import pandas as pd
 
     n = 60
-    pd.DataFrame({"id": np.arange(n), "arm": np.where(np.arange(n) % 2, "a", "b"),
-                  "age": [1e308, -1e308, np.inf, -0.0] * (n // 4),
-                  "y": np.where(np.arange(n) == 5, np.nan, 1e308)}).to_parquet(tmp_path / "d.parquet", index=False)
-    path = study(tmp_path, PARAMS.replace("path: d.csv, id: id}", f"path: d.parquet, id: id, engine: {engine}}}"))
+    frame = pd.DataFrame({"id": np.arange(n), "arm": np.where(np.arange(n) % 2, "a", "b"),
+                          "age": np.resize(np.asarray(age, dtype=float), n),
+                          "y": np.where(np.arange(n) == 5, np.nan, np.linspace(-1, 1, n))})
+    params = PARAMS.replace("path: d.csv, id: id}", f"path: d.{fmt}, id: id, engine: {engine}}}")
+    if fmt == "csv":
+        return study(tmp_path, params, frame.to_csv(index=False))
+    frame.to_parquet(tmp_path / "d.parquet", index=False)
+    return study(tmp_path, params)
+
+
+@pytest.mark.parametrize("engine", ["pandas", "duckdb"])
+@pytest.mark.parametrize("fmt,age,shown,rows", [
+    ("parquet", [30.0, 1e308, -0.0, 41.0], "1e+308", "data rows 2, 6, 10 (ids 1, 5, 9)"),
+    ("csv", [30.0, 40.0, -1e200, 41.0] + [50.0] * 56, "-1e+200", "data rows 3 (ids 2)"),
+    ("parquet", [30.0, 40.0, 50.0, float("inf")], "inf", "data rows 4, 8, 12 (ids 3, 7, 11)"),
+])
+def test_a_value_too_large_to_square_is_refused_in_check_naming_column_and_rows(tmp_path, capsys, engine, fmt, age,
+                                                                               shown, rows):
+    # 1e308 passed check, then Little's test stopped the mechanism stage with numpy's LinAlgError (exit 1):
+    # its square overflows a double (IEEE 754: the largest finite value is about 1.8e308). Both engines
+    # refuse it up front with the same line, whether or not a model stage runs.
+    import warnings
+
+    path = _near_limit_study(tmp_path, engine, age, fmt)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        code = main(["check", str(path), "--only", "audit"])
+    err = capsys.readouterr().err
+    assert code == 2 and len(err.strip().splitlines()) == 1, err
+    assert f"d.{fmt}: column 'age' holds {shown} at {rows}; " in err
+    assert ("an infinite value cannot be analysed: correct it in the file" if shown == "inf" else
+            "values beyond \u00b11e+70 cannot be analysed (their squares and products overflow a double): rescale "
+            "the column") in err
+    assert not [w for w in caught if issubclass(w.category, RuntimeWarning)], [str(w.message) for w in caught]
+
+
+@pytest.mark.parametrize("engine", ["pandas", "duckdb"])
+def test_values_up_to_the_limit_run_and_a_huge_value_set_missing_by_its_range_is_no_value(tmp_path, capsys, engine):
+    # At the limit (1e70) every stage's sums stay finite; a value the range check sets missing is not analysed.
+    import warnings
+
+    path = _near_limit_study(tmp_path, engine, [1e70, -1e70, 30.0, 1e308])
+    text = path.read_text().replace("variables: {arm: {type: binary, levels: [a, b]}}",
+                                    "variables: {arm: {type: binary, levels: [a, b]}, "
+                                    "age: {range: [-1e71, 1e71], out_of_range: missing}}")
+    path.write_text(text)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         code = main(["check", str(path)] + (["--only", "audit"] if engine == "duckdb" else []))
-    err = capsys.readouterr().err
-    assert code == 0, err
+    out = capsys.readouterr()
+    assert code == 0, out.err
+    assert "15 values outside their plausible range" in out.out
     assert not [w for w in caught if issubclass(w.category, RuntimeWarning)], [str(w.message) for w in caught]
+
+
+@pytest.mark.parametrize("term,shown", [("np.exp(age)", "inf at data row 3"), ("I(age ** 100)", "1.60694e+160 at data row 2")])
+def test_a_formula_term_too_large_to_square_is_refused_by_check(tmp_path, capsys, term, shown):
+    # exp(800) is inf (IEEE 754): check passed and every model stage stopped with statsmodels' "exog contains
+    # inf or nans" (exit 1); 40 ** 100 (1.6e160) has a square past 1e308, and the term was silently left out
+    # as "aliased". The first row past the bound (1e300 / 59 rows, squared root: 1.3e149) is named.
+    path = _near_limit_study(tmp_path, "pandas", [30.0, 40.0, 800.0 if "exp" in term else 41.0, 50.0])
+    path.write_text(path.read_text().replace("y ~ arm + age", f"y ~ arm + {term}"))
+    code, err = check(path, capsys)
+    assert code == 2 and len(err.strip().splitlines()) == 1, err
+    assert f"analysis.formula: the term {term} is {shown}, too large to square" in err
 
 
 def test_a_pipe_or_folder_as_data_or_params_is_named_as_such(tmp_path, capsys):

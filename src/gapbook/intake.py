@@ -33,7 +33,8 @@ __all__ = ["MAD_TO_SD", "FREE_TEXT_LEVEL", "VariableInfo", "Study", "variables_t
            "levels_of", "sha256_of", "read_raw", "read_table", "marker_table", "rows_note", "load_study",
            "read_study", "check_expression_columns", "check_declared_columns", "clean_id", "blank_id_error",
            "duplicate_id_error", "PlainNumbers", "DistinctCells", "ColumnDecision", "EveryValueNeeded",
-           "decide_column", "RANGE_COLUMNS", "EXTREME_COLUMNS", "RANGE_ACTIONS", "range_action", "range_rule"]
+           "decide_column", "RANGE_COLUMNS", "EXTREME_COLUMNS", "RANGE_ACTIONS", "range_action", "range_rule",
+           "MAX_MAGNITUDE", "too_large_error"]
 
 MAD_TO_SD = 1.4826  # consistency constant of the MAD for the normal distribution (Hampel 1974)
 MAX_NAME_LENGTH = 256         # characters in a column name
@@ -50,6 +51,15 @@ FREE_TEXT_LONG_VALUE = 100    # a value this long is free text whatever the coun
 FREE_TEXT_SENTENCE_WORDS = 3
 _SENTENCE_END = re.compile(r"[.!?](?:\s|$)")
 FREE_TEXT_LEVEL = "(text)"    # what such a column holds after intake where it was observed
+# The largest magnitude of a value the stages can compute with. Their sums of squares and
+# cross-products (Little's test, the missingness and imputation models, the analysis model)
+# overflow a double above about 1.8e308 (IEEE 754): a value of 1e160 alone has a square of 1e320,
+# and Little's test then stopped on a LinAlgError. At |x| <= 1e70 a square is at most 1e140 and
+# the square of a product of two values (an interaction, a squared term) at most 1e280, so sums
+# over any file a computer holds stay finite. No measurement in a study comes near 1e70 (an
+# infinite value in a typed file even less): such a value is a code or an error (derived bound,
+# no source).
+MAX_MAGNITUDE = 1e70
 
 
 @dataclass(frozen=True)
@@ -649,6 +659,7 @@ def load_study(params: Params, raw: Optional[pd.DataFrame] = None) -> Study:
                if section.reason_from is not None and section.reason_from in data.columns}
     data, reason_frame = data.drop(columns=list(sources)), reason_frame.drop(columns=list(sources))
     infos = {name: info for name, info in infos.items() if name not in sources}
+    _refuse_too_large(data, infos, ids, label)
     extremes = robust_screen(data, infos, ids, params.missing.robust_z)
     notes = inferred_notes(infos) + tuple(f"{source}: the reasons for the blank cells of {name} "
                                           f"(missing.columns.{name}.reason_from), not a variable of the study"
@@ -1450,6 +1461,50 @@ def _check_ranges(data: pd.DataFrame, reasons: pd.DataFrame, infos: Mapping[str,
             reasons[name] = _with_reason(reasons[name], outside, IMPLAUSIBLE)
     table = pd.DataFrame(rows, columns=list(RANGE_COLUMNS))
     return data, reasons, table
+
+
+def too_large_error(label: str, column: str, value: float, note: str) -> InputError:
+    """The one error for a value beyond :data:`MAX_MAGNITUDE` (or infinite), whichever engine found it.
+
+    Parameters
+    ----------
+    label : str
+        The data file.
+    column : str
+        The column.
+    value : float
+        The first such value in file order.
+    note : str
+        The rows that hold it (:func:`rows_note`).
+
+    Returns
+    -------
+    InputError
+    """
+    if not math.isfinite(value):  # a typed file's inf (a division by zero upstream) is no code one can declare
+        return InputError(f"{label}: column '{one_line(column, 80)}' holds {value:g} at {note}; an infinite value "
+                          "cannot be analysed: correct it in the file, or leave the cell empty if it is unknown")
+    return InputError(f"{label}: column '{one_line(column, 80)}' holds {value:g} at {note}; values beyond "
+                      f"\u00b1{MAX_MAGNITUDE:g} cannot be analysed (their squares and products overflow a double): "
+                      f"rescale the column (e.g. other units), or declare the value a missing marker if it is a code")
+
+
+def _refuse_too_large(data: pd.DataFrame, infos: Mapping[str, VariableInfo], ids: pd.Series, label: str) -> None:
+    """Stop on a value the stages cannot compute with (:data:`MAX_MAGNITUDE`), naming the column and rows.
+
+    Checked on the values that stay values: a cell set missing by a range check or outside its
+    ``applies_if`` condition is no longer analysed.
+    """
+    for name, info in infos.items():
+        if not info.numeric_storage:
+            continue
+        column = data[name].to_numpy(dtype=float)
+        with np.errstate(invalid="ignore"):
+            beyond = np.flatnonzero(np.abs(column) > MAX_MAGNITUDE)
+        if beyond.size:
+            first = column[beyond[0]]
+            rows = beyond[column[beyond] == first]
+            raise too_large_error(label, name, float(first), _rows_note(rows, ids))
 
 
 @dataclass(frozen=True)

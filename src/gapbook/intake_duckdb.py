@@ -37,12 +37,12 @@ import pandas as pd
 from .errors import InputError
 from .expressions import Expression
 from .expressions_sql import SqlColumn, compile_condition, layered_select
-from .intake import (EXTREME_COLUMNS, IMPLAUSIBLE, RANGE_ACTIONS, RANGE_COLUMNS, ColumnDecision, ConditionCounts,
+from .intake import (EXTREME_COLUMNS, IMPLAUSIBLE, MAX_MAGNITUDE, RANGE_ACTIONS, RANGE_COLUMNS, ColumnDecision, ConditionCounts,
                      DistinctCells, EveryValueNeeded, PlainNumbers, RobustCentre, VariableInfo, _format_of,
                      _refuse_markers_that_are_levels, _text_header, applicability_warnings, blank_id_error,
                      check_declared_columns, check_expression_columns, clean_id, decide_column, duplicate_id_error,
                      inferred_notes, marker_table, range_action, range_rule, read_table, robust_centre, robust_z,
-                     rows_note, sha256_of, spread_values, variables_table)
+                     rows_note, sha256_of, spread_values, too_large_error, variables_table)
 from .params import Params, VariableSpec
 from .vocabulary import CATEGORICAL_TYPES, NOT_APPLICABLE, NUMERIC_TYPES
 
@@ -797,6 +797,30 @@ class _Scanner:
                          "rule": range_rule(lo, hi), "action": RANGE_ACTIONS[range_action(self.params, name)]})
         return pd.DataFrame(rows, columns=list(RANGE_COLUMNS))
 
+    def _refuse_too_large(self, columns: Dict[str, ScannedColumn], summaries: Dict[str, Dict[str, Any]]) -> None:
+        """Intake's stop on a value beyond ``MAX_MAGNITUDE`` (or infinite), on the values that stay values.
+
+        The file's smallest and largest plain numbers (already counted) and the listed values kept as
+        numbers decide whether a column needs a look; only then is it read again, in file order.
+        """
+        for name, column in columns.items():
+            if not column.info.numeric_storage or column.value_sql is None:
+                continue
+            summary, decision = summaries[name], column.decision
+            candidates = [summary["lo"], summary["hi"]] + [
+                decision.numbers[i] for i, reason in enumerate(decision.reasons) if reason is None]
+            if all(v is None or abs(float(v)) <= MAX_MAGNITUDE for v in candidates):
+                continue
+            v = f"v_{column.alias}"
+            first = self.con.execute(f"SELECT {v} FROM study WHERE abs({v}) > {literal(MAX_MAGNITUDE)} ORDER BY rn "
+                                     "LIMIT 1").fetchone()
+            if first is None:  # set missing by a range check or outside applies_if
+                continue
+            found = self.con.execute(f"SELECT rn, id FROM study WHERE {v} = ? ORDER BY rn LIMIT 3",
+                                     [first[0]]).fetchall()
+            raise too_large_error(self.label, name, float(first[0]),
+                                  rows_note([r for r, _ in found], [self._id_value(r, i) for r, i in found]))
+
     def _id_value(self, rn: int, ident: Any) -> Any:
         return int(ident) if self.id_column is None else clean_id(ident)
 
@@ -872,6 +896,7 @@ class _Scanner:
         self._create_relation(columns)
         self.warnings.extend(self._condition_warnings(columns))
         issues = self._range_issues(columns)
+        self._refuse_too_large(columns, summaries)
         extremes = self._extremes(columns)
         infos = {name: c.info for name, c in columns.items()}
         return ScannedStudy(connection=self.con, relation="study", n_rows=self.n_rows, columns=columns,

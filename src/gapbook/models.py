@@ -18,9 +18,9 @@ import statsmodels.api as sm
 import statsmodels.formula.api as smf
 
 from .errors import AnalysisError, InputError, did_you_mean
-from .expressions import FORMULA_NAMESPACE, ExpressionError, parse_formula
+from .expressions import FORMULA_NAMESPACE, ExpressionError, formula_environment, parse_formula
 from .inference import wald_inference
-from .text import first_upper
+from .text import first_upper, one_line
 from .survival import (MONOTONE_ADVICE, EventCoding, check_follow_up, cox_model, finite_fit, fit_cox_model,
                        unbounded_causes, unbounded_cox_terms)
 from .vocabulary import FAMILY_NAMES, TIME_TO_EVENT_FAMILIES, effect_scale, has_ratio_scale
@@ -303,6 +303,67 @@ def identifiable_columns(design: np.ndarray, names: Sequence[str], *, tolerance:
     return kept, dropped
 
 
+# The most a design column's squares may sum to. A fit's sums of squares and cross-products overflow a
+# double above about 1.8e308 (IEEE 754); a column past this (np.exp(age) with an age of 800, age ** 60)
+# was left out as "aliased" or stopped the stage with "exog contains inf or nans" after check passed.
+# The margin of 1e8 leaves room for the fit's own products (derived bound, no source).
+MAX_DESIGN_SQUARES = 1e300
+
+
+def refuse_overflowing_design(matrix: Any, names: Sequence[str], rows: Sequence[Any]) -> None:
+    """Stop (option ``formula``) on a design or outcome column whose values a fit cannot square and sum.
+
+    The variables themselves are bounded at intake (:data:`gapbook.intake.MAX_MAGNITUDE`); a
+    formula's terms (``np.exp(x)``, ``I(x ** 9)``) can still reach infinity or values whose squares
+    overflow. The error names the term, the value and the data row (1-based) that holds it.
+
+    Parameters
+    ----------
+    matrix : array-like
+        The design (or outcome) matrix, one row per analysed row.
+    names : sequence of str
+        The column names (statsmodels' term names).
+    rows : sequence
+        The data frame's index labels of the analysed rows.
+
+    Returns
+    -------
+    None
+    """
+    values = np.asarray(matrix, dtype=float).reshape(len(rows), -1)
+    if values.size == 0:
+        return
+    limit = np.sqrt(MAX_DESIGN_SQUARES / values.shape[0])
+    with np.errstate(invalid="ignore"):
+        beyond = ~(np.abs(values) <= limit)
+    if not beyond.any():
+        return
+    row, j = min(zip(*np.nonzero(beyond)))
+    label = rows[row]
+    where = f"data row {int(label) + 1}" if isinstance(label, (int, np.integer)) else f"row {one_line(label, 40)}"
+    raise InputError(f"the term {names[j]} is {values[row, j]:g} at {where}, too large to square and sum over the "
+                     f"{values.shape[0]:,} analysed rows in double precision; rescale the variable (e.g. other "
+                     "units) or write the term differently", option="formula")
+
+
+def _refuse_overflowing_model(model: Any) -> None:
+    """:func:`refuse_overflowing_design` on a statsmodels model's outcome and design."""
+    rows = list(model.data.row_labels) if model.data.row_labels is not None else list(range(model.exog.shape[0]))
+    refuse_overflowing_design(model.endog, [model.endog_names], rows)
+    refuse_overflowing_design(model.exog, model.exog_names, rows)
+
+
+def _refuse_infinite_terms(data: pd.DataFrame, formula: str) -> None:
+    """After statsmodels refused a design with infinite values: the term and row that hold one."""
+    import patsy
+
+    with warnings.catch_warnings(), np.errstate(all="ignore"):  # numpy's overflow warning is what is explained
+        warnings.simplefilter("ignore", RuntimeWarning)
+        outcome, design = patsy.dmatrices(formula, data, eval_env=formula_environment(), return_type="dataframe")
+    refuse_overflowing_design(outcome.to_numpy(), list(outcome.columns), list(outcome.index))
+    refuse_overflowing_design(design.to_numpy(), list(design.columns), list(design.index))
+
+
 # statsmodels' warnings that say a fit did not converge or its estimates do not exist
 NOT_CONVERGED_WARNINGS = ("ConvergenceWarning", "PerfectSeparationWarning", "IterationLimitWarning")
 
@@ -391,6 +452,7 @@ def fit_model(data: pd.DataFrame, *, formula: str, family: str = "gaussian", rob
                 model = smf.glm(formula, data=data, family=fam, eval_env=FORMULA_NAMESPACE, **kwargs)
             if int(model.nobs) == 0:
                 raise InputError(f"no row has every variable of '{formula}' observed", option="formula")
+            _refuse_overflowing_model(model)
             kept, dropped = identifiable_columns(model.exog, model.exog_names)
             if dropped:
                 design = pd.DataFrame(model.exog[:, kept], columns=[model.exog_names[j] for j in kept])
@@ -410,6 +472,8 @@ def fit_model(data: pd.DataFrame, *, formula: str, family: str = "gaussian", rob
         message = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
         if int(data.dropna(subset=[outcome]).shape[0]) == 0 or "zero-size" in message or "0 rows" in message:
             raise InputError(f"no row has every variable of '{formula}' observed", option="formula") from None
+        if "inf" in message:  # statsmodels: "exog contains inf or nans"
+            _refuse_infinite_terms(data, formula)
         raise AnalysisError(f"the model '{formula}' could not be fitted: {message}") from None
     notes, failed = _fit_warnings(caught)
     converged = bool(getattr(result, "converged", True)) and not failed
@@ -436,6 +500,7 @@ def _fit_cox(data: pd.DataFrame, *, formula: str, family: str, robust: bool, alp
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
             model = cox_model(data, formula=formula, event=event, ties=ties, eval_env=FORMULA_NAMESPACE)
+            _refuse_overflowing_model(model)
             names = list(model.exog_names)
             kept, dropped = identifiable_columns(np.column_stack([np.ones(model.exog.shape[0]), model.exog]),
                                                  ["(baseline hazard)"] + names)
@@ -451,6 +516,8 @@ def _fit_cox(data: pd.DataFrame, *, formula: str, family: str, robust: bool, alp
         raise
     except Exception as exc:
         message = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+        if "inf" in message:  # statsmodels: "exog contains inf or nans"
+            _refuse_infinite_terms(data, formula)
         raise AnalysisError(f"the Cox model '{formula}' could not be fitted: {message}") from None
     notes, failed = _fit_warnings(caught)
     terms = tuple(names[j] for j in columns)
