@@ -11,6 +11,7 @@ million-row file costs one pass per column plus a dictionary look-up per distinc
 """
 from __future__ import annotations
 
+import codecs
 import csv
 import hashlib
 import math
@@ -34,7 +35,7 @@ __all__ = ["MAD_TO_SD", "FREE_TEXT_LEVEL", "VariableInfo", "Study", "variables_t
            "read_study", "check_expression_columns", "check_declared_columns", "clean_id", "blank_id_error",
            "duplicate_id_error", "PlainNumbers", "DistinctCells", "ColumnDecision", "EveryValueNeeded",
            "decide_column", "RANGE_COLUMNS", "EXTREME_COLUMNS", "RANGE_ACTIONS", "range_action", "range_rule",
-           "MAX_MAGNITUDE", "too_large_error"]
+           "MAX_MAGNITUDE", "too_large_error", "nul_error"]
 
 MAD_TO_SD = 1.4826  # consistency constant of the MAD for the normal distribution (Hampel 1974)
 MAX_NAME_LENGTH = 256         # characters in a column name
@@ -295,6 +296,7 @@ def read_table(path: Path, fmt: str = "auto", sheet: Any = None, encoding: str =
             if path.stat().st_size == 0:
                 raise InputError(f"{path}: the data file is empty; it needs a header row and data rows")
             sep = delimiter or ("," if fmt == "csv" else "\t")
+            _refuse_binary_text(path, encoding, named)
             header = _text_header(path, sep, encoding)
             raw = pd.read_csv(path, sep=sep, dtype=str, keep_default_na=False, na_filter=False, encoding=encoding,
                               skipinitialspace=False, nrows=nrows)
@@ -340,6 +342,43 @@ def read_table(path: Path, fmt: str = "auto", sheet: Any = None, encoding: str =
         raise InputError(f"{path}: the data file has no data rows; it needs a header row and data rows")
     raw, warnings = check_header(raw, str(path), ignore=ignore, fmt=fmt, delimiter=delimiter)
     return raw.reset_index(drop=True), warnings
+
+
+# A text file's first bytes tell a binary file (or text in another encoding) at once, before any parser
+# reads a 3 GiB file of NUL bytes as one header line: NUL is no character of a CSV file (RFC 4180
+# allows printable text, commas, quotes and line breaks), and a header row is never 1 MiB long (at most
+# 256 characters a name: 4,000 names would fit).
+SNIFF_BYTES = 64 * 1024
+MAX_HEADER_BYTES = 1 << 20
+_WIDE_ENCODINGS = ("utf-16", "utf-32")
+
+
+def _refuse_binary_text(path: Path, encoding: str, named: str) -> None:
+    """Stop at once on a CSV/TSV file that is binary, in a wider encoding than the params say, or has no line break.
+
+    The first 64 KiB are decoded with the file's encoding (UTF-16 and UTF-32 text, declared as
+    such in ``data.encoding``, holds NUL bytes but no NUL character) and must hold no NUL; the
+    first 1 MiB must hold a line break (``\n`` or ``\r``) when the file is longer.
+    """
+    with open(path, "rb") as handle:
+        head = handle.read(MAX_HEADER_BYTES)
+    wide = codecs.lookup(encoding).name.startswith(_WIDE_ENCODINGS)
+    if not wide and head.startswith((codecs.BOM_UTF16_LE, codecs.BOM_UTF16_BE)):
+        raise InputError(f"{path}: the file starts with a UTF-16 or UTF-32 byte-order mark but data.encoding is "
+                         f"{named}; set data.encoding: utf-16 (or utf-32), or save the file as UTF-8")
+    decoder = codecs.getincrementaldecoder(encoding)(errors="replace")
+    text = decoder.decode(head[:SNIFF_BYTES])
+    nul = text.find("\x00")
+    if nul >= 0:
+        line = text.count("\n", 0, nul) + 1 if "\n" in text[:nul] else text.count("\r", 0, nul) + 1
+        hint = "" if wide else " (or UTF-16/UTF-32 text: then set data.encoding, e.g. utf-16)"
+        raise InputError(f"{path}: a NUL character on line {line:,} (within its first 64 KiB): this is not a "
+                         f"text file gapbook reads{hint}; give the study's CSV or TSV export, or remove the NUL "
+                         "characters")
+    text += decoder.decode(head[SNIFF_BYTES:])
+    if len(head) == MAX_HEADER_BYTES and "\n" not in text and "\r" not in text:
+        raise InputError(f"{path}: no line break in its first 1 MiB, so its header row alone would be longer; this "
+                         "is not a delimited text file gapbook reads: check data.path and data.format")
 
 
 def _text_header(path: Path, sep: str, encoding: str) -> List[str]:
@@ -896,6 +935,10 @@ def _split_ids(raw: pd.DataFrame, params: Params, label: str) -> Tuple[pd.Series
             raise InputError(f"{label}: the subject column '{id_column}' (design.subject) is empty at data row "
                              f"{int(blank[0]) + 1}; every row needs its participant")
         raise blank_id_error(label, id_column, int(blank[0]))
+    if not pd.api.types.is_numeric_dtype(ids.dtype):
+        nul = np.flatnonzero(ids.astype(str).str.contains("\x00", regex=False).to_numpy())
+        if len(nul):
+            raise nul_error(label, id_column, ids.iloc[nul[0]], _rows_note(nul[:1], ids))
     dup = ids.duplicated(keep=False).to_numpy() if not repeats else np.zeros(len(ids), dtype=bool)
     if dup.any():
         rows = np.flatnonzero(dup)
@@ -987,6 +1030,7 @@ def decide_column(cells: DistinctCells, column: str, spec: VariableSpec, markers
     """
     warnings = [] if warnings is None else warnings
     uniques = list(cells.uniques)
+    _refuse_nul(uniques, column, locate, label)
     unique_reason = [markers.reason_for(u) for u in uniques]
     # NA cells of typed files (None/NaN) are blank.
     na_reason = markers.text.get("", BLANK)
@@ -1121,6 +1165,36 @@ def _normalise_column(raw: pd.Series, column: str, spec: VariableSpec, markers: 
                                                     categories=list(decision.categories),
                                                     ordered=spec.type == "ordinal"), index=raw.index, name=column)
     return value, pd.Series(reason_cat, index=raw.index, name=column), decision.info
+
+
+def nul_error(label: str, column: str, value: Any, note: str) -> InputError:
+    """The error for a cell holding a NUL character, whichever engine and column (ids too) found it.
+
+    Parameters
+    ----------
+    label : str
+        The data file.
+    column : str
+        The column.
+    value : object
+        The cell.
+    note : str
+        The rows that hold it (:func:`rows_note`).
+
+    Returns
+    -------
+    InputError
+    """
+    return InputError(f"{label}: column '{one_line(column, 80)}' holds '{one_line(value, 80)}' at {note}, with a NUL "
+                      "character (\\x00), which is no text: remove it from the file (or export the file again)")
+
+
+def _refuse_nul(uniques: Sequence[Any], column: str, locate: Locate, label: str) -> None:
+    """A cell holding a NUL character is a damaged export, not a text to keep or a level (and no SQL text holds it)."""
+    found = [i for i, u in enumerate(uniques) if isinstance(u, str) and "\x00" in u]
+    if found:
+        first, note = locate(found)
+        raise nul_error(label, column, uniques[first], note)
 
 
 def _refuse_stray_text(cells: DistinctCells, kept: List[int], numbers: Dict[int, Optional[float]], column: str,

@@ -41,7 +41,7 @@ from .intake import (EXTREME_COLUMNS, IMPLAUSIBLE, MAX_MAGNITUDE, RANGE_ACTIONS,
                      DistinctCells, EveryValueNeeded, PlainNumbers, RobustCentre, VariableInfo, _format_of,
                      _refuse_markers_that_are_levels, _text_header, applicability_warnings, blank_id_error,
                      check_declared_columns, check_expression_columns, clean_id, decide_column, duplicate_id_error,
-                     inferred_notes, marker_table, range_action, range_rule, read_table, robust_centre, robust_z,
+                     inferred_notes, marker_table, nul_error, range_action, range_rule, read_table, robust_centre, robust_z,
                      rows_note, sha256_of, spread_values, too_large_error, variables_table)
 from .params import Params, VariableSpec
 from .vocabulary import CATEGORICAL_TYPES, NOT_APPLICABLE, NUMERIC_TYPES
@@ -465,9 +465,14 @@ class _Scanner:
         if self.id_column is None:
             return
         cid = self._clean_id_sql()
-        blank = self.con.execute(f"SELECT min(rn) FROM cells WHERE ({cid}) IS NULL").fetchone()[0]
+        # A text id with a NUL character is refused as intake refuses it (found in the same pass).
+        nul_sql = "min(rn) FILTER (WHERE contains(id, chr(0)))" if self.id_kind == "text" else "NULL"
+        blank, nul = self.con.execute(f"SELECT min(rn) FILTER (WHERE ({cid}) IS NULL), {nul_sql} FROM cells").fetchone()
         if blank is not None:
             raise blank_id_error(self.label, self.id_column, int(blank))
+        if nul is not None:
+            shown = clean_id(self.con.execute("SELECT id FROM cells WHERE rn = ?", [nul]).fetchone()[0])
+            raise nul_error(self.label, self.id_column, shown, rows_note([nul], [shown]))
         # Strictly increasing ids (the usual case) are unique; otherwise look for duplicates.
         unordered = self.con.execute(f"SELECT count(*) FROM (SELECT {cid} AS cid, lag({cid}) OVER (ORDER BY rn) AS prev "
                                      "FROM cells) WHERE prev >= cid").fetchone()[0]
