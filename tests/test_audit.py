@@ -119,6 +119,22 @@ def test_monotone_detection_by_hand():
     assert broken.pct_rows_in_dropout_order == pytest.approx(600 / 7)
 
 
+def test_one_incomplete_variable_is_not_called_a_dropout_design():
+    # Little & Rubin (2019, section 1.3): with one incomplete variable any pattern set is monotone by
+    # definition, so the audit must not read it as dropout; it names the variable instead.
+    raw = _hand_raw().assign(b="1", c="5", d="2")
+    raw.loc[1, "c"] = ""
+    one = audit_study(load_study(_hand_params(), raw=raw))
+    assert one.monotone == 1 and one.n_patterns == 2
+    sentence = one.sentences[3]
+    assert "monotone only trivially" in sentence and "'c'" in sentence and "dropout design" not in sentence
+    # With two or more incomplete variables in nested patterns, the dropout reading is the real one.
+    dropout = audit_study(load_study(_hand_params(), raw=_hand_raw()))
+    assert "as when participants drop out" in dropout.sentences[3]
+    complete = audit_study(load_study(_hand_params(), raw=_hand_raw().assign(b="1", c="5", d="2")))
+    assert "no variable has a missing value" in complete.sentences[3]
+
+
 def _monotone_by_definition(bits: np.ndarray) -> bool:
     """Definition (Little & Rubin 2019, 1.3): some ordering makes every row's gaps a tail of it."""
     p = bits.shape[1]

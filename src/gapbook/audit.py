@@ -36,7 +36,7 @@ from .text import counted, level_text
 from .vocabulary import NOT_APPLICABLE, infer_type
 
 __all__ = ["DEFAULT_THRESHOLD", "GroupCounts", "MissingnessCounts", "AuditResult", "reason_slug", "count_patterns",
-           "patterns_from_words", "pattern_table", "is_monotone", "rows_in_dropout_order", "group_codes",
+           "patterns_from_words", "pattern_table", "is_monotone", "pattern_shape", "rows_in_dropout_order", "group_codes",
            "audit_frame", "audit_study", "audit_from_counts"]
 
 DEFAULT_THRESHOLD = 0.20  # common practice, no source
@@ -895,11 +895,45 @@ def audit_from_counts(counts: MissingnessCounts, *, types: Mapping[str, str], th
     return dataclasses.replace(result, sentences=audit_sentences(result))
 
 
+def pattern_shape(result: AuditResult, *, short: bool = False) -> str:
+    """What the patterns' shape says: monotone (as with dropout), not monotone, or trivially monotone.
+
+    With at most one incomplete variable every set of patterns is monotone by definition
+    (Little & Rubin 2019, section 1.3): there is no order of gaps to read, so calling it a
+    dropout design would say something the data do not show.
+
+    Parameters
+    ----------
+    result : AuditResult
+        The audit.
+    short : bool
+        The few words a figure title has room for.
+
+    Returns
+    -------
+    str
+    """
+    incomplete = [name for name, n in zip(result.variables["variable"], result.variables["n_missing"]) if n > 0]
+    if not incomplete:
+        return "nothing missing" if short else "complete: no variable has a missing value"
+    if len(incomplete) == 1:
+        if short:
+            return "one incomplete variable"
+        return (f"monotone only trivially: one variable ('{incomplete[0]}') is incomplete, so each row either "
+                "has it or lacks it and there is no order of dropout to read (whether its gaps depend on the "
+                "other variables is the mechanism stage's question)")
+    if result.monotone:
+        return ("monotone (dropout)" if short else
+                f"monotone: the {len(incomplete)} incomplete variables can be ordered so that a row missing one "
+                "misses every later one, as when participants drop out")
+    return ("not monotone" if short else
+            f"not monotone; {result.pct_rows_in_dropout_order:.1f} % of rows fit the dropout order")
+
+
 def audit_sentences(result: AuditResult) -> Tuple[str, ...]:
     """The study at a glance: rows, complete rows, incomplete and flagged variables, cells, patterns."""
     summary = result.summary.iloc[0]
-    pattern_words = ("monotone (a dropout design)" if result.monotone else
-                     f"not monotone; {result.pct_rows_in_dropout_order:.1f} % of rows fit the dropout order")
+    pattern_words = pattern_shape(result)
     return (
         f"{result.n_rows:,} rows and {result.n_variables} variables.",
         f"{result.n_complete_rows:,} rows ({summary['pct_complete_rows']:.1f} %) have nothing missing; "

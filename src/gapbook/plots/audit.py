@@ -17,6 +17,7 @@ from matplotlib.patches import Patch
 
 from . import EMPHASIS, GRID, MAX_VARIABLES_SHOWN, MISSING, NEUTRAL, OBSERVED, REFERENCE, new_figure, shown_of
 from .palette import BACKGROUND, REASON_SHADES, reason_shades, scale
+from ..audit import pattern_shape
 
 __all__ = ["MAX_TOGETHER", "missingness_map", "missing_share", "missing_together", "common_patterns"]
 
@@ -123,7 +124,7 @@ def missingness_map(result, max_slices: int = MAP_SLICES):
     axes.set_xticklabels(order, rotation=60, ha="right")
     axes.set_ylabel("rows, sorted by missingness pattern (% of rows)")
     axes.set_xlabel("variables, from least to most missing")
-    shape = "monotone (dropout)" if result.monotone else "not monotone"
+    shape = pattern_shape(result, short=True)
     folded = (f"\nthe {folded_patterns:,} rarer patterns drawn as one band at the bottom, shaded by share missing"
               if folded_patterns else "")
     axes.set_title(f"Where are the gaps, and do they line up across rows?\n{total:,} rows in "
