@@ -58,8 +58,9 @@ def test_two_rows_for_one_visit_names_subject_and_visit():
     reasons = pd.concat([reasons, reasons.iloc[[4]]], ignore_index=True)
     with pytest.raises(InputError, match="subject B has 2 rows for visit 4") as error:
         repeated_study(data, reasons, layout="long", subject="id", visit="week", visits=VISITS)
-    # a CDISC ADaM BDS file with several parameters (PARAMCD) arrives like this: the message says what to filter
-    assert "PARAMCD" in str(error.value) and "DTYPE" in str(error.value)
+    # a CDISC ADaM BDS file with several parameters (PARAMCD) arrives like this: the message names the row filter
+    # option (data.keep_rows in a params file) and a condition to write
+    assert "PARAMCD" in str(error.value) and "DTYPE" in str(error.value) and "keep_rows" in str(error.value)
 
 
 def test_visit_not_in_plan_and_missing_visit_name_the_subject():
@@ -67,8 +68,8 @@ def test_visit_not_in_plan_and_missing_visit_name_the_subject():
     data.loc[7, "week"] = "12"
     with pytest.raises(InputError, match=r"subject C has visit 12 \(data row 8\), which is not a planned visit") as error:
         repeated_study(data, reasons, layout="long", subject="id", visit="week", visits=VISITS)
-    # an unscheduled or early-termination row of an ADaM file: keep the analysis visits (ANL01FL = 'Y')
-    assert "ANL01FL = 'Y'" in str(error.value)
+    # an unscheduled or early-termination row of an ADaM file: keep the analysis visits with the row filter
+    assert "ANL01FL == 'Y'" in str(error.value) and "keep_rows" in str(error.value)
     data.loc[7, "week"] = np.nan
     with pytest.raises(InputError, match=r"subject C has no visit \(data row 8\)"):
         repeated_study(data, reasons, layout="long", subject="id", visit="week", visits=VISITS)

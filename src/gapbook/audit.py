@@ -31,13 +31,14 @@ import pandas as pd
 
 from .errors import InputError, did_you_mean
 from .intake import EXTREME_COLUMNS, RANGE_COLUMNS, Study
+from .row_filter import RowsKept
 from .params import DEFAULT_MAX_PATTERNS, MAX_PATTERNS_LISTED
 from .text import counted, level_text
 from .vocabulary import NOT_APPLICABLE, infer_type
 
 __all__ = ["DEFAULT_THRESHOLD", "GroupCounts", "MissingnessCounts", "AuditResult", "reason_slug", "count_patterns",
            "patterns_from_words", "pattern_table", "is_monotone", "pattern_shape", "rows_in_dropout_order", "group_codes",
-           "audit_frame", "audit_study", "audit_from_counts"]
+           "audit_frame", "audit_study", "audit_from_counts", "with_intake"]
 
 DEFAULT_THRESHOLD = 0.20  # common practice, no source
 UNSPECIFIED = "unspecified"  # reason given to NaN cells of a plain frame that carries no reasons
@@ -166,6 +167,7 @@ class AuditResult:
     warnings: Tuple[str, ...] = ()
     engine: str = "pandas"
     max_patterns: int = DEFAULT_MAX_PATTERNS
+    rows_kept: Optional[RowsKept] = None
 
     def listed_patterns(self) -> pd.DataFrame:
         """The pattern table's rows that are one pattern each (the remainder row left out)."""
@@ -184,7 +186,7 @@ class AuditResult:
             "audit_comissingness": self.comissingness, "audit_by_group": self.by_group,
             "audit_reasons": self.reasons, "audit_range": self.range_issues,
             "audit_extremes": self.extremes, "audit_types": self.types,
-        }
+        } | ({"audit_rows_kept": self.rows_kept.frame()} if self.rows_kept is not None else {})
 
 
 # ---------------------------------------------------------------------------
@@ -799,7 +801,31 @@ def audit_study(study: Study, *, threshold: float = DEFAULT_THRESHOLD, by: Seque
     result = _audit(study.data, study.reasons, study.types, float(threshold), by, int(top_patterns),
                     study.range_issues.reset_index(drop=True), study.extreme_values.reset_index(drop=True),
                     study.variables_table(), int(max_patterns))
-    return dataclasses.replace(result, notes=tuple(study.notes), warnings=tuple(study.warnings))
+    return with_intake(result, notes=study.notes, warnings=study.warnings, rows_kept=study.rows_kept)
+
+
+def with_intake(result: AuditResult, *, notes: Sequence[str], warnings: Sequence[str],
+                rows_kept: Optional[RowsKept], engine: str = "pandas") -> AuditResult:
+    """The audit with what intake found: its notes and warnings, and the rows ``data.keep_rows`` kept.
+
+    Parameters
+    ----------
+    result : AuditResult
+        The counts' audit.
+    notes, warnings : sequence of str
+        The intake's notes and warnings.
+    rows_kept : RowsKept or None
+        What the row filter kept (its sentence leads the page; its table is ``audit_rows_kept``).
+    engine : str
+        Which engine counted.
+
+    Returns
+    -------
+    AuditResult
+    """
+    result = dataclasses.replace(result, notes=tuple(notes), warnings=tuple(warnings), engine=engine,
+                                 rows_kept=rows_kept)
+    return dataclasses.replace(result, sentences=audit_sentences(result))
 
 
 def count_missingness(data: pd.DataFrame, reasons: pd.DataFrame, by: Sequence[str] = ()) -> MissingnessCounts:
@@ -934,7 +960,8 @@ def audit_sentences(result: AuditResult) -> Tuple[str, ...]:
     """The study at a glance: rows, complete rows, incomplete and flagged variables, cells, patterns."""
     summary = result.summary.iloc[0]
     pattern_words = pattern_shape(result)
-    return (
+    kept = (result.rows_kept.audit_sentence(),) if result.rows_kept is not None else ()
+    return kept + (
         f"{result.n_rows:,} rows and {result.n_variables} variables.",
         f"{result.n_complete_rows:,} rows ({summary['pct_complete_rows']:.1f} %) have nothing missing; "
         f"{counted(int(summary['incomplete_variables']), 'variable')} "

@@ -15,7 +15,7 @@ import numpy as np
 import pandas as pd
 
 from .audit import (DEFAULT_MAX_PATTERNS, DEFAULT_THRESHOLD, AuditResult, GroupCounts, MissingnessCounts, _check_options,
-                    _grouping_variables, audit_from_counts, group_codes, patterns_from_words)
+                    _grouping_variables, audit_from_counts, group_codes, patterns_from_words, with_intake)
 from .vocabulary import NOT_APPLICABLE
 from .intake_duckdb import ScannedColumn, ScannedStudy
 
@@ -133,5 +133,5 @@ def audit_scanned(scanned: ScannedStudy, *, threshold: float = DEFAULT_THRESHOLD
                                    range_issues=scanned.range_issues.reset_index(drop=True),
                                    extremes=scanned.extreme_values.reset_index(drop=True),
                                    types_table=scanned.variables_table(), max_patterns=int(max_patterns))
-    return dataclasses.replace(result, notes=tuple(scanned.notes), warnings=tuple(scanned.warnings),
-                               engine="duckdb")
+    return with_intake(result, notes=scanned.notes, warnings=scanned.warnings, rows_kept=scanned.rows_kept,
+                       engine="duckdb")

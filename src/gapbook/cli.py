@@ -16,7 +16,7 @@ from typing import List, Optional, Sequence
 from . import __version__
 from .compute import LOCAL, check_cluster_address
 from .errors import AnalysisError, InputError
-from .text import counted
+from .text import counted, one_line
 
 __all__ = ["main"]
 
@@ -108,6 +108,9 @@ def cmd_check(args: argparse.Namespace) -> int:
     _print(f"params: {params.source}")
     _print(f"data:   {data.source} ({data.n_rows} rows, {len(data.columns)} variables, sha256 {data.sha256[:12]}; "
            f"read with {data.engine})")
+    if data.rows_kept is not None:
+        kept = data.rows_kept
+        _print(f"rows:   {kept.n_kept} of {kept.n_read} kept by data.keep_rows ({one_line(kept.condition, 200)})")
     _print(f"missing: {counted(data.missing_cells, 'cell')} in {counted(data.incomplete_variables, 'variable')}; "
            f"{counted(data.complete_rows, 'row')} complete")
     for note in data.notes:

@@ -27,6 +27,7 @@ import pandas as pd
 from .errors import InputError, did_you_mean
 from .expressions import CONDITION, parse_expression
 from .params import Params, VariableSpec
+from .row_filter import RowsKept, filter_only_columns, ignored_when_read, keep_rows_expression, rows_to_keep
 from .vocabulary import BLANK, CATEGORICAL_TYPES, IMPLAUSIBLE, NOT_APPLICABLE, NUMERIC_TYPES, infer_type
 from .text import one_line
 
@@ -104,6 +105,7 @@ class Study:
     sha256: Optional[str] = None
     notes: Tuple[str, ...] = field(default_factory=tuple)
     warnings: Tuple[str, ...] = field(default_factory=tuple)   # printed by check and run, shown in the audit
+    rows_kept: Optional["RowsKept"] = None   # data.keep_rows: the condition, rows read and kept (None: every row)
 
     @property
     def missing(self) -> pd.DataFrame:
@@ -624,8 +626,9 @@ def _add_marker(marker: Any, label: Optional[str], text: Dict[str, str], numbers
 
 
 def _rows_note(rows: np.ndarray, ids: pd.Series, limit: int = 3) -> str:
+    # rows are positions; ids' index holds each position's 0-based file row (data.keep_rows leaves gaps)
     shown = rows[:limit]
-    return rows_note(shown, [ids.iloc[r] for r in shown])
+    return rows_note([ids.index[r] for r in shown], [ids.iloc[r] for r in shown])
 
 
 def rows_note(rows: Sequence[int], ids: Sequence[Any]) -> str:
@@ -669,13 +672,15 @@ def load_study(params: Params, raw: Optional[pd.DataFrame] = None) -> Study:
     if raw is None:
         path = params.data_path
         raw, warnings = read_table(path, params.data.format, params.data.sheet, params.data.encoding,
-                                   delimiter=params.data.delimiter, ignore=tuple(params.data.ignore))
+                                   delimiter=params.data.delimiter, ignore=ignored_when_read(params))
         source, sha = str(path), sha256_of(path)
     else:
-        raw, warnings = check_header(raw, "data", ignore=tuple(params.data.ignore), fmt="frame")
+        raw, warnings = check_header(raw, "data", ignore=ignored_when_read(params), fmt="frame")
     label = source or "data"
+    raw, rows_kept, file_rows = _keep_rows(raw, params, label, warnings)
+    raw = raw.drop(columns=list(filter_only_columns(params)))
     check_declared_columns(params, list(raw.columns), label)
-    ids, id_column, raw = _split_ids(raw, params, label)
+    ids, id_column, raw = _split_ids(raw, params, label, file_rows)
     conditions = check_expression_columns(params, list(raw.columns))
     _refuse_markers_that_are_levels(params)
 
@@ -703,9 +708,20 @@ def load_study(params: Params, raw: Optional[pd.DataFrame] = None) -> Study:
     notes = inferred_notes(infos) + tuple(f"{source}: the reasons for the blank cells of {name} "
                                           f"(missing.columns.{name}.reason_from), not a variable of the study"
                                           for source, name in sources.items())
-    return Study(data=data, reasons=reason_frame, variables=infos, ids=ids, id_column=id_column,
+    return Study(data=data, reasons=reason_frame, variables=infos, ids=ids.reset_index(drop=True), id_column=id_column,
                  range_issues=issues, extreme_values=extremes, source=source, sha256=sha, notes=notes,
-                 warnings=tuple(warnings))
+                 warnings=tuple(warnings), rows_kept=rows_kept)
+
+
+def _keep_rows(raw: pd.DataFrame, params: Params, label: str, warnings: List[str]
+               ) -> Tuple[pd.DataFrame, Optional[RowsKept], np.ndarray]:
+    """The rows ``data.keep_rows`` keeps (numbered from 0 again), what it kept, and each row's 0-based file row."""
+    expression = keep_rows_expression(params, list(raw.columns))
+    if expression is None:
+        return raw, None, np.arange(len(raw))
+    keep, kept, found = rows_to_keep(raw, expression, params=params, label=label)
+    warnings.extend(found)
+    return raw[keep].reset_index(drop=True), kept, np.flatnonzero(keep)
 
 
 # A reason column (missing.columns.<x>.reason_from) with more distinct texts than this is free text, not reasons.
@@ -920,21 +936,24 @@ def duplicate_id_error(label: str, id_column: str, first: Any, rows: Sequence[in
                       "ids must be unique")
 
 
-def _split_ids(raw: pd.DataFrame, params: Params, label: str) -> Tuple[pd.Series, Optional[str], pd.DataFrame]:
+def _split_ids(raw: pd.DataFrame, params: Params, label: str, file_rows: np.ndarray
+               ) -> Tuple[pd.Series, Optional[str], pd.DataFrame]:
     id_column = params.data.id
     # A follow-up study's participant column is its id; in the long layout it repeats, once per visit.
     repeats = params.design is not None and params.design.layout == "long"
     if params.design is not None:
         id_column = params.subject_column
+    # The ids' index is each row's 0-based file row (data.keep_rows leaves gaps), which messages name;
+    # without an id column a row's id is its file row number.
     if id_column is None:
-        return pd.Series(np.arange(1, len(raw) + 1), name="row"), None, raw
-    ids = raw[id_column].map(clean_id)
+        return pd.Series(file_rows + 1, index=pd.Index(file_rows), name="row"), None, raw
+    ids = pd.Series(raw[id_column].map(clean_id).to_numpy(), index=pd.Index(file_rows))
     blank = np.flatnonzero(ids.isna().to_numpy())
     if len(blank):
         if repeats:
             raise InputError(f"{label}: the subject column '{id_column}' (design.subject) is empty at data row "
-                             f"{int(blank[0]) + 1}; every row needs its participant")
-        raise blank_id_error(label, id_column, int(blank[0]))
+                             f"{int(file_rows[blank[0]]) + 1}; every row needs its participant")
+        raise blank_id_error(label, id_column, int(file_rows[blank[0]]))
     if not pd.api.types.is_numeric_dtype(ids.dtype):
         nul = np.flatnonzero(ids.astype(str).str.contains("\x00", regex=False).to_numpy())
         if len(nul):
@@ -943,8 +962,8 @@ def _split_ids(raw: pd.DataFrame, params: Params, label: str) -> Tuple[pd.Series
     if dup.any():
         rows = np.flatnonzero(dup)
         first = ids.iloc[rows[0]]
-        raise duplicate_id_error(label, id_column, first, np.flatnonzero((ids == first).to_numpy()))
-    return ids.rename(id_column).reset_index(drop=True), id_column, raw.drop(columns=[id_column])
+        raise duplicate_id_error(label, id_column, first, file_rows[np.flatnonzero((ids == first).to_numpy())])
+    return ids.rename(id_column), id_column, raw.drop(columns=[id_column])
 
 
 @dataclass(frozen=True)

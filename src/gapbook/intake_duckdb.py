@@ -44,6 +44,7 @@ from .intake import (EXTREME_COLUMNS, IMPLAUSIBLE, MAX_MAGNITUDE, RANGE_ACTIONS,
                      inferred_notes, marker_table, nul_error, range_action, range_rule, read_table, robust_centre, robust_z,
                      rows_note, sha256_of, spread_values, too_large_error, variables_table)
 from .params import Params, VariableSpec
+from .row_filter import RowsKept, decide_rows, filter_only_columns, ignored_when_read, keep_rows_expression
 from .vocabulary import CATEGORICAL_TYPES, NOT_APPLICABLE, NUMERIC_TYPES
 
 __all__ = ["WHITESPACE", "choose_engine", "ScannedColumn", "ScannedStudy", "scan_study"]
@@ -218,6 +219,7 @@ class ScannedStudy:
     sha256: str
     notes: Tuple[str, ...]
     warnings: Tuple[str, ...] = ()
+    rows_kept: Optional[RowsKept] = None  # data.keep_rows: the condition, rows read and kept (None: every row)
     _cleanup: Any = field(default=None, repr=False)
 
     @property
@@ -312,20 +314,23 @@ def scan_study(params: Params) -> ScannedStudy:
     fmt = _duckdb_format(params)
     # The header as the pandas path reads and checks it (names, ignore, unsafe names, duplicates).
     header, warnings = read_table(path, fmt, params.data.sheet, params.data.encoding,
-                                  delimiter=params.data.delimiter, ignore=tuple(params.data.ignore), nrows=1)
+                                  delimiter=params.data.delimiter, ignore=ignored_when_read(params), nrows=1)
     label = str(path)
     if warnings or "" in header.columns:
         raise InputError(f"{label}: a column has no name in the header row; data.engine duckdb needs every column "
                          "named: name it in the file, or set data.engine to pandas")
-    check_declared_columns(params, list(header.columns), label)
-    conditions = check_expression_columns(params, [c for c in header.columns if c != params.data.id])
+    keep_rows = keep_rows_expression(params, list(header.columns))
+    filter_only = filter_only_columns(params)  # read for data.keep_rows only: no variables
+    columns = [c for c in header.columns if c not in filter_only]
+    check_declared_columns(params, columns, label)
+    conditions = check_expression_columns(params, [c for c in columns if c != params.data.id])
     _refuse_markers_that_are_levels(params)
     workdir = tempfile.mkdtemp(prefix="gapbook-duckdb-")  # private (0700) folder for the database and spills
     connection = _connect(workdir)
     cleanup = weakref.finalize(connection, _close, connection, workdir)
     try:
         scanner = _Scanner(connection, params, path, fmt, list(header.columns), label, conditions,
-                           sql_path=_plain_link(path, workdir, fmt))
+                           sql_path=_plain_link(path, workdir, fmt), keep_rows=keep_rows)
         study = scanner.scan()
     except duckdb.Error as exc:
         cleanup()
@@ -341,8 +346,11 @@ class _Scanner:
     """The steps of :func:`scan_study`; holds the connection and the names of the SQL relations."""
 
     def __init__(self, connection, params: Params, path: Path, fmt: str, names: List[str], label: str,
-                 conditions: Mapping[str, Expression], *, sql_path: Optional[str] = None):
+                 conditions: Mapping[str, Expression], *, sql_path: Optional[str] = None,
+                 keep_rows: Optional[Expression] = None):
         self.con = connection
+        self.keep_rows = keep_rows  # data.keep_rows, checked; self.rows_kept says what it kept
+        self.rows_kept: Optional[RowsKept] = None
         self.conditions = dict(conditions)
         self.params = params
         self.path = path
@@ -352,7 +360,7 @@ class _Scanner:
         self.warnings: List[str] = []
         self.label = label
         self.id_column = params.data.id
-        self.variables = [n for n in names if n != self.id_column]
+        self.variables = [n for n in names if n != self.id_column and n not in filter_only_columns(params)]
         self.alias = {name: f"c{j}" for j, name in enumerate(self.variables)}
         self.kinds: Dict[str, str] = {}
         self.id_kind = "text"
@@ -449,7 +457,39 @@ class _Scanner:
                 self.con.execute(f"CREATE TABLE raw_table AS SELECT * FROM {self._source_sql(serial=True)}")
             self.con.execute(f"CREATE VIEW raw AS SELECT rowid AS {ROW}, * FROM raw_table")
         self.raw = self._raw_columns()
+        self._keep_rows()
         self._create_cells()
+
+    def _keep_rows(self) -> None:
+        """Leave out the rows ``data.keep_rows`` does not keep: ``raw`` then holds the kept rows, ``rn`` their file row.
+
+        The rows are decided by :func:`gapbook.row_filter.decide_rows` on the distinct combinations of
+        the condition's raw cells (as the pandas engine decides them), then matched back in SQL.
+        """
+        if self.keep_rows is None:
+            return
+        columns = list(self.keep_rows.columns)
+        keys = [self.raw[name] for name in columns]
+        listed = ", ".join(f"{key} AS k{j}" for j, key in enumerate(keys))
+        self.con.execute(f"CREATE TABLE row_groups AS SELECT row_number() OVER () - 1 AS g, * FROM "
+                         f"(SELECT {listed}, count(*) AS n FROM raw GROUP BY ALL)")
+        groups = self.con.execute(f"SELECT {', '.join(f'k{j}' for j in range(len(keys)))}, n FROM row_groups "
+                                  "ORDER BY g").fetchall()
+        keep, self.rows_kept, warnings = decide_rows(columns, [g[:-1] for g in groups], [g[-1] for g in groups],
+                                                     self.keep_rows, params=self.params, label=self.label)
+        self.warnings.extend(warnings)
+        match = " AND ".join(f"r.{key} IS NOT DISTINCT FROM k.k{j}" for j, key in enumerate(keys))
+        self.con.execute(f"CREATE TABLE raw_kept AS SELECT r.* FROM raw AS r JOIN (SELECT * FROM row_groups WHERE "
+                         f"list_contains(?, g)) AS k ON {match} ORDER BY r.{ROW}",
+                         [[int(g) for g in np.flatnonzero(keep)]])
+        self.con.execute("DROP TABLE row_groups")
+        self.con.execute("DROP VIEW raw")
+        if self.fmt == "parquet":
+            self.con.execute("CREATE VIEW raw AS SELECT * FROM raw_kept")
+        else:  # the kept rows take the whole file's place (dropped after the decided rows are written)
+            self.con.execute("DROP TABLE raw_table")
+            self.con.execute("ALTER TABLE raw_kept RENAME TO raw_table")
+            self.con.execute("CREATE VIEW raw AS SELECT * FROM raw_table")
 
     def _create_cells(self) -> None:
         self.con.execute(f"CREATE OR REPLACE VIEW cells AS SELECT {self._cells_sql()} FROM raw")
@@ -907,7 +947,7 @@ class _Scanner:
         return ScannedStudy(connection=self.con, relation="study", n_rows=self.n_rows, columns=columns,
                             id_column=self.id_column, range_issues=issues, extreme_values=extremes,
                             source=str(self.path), sha256="", notes=inferred_notes(infos),
-                            warnings=tuple(self.warnings))
+                            warnings=tuple(self.warnings), rows_kept=self.rows_kept)
 
 
 def _reason_type(column: ScannedColumn) -> str:

@@ -83,6 +83,13 @@ class StudySection(_Section):
     name: Text = "Unnamed study"
 
 
+def _checked_condition(value: Optional[str]) -> Optional[str]:
+    """A condition (applies_if, keep_rows) passes the expression language's check when the params are read."""
+    if value is not None:
+        parse_expression(value, where="", kind=CONDITION)
+    return value
+
+
 class DataSection(_Section):
     path: str
     id: Optional[str] = None
@@ -94,6 +101,10 @@ class DataSection(_Section):
     thousands: Optional[Literal[",", ".", " ", "'"]] = None
     ignore: _bounded(str) = Field(default_factory=list)
     engine: Literal["auto", "pandas", "duckdb"] = "auto"
+    # rows the study uses: a condition in the expression language (gapbook.row_filter says how it reads cells)
+    keep_rows: Optional[str] = None
+
+    _allowed_filter = field_validator("keep_rows")(lambda value: _checked_condition(value))
 
     @model_validator(mode="after")
     def _distinct_marks(self) -> "DataSection":
@@ -133,12 +144,7 @@ class VariableSpec(_Section):
     out_of_range: Optional[Literal["flag", "missing"]] = None
     applies_if: Optional[str] = None
 
-    @field_validator("applies_if")
-    @classmethod
-    def _allowed_condition(cls, value: Optional[str]) -> Optional[str]:
-        if value is not None:
-            parse_expression(value, where="", kind=CONDITION)
-        return value
+    _allowed_condition = field_validator("applies_if")(lambda value: _checked_condition(value))
 
     @field_validator("levels")
     @classmethod

@@ -18,6 +18,7 @@ from typing import Any, Callable, Dict, List, Mapping, Optional, Sequence, Tuple
 from .errors import InputError, did_you_mean
 from .intake import sha256_of as sha256_file  # the one file digest, shared with intake and record
 from .params import Params
+from .row_filter import RowsKept
 from .vocabulary import FOLLOWUP_IMPUTED_STRATEGIES
 
 __all__ = ["STAGES", "STAGE_TITLES", "sha256_file", "kit_notebooks_dir", "StageNotebook", "resolve_stages",
@@ -370,6 +371,7 @@ class DataCheck:
     range_issues: int
     engine: str
     why: str
+    rows_kept: Optional[RowsKept] = None   # data.keep_rows: the condition, rows read and kept
 
 
 def check_data(params: Params, need_frame: bool) -> Tuple[DataCheck, Any]:
@@ -393,14 +395,15 @@ def check_data(params: Params, need_frame: bool) -> Tuple[DataCheck, Any]:
                              incomplete_variables=int(summary["incomplete_variables"]),
                              complete_rows=int(summary["complete_rows"]), notes=scanned.notes,
                              warnings=scanned.warnings, range_issues=len(scanned.range_issues), engine=engine,
-                             why=why), None
+                             why=why, rows_kept=scanned.rows_kept), None
     study = load_study(params)  # data errors stop here, exit 2
     missing = study.missing
     return DataCheck(source=study.source or "", sha256=study.sha256 or "", n_rows=len(study.data),
                      columns=tuple(study.data.columns), missing_cells=int(missing.to_numpy().sum()),
                      incomplete_variables=int(missing.any(axis=0).sum()),
                      complete_rows=int((~missing.any(axis=1)).sum()), notes=study.notes, warnings=study.warnings,
-                     range_issues=len(study.range_issues), engine="pandas", why=why), study
+                     range_issues=len(study.range_issues), engine="pandas", why=why,
+                     rows_kept=study.rows_kept), study
 
 
 @dataclass(frozen=True)

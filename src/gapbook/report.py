@@ -839,7 +839,9 @@ def summarise(study: Study, *, tables: Mapping[str, Optional[pd.DataFrame]], tit
     sentences = (("Stages whose tables are not in this record (their items say so below): "
                   + ", ".join(not_run) + ".",) if not_run else ())
     return ReportSummary(title=title, flow=flow, missing=missing, checklist=checklist,
-                         methods_text=draft_methods(flow, missing, tables, model=model, imputation=imputation),
+                         methods_text=" ".join(([study.rows_kept.methods_sentence()] if study.rows_kept else [])
+                                               + [draft_methods(flow, missing, tables, model=model,
+                                                                imputation=imputation)]),
                          results_text=draft_results(flow, missing, tables, model=model, terms=terms,
                                                     min_cell=min_cell),
                          cautions=page_cautions(with_model=model is not None), not_run=not_run, sentences=sentences)

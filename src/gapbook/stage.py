@@ -333,7 +333,8 @@ def repeated_design(params: Params, study: Study) -> "RepeatedStudy":
     subject = params.subject_column
     # the subject is design.subject, else data.id (as the wide layout's ids are); the wide layout's outcome is
     # the left side of analysis.formula
-    keys = {"ids": "data.id", "outcome": "analysis.formula", "subject": "design.subject" if design.subject else "data.id"}
+    keys = {"ids": "data.id", "outcome": "analysis.formula", "subject": "design.subject" if design.subject else "data.id",
+            "keep_rows": "data.keep_rows"}
     with followup_errors(params, study.source or "data", keys=keys):
         if design.layout == "long":
             data = study.data.assign(**{subject: study.ids.to_numpy()})  # intake kept the subject apart, as an id
@@ -840,7 +841,7 @@ class StageContext:
                                       visits=outcome.visits, method=section.method if section else "reml",
                                       m=params.imputation.m, seed=params.imputation.seed, reference=label(reference),
                                       delta=section.delta if section else None, alpha=params.analysis.alpha,
-                                      estimand=self.estimand(ran))
+                                      estimand=self.estimand(ran), rows_kept=self.study.rows_kept)
 
     def suppression(self) -> Tuple[Optional["RecordSuppression"], Tuple[str, ...]]:
         """Small-count suppression of the record's count tables when ``report.suppress_small`` asks for it.

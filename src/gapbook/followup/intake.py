@@ -149,8 +149,9 @@ def _long(data, reasons, *, subject, visit, visits, analysed, baseline) -> Repea
         shown = "no visit" if pd.isna(raw) else f"visit {label(raw)}"
         raise InputError(f"subject {subjects.iloc[k]} has {shown} (data row {k + 1}), which is not a planned visit "
                          f"({', '.join(map(label, visits))}); add it to the planned visits, correct the '{visit}' "
-                         "column, or keep only the planned visits' rows in the file (unscheduled and early-termination "
-                         "rows are not analysis visits; in ADaM, keep ANL01FL = 'Y')", option="visits")
+                         "column, or keep only the planned visits' rows with ", OptionName("keep_rows"),
+                         " (unscheduled and early-termination rows are not analysis visits; in ADaM, e.g. "
+                         "ANL01FL == 'Y')", option="visits")
     frame = data.drop(columns=[visit]).copy()
     frame[subject] = subjects.to_numpy()
     frame[visit] = pd.Series(planned, index=data.index, dtype=object)
@@ -161,9 +162,9 @@ def _long(data, reasons, *, subject, visit, visits, analysed, baseline) -> Repea
         first = frame.loc[duplicated, [subject, visit]].iloc[0]
         count = int(((frame[subject] == first[subject]) & (frame[visit] == first[visit])).sum())
         raise InputError(f"subject {first[subject]} has {count} rows for visit {label(first[visit])} "
-                         "(one row per subject per visit is expected); remove or merge the duplicates (a file with "
-                         "several parameters, such as ADaM's PARAMCD, or imputed DTYPE rows needs filtering to one "
-                         "parameter's observed rows first)", option="data")
+                         "(one row per subject per visit is expected); remove or merge the duplicates, or keep one "
+                         "parameter's observed rows with ", OptionName("keep_rows"), " (a file with several "
+                         "parameters, such as ADaM's, e.g. PARAMCD == 'ADAS' and DTYPE == '')", option="data")
     return RepeatedStudy(frame=frame, reasons=reasons.drop(columns=[c for c in (visit, subject) if c in reasons]),
                          subject=subject, visit=visit, visits=analysed, baseline=baseline, layout="long")
 

@@ -17,6 +17,7 @@ import numpy as np
 import pandas as pd
 
 from ..inference import format_p
+from ..row_filter import RowsKept
 from ..report import Checklist, ChecklistItem, MissingSummary, ParticipantFlow, ReportSummary, effect_phrase
 from ..text import first_upper, md_code, md_escape
 from ..vocabulary import (FOLLOWUP_IMPUTED_STRATEGIES, INTERCURRENT_STRATEGIES, NOT_RECOMMENDED_STRATEGIES,
@@ -314,7 +315,8 @@ def followup_checklist(flow: ParticipantFlow, missing: MissingSummary, tables: M
 def summarise_followup(*, tables: Mapping[str, Optional[pd.DataFrame]], missing: MissingSummary, title: str,
                        formula: str, exposure: str, visits: Sequence[object], method: str = "reml", m: int = 20,
                        seed: int = 0, reference: Optional[str] = None, delta: object = None, alpha: float = 0.05,
-                       estimand: Optional[EstimandDescription] = None) -> ReportSummary:
+                       estimand: Optional[EstimandDescription] = None,
+                       rows_kept: Optional[RowsKept] = None) -> ReportSummary:
     """The summary page of a follow-up record from its tables.
 
     Parameters
@@ -326,6 +328,7 @@ def summarise_followup(*, tables: Mapping[str, Optional[pd.DataFrame]], missing:
     m, seed, reference, delta : the imputation settings the text reports.
     alpha : 1 - confidence level.
     estimand : the estimand block (:func:`gapbook.followup.estimand.describe_estimand`), or None.
+    rows_kept : which rows of the data file ``data.keep_rows`` kept (the methods say so), or None.
 
     Returns
     -------
@@ -354,6 +357,8 @@ def summarise_followup(*, tables: Mapping[str, Optional[pd.DataFrame]], missing:
     methods = draft_followup_methods(formula=formula, exposure=exposure, visits=visits, method=method,
                                      strategies=strategies, m=m, seed=seed, reference=reference, delta=delta,
                                      reasons=reasons, primary=primary, estimand=estimand)
+    if rows_kept is not None:  # data.keep_rows: which of the file's rows were analysed
+        methods = f"{md_escape(rows_kept.methods_sentence())} {methods}"
     results = ("The audit stage has not run: no attendance to report." if completeness is None else
                draft_followup_results(flow=flow, patterns=tables.get("followup_patterns"),
                                       retention_test=tables.get("followup_retention_test"), estimates=estimates,
