@@ -309,3 +309,18 @@ def test_odd_files_stop_with_one_line(tmp_path, kind):
     with pytest.raises(InputError) as info:
         load_study(params_for(path))
     assert needle in str(info.value) and "\n" not in str(info.value)
+
+
+@pytest.mark.parametrize("blank", ["", "  "])
+def test_a_blank_listed_as_a_level_is_refused_not_ignored(tmp_path, blank):
+    # An ADSL-style flag coded 'Y'/blank (hand-written three rows): listing '' among the levels used to keep
+    # the blank cells missing silently. Every blank is missing in gapbook, so the params are refused, naming
+    # the key and how to code the flag; the refusal comes with the params, so both engines give it alike.
+    path = write_csv(tmp_path, pd.DataFrame({"pid": ["A", "B", "C"], "SAFFL": ["Y", "", "Y"]}))
+    for engine in ("pandas", "duckdb"):
+        with pytest.raises(InputError, match=r"variables\.SAFFL\.levels: a blank \(''\) cannot be a level.*"
+                                             r"code the blank as a word in the file.*data\.keep_rows"):
+            load_study(params_for(path, data={"engine": engine}, variables={"SAFFL": {"levels": [blank, "Y"]}}))
+    # Without the blank among the levels, the blank cell is missing with the reason 'blank' (one of three).
+    study = load_study(params_for(path, variables={"SAFFL": {"levels": ["Y"]}}))
+    assert int(study.missing["SAFFL"].sum()) == 1 and study.reasons["SAFFL"].iloc[1] == "blank"

@@ -153,6 +153,13 @@ class VariableSpec(_Section):
         # level; a repeated level would otherwise surface later as an unrelated data error.
         seen: Dict[Any, Any] = {}
         for level in value or ():
+            if isinstance(level, str) and not level.strip():
+                # ADSL-style flags are coded 'Y'/blank; a blank cell is always missing (reason 'blank') in
+                # gapbook, in both engines, so listing it as a level would be silently ignored: say so instead.
+                raise ValueError("a blank ('') cannot be a level: every blank cell is read as missing (reason "
+                                 "'blank'); for a flag coded 'Y'/blank, code the blank as a word in the file (e.g. "
+                                 "'N') and list it, or choose rows by the flag with data.keep_rows (e.g. "
+                                 "\"FLAG == 'Y'\", where a blank cell reads as '')")
             key = str(level).strip().casefold() if isinstance(level, str) else float(level)
             if key in seen:
                 raise ValueError(f"level '{one_line(level, 80)}' is listed twice"
