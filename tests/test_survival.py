@@ -200,12 +200,61 @@ def one_line(capsys, argv):
     return lines[0]
 
 
-def test_check_refuses_a_follow_up_time_that_is_not_positive(tmp_path, capsys):
+def test_check_refuses_a_negative_follow_up_time_and_accepts_zero(tmp_path, capsys):
     frame = cohort()
-    frame.loc[20, "months"] = 0
-    frame.loc[30, "months"] = -3
+    frame.loc[20, "months"] = 0      # an event or censoring on the day of entry: valid
+    frame.loc[30, "months"] = -3     # an end before the start: refused
     line = one_line(capsys, ["check", write_study(tmp_path, frame)])
-    assert "analysis.formula" in line and "data row 21 (id 21)" in line and "not positive in 2 row(s)" in line
+    assert "analysis.formula" in line and "data row 31 (id 31)" in line and "negative in 1 row(s)" in line
+    frame.loc[30, "months"] = 5
+    assert main(["check", str(write_study(tmp_path, frame))]) == 0, capsys.readouterr().err
+
+
+def _breslow_partial_likelihood_fit(time, status, x):
+    """Reference: the Cox (1972) partial likelihood with Breslow's (1974) handling of ties, written from the
+    formula and maximised by scipy: sum over event times t of [sum_{i in D(t)} x_i'b - d_t log sum_{j: t_j >= t}
+    exp(x_j'b)]. A row with time 0 is in the risk set of every event time, 0 included."""
+    from scipy import optimize
+
+    def minus_log_likelihood(beta):
+        eta = x @ beta
+        total = 0.0
+        for t in np.unique(time[status == 1]):
+            dying = (time == t) & (status == 1)
+            total += eta[dying].sum() - dying.sum() * np.log(np.exp(eta[time >= t]).sum())
+        return -total
+    return optimize.minimize(minus_log_likelihood, np.zeros(x.shape[1]), method="BFGS", options={"gtol": 1e-10}).x
+
+
+def test_cox_fit_with_times_of_zero_equals_the_partial_likelihood_and_phreg(study):
+    # Registry-style follow-up with same-day events and censorings (time 0) in the cohort of our own.
+    _, data = study
+    frame = data.data.copy()
+    months = frame["months"].to_numpy(dtype=float, na_value=np.nan)
+    zero_rows = np.flatnonzero(~np.isnan(months))[:12]
+    frame.loc[frame.index[zero_rows], "months"] = 0.0
+    model = AnalysisModel(formula="months ~ arm + age + C(stage)", family="cox", exposure="arm",
+                          event=EventCoding("status", event=(2,), censored=(1,)), ties="breslow")
+    estimates = complete_case_analysis(frame, model=model, reasons=data.reasons,
+                                       not_applicable=data.not_applicable).estimates().set_index("term")
+    coefficients, errors = phreg_by_hand(frame, "breslow")  # statsmodels PHReg on the same rows
+    np.testing.assert_allclose(estimates.loc[coefficients.index, "estimate"], coefficients, atol=1e-6)
+    rows = frame[["months", "status", "arm", "age", "stage"]].dropna()
+    rows = rows[rows["status"].isin([1.0, 2.0])]
+    assert (rows["months"] == 0).sum() >= 5 and ((rows["months"] == 0) & (rows["status"] == 2)).any()
+    x = np.column_stack([(rows["arm"].astype(str) == "control"), (rows["stage"].astype(str) == "II"),
+                         (rows["stage"].astype(str) == "III"), rows["age"].astype(float)]).astype(float)
+    by_formula = _breslow_partial_likelihood_fit(rows["months"].to_numpy(float), (rows["status"] == 2).to_numpy(float), x)
+    np.testing.assert_allclose(estimates.loc[list(coefficients.index), "estimate"], by_formula, atol=1e-4)
+
+
+def test_weibull_times_place_zero_at_half_the_smallest_positive_time():
+    from gapbook.survival import fit_weibull_ph, weibull_times
+    # hand values: the smallest positive time is 2, so 0 is fitted at 1 (common practice, no source)
+    assert weibull_times(np.array([0.0, 2.0, 5.0, 0.0])).tolist() == [1.0, 2.0, 5.0, 1.0]
+    assert weibull_times(np.array([3.0, 4.0])).tolist() == [3.0, 4.0]
+    fit = fit_weibull_ph(weibull_times(np.array([0.0, 1.0, 2.0, 4.0, 8.0])), np.array([1, 1, 0, 1, 1]))
+    assert np.isfinite(fit.shape) and np.isfinite(fit.log_rate)
 
 
 def test_check_refuses_an_event_value_outside_the_coding(tmp_path, capsys):

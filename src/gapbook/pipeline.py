@@ -231,7 +231,7 @@ def check_model_up_front(params: Params, study: Any) -> Tuple[str, List[str]]:
         found = check_formula(params.analysis.formula, list(study.data.columns))
         model = analysis_model(params)
         outcome, covariates = check_model_data(study.data, model)
-        if model.is_time_to_event():  # times above 0, event values in the coding; names the row and id
+        if model.is_time_to_event():  # times 0 or more, event values in the coding; names the row and id
             check_follow_up(study.data, time=outcome, event=model.event, ids=study.ids)
     for column in covariates:
         if study.data[column].notna().sum() == 0:

@@ -44,7 +44,8 @@ from .compute import cluster_workers, iterate_tasks, workers_phrase
 from .errors import AnalysisError, InputError, did_you_mean
 from .expressions import FORMULA_NAMESPACE, formula_environment
 from .models import AnalysisModel, exposure_terms
-from .survival import CensoringDistribution, EventCoding, WeibullFit, censoring_distribution, cox_model, fit_weibull_ph
+from .survival import (CensoringDistribution, EventCoding, WeibullFit, censoring_distribution, cox_model,
+                       fit_weibull_ph, weibull_times)
 from .vocabulary import MECHANISMS, PARTICIPANT_ROW_STRATEGY_NAMES, effect_scale
 
 __all__ = ["MECHANISMS", "SIMULATION_ITERATIONS", "performance", "design_from_data", "simulate_complete",
@@ -307,7 +308,8 @@ def _time_to_event_design(data: pd.DataFrame, *, model: AnalysisModel, outcome: 
                               eval_env=FORMULA_NAMESPACE)
             columns = [list(phreg.exog_names).index(t) for t in cox.terms]
             exog = np.asarray(phreg.exog, dtype=float)[:, columns]
-            weibull = fit_weibull_ph(phreg.endog, phreg.status, exog)
+            weibull = fit_weibull_ph(weibull_times(phreg.endog), phreg.status, exog)
+            weibull = dataclasses.replace(weibull, zero_times=int((np.asarray(phreg.endog) == 0).sum()))
     except AnalysisError as exc:
         raise AnalysisError(f"the simulation's generating model could not be fitted: {exc}") from None
     beta = np.asarray(weibull.coefficients)
@@ -908,5 +910,8 @@ def follow_up_sentence(design: SimulationDesign) -> str:
             f"complete cases ({weibull.events:,} events; shape {weibull.shape:.3g}), whose log hazard ratios are the "
             f"true values; censoring times drawn from the study's censoring distribution (reverse Kaplan-Meier of "
             f"{outcome}), and at the largest follow-up time ({design.censoring.end:g}) beyond its last censoring; "
-            "missing values are imposed on the covariates only." + left_out)
+            "missing values are imposed on the covariates only." + left_out
+            + (f" {weibull.zero_times:,} follow-up times of 0 were placed at half the smallest positive time for the "
+               "Weibull fit only (its hazard at 0 has no finite value; common practice, no source)."
+               if weibull.zero_times else ""))
 

@@ -25,7 +25,7 @@ from .text import counted
 from .vocabulary import TIES_METHODS
 
 __all__ = ["EventCoding", "check_follow_up", "cox_model", "fit_cox_model", "finite_fit", "unbounded_cox_terms", "unbounded_causes", "MONOTONE_ADVICE", "nelson_aalen", "cumulative_hazard_at",
-           "kaplan_meier", "MissingFollowUp", "missing_follow_up", "WeibullFit", "fit_weibull_ph", "CensoringDistribution", "censoring_distribution"]
+           "kaplan_meier", "MissingFollowUp", "missing_follow_up", "WeibullFit", "weibull_times", "fit_weibull_ph", "CensoringDistribution", "censoring_distribution"]
 
 Value = Union[str, int, float]
 
@@ -106,9 +106,12 @@ class EventCoding:
 
 def check_follow_up(data: pd.DataFrame, *, time: str, event: EventCoding,
                     ids: Optional[pd.Series] = None) -> None:
-    """Exit 2 when a follow-up time is not a positive number or an event value is not in the coding.
+    """Exit 2 when a follow-up time is negative or not a number, or an event value is not in the coding.
 
     Missing times and event values are not errors: they are missing data, counted with their reasons.
+    A time of 0 (an event or censoring on the day of entry, common in registries) is valid: the
+    Cox partial likelihood only orders the times, and a row at 0 is in the risk set of every
+    event at 0 (Cox 1972; statsmodels' PHReg fits it).
 
     Parameters
     ----------
@@ -122,12 +125,12 @@ def check_follow_up(data: pd.DataFrame, *, time: str, event: EventCoding,
         raise InputError(f"the follow-up time '{time}' is not numeric; give the time from the start of "
                          "follow-up to the event or censoring as a number", option="formula")
     values = column.to_numpy(dtype=float, na_value=np.nan)
-    bad = np.flatnonzero(~np.isnan(values) & ~(values > 0))
+    bad = np.flatnonzero(~np.isnan(values) & ~(values >= 0))
     if len(bad):
         where = f"data row {bad[0] + 1}" + (f" (id {ids.iloc[bad[0]]})" if ids is not None else "")
-        raise InputError(f"the follow-up time '{time}' is {values[bad[0]]:g} at {where} and is not positive in "
-                         f"{len(bad)} row(s); follow-up times must be above 0 (check the dates, or how the "
-                         "analysis plan counts same-day events)", option="formula")
+        raise InputError(f"the follow-up time '{time}' is {values[bad[0]]:g} at {where} and is negative in "
+                         f"{len(bad)} row(s); follow-up times are 0 or more (check the dates: an end before the "
+                         "start)", option="formula")
     if not np.isfinite(values[~np.isnan(values)]).all():
         raise InputError(f"the follow-up time '{time}' holds an infinite value; give a finite time",
                          option="formula")
@@ -570,6 +573,7 @@ class WeibullFit:
     log_likelihood: float
     n: int
     events: int
+    zero_times: int = 0   # times of 0 fitted at half the smallest positive time (weibull_times)
 
     def scale(self) -> float:
         """The baseline scale, rate**(-1 / shape) (``scipy.stats.weibull_min``'s ``scale``).
@@ -623,6 +627,31 @@ def _weibull_negative_log_likelihood(theta: np.ndarray, log_time: np.ndarray, ev
     hessian[:p, p] = hessian[p, :p] = -design.T @ (cumulative * s)
     hessian[p, p] = np.sum(event * s - cumulative * s * (1.0 + s))
     return -loglik, -gradient, -hessian
+
+
+def weibull_times(time: np.ndarray) -> np.ndarray:
+    """Follow-up times for the Weibull fit: a time of 0 becomes half the smallest positive time.
+
+    A Weibull hazard is infinite or zero at t = 0 unless shape = 1, so the likelihood of an
+    event at exactly 0 has no maximum. A time recorded as 0 means "within the first unit of
+    time" (an event or censoring on the day of entry); placing it at half the smallest positive
+    time is common practice, no source. Only the simulation's generating model uses this; the
+    Cox fits take 0 as it is.
+
+    Parameters
+    ----------
+    time : ndarray
+        Follow-up times (0 or more, at least one above 0).
+
+    Returns
+    -------
+    ndarray
+    """
+    time = np.asarray(time, dtype=float)
+    positive = time[time > 0]
+    if not (time == 0).any() or not len(positive):
+        return time
+    return np.where(time == 0, 0.5 * float(positive.min()), time)
 
 
 def fit_weibull_ph(time: np.ndarray, event: np.ndarray, exog: Optional[np.ndarray] = None) -> WeibullFit:
