@@ -137,3 +137,49 @@ def test_imputation_strategies_need_two_imputations(study, capsys):
     assert "imputation.m is 1; the follow-up imputation strategies pool at least two" in line
     # without the follow-up stage (or with only strategies that impute nothing) one imputation is no problem
     assert main(["check", str(path), "--only", "audit"]) == 0
+
+
+def _baseline_params(path: Path, formula: str, **design) -> Params:
+    body = {"data": {"path": str(path)},
+            "design": {"layout": "long", "subject": "subject", "visit": "week", "visits": [0, 4, 8], "baseline": 0,
+                       **design},
+            "variables": {"arm": {"type": "binary", "levels": ["ctl", "trt"]}},
+            "missing": {"markers": [""]}, "analysis": {"formula": formula, "exposure": "arm"}}
+    return Params.from_dict(body)
+
+
+def test_a_change_from_baseline_is_not_applicable_at_the_baseline_visit(tmp_path):
+    # Hand-written long file: 3 subjects x weeks 0, 4, 8; chg is blank at every baseline row (as ADaM's CHG is
+    # by construction) and at one later visit (subject B, week 8: a real gap). aval is blank at one baseline.
+    from gapbook.intake import load_study
+    rows = ["A,ctl,0,10,,", "A,ctl,4,9,-1,", "A,ctl,8,8,-2,", "B,trt,0,,,", "B,trt,4,7,-3,", "B,trt,8,,,",
+            "C,trt,0,12,0,", "C,trt,4,10,-2,", "C,trt,8,9,-3,"]
+    path = tmp_path / "long.csv"
+    path.write_text("subject,arm,week,aval,chg,note\n" + "\n".join(rows) + "\n")
+    study = load_study(_baseline_params(path, "chg ~ arm * C(week)"))
+    # chg: baseline cells blank or 0 -> the 2 blank ones are not applicable; only B's week 8 is missing.
+    assert int(study.not_applicable["chg"].sum()) == 2 and int(study.missing["chg"].sum()) == 1
+    assert any("chg: blank or 0 in every row of the baseline visit" in n for n in study.notes)
+    # aval as the outcome has a real baseline value elsewhere, so its baseline gap (B) stays missing.
+    study = load_study(_baseline_params(path, "aval ~ arm * C(week)"))
+    assert int(study.missing["aval"].sum()) == 2 and int(study.not_applicable["aval"].sum()) == 0
+    # A condition the user wrote decides instead (here: applies everywhere, so the baseline blanks are missing).
+    params = _baseline_params(path, "chg ~ arm * C(week)").to_dict()
+    params["variables"]["chg"] = {"applies_if": "week >= 0"}
+    study = load_study(Params.from_dict(params))
+    assert int(study.missing["chg"].sum()) == 3
+
+
+def test_wide_layout_baseline_change_column_is_not_applicable(tmp_path):
+    from gapbook.intake import load_study
+    path = tmp_path / "wide.csv"
+    path.write_text("subject,arm,chg0,chg4,chg8\nA,ctl,,-1,-2\nB,trt,,-3,\nC,trt,0,-2,-3\n")
+    params = Params.from_dict({
+        "data": {"path": str(path), "id": "subject"}, "missing": {"markers": [""]},
+        "design": {"layout": "wide", "subject": "subject", "visit": "week", "visits": [0, 4, 8], "baseline": 0,
+                   "outcome_columns": ["chg0", "chg4", "chg8"]},
+        "variables": {"arm": {"type": "binary", "levels": ["ctl", "trt"]}},
+        "analysis": {"formula": "chg ~ arm * C(week)", "exposure": "arm"}})
+    study = load_study(params)
+    assert int(study.not_applicable["chg0"].sum()) == 2 and int(study.missing["chg0"].sum()) == 0
+    assert int(study.missing["chg8"].sum()) == 1

@@ -697,6 +697,7 @@ def load_study(params: Params, raw: Optional[pd.DataFrame] = None) -> Study:
     reason_frame = pd.DataFrame(reasons, index=raw.index)
     reason_frame = _reasons_from_columns(reason_frame, raw, params, label)
     data, reason_frame = _apply_applicability(data, reason_frame, params, label, conditions, ids, warnings)
+    data, reason_frame, baseline_notes = _baseline_change_not_applicable(data, reason_frame, params)
     data, reason_frame, issues = _check_ranges(data, reason_frame, infos, params, ids)
     # A column that gives other columns' reasons (reason_from) is no variable: its blanks mean 'no reason'.
     sources = {section.reason_from: name for name, section in params.missing.columns.items()
@@ -705,12 +706,61 @@ def load_study(params: Params, raw: Optional[pd.DataFrame] = None) -> Study:
     infos = {name: info for name, info in infos.items() if name not in sources}
     _refuse_too_large(data, infos, ids, label)
     extremes = robust_screen(data, infos, ids, params.missing.robust_z)
-    notes = inferred_notes(infos) + tuple(f"{source}: the reasons for the blank cells of {name} "
+    notes = inferred_notes(infos) + baseline_notes + tuple(f"{source}: the reasons for the blank cells of {name} "
                                           f"(missing.columns.{name}.reason_from), not a variable of the study"
                                           for source, name in sources.items())
     return Study(data=data, reasons=reason_frame, variables=infos, ids=ids.reset_index(drop=True), id_column=id_column,
                  range_issues=issues, extreme_values=extremes, source=source, sha256=sha, notes=notes,
                  warnings=tuple(warnings), rows_kept=rows_kept)
+
+
+def _baseline_change_not_applicable(data: pd.DataFrame, reasons: pd.DataFrame, params: Params
+                                    ) -> Tuple[pd.DataFrame, pd.DataFrame, Tuple[str, ...]]:
+    """A follow-up outcome that is blank or 0 at every baseline row is a change from baseline: not applicable there.
+
+    A change from baseline (ADaM's ``CHG``) is missing or 0 at the baseline visit by construction,
+    and the baseline visit is kept but not analysed; counting its blanks as missing outcomes would
+    inflate the audit by one cell per participant. The rule reads the data (every baseline cell of
+    the outcome blank or 0), not the column's name, and stands aside when the outcome has its own
+    ``applies_if``. An outcome with real baseline values (``AVAL``) keeps its baseline gaps as missing.
+    """
+    design = params.design
+    formula = params.analysis.formula
+    if design is None or design.baseline is None or not formula or "~" not in formula:
+        return data, reasons, ()
+    outcome = formula.split("~", 1)[0].strip()
+    if design.layout == "wide":
+        if len(design.outcome_columns) != len(design.visits):
+            return data, reasons, ()
+        column = design.outcome_columns[[str(v).strip() for v in design.visits].index(str(design.baseline).strip())]
+        rows = np.ones(len(data), dtype=bool)
+        where = f"its baseline column '{column}'"
+    else:
+        column = outcome
+        if design.visit not in data.columns:
+            return data, reasons, ()
+        visit = data[design.visit]
+        if pd.api.types.is_numeric_dtype(visit) and not isinstance(visit.dtype, pd.CategoricalDtype):
+            number = _number(design.baseline)
+            rows = (visit.to_numpy(dtype=float, na_value=np.nan) == number) if number is not None else \
+                np.zeros(len(data), dtype=bool)
+        else:
+            rows = (visit.astype(object).map(lambda v: str(v).strip()) == str(design.baseline).strip()).to_numpy()
+        where = f"the baseline visit ({one_line(design.baseline, 40)})"
+    spec = params.variables.get(column)
+    if column not in data.columns or not rows.any() or (spec is not None and spec.applies_if) or \
+            not pd.api.types.is_numeric_dtype(data[column]) or isinstance(data[column].dtype, pd.CategoricalDtype):
+        return data, reasons, ()
+    values = data[column].to_numpy(dtype=float, na_value=np.nan)[rows]
+    blank = rows & data[column].isna().to_numpy() & reasons[column].notna().to_numpy()
+    if not blank.any() or not np.all(np.isnan(values) | (values == 0)):
+        return data, reasons, ()
+    reasons = reasons.copy()
+    reasons[column] = _with_reason(reasons[column], blank, NOT_APPLICABLE)
+    note = (f"{column}: blank or 0 in every row of {where}, so a change from baseline by construction: its "
+            f"{int(blank.sum()):,} blank baseline cells are not applicable, not missing (write "
+            f"variables.{column}.applies_if to decide otherwise)")
+    return data, reasons, (note,)
 
 
 def _keep_rows(raw: pd.DataFrame, params: Params, label: str, warnings: List[str]
