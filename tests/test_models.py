@@ -157,7 +157,10 @@ def test_a_fit_that_does_not_converge_says_so():
     assert fit.converged is False
     assert any("PerfectSeparation" in w for w in fit.warnings)
     assert not fit.estimates("complete_case")["converged"].any()
-    assert any("did not converge" in s for s in fit.fit_sentences())
+    # the page names the separating column and says why, as for a Cox model's monotone likelihood
+    assert fit.unbounded[0][0] == "x" and "(completely separated)" in fit.unbounded[0][1]
+    assert any("complete or quasi-complete separation" in s and "x: every row with the outcome" in s
+               for s in fit.fit_sentences())
     fine = fit_model(frame.assign(y=(x + rng.normal(scale=2, size=60) > 0).astype(float)), formula="y ~ x + z",
                      family="binomial")
     assert fine.converged is True and fine.estimates("complete_case")["converged"].all()

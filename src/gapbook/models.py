@@ -21,12 +21,12 @@ from .errors import AnalysisError, InputError, did_you_mean
 from .expressions import FORMULA_NAMESPACE, ExpressionError, formula_environment, parse_formula
 from .inference import wald_inference
 from .text import first_upper, one_line
-from .survival import (MONOTONE_ADVICE, EventCoding, check_follow_up, cox_model, finite_fit, fit_cox_model,
-                       unbounded_causes, unbounded_cox_terms)
+from .separation import UNBOUNDED_ADVICE, separated_logistic_terms, unbounded_causes
+from .survival import EventCoding, check_follow_up, cox_model, finite_fit, fit_cox_model, unbounded_cox_terms
 from .vocabulary import FAMILY_NAMES, TIME_TO_EVENT_FAMILIES, effect_scale, has_ratio_scale
 
 __all__ = ["ModelFit", "add_ratio_columns", "formula_columns", "check_formula", "fit_model", "exposure_terms",
-           "exposure_rows", "AnalysisModel"]
+           "exposure_rows", "AnalysisModel", "UnboundedWords", "unbounded_words"]
 
 
 @dataclass(frozen=True)
@@ -39,8 +39,9 @@ class ModelFit:
     linear combination of the columns before it), so no term is reported as estimate 0, SE 0.
     ``converged`` is False when the fit did not converge (iterative fits) or the data are
     perfectly separated; ``warnings`` holds the fitting library's warnings about this fit.
-    ``unbounded`` lists, for a Cox model, the terms whose partial likelihood has no maximum
-    (monotone likelihood), each with why; such a fit is never ``converged``.
+    ``unbounded`` lists the terms along which the likelihood has no maximum, each with why: for
+    a Cox model a monotone partial likelihood, for a logistic model complete or quasi-complete
+    separation (:mod:`gapbook.separation`); such a fit is never ``converged``.
     """
 
     formula: str
@@ -91,17 +92,49 @@ class ModelFit:
         if self.dropped:
             out.append(dropped_sentence(self.dropped, self.nobs))
         if self.unbounded:
-            out.append("The model cannot be estimated as it stands: its partial likelihood keeps rising as a "
-                       f"coefficient runs off (monotone likelihood; Bryson & Johnson 1981): "
+            words = unbounded_words(self.family)
+            out.append(f"The model cannot be estimated as it stands: its {words.likelihood} keeps rising as a "
+                       f"coefficient runs off ({words.cause}; {words.source}): "
                        f"{unbounded_causes(self.unbounded)}. Its estimates and standard errors are not reliable. "
-                       f"{first_upper(MONOTONE_ADVICE)}; a penalised (Firth) Cox model (Heinze & Schemper 2001) is an "
-                       "alternative gapbook does not fit.")
+                       f"{first_upper(UNBOUNDED_ADVICE)}; {words.penalised} is an alternative gapbook does not fit.")
         elif not self.converged:
             named = [w for w in self.warnings if w.split(":")[0] in NOT_CONVERGED_WARNINGS] or list(self.warnings)
             detail = f" ({'; '.join(named)})" if named else ""
             out.append(f"The model fit did not converge{detail}: its estimates and standard errors are not "
                        "reliable; simplify the model or check for a covariate that separates the outcome.")
         return tuple(out)
+
+
+@dataclass(frozen=True)
+class UnboundedWords:
+    """How a page and check name a likelihood without a maximum for one family."""
+
+    model: str
+    likelihood: str
+    cause: str
+    source: str
+    penalised: str
+
+
+def unbounded_words(family: str) -> UnboundedWords:
+    """The words for a coefficient that runs off: Cox (monotone likelihood) or logistic (separation).
+
+    Parameters
+    ----------
+    family : str
+        ``cox`` or ``binomial``.
+
+    Returns
+    -------
+    UnboundedWords
+    """
+    if family == "binomial":
+        return UnboundedWords(model="logistic", likelihood="likelihood",
+                              cause="complete or quasi-complete separation", source="Albert & Anderson 1984",
+                              penalised="a penalised (Firth) logistic model (Firth 1993; Heinze & Schemper 2002)")
+    return UnboundedWords(model="Cox", likelihood="partial likelihood", cause="monotone likelihood",
+                          source="Bryson & Johnson 1981",
+                          penalised="a penalised (Firth) Cox model (Heinze & Schemper 2001)")
 
 
 def dropped_sentence(dropped: Sequence[Tuple[str, str]], nobs: int) -> str:
@@ -476,12 +509,15 @@ def fit_model(data: pd.DataFrame, *, formula: str, family: str = "gaussian", rob
             _refuse_infinite_terms(data, formula)
         raise AnalysisError(f"the model '{formula}' could not be fitted: {message}") from None
     notes, failed = _fit_warnings(caught)
-    converged = bool(getattr(result, "converged", True)) and not failed
+    terms = tuple(str(t) for t in result.params.index)
+    unbounded = (separated_logistic_terms(np.asarray(model.endog, dtype=float), np.asarray(model.exog, dtype=float),
+                                          terms) if family == "binomial" else ())
+    converged = bool(getattr(result, "converged", True)) and not failed and not unbounded
     coefficients = result.params.to_numpy(dtype=float)
-    return ModelFit(formula=formula, family=family, terms=tuple(str(t) for t in result.params.index),
+    return ModelFit(formula=formula, family=family, terms=terms,
                     coefficients=coefficients, covariance=covariance,
                     df_resid=df_resid, nobs=int(result.nobs), robust=robust, alpha=alpha, converged=converged,
-                    warnings=notes, dropped=tuple(dropped))
+                    warnings=notes, dropped=tuple(dropped), unbounded=unbounded)
 
 
 def _fit_cox(data: pd.DataFrame, *, formula: str, family: str, robust: bool, alpha: float,

@@ -256,10 +256,11 @@ def check_model_up_front(params: Params, study: Any) -> Tuple[str, List[str]]:
 
 
 def check_cox_up_front(params: Params, study: Any, stages: Sequence[str]) -> Tuple[str, ...]:
-    """Warnings for Cox fits whose partial likelihood has no maximum, named before any stage runs.
+    """Warnings for Cox and logistic fits whose likelihood has no maximum, named before any stage runs.
 
     A level of a category, or a missing-value indicator, whose rows have no event (or all the
-    events) makes the fit run off without converging (monotone likelihood). The complete-case
+    events) makes the fit run off without converging: a monotone likelihood for a Cox model, a
+    complete or quasi-complete separation for a logistic one (:mod:`gapbook.separation`). The complete-case
     and missing-category stages make the same fits as here (the stage functions); each fit
     that would run off is named with the term and why. Not refused: the other strategies can
     still answer. An error the missing-category stage would stop on stops here.
@@ -267,7 +268,7 @@ def check_cox_up_front(params: Params, study: Any, stages: Sequence[str]) -> Tup
     Parameters
     ----------
     params : Params
-        The params (family cox, else nothing is checked).
+        The params (family cox or binomial, else nothing is checked).
     study : Study
         The study after intake.
     stages : sequence of str
@@ -279,12 +280,14 @@ def check_cox_up_front(params: Params, study: Any, stages: Sequence[str]) -> Tup
         One warning per stage whose fit would not converge, naming the terms and why.
     """
     from .errors import AnalysisError
+    from .models import unbounded_words
+    from .separation import UNBOUNDED_ADVICE, unbounded_causes
     from .stage import StageContext
-    from .survival import MONOTONE_ADVICE, unbounded_causes
 
     context = StageContext(params=params, out_dir=Path("."))
-    if not context.model().is_time_to_event():
+    if not (context.model().is_time_to_event() or params.analysis.family == "binomial"):
         return ()
+    words = unbounded_words(params.analysis.family)
     context.study = study  # the study already read (a cached property of the context)
     fits: List[Tuple[str, Callable[[], Any]]] = []
     if "cases" in stages:
@@ -298,8 +301,8 @@ def check_cox_up_front(params: Params, study: Any, stages: Sequence[str]) -> Tup
         except AnalysisError:  # the stage explains a fit that fails outright
             continue
         if unbounded:
-            found.append(f"{stage}: the Cox model has no finite estimate (monotone likelihood), so the stage will "
-                         f"report a fit that did not converge: {unbounded_causes(unbounded)}; {MONOTONE_ADVICE}")
+            found.append(f"{stage}: the {words.model} model has no finite estimate ({words.cause}), so the stage "
+                         f"will report a fit that did not converge: {unbounded_causes(unbounded)}; {UNBOUNDED_ADVICE}")
     return tuple(found)
 
 

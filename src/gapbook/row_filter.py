@@ -122,16 +122,17 @@ def filter_only_columns(params: Params) -> Tuple[str, ...]:
 
 
 def ignored_when_read(params: Params) -> Tuple[str, ...]:
-    """``data.ignore`` without the columns the row filter reads (:func:`filter_only_columns`).
+    """The columns left out when the file is read: ``data.ignore`` minus :func:`filter_only_columns`.
 
     Parameters
     ----------
     params : Params
-        The study params.
+        The params whose ``data.ignore`` and ``data.keep_rows`` are read.
 
     Returns
     -------
     tuple of str
+        Column names, in ``data.ignore``'s order.
     """
     kept = set(filter_only_columns(params))
     return tuple(c for c in params.data.ignore if c not in kept)

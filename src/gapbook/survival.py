@@ -21,6 +21,7 @@ import numpy as np
 import pandas as pd
 
 from .errors import AnalysisError, InputError
+from .separation import UNBOUNDED_ADVICE, runs_off, unbounded_causes, unbounded_columns
 from .text import counted
 from .vocabulary import TIES_METHODS
 
@@ -263,9 +264,6 @@ def _maximise_partial_likelihood(model: Any) -> Any:
     return model.fit(method="newton", start_params=start)
 
 
-# A treatment-coded level column, 'C(site)[T.B]' or 'sex[T.male]': the factor and the level.
-_LEVEL_COLUMN = re.compile(r"^(?P<factor>[^:]+)\[T\.(?P<level>[^:]*)\]$")
-
 
 def _one_sided(time: np.ndarray, event: np.ndarray, inside: np.ndarray) -> Optional[str]:
     """Whether the partial likelihood keeps rising as the coefficient of the 0/1 column ``inside`` runs off.
@@ -324,48 +322,16 @@ def unbounded_cox_terms(time: np.ndarray, event: np.ndarray, exog: np.ndarray,
     """
     time = np.asarray(time, dtype=float)
     event = np.asarray(event, dtype=float) > 0
-    exog = np.asarray(exog, dtype=float)
-    found: List[Tuple[str, str]] = []
-    groups: Dict[str, List[int]] = {}
-    for j, name in enumerate(names):
-        values = np.unique(exog[:, j])
-        if len(values) != 2:
-            continue
-        inside = exog[:, j] == values[1]
+
+    def why(inside: np.ndarray, rows: str, reference: bool) -> Optional[str]:
         side = _one_sided(time, event, inside)
-        if side is not None:
-            found.append((str(name), _unbounded_why(side, event, inside, f"where it is {values[1]:g}")))
-        level = _LEVEL_COLUMN.match(str(name))
-        if level is not None and set(values) == {0.0, 1.0}:
-            groups.setdefault(level.group("factor"), []).append(j)
-    for factor, columns in groups.items():
-        inside = ~np.any(exog[:, columns] != 0, axis=1)
-        if inside.all() or not inside.any():
-            continue
-        side = _one_sided(time, event, inside)
-        if side is not None:
-            found.append((factor, _unbounded_why(side, event, inside, "at its reference level", reference=True)))
-    return tuple(found)
+        return None if side is None else _unbounded_why(side, event, inside, rows, reference=reference)
+
+    return unbounded_columns(exog, names, why)
 
 
-def unbounded_causes(unbounded: Sequence[Tuple[str, str]]) -> str:
-    """The terms :func:`unbounded_cox_terms` found, each with why, in one phrase ('term: why; term: why').
-
-    Parameters
-    ----------
-    unbounded : sequence of (term, why)
-        From :func:`unbounded_cox_terms`.
-
-    Returns
-    -------
-    str
-    """
-    return "; ".join(f"{term}: {why}" for term, why in unbounded)
-
-
-# What to do about a monotone likelihood: the page's sentence and check's warning say it alike.
-MONOTONE_ADVICE = ("merge that level with another, or leave the covariate out; for a missing-value indicator or "
-                   "category, prefer complete cases or multiple imputation")
+# What to do about a monotone likelihood: the page's sentence and check's warning say it alike (as for separation).
+MONOTONE_ADVICE = UNBOUNDED_ADVICE
 
 
 def _unbounded_why(side: str, event: np.ndarray, inside: np.ndarray, rows: str, reference: bool = False) -> str:
@@ -382,8 +348,7 @@ def _unbounded_why(side: str, event: np.ndarray, inside: np.ndarray, rows: str, 
     else:
         why = (f"every event is among the {counted_rows}" if not (~inside & event).any() else
                f"the other rows have their events only after the {counted_rows} have all left follow-up")
-    runs = "infinity" if (side == "high") != reference else "0"
-    return f"{why}, so {'the hazard ratios of its other levels run' if reference else 'its hazard ratio runs'} to {runs}"
+    return f"{why}, {runs_off(side, reference, 'hazard ratio')}"
 
 
 @dataclass(frozen=True)
