@@ -453,6 +453,38 @@ def test_pattern_order_breaks_ties_as_documented():
     assert table["n_rows"].tolist() == [2, 1, 1, 1]
 
 
+@pytest.mark.parametrize("cap", [1, 3, 17, 200, None])
+def test_capped_pattern_table_is_the_head_of_the_whole_order(cap):
+    # The documented order (most rows first, then fewer missing variables, then pattern order) written out with
+    # a plain sort; the capped table, which sorts only the patterns that can be listed, is its head, and the
+    # remainder row holds the rows of every other pattern. Many ties in the counts (most patterns have 1-3 rows).
+    from gapbook.audit import PatternCounts, pattern_table
+    rng = np.random.default_rng(4)
+    patterns = count_patterns(rng.random((600, 9)) < 0.3)
+    bits, counts = patterns.missing_bits, patterns.n_rows
+    whole = sorted(range(len(counts)), key=lambda i: (-counts[i], int(bits[i].sum()), i))
+    table = pattern_table(PatternCounts(bits, counts), list("abcdefghi"), max_patterns=cap)
+    listed = whole if cap is None else whole[:cap]
+    assert table["n_rows"].tolist()[:len(listed)] == [int(counts[i]) for i in listed]
+    assert table[list("abcdefghi")].iloc[:len(listed)].to_numpy().tolist() == (1 - bits[listed]).tolist()
+    if cap is not None and cap < len(counts):
+        assert len(table) == cap + 1 and table["n_rows"].iloc[-1] == counts.sum() - counts[listed].sum()
+
+
+@pytest.mark.parametrize("rows", [1000, 2 ** 24 + 4])
+def test_comissingness_counts_exact_in_either_precision(rows):
+    # Counts of rows as large as 2**24 are added in double precision (single precision would round them);
+    # checked against integer arithmetic.
+    from gapbook.audit import PatternCounts, comissingness
+    bits = np.array([[1, 1, 0], [1, 0, 1], [0, 1, 1], [1, 1, 1]], dtype=np.uint8)
+    counts = np.array([rows - 7, 3, 1, 3], dtype=np.int64)
+    long, _ = comissingness(PatternCounts(bits, counts), ["a", "b", "c"])
+    both = (bits.astype(np.int64).T * counts) @ bits.astype(np.int64)
+    pair = long.set_index(["variable_a", "variable_b"])["n_both_missing"]
+    assert int(pair[("a", "b")]) == both[0, 1] and int(pair[("b", "c")]) == both[1, 2]
+    assert int(long.set_index(["variable_a", "variable_b"])["n_missing_a"][("a", "b")]) == both[0, 0]
+
+
 # ---------------------------------------------------------------------------
 # the pattern cap (audit.max_patterns)
 

@@ -26,7 +26,9 @@ from gapbook.audit_duckdb import audit_scanned
 from gapbook.cli import main
 from gapbook.errors import InputError
 from gapbook.intake import load_study
-from gapbook.intake_duckdb import WHITESPACE, _outside_sql, _robust_centres, _spread_sql, choose_engine, scan_study
+from gapbook.intake import spread_values
+from gapbook.intake_duckdb import (WHITESPACE, _Gap, _listed_spread_middle, _Listing, _outside_sql, _ranked_middle,
+                                     _robust_centres, _spread_sql, _spread_windows, _window, choose_engine, scan_study)
 from gapbook.params import Params
 from gapbook.stage import write_csv
 
@@ -299,6 +301,84 @@ def test_medians_and_mad_in_sql_equal_numpy(tmp_path, monkeypatch, sample):
             scale = 1.4826 * float(np.median(np.abs(observed - median)))
         assert (centre.median, centre.scale, centre.log) == (median, scale, bool(observed.min() > 0)), name
         assert np.signbit(centre.median) == np.signbit(median), name
+
+
+def _listing(values: np.ndarray, windows) -> _Listing:
+    """What the SQL pass returns for these values and windows (sorted, disjoint), built in numpy."""
+    edges = [-np.inf] + [x for w in windows for x in w] + [np.inf]
+    gaps = tuple(_Gap(low=edges[2 * k], high=edges[2 * k + 1],
+                      n=int(((values > edges[2 * k]) & (values < edges[2 * k + 1])).sum()), open=True)
+                 for k in range(len(windows) + 1))
+    inside = np.zeros(len(values), dtype=bool)
+    for low, high in windows:
+        inside |= (values >= low) & (values <= high)
+    listed, counts = np.unique(values[inside], return_counts=True)
+    return _Listing(n=len(values), low=float(values.min()), values=listed, counts=counts, gaps=gaps)
+
+
+@pytest.mark.parametrize("seed", range(12))
+def test_middles_read_off_a_listing_are_numpy_medians_or_undecided(seed):
+    # Source: numpy.median (the pandas path's robust screen). A listing of the values in some windows, with the
+    # rows between them only counted, either decides the median and the median spread exactly as numpy computes
+    # them, or says it cannot (None): windows placed anywhere, values with many ties, both signs, all positive.
+    rng = np.random.default_rng(seed)
+    n = int(rng.integers(3, 3000))
+    values = np.round(rng.normal(rng.uniform(-5, 60), rng.uniform(0.1, 20), n), int(rng.integers(0, 3)))
+    if seed % 3 == 0:
+        values = np.abs(values) + 0.5  # all positive: the spread is a fold
+    log = bool(values.min() > 0)
+    median = float(np.median(values))
+    spread = float(np.median(spread_values(values, median, log)))
+    q = lambda p: float(np.quantile(values, p))  # noqa: E731
+    decided = 0
+    for trial in range(30):
+        if trial == 0:  # the windows the pass lists when every row is in the sample
+            centre = _window(values)
+            windows = sorted([centre] + (_spread_windows(values, centre) or []))
+        else:
+            windows = sorted(tuple(sorted((q(rng.uniform()), q(rng.uniform())))) for _ in range(int(rng.integers(1, 4))))
+        merged = []
+        for low, high in windows:
+            if merged and low <= merged[-1][1]:
+                merged[-1] = (merged[-1][0], max(merged[-1][1], high))
+            else:
+                merged.append((low, high))
+        listing = _listing(values, merged)
+        found = _ranked_middle(listing.values, listing.counts, listing.gaps, listing.n)
+        assert found is None or found == median, (seed, trial)
+        if found is not None:
+            middle = _listed_spread_middle(listing, found, log)
+            assert middle is None or middle == spread, (seed, trial)
+            decided += middle is not None
+        if trial == 0:
+            assert found == median
+            decided += 100 * (middle is not None)
+    assert decided >= 100  # with every row sampled, the one pass decides both
+
+
+@pytest.mark.parametrize("sample", [100_000, 300, 0])
+def test_one_pass_centres_equal_numpy_with_wrong_guesses(monkeypatch, sample):
+    # Source: numpy.median. The median's pass lists the median spread's windows too (values with ties); the
+    # sample places them, and a wrong guess of the fold (positive given where it is not, and the reverse) or a
+    # tiny sample only costs a second pass: the centres are the same.
+    import duckdb
+    import gapbook.intake_duckdb as engine_module
+    monkeypatch.setattr(engine_module, "_SAMPLE", sample)
+    rng = np.random.default_rng(5)
+    columns = {"tied": np.round(rng.normal(50, 10, 20_000), 1),
+               "negative_tail": np.round(rng.normal(10, 4, 20_000), 2),
+               "positive": np.round(np.exp(rng.normal(1, 0.5, 20_000)), 2),
+               "continuous": rng.normal(0, 1, 20_000)}
+    con = duckdb.connect()
+    con.register("frame", pd.DataFrame(columns))
+    for positive in (None, [True, True, False, None]):
+        found = _robust_centres(con, "frame", [f'"{k}"' for k in columns], positive=positive)
+        for (name, values), centre in zip(columns.items(), found):
+            median = float(np.median(values))
+            log = bool(values.min() > 0)
+            scale = 1.4826 * float(np.median(spread_values(values, median, log)))
+            scale = 1.4826 * float(np.log(np.median(spread_values(values, median, log)))) if log else scale
+            assert (centre.median, centre.scale, centre.log) == (median, scale, log), (name, positive)
 
 
 @pytest.mark.parametrize("median, scale, log", [(50.0, 3.0, False), (1e6, 1e-12, False), (-7.5, 0.25, False),

@@ -48,7 +48,9 @@ def pattern_words_sql(scanned: ScannedStudy):
         f"SELECT {keys}, count(*) AS n FROM (SELECT {select} FROM {scanned.relation}) GROUP BY {keys}").fetchnumpy()
     codes = np.column_stack([np.asarray(found[f"w{i}"], dtype=np.uint64) for i in range(len(words))])
     counts = np.asarray(found["n"], dtype=np.int64)
-    order = np.lexsort(codes.T[::-1])  # lexicographic by word, as numpy.unique sorts packed rows
+    # Lexicographic by word, as numpy.unique sorts packed rows; the words are distinct (grouped), so with one
+    # word an unstable sort gives the same order (0.16 s against 0.43 for 3,360,000 patterns).
+    order = np.argsort(codes[:, 0]) if codes.shape[1] == 1 else np.lexsort(codes.T[::-1])
     return codes[order], counts[order], p
 
 
