@@ -336,7 +336,8 @@ def test_middles_read_off_a_listing_are_numpy_medians_or_undecided(seed):
             centre = _window(values)
             windows = sorted([centre] + (_spread_windows(values, centre) or []))
         else:
-            windows = sorted(tuple(sorted((q(rng.uniform()), q(rng.uniform())))) for _ in range(int(rng.integers(1, 4))))
+            windows = sorted(tuple(sorted((q(rng.uniform()), q(rng.uniform()))))
+                             for _ in range(int(rng.integers(1, 4))))
         merged = []
         for low, high in windows:
             if merged and low <= merged[-1][1]:

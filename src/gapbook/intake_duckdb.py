@@ -1197,8 +1197,9 @@ def _spread_windows(sample: np.ndarray, window: Optional[Tuple[float, float]], p
     With the median in ``window`` and the median spread between the sample spreads' quantiles
     0.49 and 0.51, the values at the median minus and plus the median spread lie in these
     windows, so the pass that finds the median can list them too (``positive``: whether the spread
-    is a fold, guessed from the sample where None). None (a second pass lists the spreads) without a sample, or where the sample holds more than ``_SPREAD_LISTED`` distinct
-    values in the three windows: with few repeated values the pass would list too many.
+    is a fold, guessed from the sample where None). None (a second pass lists the spreads)
+    without a sample, or where the sample holds more than ``_SPREAD_LISTED`` distinct values in
+    the three windows: with few repeated values the pass would list too many.
     """
     if window is None or len(sample) == 0:
         return None
