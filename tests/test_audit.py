@@ -131,6 +131,11 @@ def test_one_incomplete_variable_is_not_called_a_dropout_design():
     # With two or more incomplete variables in nested patterns, the dropout reading is the real one.
     dropout = audit_study(load_study(_hand_params(), raw=_hand_raw()))
     assert "as when participants drop out" in dropout.sentences[3]
+    # Two variables always missing together (one pattern of gaps): monotone only trivially, too.
+    together = raw.copy()
+    together.loc[1, "d"] = ""
+    both = audit_study(load_study(_hand_params(), raw=together))
+    assert both.n_patterns == 2 and "one pattern of gaps" in both.sentences[3] and "'c', 'd'" in both.sentences[3]
     complete = audit_study(load_study(_hand_params(), raw=_hand_raw().assign(b="1", c="5", d="2")))
     assert "no variable has a missing value" in complete.sentences[3]
 

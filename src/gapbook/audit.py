@@ -934,9 +934,10 @@ def audit_from_counts(counts: MissingnessCounts, *, types: Mapping[str, str], th
 def pattern_shape(result: AuditResult, *, short: bool = False) -> str:
     """What the patterns' shape says: monotone (as with dropout), not monotone, or trivially monotone.
 
-    With at most one incomplete variable every set of patterns is monotone by definition
-    (Little & Rubin 2019, section 1.3): there is no order of gaps to read, so calling it a
-    dropout design would say something the data do not show.
+    With at most one incomplete variable, or one pattern of gaps (the incomplete variables
+    always missing together), every set of patterns is monotone by definition (Little & Rubin
+    2019, section 1.3): there is no order of gaps to read, so calling it a dropout design would
+    say something the data do not show.
 
     Parameters
     ----------
@@ -958,6 +959,12 @@ def pattern_shape(result: AuditResult, *, short: bool = False) -> str:
         return (f"monotone only trivially: one variable ('{incomplete[0]}') is incomplete, so each row either "
                 "has it or lacks it and there is no order of dropout to read (whether its gaps depend on the "
                 "other variables is the mechanism stage's question)")
+    if result.n_patterns - (result.n_complete_rows > 0) == 1:
+        if short:
+            return "one pattern of gaps"
+        shown = ", ".join(f"'{name}'" for name in incomplete[:6]) + (", ..." if len(incomplete) > 6 else "")
+        return (f"monotone only trivially: the {len(incomplete)} incomplete variables ({shown}) are missing together "
+                "in every incomplete row, one pattern of gaps, so there is no order of dropout to read")
     if result.monotone:
         return ("monotone (dropout)" if short else
                 f"monotone: the {len(incomplete)} incomplete variables can be ordered so that a row missing one "
