@@ -838,7 +838,7 @@ def read_study(path: Union[str, Path], *, id: Optional[str] = None,
         per-column ``columns``.
     **data
         Other keys of the params' ``data`` section: ``format``, ``sheet``, ``encoding``,
-        ``delimiter``, ``decimal``, ``thousands``, ``ignore``.
+        ``delimiter``, ``decimal``, ``thousands``, ``ignore``, ``keep_rows`` (the rows used).
 
     Returns
     -------
