@@ -162,6 +162,9 @@ def test_messages_name_file_rows_not_kept_positions(tmp_path):
 
 def test_methods_say_which_rows_were_analysed(bds):
     study = load_study(_params(bds))
-    text = summarise(study, tables={}, title="t").methods_text
+    summary = summarise(study, tables={}, title="t")
+    first = summary.flow.steps.iloc[0]
+    assert first["description"] == f"rows kept by data.keep_rows (344 of the {len(pd.read_csv(bds)):,} in the data file)"
+    text = summary.methods_text
     assert text.startswith(f"The analysis used the 344 of {len(pd.read_csv(bds)):,} rows of the data file for "
                            f"which {CONDITION} holds")

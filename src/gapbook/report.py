@@ -263,7 +263,10 @@ def participant_flow(study: Study, *, formula: Optional[str], group: Optional[st
             row[level] = float((mask & (group_values == level).to_numpy()).sum())
         return row
 
-    rows = [{"step": "in_file", "description": "rows in the data file", **counts(everyone)}]
+    kept = study.rows_kept  # data.keep_rows: the flow starts from the kept rows, and says so
+    described = ("rows in the data file" if kept is None else
+                 f"rows kept by data.keep_rows ({kept.n_kept:,} of the {kept.n_read:,} in the data file)")
+    rows = [{"step": "in_file", "description": described, **counts(everyone)}]
     if outcome is None:
         rows.append({"step": "complete_all_variables", "description": "every variable observed", **counts(complete)})
         table = pd.DataFrame(rows, columns=["step", "description", "all", *levels])
