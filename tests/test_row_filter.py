@@ -168,3 +168,30 @@ def test_methods_say_which_rows_were_analysed(bds):
     text = summary.methods_text
     assert text.startswith(f"The analysis used the 344 of {len(pd.read_csv(bds)):,} rows of the data file for "
                            f"which {CONDITION} holds")
+
+
+def test_follow_up_visit_message_names_the_file_row(tmp_path, gapbook_check):
+    # A kept row at an unplanned visit: the message names its place in the file (hand-counted: the 5th data
+    # row), not its place among the kept rows (4th).
+    long = tmp_path / "long.csv"
+    pd.DataFrame({"subject": ["A", "A", "B", "B", "B"], "keep": ["n", "y", "y", "y", "y"],
+                  "week": ["1", "1", "1", "2", "3"], "y": ["1", "2", "3", "4", "5"], "arm": ["a", "a", "b", "b", "b"]}
+                 ).to_csv(long, index=False)
+    result = gapbook_check(long, tmp_path, "keep == 'y'", design={
+        "layout": "long", "subject": "subject", "visit": "week", "visits": [1, 2]},
+        analysis={"formula": "y ~ arm * C(week)", "exposure": "arm"})
+    assert result.returncode == 2 and "subject B has visit 3 (data row 5)" in result.stderr, result.stderr
+
+
+def test_negative_time_message_names_the_file_row(tmp_path, capsys):
+    # The 4th data row (id D) holds -2 and is the 3rd kept row: the message names the file's row.
+    cohort = tmp_path / "cohort.csv"
+    pd.DataFrame({"pid": ["A", "B", "C", "D", "E", "F"], "cohort": ["x", "y", "y", "y", "y", "y"],
+                  "days": ["5", "9", "3", "-2", "7", "4"], "dead": ["1", "0", "1", "1", "0", "1"],
+                  "arm": ["a", "b", "a", "b", "a", "b"]}).to_csv(cohort, index=False)
+    params = tmp_path / "params.yaml"
+    params.write_text(yaml.safe_dump({"data": {"path": str(cohort), "id": "pid", "keep_rows": "cohort == 'y'"},
+                                      "analysis": {"formula": "days ~ arm", "family": "cox", "event": "dead"}}))
+    capsys.readouterr()
+    assert main(["check", str(params)]) == 2
+    assert "is -2 at data row 4 (id D)" in capsys.readouterr().err

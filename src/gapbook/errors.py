@@ -7,11 +7,11 @@ from __future__ import annotations
 
 import difflib
 from dataclasses import dataclass
-from typing import Callable, Iterable, Optional, Union
+from typing import Callable, Iterable, Optional, Sequence, Union
 
 from .text import one_line
 
-__all__ = ["OptionName", "InputError", "AnalysisError", "nearest", "did_you_mean"]
+__all__ = ["OptionName", "InputError", "AnalysisError", "nearest", "did_you_mean", "data_row"]
 
 
 @dataclass(frozen=True)
@@ -109,3 +109,21 @@ def did_you_mean(word: str, choices: Iterable[str]) -> str:
     """
     best = nearest(word, choices)
     return f"; did you mean '{best}'?" if best else ""
+
+
+def data_row(position: int, file_rows: Optional[Sequence[int]] = None) -> int:
+    """The 1-based row of the data file that a row of the study stands for, for messages.
+
+    Parameters
+    ----------
+    position : int
+        The 0-based position among the study's rows.
+    file_rows : sequence of int, optional
+        Each study row's 0-based file row when ``data.keep_rows`` left rows out
+        (``Study.file_rows``); None when the study holds every row.
+
+    Returns
+    -------
+    int
+    """
+    return int(position if file_rows is None else file_rows[position]) + 1

@@ -106,6 +106,8 @@ class Study:
     notes: Tuple[str, ...] = field(default_factory=tuple)
     warnings: Tuple[str, ...] = field(default_factory=tuple)   # printed by check and run, shown in the audit
     rows_kept: Optional["RowsKept"] = None   # data.keep_rows: the condition, rows read and kept (None: every row)
+    # data.keep_rows: each row's 0-based file row, for messages (errors.data_row); None when every row is kept
+    file_rows: Optional[np.ndarray] = field(default=None, repr=False)
 
     @property
     def missing(self) -> pd.DataFrame:
@@ -711,7 +713,8 @@ def load_study(params: Params, raw: Optional[pd.DataFrame] = None) -> Study:
                                           for source, name in sources.items())
     return Study(data=data, reasons=reason_frame, variables=infos, ids=ids.reset_index(drop=True), id_column=id_column,
                  range_issues=issues, extreme_values=extremes, source=source, sha256=sha, notes=notes,
-                 warnings=tuple(warnings), rows_kept=rows_kept)
+                 warnings=tuple(warnings), rows_kept=rows_kept,
+                 file_rows=None if rows_kept is None else file_rows)
 
 
 def _baseline_change_not_applicable(data: pd.DataFrame, reasons: pd.DataFrame, params: Params

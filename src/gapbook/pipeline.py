@@ -232,7 +232,7 @@ def check_model_up_front(params: Params, study: Any) -> Tuple[str, List[str]]:
         model = analysis_model(params)
         outcome, covariates = check_model_data(study.data, model)
         if model.is_time_to_event():  # times 0 or more, event values in the coding; names the row and id
-            check_follow_up(study.data, time=outcome, event=model.event, ids=study.ids)
+            check_follow_up(study.data, time=outcome, event=model.event, ids=study.ids, file_rows=study.file_rows)
     for column in covariates:
         if study.data[column].notna().sum() == 0:
             raise InputError(f"{params.label}: analysis.formula uses '{column}', which has no observed values; "

@@ -339,7 +339,7 @@ def repeated_design(params: Params, study: Study) -> "RepeatedStudy":
         if design.layout == "long":
             data = study.data.assign(**{subject: study.ids.to_numpy()})  # intake kept the subject apart, as an id
             return repeated_study(data, study.reasons, layout="long", subject=subject, visit=design.visit,
-                                  visits=design.visits, baseline=design.baseline)
+                                  visits=design.visits, baseline=design.baseline, file_rows=study.file_rows)
         return repeated_study(study.data, study.reasons, layout="wide", subject=subject, visit=design.visit,
                               visits=design.visits, baseline=design.baseline, ids=study.ids,
                               outcome_columns=design.outcome_columns, outcome=_outcome_name(params))

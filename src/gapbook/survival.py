@@ -20,7 +20,7 @@ from typing import Any, Dict, List, Optional, Sequence, Tuple, Union
 import numpy as np
 import pandas as pd
 
-from .errors import AnalysisError, InputError
+from .errors import AnalysisError, InputError, data_row
 from .separation import UNBOUNDED_ADVICE, runs_off, unbounded_causes, unbounded_columns
 from .text import counted
 from .vocabulary import TIES_METHODS
@@ -72,14 +72,16 @@ class EventCoding:
         known = self._hits(values, self.event) | self._hits(values, self.censored)
         return np.flatnonzero(values.notna().to_numpy() & ~known)
 
-    def refuse_unexpected(self, data: pd.DataFrame, ids: Optional[pd.Series] = None) -> None:
-        """Exit 2 (option ``event``) naming the first row (and id) whose value is not in the coding."""
+    def refuse_unexpected(self, data: pd.DataFrame, ids: Optional[pd.Series] = None,
+                          file_rows: Optional[np.ndarray] = None) -> None:
+        """Exit 2 (option ``event``) naming the first row (its file row, ``file_rows``) and id whose value is not in
+        the coding."""
         bad = self.unexpected(data)
         if not len(bad):
             return
         value = data[self.column].iloc[bad[0]]
         shown = repr(value) if isinstance(value, str) else f"{float(value):g}"
-        where = f"data row {bad[0] + 1}" + (f" (id {ids.iloc[bad[0]]})" if ids is not None else "")
+        where = f"data row {data_row(bad[0], file_rows)}" + (f" (id {ids.iloc[bad[0]]})" if ids is not None else "")
         raise InputError(f"column '{self.column}' holds {shown} at {where} and in {len(bad)} row(s) in all, which is "
                          f"neither an event value ({_values_text(self.event)}) nor a censored value "
                          f"({_values_text(self.censored)}); list it under event or censored (a competing event "
@@ -106,7 +108,7 @@ class EventCoding:
 
 
 def check_follow_up(data: pd.DataFrame, *, time: str, event: EventCoding,
-                    ids: Optional[pd.Series] = None) -> None:
+                    ids: Optional[pd.Series] = None, file_rows: Optional[np.ndarray] = None) -> None:
     """Exit 2 when a follow-up time is negative or not a number, or an event value is not in the coding.
 
     Missing times and event values are not errors: they are missing data, counted with their reasons.
@@ -120,6 +122,7 @@ def check_follow_up(data: pd.DataFrame, *, time: str, event: EventCoding,
     time : the follow-up time column (the formula's left side).
     event : the event coding.
     ids : the participants' ids (``study.ids``), to name the first offending row.
+    file_rows : each row's 0-based file row when ``data.keep_rows`` left rows out (``study.file_rows``).
     """
     column = data[time]
     if not pd.api.types.is_numeric_dtype(column) or isinstance(column.dtype, pd.CategoricalDtype):
@@ -128,14 +131,14 @@ def check_follow_up(data: pd.DataFrame, *, time: str, event: EventCoding,
     values = column.to_numpy(dtype=float, na_value=np.nan)
     bad = np.flatnonzero(~np.isnan(values) & ~(values >= 0))
     if len(bad):
-        where = f"data row {bad[0] + 1}" + (f" (id {ids.iloc[bad[0]]})" if ids is not None else "")
+        where = f"data row {data_row(bad[0], file_rows)}" + (f" (id {ids.iloc[bad[0]]})" if ids is not None else "")
         raise InputError(f"the follow-up time '{time}' is {values[bad[0]]:g} at {where} and is negative in "
                          f"{len(bad)} row(s); follow-up times are 0 or more (check the dates: an end before the "
                          "start)", option="formula")
     if not np.isfinite(values[~np.isnan(values)]).all():
         raise InputError(f"the follow-up time '{time}' holds an infinite value; give a finite time",
                          option="formula")
-    event.refuse_unexpected(data, ids)
+    event.refuse_unexpected(data, ids, file_rows)
 
 
 def cox_model(data: pd.DataFrame, *, formula: str, event: EventCoding, ties: str = "efron", eval_env: Any = None,

@@ -21,7 +21,7 @@ from typing import Any, Optional, Sequence, Tuple
 import numpy as np
 import pandas as pd
 
-from ..errors import InputError, OptionName, did_you_mean
+from ..errors import InputError, OptionName, data_row, did_you_mean
 from ..vocabulary import LAYOUTS, NO_RECORD
 from .repeated import RepeatedOutcome, label, repeated_outcome, wide_to_long
 
@@ -96,7 +96,8 @@ class RepeatedStudy:
 
 def repeated_study(data: pd.DataFrame, reasons: pd.DataFrame, *, layout: str, subject: str, visits: Sequence[Any],
                    visit: str = "visit", baseline: Any = None, ids: Optional[pd.Series] = None,
-                   outcome_columns: Sequence[str] = (), outcome: Optional[str] = None) -> RepeatedStudy:
+                   outcome_columns: Sequence[str] = (), outcome: Optional[str] = None,
+                   file_rows: Optional[np.ndarray] = None) -> RepeatedStudy:
     """Check a follow-up study's rows against its plan and lay it out long.
 
     Parameters
@@ -110,6 +111,7 @@ def repeated_study(data: pd.DataFrame, reasons: pd.DataFrame, *, layout: str, su
     ids : wide: the participants' identifiers (``Study.ids``).
     outcome_columns : wide: the outcome's column at each planned visit, in plan order.
     outcome : wide: the outcome's name in the long-format formula.
+    file_rows : each row's 0-based file row when rows were left out (``Study.file_rows``), for messages.
 
     Returns
     -------
@@ -129,17 +131,18 @@ def repeated_study(data: pd.DataFrame, reasons: pd.DataFrame, *, layout: str, su
     if layout == "wide":
         return _wide(data, reasons, subject=subject, visit=visit, visits=visits, analysed=analysed, baseline=baseline,
                      ids=ids, outcome_columns=outcome_columns, outcome=outcome)
-    return _long(data, reasons, subject=subject, visit=visit, visits=visits, analysed=analysed, baseline=baseline)
+    return _long(data, reasons, subject=subject, visit=visit, visits=visits, analysed=analysed, baseline=baseline,
+                 file_rows=file_rows)
 
 
-def _long(data, reasons, *, subject, visit, visits, analysed, baseline) -> RepeatedStudy:
+def _long(data, reasons, *, subject, visit, visits, analysed, baseline, file_rows=None) -> RepeatedStudy:
     for option, column in (("subject", subject), ("visit", visit)):
         if column not in data.columns:
             raise InputError(f"'{column}' is not a column of the data{did_you_mean(column, data.columns)}", option=option)
     subjects = data[subject]
     blank = np.flatnonzero(subjects.isna().to_numpy())
     if len(blank):
-        raise InputError(f"data row {blank[0] + 1} has no subject in '{subject}'; every row needs one", option="subject")
+        raise InputError(f"data row {data_row(blank[0], file_rows)} has no subject in '{subject}'; every row needs one", option="subject")
     subjects = subjects.astype(str).str.strip()
     planned = [_planned_value(v, visits) for v in data[visit].astype(object).to_numpy()]
     unknown = [k for k, v in enumerate(planned) if v is None]
@@ -147,7 +150,7 @@ def _long(data, reasons, *, subject, visit, visits, analysed, baseline) -> Repea
         k = unknown[0]
         raw = data[visit].iloc[k]
         shown = "no visit" if pd.isna(raw) else f"visit {label(raw)}"
-        raise InputError(f"subject {subjects.iloc[k]} has {shown} (data row {k + 1}), which is not a planned visit "
+        raise InputError(f"subject {subjects.iloc[k]} has {shown} (data row {data_row(k, file_rows)}), which is not a planned visit "
                          f"({', '.join(map(label, visits))}); add it to the planned visits, correct the '{visit}' "
                          "column, or keep only the planned visits' rows with ", OptionName("keep_rows"),
                          " (unscheduled and early-termination rows are not analysis visits; in ADaM, e.g. "
