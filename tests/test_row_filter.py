@@ -151,6 +151,23 @@ def test_follow_up_layout_uses_the_kept_rows(bds, tmp_path, gapbook_check):
     assert "344 participants" in kept.stdout
 
 
+def test_duplicate_ids_of_a_multi_parameter_file_point_at_the_filter(bds, tmp_path):
+    # The BDS-shaped file read one row per penguin without a filter: the same id on several rows (one per
+    # parameter), and the refusal says which key chooses one row each; both engines say the same line.
+    messages = []
+    for engine in ("pandas", "duckdb"):
+        params = Params.from_dict({"data": {"path": str(bds), "id": "USUBJID", "engine": engine},
+                                   "missing": {"markers": [""]}})
+        with pytest.raises(InputError) as error:
+            if engine == "pandas":
+                load_study(params)
+            else:
+                with scan_study(params):
+                    pass
+        messages.append(str(error.value))
+    assert messages[0] == messages[1] and "duplicate id 'P001'" in messages[0] and "data.keep_rows" in messages[0]
+
+
 def test_messages_name_file_rows_not_kept_positions(tmp_path):
     # Two kept rows share an id: the message names their rows in the file (3 and 5), counted by hand.
     path = tmp_path / "dup.csv"

@@ -986,7 +986,8 @@ def duplicate_id_error(label: str, id_column: str, first: Any, rows: Sequence[in
     """
     where = ", ".join(str(int(r) + 1) for r in rows[:3])
     return InputError(f"{label}: duplicate id '{one_line(first, 80)}' in column '{id_column}' (data rows {where}); "
-                      "ids must be unique")
+                      "ids must be unique (a file with several rows per participant, one per parameter or visit "
+                      "as in ADaM, needs data.keep_rows to choose one row each, or a design section for visits)")
 
 
 def _split_ids(raw: pd.DataFrame, params: Params, label: str, file_rows: np.ndarray
