@@ -134,7 +134,7 @@ def test_check_says_what_was_kept_and_duckdb_agrees(bds, tmp_path, gapbook_check
     for engine in ("pandas", "duckdb"):
         result = gapbook_check(bds, tmp_path, CONDITION, engine=engine)
         assert result.returncode == 0, result.stderr
-        assert f"rows:   344 of {len(pd.read_csv(bds))} kept by data.keep_rows ({CONDITION})" in result.stdout
+        assert f"rows:   344 of {len(pd.read_csv(bds)):,} kept by data.keep_rows ({CONDITION})" in result.stdout
 
 
 def test_follow_up_layout_uses_the_kept_rows(bds, tmp_path, gapbook_check):

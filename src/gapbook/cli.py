@@ -110,7 +110,7 @@ def cmd_check(args: argparse.Namespace) -> int:
            f"read with {data.engine})")
     if data.rows_kept is not None:
         kept = data.rows_kept
-        _print(f"rows:   {kept.n_kept} of {kept.n_read} kept by data.keep_rows ({one_line(kept.condition, 200)})")
+        _print(f"rows:   {kept.n_kept:,} of {kept.n_read:,} kept by data.keep_rows ({one_line(kept.condition, 200)})")
     _print(f"missing: {counted(data.missing_cells, 'cell')} in {counted(data.incomplete_variables, 'variable')}; "
            f"{counted(data.complete_rows, 'row')} complete")
     for note in data.notes:
