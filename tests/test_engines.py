@@ -246,6 +246,19 @@ def test_id_problems_are_the_same_one_line_errors(tmp_path):
     assert pair[0] == pair[1] and "empty at data row 3" in pair[0]
 
 
+@pytest.mark.parametrize("ids, refused", [([3, 7, 12, 40, 41, 90], None), ([7, 3, 12, 40, 41, 90], None),
+                                          ([3, 7, 12, 7, 41, 12], "duplicate id '7'"),
+                                          ([1, 2, 3, 3, 4, 5], "duplicate id '3'")])
+def test_integer_ids_of_a_parquet_file_checked_as_pandas_checks_them(tmp_path, ids, refused):
+    # Source: the pandas engine's id checks. Integer ids stored as such are read in batches, not compared in SQL:
+    # increasing, unordered but unique, and repeated ids (the same refusal, naming the same rows).
+    path = tmp_path / "ids.parquet"
+    pd.DataFrame({"pid": np.array(ids, dtype=np.int64), "x": [1.0, 2.0, None, 4.0, 5.0, 6.0]}).to_parquet(path)
+    pair = audit_both(_params(path, data={"id": "pid"}), tmp_path)
+    assert pair[0] == pair[1]
+    assert (refused is None and isinstance(pair[0], dict)) or (refused is not None and refused in pair[0])
+
+
 def test_text_among_numbers_is_refused_naming_the_same_rows(tmp_path):
     path = tmp_path / "stray.csv"
     pd.DataFrame({"pid": list("abcdef"), "x": ["1", "2", "see notes", "4", "see notes", "5"]}).to_csv(path, index=False)

@@ -366,6 +366,7 @@ class _Scanner:
         self.variables = [n for n in names if n != self.id_column and n not in filter_only_columns(params)]
         self.alias = {name: f"c{j}" for j, name in enumerate(self.variables)}
         self.kinds: Dict[str, str] = {}
+        self.file_names_of: Dict[str, str] = {}  # a Parquet file's own name of each column
         self.id_kind = "text"
         self.nan_columns: set = set()  # typed number columns holding a NaN cell (only these need a NaN test)
         self.sample_relation: Optional[str] = None  # a view of the decided rows over sampled file rows
@@ -401,6 +402,7 @@ class _Scanner:
                     raise InputError(f"{self.label}: column '{name}' is stored as {kind}; data.engine duckdb reads "
                                      "numbers and text: store it as text or set data.engine to pandas")
                 out[name] = quote_name(raw_name)
+                self.file_names_of[name] = str(raw_name)
             return out
         for name in self.names:
             self._set_kind(name, "text")
@@ -517,9 +519,11 @@ class _Scanner:
             shown = clean_id(self.con.execute("SELECT id FROM cells WHERE rn = ?", [nul]).fetchone()[0])
             raise nul_error(self.label, self.id_column, shown, rows_note([nul], [shown]))
         # Strictly increasing ids (the usual case) are unique; otherwise look for duplicates.
-        unordered = self.con.execute(f"SELECT count(*) FROM (SELECT {cid} AS cid, lag({cid}) OVER (ORDER BY rn) AS prev "
-                                     "FROM cells) WHERE prev >= cid").fetchone()[0]
-        if not unordered:
+        increasing = self._integer_ids_increase()
+        if increasing is None:
+            increasing = not self.con.execute(f"SELECT count(*) FROM (SELECT {cid} AS cid, lag({cid}) OVER (ORDER BY rn) "
+                                              "AS prev FROM cells) WHERE prev >= cid").fetchone()[0]
+        if increasing:
             return
         first = self.con.execute(
             f"WITH c AS (SELECT rn, {cid} AS cid FROM cells), d AS (SELECT cid FROM c GROUP BY cid HAVING count(*) > 1) "
@@ -529,6 +533,30 @@ class _Scanner:
                                                    [first[0]]).fetchall()]
             shown = self.con.execute("SELECT id FROM cells WHERE rn = ?", [rows[0]]).fetchone()[0]
             raise duplicate_id_error(self.label, self.id_column, clean_id(shown), rows)
+
+    def _integer_ids_increase(self) -> Optional[bool]:
+        """Whether the ids strictly increase down a Parquet file whose id column is stored as integers (and whose
+        every row is kept); None for any other file, whose ids SQL compares.
+
+        Read in batches with pyarrow: 0.05 CPU s for 10,000,000 ids, where SQL's comparison of each id with
+        the one before sorts the rows first (1.1 CPU s). Blank ids were refused before.
+        """
+        import pyarrow.parquet as pq
+        import pyarrow.types
+
+        if self.fmt != "parquet" or self.keep_rows is not None or self.id_kind != "number":
+            return None
+        file = pq.ParquetFile(self.sql_path)
+        name = self.file_names_of[self.id_column]
+        if not pyarrow.types.is_integer(file.schema_arrow.field(name).type):
+            return None
+        last = None
+        for batch in file.iter_batches(batch_size=1 << 20, columns=[name]):
+            ids = batch.column(0).to_numpy()
+            if len(ids) and ((last is not None and ids[0] <= last) or not (ids[1:] > ids[:-1]).all()):
+                return False
+            last = ids[-1] if len(ids) else last
+        return True
 
     def _ids_of(self, rows: Sequence[int]) -> List[Any]:
         if self.id_column is None:
