@@ -331,3 +331,44 @@ def test_a_nul_in_a_parquet_text_cell_names_column_and_row(tmp_path, capsys, eng
     params = PARAMS.replace("path: d.csv, id: id}", f"path: d.parquet, id: id, engine: {engine}}}")
     code, err = check(study(tmp_path, params.replace(", levels: [a, b]", "")), capsys)
     assert code == 2 and "column 'arm' holds 'b\\x00' at data rows 2 (ids 2), with a NUL character" in err
+
+
+@pytest.mark.parametrize("engine", ["pandas", "duckdb"])
+def test_a_parquet_file_with_two_columns_of_one_name_says_so_in_both_engines(tmp_path, capsys, engine):
+    # pandas gave pyarrow's "Multiple matches for FieldRef.Name(x) in id: int64"; DuckDB intake's own line.
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    pq.write_table(pa.table([pa.array([1, 2, 3]), pa.array([1.0, 2.0, 3.0]), pa.array([4.0, 5.0, 6.0])],
+                            names=["id", "age", "age"]), tmp_path / "d.parquet")
+    params = PARAMS.replace("path: d.csv, id: id}", f"path: d.parquet, id: id, engine: {engine}}}")
+    code, err = check(study(tmp_path, params), capsys)
+    assert code == 2 and len(err.strip().splitlines()) == 1, err
+    assert "d.parquet: columns 2 and 3 are both named 'age'; rename one in the file" in err
+
+
+@pytest.mark.parametrize("engine", ["pandas", "duckdb"])
+@pytest.mark.parametrize("metadata,detail", [
+    (b"{not json", "Expecting property name"),                                   # not JSON
+    (b'{"columns": 5}', "'index_columns'"),                                       # JSON without the keys
+    (b'{"index_columns": ["zz"], "columns": []}', "'zz'"),                        # an index column that is not there
+])
+def test_a_parquet_file_with_broken_pandas_metadata_says_so_in_both_engines(tmp_path, capsys, engine, metadata, detail):
+    # pyarrow's own words ("cannot be read as parquet ('index_columns')") named neither the metadata nor a remedy.
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    table = pa.table({"id": [1, 2, 3], "arm": ["a", "b", "a"], "age": [30.0, None, 50.0], "y": [1.0, 2.0, 3.0]})
+    pq.write_table(table.replace_schema_metadata({b"pandas": metadata}), tmp_path / "d.parquet")
+    params = PARAMS.replace("path: d.csv, id: id}", f"path: d.parquet, id: id, engine: {engine}}}")
+    code, err = check(study(tmp_path, params), capsys)
+    assert code == 2 and len(err.strip().splitlines()) == 1, err
+    assert "d.parquet: its pandas metadata (the schema's 'pandas' entry" in err and detail in err
+    assert "write the file again" in err
+
+
+def test_a_parquet_file_that_is_damaged_is_not_called_a_metadata_problem(tmp_path, capsys):
+    (tmp_path / "d.parquet").write_bytes(b"PAR1" + b"\x01" * 100 + b"PAR1")
+    code, err = check(study(tmp_path, PARAMS.replace("path: d.csv", "path: d.parquet")), capsys)
+    assert code == 2 and "cannot be read as parquet" in err and "metadata" not in err
+

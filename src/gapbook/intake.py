@@ -36,7 +36,7 @@ __all__ = ["MAD_TO_SD", "FREE_TEXT_LEVEL", "VariableInfo", "Study", "variables_t
            "read_study", "check_expression_columns", "check_declared_columns", "clean_id", "blank_id_error",
            "duplicate_id_error", "PlainNumbers", "DistinctCells", "ColumnDecision", "EveryValueNeeded",
            "decide_column", "RANGE_COLUMNS", "EXTREME_COLUMNS", "RANGE_ACTIONS", "range_action", "range_rule",
-           "MAX_MAGNITUDE", "too_large_error", "nul_error"]
+           "MAX_MAGNITUDE", "too_large_error", "nul_error", "repeated_name_error"]
 
 MAD_TO_SD = 1.4826  # consistency constant of the MAD for the normal distribution (Hampel 1974)
 MAX_NAME_LENGTH = 256         # characters in a column name
@@ -312,13 +312,8 @@ def read_table(path: Path, fmt: str = "auto", sheet: Any = None, encoding: str =
             header = ["" if _is_empty(v) else str(v) for v in table.iloc[0].tolist()]
             raw = table.iloc[1:].reset_index(drop=True)
         else:
-            _refuse_nested_parquet(path)
-            if nrows is None:
-                raw = pd.read_parquet(path)
-            else:
-                import pyarrow.parquet as pq
-                batch = next(pq.ParquetFile(path).iter_batches(batch_size=max(nrows, 1)), None)
-                raw = pd.read_parquet(path) if batch is None else batch.to_pandas()
+            _check_parquet_schema(path)
+            raw = _read_parquet(path, nrows)
             header = [str(c) for c in raw.columns]
     except InputError:
         raise
@@ -396,15 +391,74 @@ def _text_header(path: Path, sep: str, encoding: str) -> List[str]:
             raise InputError(f"{path}: the header row cannot be read ({exc})") from None
 
 
-def _refuse_nested_parquet(path: Path) -> None:
+def _check_parquet_schema(path: Path) -> None:
+    """Refuse, naming the column, a Parquet schema gapbook cannot read as one value per named cell.
+
+    A repeated name gave pyarrow's "Multiple matches for FieldRef.Name(x)" with pandas and intake's
+    own line with DuckDB; both engines now give intake's line.
+    """
     import pyarrow.parquet as pq
     import pyarrow.types as pat
 
     schema = pq.read_schema(path)
+    seen: Dict[str, int] = {}
+    for position, name in enumerate(schema.names):
+        if name in seen:
+            raise repeated_name_error(str(path), seen[name], position, name)
+        seen[name] = position
     for name, kind in zip(schema.names, schema.types):
         if pat.is_nested(kind) or pat.is_dictionary(kind) and pat.is_nested(kind.value_type):
             raise InputError(f"{path}: column '{one_line(name, 80)}' holds {kind} values (lists or records in one "
                              "cell); gapbook reads one value per cell: flatten it or leave it out (data.ignore)")
+
+
+def _read_parquet(path: Path, nrows: Optional[int]) -> pd.DataFrame:
+    """A Parquet file (or its first ``nrows`` rows) as pandas reads it; damaged pandas metadata named as such.
+
+    pandas rebuilds its index and column types from the JSON the schema keeps under the key
+    ``pandas``; when that is broken, pyarrow's error ('index_columns', a JSON parser's message,
+    "data type 'bogus' not understood") named neither the metadata nor what to do. Reading the
+    columns without it is the test: it is the metadata when that works.
+    """
+    import pyarrow.parquet as pq
+
+    try:
+        if nrows is None:
+            return pd.read_parquet(path)
+        batch = next(pq.ParquetFile(path).iter_batches(batch_size=max(nrows, 1)), None)
+        return pd.read_parquet(path) if batch is None else batch.to_pandas()
+    except Exception as exc:
+        try:
+            next(pq.ParquetFile(path).iter_batches(batch_size=1), None)
+            schema = pq.read_schema(path)
+        except Exception:
+            raise exc from None  # the file itself is damaged: read_table's general message
+        if b"pandas" not in (schema.metadata or {}):
+            raise
+        detail = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        raise InputError(f"{path}: its pandas metadata (the schema's 'pandas' entry: how pandas wrote the index and "
+                         f"column types) is damaged ({one_line(detail, 120)}); write the file again (e.g. pandas "
+                         "to_parquet, or pyarrow without that entry)") from None
+
+
+def repeated_name_error(label: str, first: int, second: int, name: str) -> InputError:
+    """The error for two columns of one name (0-based positions), from a header row or a Parquet schema.
+
+    Parameters
+    ----------
+    label : str
+        The data file.
+    first, second : int
+        0-based positions of the two columns.
+    name : str
+        The name.
+
+    Returns
+    -------
+    InputError
+    """
+    return InputError(f"{label}: columns {first + 1} and {second + 1} are both named '{one_line(name, 80)}'; "
+                      "rename one in the file (gapbook never guesses which is which)")
 
 
 def check_header(raw: pd.DataFrame, label: str, *, ignore: Tuple[str, ...] = (), fmt: str = "csv",
@@ -452,8 +506,7 @@ def check_header(raw: pd.DataFrame, label: str, *, ignore: Tuple[str, ...] = (),
     seen: Dict[str, int] = {}
     for position, name in enumerate(names):
         if name in seen:
-            raise InputError(f"{label}: columns {seen[name] + 1} and {position + 1} are both named '{one_line(name, 80)}'; "
-                             "rename one in the file (gapbook never guesses which is which)")
+            raise repeated_name_error(label, seen[name], position, name)
         seen[name] = position
     return raw, warnings
 
