@@ -372,3 +372,40 @@ def test_a_parquet_file_that_is_damaged_is_not_called_a_metadata_problem(tmp_pat
     code, err = check(study(tmp_path, PARAMS.replace("path: d.csv", "path: d.parquet")), capsys)
     assert code == 2 and "cannot be read as parquet" in err and "metadata" not in err
 
+
+
+WIDE = "pid,arm,base,y2,y4\n1,a,5,1.5,2.5\n2,b,6,1.0,\n3,a,4,2.0,3.0\n4,b,5,0.5,1.5\n5,a,6,1.0,2.0\n6,b,4,,\n"
+WIDE_PARAMS = """data: {path: d.csv, id: pid}
+design: {layout: wide, subject: pid, visit: week, visits: [2, 4], outcome_columns: [y2, y4]}
+variables: {arm: {type: binary, levels: [a, b]}}
+analysis: {formula: "y ~ arm * C(week) + base", exposure: arm}
+"""
+
+
+@pytest.mark.parametrize("columns,needle", [
+    # the subject is the id, kept apart from the variables: "'pid' is not a column of the data" was false
+    ("[pid, y4]", "design.outcome_columns names 'pid', the subject column (design.subject); list the outcome's own "
+                  "column at each planned visit"),
+    # a covariate of the formula became the outcome at a visit: "analysis.formula: 'base' is not a column" was false
+    ("[y2, base]", "design.outcome_columns names 'base', which analysis.formula uses as a covariate"),
+    # a text column as an outcome column stopped with a ValueError traceback ("could not convert string to float")
+    ("[y2, arm2]", "design.outcome_columns: 'arm2' holds categories, not the outcome's numbers"),
+])
+def test_a_wide_layout_outcome_column_that_is_no_outcome_is_named_as_such(tmp_path, capsys, columns, needle):
+    csv = WIDE.replace("pid,arm,", "pid,arm,arm2,").replace(",a,", ",a,x,").replace(",b,", ",b,y,")
+    code, err = check(study(tmp_path, WIDE_PARAMS.replace("[y2, y4]", columns), csv), capsys)
+    assert code == 2 and len(err.strip().splitlines()) == 1 and "Traceback" not in err, err
+    assert needle in err
+
+
+def test_a_wide_layout_visit_name_that_is_a_column_is_refused(tmp_path, capsys):
+    # wide_to_long wrote the visits over the column 'base', a covariate of the model
+    code, err = check(study(tmp_path, WIDE_PARAMS.replace("visit: week", "visit: base").replace("C(week)", "C(base)"),
+                            WIDE), capsys)
+    assert code == 2 and "design.visit: 'base' is already a column of the data" in err, err
+
+
+def test_the_wide_layout_itself_still_checks(tmp_path, capsys):
+    code, err = check(study(tmp_path, WIDE_PARAMS, WIDE), capsys)
+    assert code == 0, err
+

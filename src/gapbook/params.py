@@ -617,6 +617,30 @@ def load_params(path: Union[str, Path]) -> Params:
     return Params.from_dict(raw, source=str(path.resolve()))
 
 
+def _check_wide_columns(params: Params, subject: str, label: str) -> None:
+    """A wide layout's outcome columns are neither the subject column nor a covariate of the formula.
+
+    The subject column is the id, kept apart from the variables: 'not a column of the data' sent
+    the user looking for a column that is there. A covariate listed as an outcome column became
+    the outcome at a visit and vanished from the covariates, so the formula's 'not a column' was
+    wrong too.
+    """
+    key = "design.subject" if params.design.subject else "data.id"
+    columns = [c.strip() for c in params.design.outcome_columns]
+    if subject in columns:
+        raise InputError(f"{label}: design.outcome_columns names '{one_line(subject, 80)}', the subject column "
+                         f"({key}); list the outcome's own column at each planned visit")
+    try:
+        covariates = parse_formula(params.analysis.formula, where="").columns if params.analysis.formula else ()
+    except ExpressionError:
+        return  # the formula's own check names what is wrong with it
+    both = [c for c in columns if c in covariates]
+    if both:
+        raise InputError(f"{label}: design.outcome_columns names '{one_line(both[0], 80)}', which analysis.formula "
+                         "uses as a covariate (one value per participant); list the outcome's own column at each "
+                         "planned visit, or take it out of the formula")
+
+
 def _check_followup(params: Params, label: str) -> None:
     """Keys of different sections that must agree in a follow-up study (design, analysis.repeated, estimand)."""
     design, repeated = params.design, params.analysis.repeated
@@ -637,6 +661,8 @@ def _check_followup(params: Params, label: str) -> None:
                          "study the participant column is the id: give one of them, or the same column in both")
     if design.layout == "long" and design.visit == subject:
         raise InputError(f"{label}: design.visit '{design.visit}' is also the subject column")
+    if design.layout == "wide":
+        _check_wide_columns(params, subject, label)
     if repeated is not None:
         for key, given, expected in (("subject", repeated.subject, subject), ("visit", repeated.visit, design.visit)):
             if given is not None and given != expected:

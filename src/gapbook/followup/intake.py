@@ -181,9 +181,20 @@ def _wide(data, reasons, *, subject, visit, visits, analysed, baseline, ids, out
         raise InputError(f"give one outcome column per planned visit ({len(visits)} visits, {len(outcome_columns)} "
                          "columns), in the order of ", OptionName("visits"), option="outcome_columns")
     for column in outcome_columns:
+        if column == subject:
+            raise InputError(f"'{column}' is the subject column (", OptionName("subject"), "); list the outcome's own "
+                             "column at each planned visit", option="outcome_columns")
         if column not in data.columns:
             raise InputError(f"'{column}' is not a column of the data{did_you_mean(column, data.columns)}",
                              option="outcome_columns")
+        if not pd.api.types.is_numeric_dtype(data[column]):
+            raise InputError(f"'{column}' holds categories, not the outcome's numbers; list the outcome's own column "
+                             "at each planned visit", option="outcome_columns")
+    for name, option in ((visit, "visit"), (outcome, "outcome")):
+        if name in data.columns and name not in outcome_columns:
+            # wide_to_long would write the visits (or the outcome) over that column
+            raise InputError(f"'{name}' is already a column of the data; in the wide layout it names the column "
+                             "gapbook makes: choose another name", option=option)
     if not outcome:
         raise InputError("name the repeated outcome (the left side of the long-format formula, e.g. 'chg' in "
                          "'chg ~ arm * C(visit)')", option="outcome")
