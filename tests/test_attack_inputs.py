@@ -409,3 +409,30 @@ def test_the_wide_layout_itself_still_checks(tmp_path, capsys):
     code, err = check(study(tmp_path, WIDE_PARAMS, WIDE), capsys)
     assert code == 0, err
 
+
+
+BIDI = "\u202e"
+
+
+def test_new_shows_control_and_bidi_characters_of_a_folder_name_escaped(tmp_path, capsys):
+    # A right-to-left override in the folder name reached the terminal raw: 'gapbook new' printed it, and the
+    # rest of the line was shown reversed (Unicode UAX #9).
+    target = tmp_path / f"study{BIDI}vsc.exe\x1b[2J"
+    assert main(["new", str(target)]) == 0
+    out = capsys.readouterr().out
+    assert BIDI not in out and "\x1b" not in out
+    assert "study\\u202evsc.exe\\x1b[2J" in out
+
+
+def test_check_shows_a_data_file_name_with_a_bidi_override_escaped(tmp_path, capsys):
+    folder = tmp_path / f"a{BIDI}b"
+    folder.mkdir()
+    (folder / "d.csv").write_text(CSV)
+    (folder / "params.yaml").write_text(PARAMS)
+    assert main(["check", str(folder / "params.yaml")]) == 0
+    out = capsys.readouterr().out
+    assert BIDI not in out and "a\\u202eb" in out
+    (folder / "d.csv").unlink()
+    assert main(["check", str(folder / "params.yaml")]) == 2
+    err = capsys.readouterr().err
+    assert BIDI not in err and "a\\u202eb" in err

@@ -24,7 +24,13 @@ TEMPLATE_NAME = "params_template.yaml"
 
 
 def _print(line: str) -> None:
-    print(line, flush=True)
+    """Every line the command prints: user text in it (file and folder names, params values, column names) is
+    shown with control and bidirectional characters escaped (``\\u202e``), never obeyed by the terminal."""
+    print(one_line(line), flush=True)
+
+
+def _print_error(line: str) -> None:
+    print(one_line(line), file=sys.stderr, flush=True)
 
 
 def _stages(text: Optional[str]) -> Optional[List[str]]:
@@ -262,15 +268,15 @@ def main(argv: Optional[Sequence[str]] = None) -> int:
     try:
         return args.func(args)
     except InputError as exc:
-        print(f"gapbook: error: {exc}", file=sys.stderr, flush=True)
+        _print_error(f"gapbook: error: {exc}")
         return 2
     except AnalysisError as exc:
-        print(f"gapbook: analysis failed: {exc}", file=sys.stderr, flush=True)
+        _print_error(f"gapbook: analysis failed: {exc}")
         return 1
     except KeyboardInterrupt as exc:
         terminated = isinstance(exc, Terminated)
-        print(f"gapbook: stopped by {'SIGTERM' if terminated else 'an interrupt'}; kernels shut down, "
-              "no record was written", file=sys.stderr, flush=True)
+        _print_error(f"gapbook: stopped by {'SIGTERM' if terminated else 'an interrupt'}; kernels shut down, "
+                     "no record was written")
         return 143 if terminated else 130
     finally:
         if previous is not None:
