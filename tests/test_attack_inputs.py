@@ -436,3 +436,41 @@ def test_check_shows_a_data_file_name_with_a_bidi_override_escaped(tmp_path, cap
     assert main(["check", str(folder / "params.yaml")]) == 2
     err = capsys.readouterr().err
     assert BIDI not in err and "a\\u202eb" in err
+
+
+@pytest.mark.parametrize("text,meaning", [("not applicable", "outside a variable's applies_if condition"),
+                                          ("implausible", "a range check set missing")])
+def test_a_reason_column_cannot_give_a_reason_intake_keeps_for_itself(tmp_path, capsys, text, meaning):
+    # 'not applicable' from the reason column made a blank outcome not missing (left out of the missing-data
+    # analysis without a word); 'implausible' claimed a range check that never ran.
+    csv = "id,arm,age,y,why\n1,a,30,1.5,\n2,b,40,,lost\n3,a,50,2.5,\n4,b,33,,TEXT\n5,a,60,2.2,\n6,b,35,3.0,\n"
+    params = PARAMS.replace('missing: {markers: ["NA", "?"]}', "missing: {columns: {y: {reason_from: why}}}")
+    code, err = check(study(tmp_path, params, csv.replace("TEXT", text)), capsys)
+    assert code == 2 and len(err.strip().splitlines()) == 1, err
+    assert (f"missing.columns.y.reason_from: 'why' holds '{text}' at data rows 4 (ids 4), the reason gapbook keeps "
+            f"for") in err and meaning in err
+
+
+def test_record_tables_read_back_texts_that_pandas_would_take_for_missing_values(tmp_path):
+    # A column named NA (or None, null) is a term of estimates.csv; read back with pandas' default missing
+    # markers it became NaN, and the landing page stopped on a TypeError in exposure_terms.
+    import numpy as np
+    import pandas as pd
+
+    from gapbook.pages import effect_table
+    from gapbook.record import compare_table
+    from gapbook.stage import read_csv, write_csv
+
+    texts = ["NA", "None", "null", "nan", "N/A", "NULL", "#N/A", "n/a", "-nan"]
+    frame = pd.DataFrame({"term": texts + [None], "estimate": np.arange(len(texts) + 1.0)})
+    back = read_csv(write_csv(frame, tmp_path / "t.csv"))
+    assert back["term"].tolist()[:-1] == texts and pd.isna(back["term"].iloc[-1])
+    estimates = pd.DataFrame({"strategy": "complete_case", "term": ["Intercept", "NA"], "estimate": [1.0, 0.5],
+                              "std_error": [0.1, 0.2], "ci_lower": [0.8, 0.1], "ci_upper": [1.2, 0.9],
+                              "p_value": [0.001, 0.02], "n_used": 50})
+    effect = effect_table(read_csv(write_csv(estimates, tmp_path / "estimates.csv")), family="gaussian",
+                          exposure="NA", alpha=0.05)
+    assert effect is not None and list(effect.terms) == ["NA"]
+    # verify's comparison reads tables the same way: 'NA' and 'null' are two texts, not one missing value
+    other = write_csv(frame.assign(term=["null"] + texts[1:] + [None]), tmp_path / "u.csv")
+    assert not compare_table(tmp_path / "t.csv", other).ok

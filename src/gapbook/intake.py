@@ -750,7 +750,7 @@ def load_study(params: Params, raw: Optional[pd.DataFrame] = None) -> Study:
 
     data = pd.DataFrame(values, index=raw.index)
     reason_frame = pd.DataFrame(reasons, index=raw.index)
-    reason_frame = _reasons_from_columns(reason_frame, raw, params, label)
+    reason_frame = _reasons_from_columns(reason_frame, raw, params, label, ids)
     data, reason_frame = _apply_applicability(data, reason_frame, params, label, conditions, ids, warnings)
     data, reason_frame, baseline_notes = _baseline_change_not_applicable(data, reason_frame, params)
     data, reason_frame, issues = _check_ranges(data, reason_frame, infos, params, ids)
@@ -834,7 +834,15 @@ def _keep_rows(raw: pd.DataFrame, params: Params, label: str, warnings: List[str
 MAX_REASON_TEXTS = 50
 
 
-def _reasons_from_columns(reasons: pd.DataFrame, raw: pd.DataFrame, params: Params, label: str) -> pd.DataFrame:
+# Reasons intake gives itself, which a reason column's text may not take over: 'not applicable' makes a cell
+# not missing (a blank outcome would leave the analysis of missing values), 'implausible' says a range
+# check set the value missing.
+_RESERVED_REASONS = {NOT_APPLICABLE: "cells outside a variable's applies_if condition, which are not missing",
+                     IMPLAUSIBLE: "values a range check set missing (variables.<x>.range)"}
+
+
+def _reasons_from_columns(reasons: pd.DataFrame, raw: pd.DataFrame, params: Params, label: str,
+                          ids: pd.Series) -> pd.DataFrame:
     """Blank cells of a column take their reason from another column's text on the same row (``reason_from``).
 
     A trial file records why an outcome is missing in a column of its own (ADaM's DCSREAS,
@@ -865,6 +873,12 @@ def _reasons_from_columns(reasons: pd.DataFrame, raw: pd.DataFrame, params: Para
                              "reasons are at most 200")
         blank = (reasons[column].astype(object) == BLANK).to_numpy()
         take = blank & usable
+        for reserved, meaning in _RESERVED_REASONS.items():
+            rows = np.flatnonzero(take & (texts == reserved).to_numpy())
+            if len(rows):
+                raise InputError(f"{where}: '{one_line(source, 80)}' holds '{reserved}' at {_rows_note(rows, ids)}, "
+                                 f"the reason gapbook keeps for {meaning}; write that reason another way in the "
+                                 f"file (e.g. '{reserved} (recorded)')")
         if take.any():
             values = reasons[column].astype(object).where(~take, texts)
             reasons[column] = pd.Categorical(values, categories=sorted(set(values.dropna())))

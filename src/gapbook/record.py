@@ -509,7 +509,9 @@ def compare_table(recorded: Path, rerun: Path) -> Check:
     if recorded.read_bytes() == rerun.read_bytes():
         return Check(name, "identical", ok=True)
     try:
-        a, b = pd.read_csv(recorded), pd.read_csv(rerun)
+        from .stage import read_csv  # the reader of every record table: 'NA' stays text, '' is missing
+
+        a, b = read_csv(recorded), read_csv(rerun)
     except Exception as exc:  # a tampered file may not even parse
         return Check(name, "different", f"cannot be read: {type(exc).__name__}")
     if list(a.columns) != list(b.columns) or a.shape != b.shape:

@@ -132,6 +132,9 @@ def read_csv(path: Path, **options: Any) -> pd.DataFrame:
     -------
     DataFrame
     """
+    # write_csv writes a missing value as an empty cell and nothing else: a text such as 'NA', 'None' or
+    # 'null' (a level, a column name in a term) is that text, not pandas' default missing value.
+    options = {"keep_default_na": False, "na_values": [""], **options}
     return _map_text(pd.read_csv(path, **options), spreadsheet_original)
 
 
