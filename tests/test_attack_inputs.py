@@ -474,3 +474,20 @@ def test_record_tables_read_back_texts_that_pandas_would_take_for_missing_values
     # verify's comparison reads tables the same way: 'NA' and 'null' are two texts, not one missing value
     other = write_csv(frame.assign(term=["null"] + texts[1:] + [None]), tmp_path / "u.csv")
     assert not compare_table(tmp_path / "t.csv", other).ok
+
+
+def test_check_warns_when_a_cox_fit_runs_off_along_a_continuous_covariate(tmp_path, capsys):
+    # x = -months orders every event first in its risk set, so the partial likelihood rises for ever in x's
+    # coefficient (Bryson & Johnson 1981, Technometrics 23:381): statsmodels gave NaN estimates that did not
+    # converge, and check said nothing (its monotone-likelihood check looks at two-valued columns only).
+    csv = "pid,months,status,arm,x\n" + "".join(
+        f"{i},{m},{s},{a},{-m}\n" for i, (m, s, a) in enumerate(
+            [(5, 1, "a"), (7, 0, "b"), (9, 1, "a"), (3, 1, "b"), (8, 1, "b"), (2, 0, "a"), (4, 1, "a"), (6, 1, "b"),
+             (10, 0, "a"), (11, 1, "b")], start=1))
+    params = COX.replace('"months ~ arm"', '"months ~ arm + x"').replace(
+        "event: {column: status, event: [yes], censored: [no]}", "event: status")
+    code = main(["check", str(study(tmp_path, params, csv)), "--only", "cases"])
+    out = capsys.readouterr()
+    assert code == 0, out.err
+    assert "warning: cases: the Cox model did not converge, so the stage will report a fit that did not converge" \
+        in out.out + out.err

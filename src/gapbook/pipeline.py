@@ -297,12 +297,19 @@ def check_cox_up_front(params: Params, study: Any, stages: Sequence[str]) -> Tup
     found = []
     for stage, fit in fits:
         try:
-            unbounded = fit().unbounded
+            fitted = fit()
         except AnalysisError:  # the stage explains a fit that fails outright
             continue
-        if unbounded:
+        if fitted.unbounded:
             found.append(f"{stage}: the {words.model} model has no finite estimate ({words.cause}), so the stage "
-                         f"will report a fit that did not converge: {unbounded_causes(unbounded)}; {UNBOUNDED_ADVICE}")
+                         f"will report a fit that did not converge: {unbounded_causes(fitted.unbounded)}; "
+                         f"{UNBOUNDED_ADVICE}")
+        elif not fitted.converged:
+            # One column at a time names the usual causes; a continuous covariate that orders the events (or a
+            # combination of columns) runs off the same way and was not said at all.
+            found.append(f"{stage}: the {words.model} model did not converge, so the stage will report a fit that "
+                         f"did not converge; a covariate, or a combination of them, may account for the outcome "
+                         f"perfectly ({words.cause} along it): check the covariates against the outcome")
     return tuple(found)
 
 
