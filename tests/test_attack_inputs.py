@@ -274,7 +274,9 @@ def test_a_params_file_that_is_not_utf8_says_so(tmp_path, capsys):
 @pytest.mark.parametrize("engine", ["pandas", "duckdb"])
 @pytest.mark.parametrize("content,needle", [
     (b"\x00" * (2 << 20), "d.csv: a NUL character on line 1 (within its first 64 KiB): this is not a text file"),
-    (b"a" * (2 << 20), "d.csv: no line break in its first 1 MiB"),
+    (b"a" * (2 << 20), "d.csv: no line break in its first 1 MiB, so its header row alone would be longer; this is "
+                       "not a delimited text file gapbook reads as utf-8: check data.path, data.format and "
+                       "data.encoding"),
     (CSV.encode("utf-16"), "d.csv: the file starts with a UTF-16 or UTF-32 byte-order mark but data.encoding is "
                            "utf-8; set data.encoding: utf-16"),
     (CSV.encode("utf-16-le"), "d.csv: a NUL character on line 1 (within its first 64 KiB): this is not a text file "
@@ -491,3 +493,30 @@ def test_check_warns_when_a_cox_fit_runs_off_along_a_continuous_covariate(tmp_pa
     assert code == 0, out.err
     assert "warning: cases: the Cox model did not converge, so the stage will report a fit that did not converge" \
         in out.out + out.err
+
+
+def test_a_follow_up_formula_term_too_large_to_square_is_refused_by_check(tmp_path, capsys):
+    # exp(800) is inf (IEEE 754): check passed and the mixed model stopped on numpy's "SVD did not converge".
+    csv = WIDE + "7,a,800,1.1,2.1\n8,b,6,0.9,1.7\n"
+    import warnings
+
+    params = WIDE_PARAMS.replace("+ base", "+ np.exp(base)")
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        code, err = check(study(tmp_path, params, csv), capsys)
+    assert not [w for w in caught if issubclass(w.category, RuntimeWarning)], [str(w.message) for w in caught]
+    assert code == 2 and len(err.strip().splitlines()) == 1, err
+    assert "analysis.formula: the term np.exp(base) is inf at subject 7, visit 2, too large to square" in err
+
+
+@pytest.mark.parametrize("source,needle", [
+    ("arm", "missing.columns.y.reason_from: 'arm' is used by analysis.formula, but a reason column gives reasons"),
+    ("y", "missing.columns.y.reason_from names 'y' itself"),
+])
+def test_a_reason_column_that_the_study_uses_is_refused_naming_both_keys(tmp_path, source, needle):
+    # Intake sets a reason column apart from the variables: check said "analysis.formula: 'arm' is not a column
+    # of the data" about a column that is in the file.
+    params = PARAMS.replace('missing: {markers: ["NA", "?"]}', f"missing: {{columns: {{y: {{reason_from: {source}}}}}}}")
+    with pytest.raises(InputError) as info:
+        load_params(study(tmp_path, params))
+    assert needle in str(info.value)

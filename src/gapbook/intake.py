@@ -377,7 +377,8 @@ def _refuse_binary_text(path: Path, encoding: str, named: str) -> None:
     text += decoder.decode(head[SNIFF_BYTES:])
     if len(head) == MAX_HEADER_BYTES and "\n" not in text and "\r" not in text:
         raise InputError(f"{path}: no line break in its first 1 MiB, so its header row alone would be longer; this "
-                         "is not a delimited text file gapbook reads: check data.path and data.format")
+                         f"is not a delimited text file gapbook reads as {named}: check data.path, data.format and "
+                         "data.encoding")
 
 
 def _text_header(path: Path, sep: str, encoding: str) -> List[str]:

@@ -10,7 +10,7 @@ from __future__ import annotations
 import re
 import warnings
 from dataclasses import dataclass
-from typing import Any, Dict, List, Optional, Sequence, Tuple
+from typing import Any, Callable, Dict, List, Optional, Sequence, Tuple
 
 import numpy as np
 import pandas as pd
@@ -343,12 +343,13 @@ def identifiable_columns(design: np.ndarray, names: Sequence[str], *, tolerance:
 MAX_DESIGN_SQUARES = 1e300
 
 
-def refuse_overflowing_design(matrix: Any, names: Sequence[str], rows: Sequence[Any]) -> None:
+def refuse_overflowing_design(matrix: Any, names: Sequence[str], where: Callable[[int], str]) -> None:
     """Stop (option ``formula``) on a design or outcome column whose values a fit cannot square and sum.
 
     The variables themselves are bounded at intake (:data:`gapbook.intake.MAX_MAGNITUDE`); a
     formula's terms (``np.exp(x)``, ``I(x ** 9)``) can still reach infinity or values whose squares
-    overflow. The error names the term, the value and the data row (1-based) that holds it.
+    overflow. The error names the term, the value and the row that holds it. The follow-up
+    stage's mixed model checks its design on the visit grid with it too.
 
     Parameters
     ----------
@@ -356,14 +357,16 @@ def refuse_overflowing_design(matrix: Any, names: Sequence[str], rows: Sequence[
         The design (or outcome) matrix, one row per analysed row.
     names : sequence of str
         The column names (statsmodels' term names).
-    rows : sequence
-        The data frame's index labels of the analysed rows.
+    where : callable
+        Gives the words for the row at a 0-based position of ``matrix`` (``data row 4``,
+        ``subject P3, visit 2``).
 
     Returns
     -------
     None
     """
-    values = np.asarray(matrix, dtype=float).reshape(len(rows), -1)
+    values = np.asarray(matrix, dtype=float)
+    values = values.reshape(values.shape[0], -1)
     if values.size == 0:
         return
     limit = np.sqrt(MAX_DESIGN_SQUARES / values.shape[0])
@@ -372,18 +375,25 @@ def refuse_overflowing_design(matrix: Any, names: Sequence[str], rows: Sequence[
     if not beyond.any():
         return
     row, j = min(zip(*np.nonzero(beyond)))
-    label = rows[row]
-    where = f"data row {int(label) + 1}" if isinstance(label, (int, np.integer)) else f"row {one_line(label, 40)}"
-    raise InputError(f"the term {names[j]} is {values[row, j]:g} at {where}, too large to square and sum over the "
+    raise InputError(f"the term {names[j]} is {values[row, j]:g} at {where(int(row))}, too large to square and sum "
+                     f"over the "
                      f"{values.shape[0]:,} analysed rows in double precision; rescale the variable (e.g. other "
                      "units) or write the term differently", option="formula")
 
 
+def _data_rows(labels: Optional[Sequence[Any]]) -> Callable[[int], str]:
+    """Words for a fitted row: 'data row 4' (intake's rows are numbered from 0, shown from 1)."""
+    def where(row: int) -> str:
+        label = row if labels is None else labels[row]
+        return f"data row {int(label) + 1}" if isinstance(label, (int, np.integer)) else f"row {one_line(label, 40)}"
+    return where
+
+
 def _refuse_overflowing_model(model: Any) -> None:
     """:func:`refuse_overflowing_design` on a statsmodels model's outcome and design."""
-    rows = list(model.data.row_labels) if model.data.row_labels is not None else list(range(model.exog.shape[0]))
-    refuse_overflowing_design(model.endog, [model.endog_names], rows)
-    refuse_overflowing_design(model.exog, model.exog_names, rows)
+    where = _data_rows(None if model.data.row_labels is None else list(model.data.row_labels))
+    refuse_overflowing_design(model.endog, [model.endog_names], where)
+    refuse_overflowing_design(model.exog, model.exog_names, where)
 
 
 def _refuse_infinite_terms(data: pd.DataFrame, formula: str) -> None:
@@ -393,8 +403,8 @@ def _refuse_infinite_terms(data: pd.DataFrame, formula: str) -> None:
     with warnings.catch_warnings(), np.errstate(all="ignore"):  # numpy's overflow warning is what is explained
         warnings.simplefilter("ignore", RuntimeWarning)
         outcome, design = patsy.dmatrices(formula, data, eval_env=formula_environment(), return_type="dataframe")
-    refuse_overflowing_design(outcome.to_numpy(), list(outcome.columns), list(outcome.index))
-    refuse_overflowing_design(design.to_numpy(), list(design.columns), list(design.index))
+    refuse_overflowing_design(outcome.to_numpy(), list(outcome.columns), _data_rows(list(outcome.index)))
+    refuse_overflowing_design(design.to_numpy(), list(design.columns), _data_rows(list(design.index)))
 
 
 # statsmodels' warnings that say a fit did not converge or its estimates do not exist

@@ -532,6 +532,7 @@ class Params(_Section):
         except RecursionError:
             raise InputError(f"{label}: the params are nested too deeply") from None
         _check_followup(params, label)
+        _check_reason_sources(params, label)
         return params
 
 
@@ -639,6 +640,38 @@ def _check_wide_columns(params: Params, subject: str, label: str) -> None:
         raise InputError(f"{label}: design.outcome_columns names '{one_line(both[0], 80)}', which analysis.formula "
                          "uses as a covariate (one value per participant); list the outcome's own column at each "
                          "planned visit, or take it out of the formula")
+
+
+def _check_reason_sources(params: Params, label: str) -> None:
+    """A reason column (``missing.columns.<x>.reason_from``) is set apart from the variables, so nothing may use it.
+
+    Intake drops it from the study's variables; named by the formula (or as the column itself)
+    the study lost that variable, and check said "analysis.formula: 'arm' is not a column of the
+    data" about a column that is in the file.
+    """
+    uses: Dict[str, str] = {}
+    if params.analysis.formula:
+        try:
+            parsed = parse_formula(params.analysis.formula, where="")
+            uses.update({column: "analysis.formula" for column in (parsed.outcome, *parsed.columns)})
+        except ExpressionError:
+            pass  # the formula's own check names what is wrong with it
+    event = params.analysis.event_column()
+    if event is not None:
+        uses[event] = "analysis.event"
+    uses.update({column: "audit.by" for column in params.audit.by})
+    for name, section in params.missing.columns.items():
+        source = section.reason_from
+        if source is None:
+            continue
+        key = f"missing.columns.{name}.reason_from"
+        if source == name:
+            raise InputError(f"{label}: {key} names '{one_line(name, 80)}' itself; name the column that says why "
+                             f"{one_line(name, 80)} is blank (e.g. a discontinuation reason)")
+        if source in uses:
+            raise InputError(f"{label}: {key}: '{one_line(source, 80)}' is used by {uses[source]}, but a reason column "
+                             "gives reasons and is no variable of the study; name another column, or take it out of "
+                             f"{uses[source]}")
 
 
 def _check_followup(params: Params, label: str) -> None:

@@ -24,7 +24,7 @@ import pandas as pd
 
 from ..errors import AnalysisError, InputError, did_you_mean
 from ..expressions import formula_environment
-from ..models import check_formula, exposure_terms
+from ..models import check_formula, exposure_terms, refuse_overflowing_design
 
 __all__ = ["label", "last_observed_index", "RepeatedOutcome", "repeated_outcome", "wide_to_long"]
 
@@ -389,6 +389,9 @@ def repeated_outcome(data: pd.DataFrame, *, formula: str, subject: str, visit: s
             raise InputError(f"'{column}' has no value at visit {label(missing[0])}", option="formula")
         grid[column] = grid[visit].map(per_visit).astype(data[column].dtype)
     design_info, matrix = _design(formula, grid)
+    # np.exp(base) at a base of 800 is inf: the mixed model stopped on "SVD did not converge" after check passed
+    refuse_overflowing_design(matrix, design_info.column_names,
+                              lambda r: f"subject {label(subjects[r // t])}, visit {label(visits[r % t])}")
     # The outcome matrix.
     position = pd.Series(np.arange(n), index=subjects)
     visit_position = {v: k for k, v in enumerate(visits)}
@@ -428,7 +431,8 @@ def _design(formula: str, grid: pd.DataFrame) -> Tuple[Any, np.ndarray]:
     rhs = formula.split("~", 1)[1]
     try:
         # Only the expression language's functions are visible to the (checked) formula.
-        matrix = patsy.dmatrix(rhs, grid, eval_env=formula_environment(), NA_action="raise")
+        with np.errstate(over="ignore", invalid="ignore"):  # an inf term is named by the caller, not warned of
+            matrix = patsy.dmatrix(rhs, grid, eval_env=formula_environment(), NA_action="raise")
     except Exception as exc:
         first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
         raise InputError(f"'{formula}' could not be built on the visit grid ({first})", option="formula") from None
