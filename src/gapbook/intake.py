@@ -1742,9 +1742,12 @@ def spread_values(values: np.ndarray, median: float, log: bool) -> np.ndarray:
     The fold is the exponential of the distance on the log scale; it uses only division, so
     SQL gives the same floating point numbers (the log is taken afterwards, in numpy).
     """
-    if log:
-        return np.maximum(values / median, median / values)
-    return np.abs(values - median)
+    # A value near the smallest double (5e-324) makes median / value overflow: inf, as SQL gives it, without
+    # numpy's warning printed raw beside check's output.
+    with np.errstate(over="ignore"):
+        if log:
+            return np.maximum(values / median, median / values)
+        return np.abs(values - median)
 
 
 def robust_centre(median: float, spread_median: float, log: bool) -> Optional[RobustCentre]:
