@@ -913,11 +913,12 @@ class _Scanner:
     def _id_value(self, rn: int, ident: Any) -> Any:
         return int(ident) if self.id_column is None else clean_id(ident)
 
-    def _extremes(self, columns: Dict[str, ScannedColumn]) -> pd.DataFrame:
+    def _extremes(self, columns: Dict[str, ScannedColumn], summaries: Dict[str, Dict[str, Any]]) -> pd.DataFrame:
         screened = [c for c in columns.values()
                     if c.info.type in NUMERIC_TYPES and c.info.numeric_storage and c.value_sql is not None]
         centres = _robust_centres(self.con, "study", [f"v_{c.alias}" for c in screened],
-                                  sample_relation=self.sample_relation, positive=[self._positive(c) for c in screened])
+                                  sample_relation=self.sample_relation,
+                                  positive=[self._positive(c, summaries[c.name]["lo"]) for c in screened])
         cutoff = float(self.params.missing.robust_z)
         wanted = [(column, centre) for column, centre in zip(screened, centres) if centre is not None]
         if not wanted:
@@ -946,11 +947,10 @@ class _Scanner:
                              "z_scale": "log" if centre.log else "linear"})
         return pd.DataFrame(rows, columns=list(EXTREME_COLUMNS))
 
-    def _positive(self, column: ScannedColumn) -> Optional[bool]:
-        """Whether every value of the column is positive, as far as the smallest plain number read and a range whose
-        outside values are set missing tell (a value listed as a marker but kept is not looked at: the
-        screen's second pass mends a wrong answer); None where the column has no plain number."""
-        low = self.summaries[column.name]["lo"]
+    def _positive(self, column: ScannedColumn, low: Optional[float]) -> Optional[bool]:
+        """Whether every value of the column is positive, as far as the smallest plain number read (``low``) and a
+        range whose outside values are set missing tell (a value listed as a marker but kept is not looked at:
+        the screen's second pass mends a wrong answer); None where the column has no plain number."""
         bounds = column.info.range
         if low is not None and bounds is not None and bounds[0] is not None and \
                 range_action(self.params, column.name) == "missing":
@@ -985,7 +985,7 @@ class _Scanner:
             sep = self.params.data.delimiter or ("," if self.fmt == "csv" else "\t")
             self.file_names = [str(n).strip() for n in _text_header(self.path, sep, encoding)]
         self._load()
-        summaries = self.summaries = self._summaries()
+        summaries = self._summaries()
         if self.n_rows == 0:
             raise InputError(f"{self.path}: the data file has no data rows; it needs a header row and data rows")
         self._check_ids()
@@ -998,7 +998,7 @@ class _Scanner:
         self.warnings.extend(self._condition_warnings(columns))
         issues = self._range_issues(columns)
         self._refuse_too_large(columns, summaries)
-        extremes = self._extremes(columns)
+        extremes = self._extremes(columns, summaries)
         infos = {name: c.info for name, c in columns.items()}
         return ScannedStudy(connection=self.con, relation="study", n_rows=self.n_rows, columns=columns,
                             id_column=self.id_column, range_issues=issues, extreme_values=extremes,
@@ -1040,14 +1040,11 @@ class _Gap:
 
 
 def _ranked(values: np.ndarray, counts: np.ndarray, gaps: Sequence[_Gap], rank: int) -> Optional[float]:
-    """The ``rank``-th smallest (from 0) of listed values (distinct, with their counts) and the gaps' values.
+    """The ``rank``-th smallest (from 0) of listed values (sorted, with their counts) and the gaps' values.
 
     None unless the listing decides it: the answer is a listed value ``c`` such that exactly so
     many values lie below ``c`` and so many at or below it, every gap lying wholly on one side.
     """
-    if len(values) > 1 and not (values[1:] >= values[:-1]).all():
-        order = np.argsort(values, kind="stable")
-        values, counts = values[order], counts[order]
     ends = np.cumsum(counts)
     first = np.concatenate([[True], values[1:] != values[:-1]]) if len(values) else np.zeros(0, dtype=bool)
     last = np.concatenate([first[1:], [True]]) if len(values) else first
@@ -1188,23 +1185,23 @@ def _robust_centres(con, relation: str, expressions: Sequence[str], sample_relat
             if median is None:  # the guess missed the middle (rare): take every value of that expression
                 median = _every_value_median(con, relation, e, e)
         medians.append(median)
-    positive = [listing.low is not None and float(listing.low) > 0 for listing in listings]
+    folds = [listing.low is not None and float(listing.low) > 0 for listing in listings]  # every value positive
     middles: List[Optional[float]] = [
         _listed_spread_middle(listing, m, log) if m is not None and a is not None else None
-        for listing, m, log, a in zip(listings, medians, positive, around)]
+        for listing, m, log, a in zip(listings, medians, folds, around)]
     second = [j for j, (m, middle) in enumerate(zip(medians, middles)) if m is not None and middle is None]
     if second:
         # The spreads from the exact median, in a window guessed from the sample's spreads.
-        spreads = [_spread_sql(expressions[j], RobustCentre(median=medians[j], scale=0.0, log=positive[j]))
+        spreads = [_spread_sql(expressions[j], RobustCentre(median=medians[j], scale=0.0, log=folds[j]))
                    for j in second]
-        guessed = [_window(spread_values(sample[j], medians[j], positive[j])) for j in second]
+        guessed = [_window(spread_values(sample[j], medians[j], folds[j])) for j in second]
         found = _listed_values(con, relation, spreads, [[w] if w is not None else [] for w in guessed],
                                nonnull=[expressions[j] for j in second])
         for j, spread, listing in zip(second, spreads, found):
             middle = _ranked_middle(listing.values, listing.counts, listing.gaps, listing.n)
             middles[j] = middle if middle is not None else _every_value_median(con, relation, spread, expressions[j])
     out: List[Optional[RobustCentre]] = []
-    for listing, median, middle, log in zip(listings, medians, middles, positive):
+    for listing, median, middle, log in zip(listings, medians, middles, folds):
         if listing.n < 3 or median is None or middle is None:
             out.append(None)
             continue
